@@ -1,0 +1,44 @@
+//! `isogloss`: the command-line interface. It parses flags, shows progress and wires the library
+//! crates together; no algorithm lives here.
+//!
+//! Exit codes (a contract): 0 success; 1 bad input or usage, with a message naming the file and
+//! line; 2 a batch finished but some items failed (they are listed on stderr).
+
+mod commands;
+mod progress;
+
+use std::process::ExitCode;
+
+use clap::{Parser, Subcommand};
+
+/// Speech recognition for dialects: train, transcribe, score and ablate on a CPU, offline.
+#[derive(Parser)]
+#[command(name = "isogloss", version, about, long_about = None)]
+struct Cli {
+    #[command(subcommand)]
+    command: Command,
+}
+
+#[derive(Subcommand)]
+enum Command {}
+
+/// How a command that did not fail outright ended.
+pub enum Outcome {
+    /// Everything asked for was done.
+    Done,
+    /// The batch ran to the end but the listed items failed; exit code 2.
+    SomeItemsFailed,
+}
+
+fn main() -> ExitCode {
+    let cli = Cli::parse();
+    let result: anyhow::Result<Outcome> = match cli.command {};
+    match result {
+        Ok(Outcome::Done) => ExitCode::SUCCESS,
+        Ok(Outcome::SomeItemsFailed) => ExitCode::from(2),
+        Err(error) => {
+            eprintln!("error: {error:#}");
+            ExitCode::from(1)
+        }
+    }
+}

@@ -1,0 +1,2 @@
+//! Corpus manifests: reading, validating and splitting the tab-separated utterance lists.
+#![deny(missing_docs)]
