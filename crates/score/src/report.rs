@@ -369,3 +369,182 @@ fn compare(first: &ScoredSystem, second: &ScoredSystem, options: &ScoreOptions) 
         flexible_wer_difference,
     }
 }
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::input::{Hypothesis, ReferenceUtterance};
+
+    fn reference(rows: &[(&str, &str, &str)]) -> Reference {
+        Reference {
+            path: "ref.tsv".into(),
+            column: "dialectal".into(),
+            group_columns: vec!["dialect".into()],
+            utterances: rows
+                .iter()
+                .enumerate()
+                .map(|(i, (id, dialect, text))| ReferenceUtterance {
+                    id: id.to_string(),
+                    line: i + 2,
+                    text: text.to_string(),
+                    groups: vec![dialect.to_string()],
+                })
+                .collect(),
+        }
+    }
+
+    fn hypotheses(path: &str, rows: &[(&str, &str)]) -> Hypotheses {
+        Hypotheses {
+            path: path.into(),
+            entries: rows
+                .iter()
+                .enumerate()
+                .map(|(i, (id, text))| Hypothesis {
+                    id: id.to_string(),
+                    line: i + 2,
+                    text: text.to_string(),
+                })
+                .collect(),
+        }
+    }
+
+    fn variants() -> VariantMap {
+        let mut map = VariantMap::new();
+        map.insert("gsi", "gewesen");
+        map.insert("gsy", "gewesen");
+        map
+    }
+
+    const REFERENCE: [(&str, &str, &str); 3] = [
+        ("u1", "nord", "Mir sy dahei gsi."),
+        ("u2", "süd", "d chue isch im stall"),
+        ("u3", "süd", "gsi"),
+    ];
+
+    #[test]
+    fn a_variant_substitution_is_forgiven_and_another_word_is_not() {
+        let reference = reference(&REFERENCE);
+        // u1: `gsy` is a variant of `gsi` (forgiven); u2: `chüe` is not a variant of `chue`.
+        let hyps = hypotheses(
+            "hyp.tsv",
+            &[
+                ("u1", "mir sy dahei gsy"),
+                ("u2", "d chüe isch im stall"),
+                ("u3", "gsi"),
+            ],
+        );
+        let map = variants();
+        let scored = score_system(&reference, &hyps, Some(&map), &TokenRules::default()).unwrap();
+        assert_eq!(scored.utterances[0].plain.substitutions, 1);
+        let flexible = scored.utterances[0].flexible.unwrap();
+        assert_eq!((flexible.errors(), flexible.forgiven), (0, 1));
+        let flexible = scored.utterances[1].flexible.unwrap();
+        assert_eq!((flexible.substitutions, flexible.forgiven), (1, 0));
+
+        let report = report(
+            &reference,
+            &scored,
+            None,
+            Some(&map),
+            &ScoreOptions::default(),
+        );
+        assert_eq!(report.overall.ref_words, 10);
+        assert_eq!(report.overall.wer, Some(0.2));
+        assert_eq!(report.overall.flexible_wer, Some(0.1));
+        assert_eq!(report.confusions.len(), 2);
+        let by_pair: Vec<(&str, &str, bool)> = report
+            .confusions
+            .iter()
+            .map(|c| (c.reference.as_str(), c.hypothesis.as_str(), c.variant))
+            .collect();
+        assert_eq!(by_pair, [("chue", "chüe", false), ("gsi", "gsy", true)]);
+    }
+
+    #[test]
+    fn an_empty_variant_map_gives_flexible_equal_to_plain() {
+        let reference = reference(&REFERENCE);
+        let hyps = hypotheses("hyp.tsv", &[("u1", "mir sy dahei gsy"), ("u2", "d chue")]);
+        let empty = VariantMap::new();
+        let scored = score_system(&reference, &hyps, Some(&empty), &TokenRules::default()).unwrap();
+        let report = report(
+            &reference,
+            &scored,
+            None,
+            Some(&empty),
+            &ScoreOptions::default(),
+        );
+        assert_eq!(report.overall.flexible_wer, report.overall.wer);
+        assert_eq!(report.overall.flexible, Some(report.overall.plain));
+    }
+
+    #[test]
+    fn missing_utterances_are_all_deletions_and_groups_add_up() {
+        let reference = reference(&REFERENCE);
+        let hyps = hypotheses("hyp.tsv", &[("u1", "mir sy dahei gsi")]);
+        let scored = score_system(&reference, &hyps, None, &TokenRules::default()).unwrap();
+        assert_eq!(scored.missing(), ["u2", "u3"]);
+        let report = report(&reference, &scored, None, None, &ScoreOptions::default());
+        assert_eq!(report.missing_utterances, ["u2", "u3"]);
+        assert_eq!(report.overall.plain.deletions, 6);
+        assert_eq!(report.overall.flexible_wer, None);
+        let groups: Vec<(&str, u64, usize)> = report
+            .groups
+            .iter()
+            .map(|g| {
+                (
+                    g.value.as_str(),
+                    g.summary.plain.errors(),
+                    g.summary.utterances,
+                )
+            })
+            .collect();
+        assert_eq!(groups, [("nord", 0, 1), ("süd", 6, 2)]);
+    }
+
+    #[test]
+    fn an_unknown_hypothesis_id_names_file_and_line() {
+        let reference = reference(&REFERENCE);
+        let hyps = hypotheses("hyp.tsv", &[("u1", "a"), ("u9", "b"), ("u8", "c")]);
+        let message = score_system(&reference, &hyps, None, &TokenRules::default())
+            .unwrap_err()
+            .to_string();
+        assert!(
+            message.contains("hyp.tsv")
+                && message.contains("line 3")
+                && message.contains("`u9`")
+                && message.contains("ref.tsv")
+                && message.contains("1 more"),
+            "{message}"
+        );
+    }
+
+    #[test]
+    fn comparison_reports_the_better_second_system() {
+        let rows: Vec<(String, &str, String)> = (0..40)
+            .map(|i| (format!("u{i}"), "nord", format!("mir sy dahei gsi {i}")))
+            .collect();
+        let rows: Vec<(&str, &str, &str)> = rows
+            .iter()
+            .map(|(id, d, t)| (id.as_str(), *d, t.as_str()))
+            .collect();
+        let reference = reference(&rows);
+        let worse: Vec<(&str, &str)> = rows.iter().map(|(id, _, _)| (*id, "mir dahei")).collect();
+        let better: Vec<(&str, &str)> = rows
+            .iter()
+            .map(|(id, _, _)| (*id, "mir sy dahei"))
+            .collect();
+        let rules = TokenRules::default();
+        let first = score_system(&reference, &hypotheses("a.tsv", &worse), None, &rules).unwrap();
+        let second = score_system(&reference, &hypotheses("b.tsv", &better), None, &rules).unwrap();
+        let options = ScoreOptions::default();
+        let report = report(&reference, &first, Some(&second), None, &options);
+        let comparison = report.comparison.unwrap();
+        let difference = comparison.wer_difference.unwrap();
+        assert!((difference.difference - (-0.2)).abs() < 1e-12);
+        assert_eq!(difference.bootstrap.probability_system2_better, 1.0);
+        assert!(difference
+            .bootstrap
+            .difference_interval
+            .contains(difference.difference));
+    }
+}
