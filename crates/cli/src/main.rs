@@ -20,7 +20,12 @@ struct Cli {
 }
 
 #[derive(Subcommand)]
-enum Command {}
+enum Command {
+    /// Word error rate and flexible WER of hypotheses against a reference manifest.
+    Score(commands::score::ScoreArgs),
+    /// Build a spelling-variant map from two word-aligned transcript columns.
+    Variants(commands::variants::VariantsArgs),
+}
 
 /// How a command that did not fail outright ended.
 pub enum Outcome {
@@ -32,7 +37,10 @@ pub enum Outcome {
 
 fn main() -> ExitCode {
     let cli = Cli::parse();
-    let result: anyhow::Result<Outcome> = match cli.command {};
+    let result: anyhow::Result<Outcome> = match cli.command {
+        Command::Score(args) => commands::score::run(args),
+        Command::Variants(args) => commands::variants::run(args),
+    };
     match result {
         Ok(Outcome::Done) => ExitCode::SUCCESS,
         Ok(Outcome::SomeItemsFailed) => ExitCode::from(2),

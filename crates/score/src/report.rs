@@ -313,7 +313,7 @@ pub fn report(
         })
         .collect();
     // Stable sort over the alphabetical map order: ties stay alphabetical.
-    confusions.sort_by(|a, b| b.count.cmp(&a.count));
+    confusions.sort_by_key(|c| std::cmp::Reverse(c.count));
     confusions.truncate(options.top_confusions);
 
     let comparison = second.map(|second| compare(system, second, options));
