@@ -286,10 +286,12 @@ pub fn report(
     for (column_index, column) in reference.group_columns.iter().enumerate() {
         let mut members: BTreeMap<&str, Vec<&UtteranceScore>> = BTreeMap::new();
         for (utterance, score) in reference.utterances.iter().zip(&system.utterances) {
-            members
-                .entry(utterance.groups[column_index].as_str())
-                .or_default()
-                .push(score);
+            // A hand-built reference may lack a grouping value; it then falls in the empty group.
+            let value = utterance
+                .groups
+                .get(column_index)
+                .map_or("", String::as_str);
+            members.entry(value).or_default().push(score);
         }
         for (value, scores) in members {
             groups.push(GroupSummary {

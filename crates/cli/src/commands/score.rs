@@ -41,6 +41,9 @@ pub struct ScoreArgs {
     #[arg(long, default_value_t = BootstrapOptions::default().resamples,
           value_parser = clap::builder::RangedU64ValueParser::<usize>::new().range(1..))]
     pub resamples: usize,
+    /// Coverage of the bootstrap intervals, between 0 and 1.
+    #[arg(long, default_value_t = BootstrapOptions::default().level, value_parser = parse_level)]
+    pub level: f64,
     /// Number of confusions listed.
     #[arg(long, default_value_t = ScoreOptions::default().top_confusions)]
     pub top: usize,
@@ -72,7 +75,7 @@ pub fn run(args: ScoreArgs) -> anyhow::Result<Outcome> {
         bootstrap: BootstrapOptions {
             resamples: args.resamples,
             seed: args.seed,
-            ..BootstrapOptions::default()
+            level: args.level,
         },
         top_confusions: args.top,
     };
@@ -117,6 +120,15 @@ pub fn run(args: ScoreArgs) -> anyhow::Result<Outcome> {
         print!("{}", render_markdown(&report));
     }
     Ok(Outcome::Done)
+}
+
+fn parse_level(text: &str) -> Result<f64, String> {
+    match text.parse::<f64>() {
+        Ok(level) if level > 0.0 && level < 1.0 => Ok(level),
+        _ => Err(format!(
+            "expected a coverage between 0 and 1 (e.g. 0.95), found `{text}`"
+        )),
+    }
 }
 
 fn warn_missing(hypotheses: &std::path::Path, missing: &[String]) {
@@ -184,7 +196,10 @@ fn summary_rows(out: &mut String, summary: &Summary) {
 
 /// The report as Markdown, in isogloss's own layout.
 pub fn render_markdown(report: &ScoreReport) -> String {
-    let level = 100.0 * report.options.bootstrap.level;
+    // "95", "99.5": one decimal at most, none when it is zero.
+    let level = format!("{:.1}", 100.0 * report.options.bootstrap.level)
+        .trim_end_matches(".0")
+        .to_string();
     let mut out = String::new();
     let _ = writeln!(out, "# Word error rates\n");
     let _ = writeln!(
@@ -204,14 +219,14 @@ pub fn render_markdown(report: &ScoreReport) -> String {
     }
     let _ = writeln!(
         out,
-        "\n- intervals: {level:.0} % percentile bootstrap over utterances, {} resamples, seed {}\n",
+        "\n- intervals: {level} % percentile bootstrap over utterances, {} resamples, seed {}\n",
         report.options.bootstrap.resamples, report.options.bootstrap.seed
     );
 
     let _ = writeln!(out, "## Overall\n");
     let _ = writeln!(
         out,
-        "| rate | value | {level:.0} % interval | substitutions | deletions | insertions | forgiven variants | reference words |"
+        "| rate | value | {level} % interval | substitutions | deletions | insertions | forgiven variants | reference words |"
     );
     let _ = writeln!(out, "|---|---:|---|---:|---:|---:|---:|---:|");
     summary_rows(&mut out, &report.overall);
@@ -223,10 +238,10 @@ pub fn render_markdown(report: &ScoreReport) -> String {
         let _ = writeln!(out, "\n## By {column}\n");
         let _ = write!(
             out,
-            "| {column} | utterances | reference words | WER | {level:.0} % interval |"
+            "| {column} | utterances | reference words | WER | {level} % interval |"
         );
         if flexible {
-            let _ = write!(out, " flexible WER | {level:.0} % interval |");
+            let _ = write!(out, " flexible WER | {level} % interval |");
         }
         let _ = writeln!(out);
         let _ = writeln!(
@@ -284,7 +299,7 @@ pub fn render_markdown(report: &ScoreReport) -> String {
         );
         let _ = writeln!(
             out,
-            "| rate | system 1 | system 2 | difference (2 − 1) | {level:.0} % interval of the difference | share of resamples where 2 is better |"
+            "| rate | system 1 | system 2 | difference (2 − 1) | {level} % interval of the difference | share of resamples where 2 is better |"
         );
         let _ = writeln!(out, "|---|---:|---:|---:|---|---:|");
         let rows = [
