@@ -13,23 +13,43 @@
 //! # Example
 //!
 //! ```
-//! use isogloss_lm::ArpaModel;
+//! use isogloss_lm::{estimate, NgramCounts, Smoothing};
 //!
-//! let text = "\\data\\\nngram 1=3\nngram 2=2\n\n\\1-grams:\n-99\t<s>\t-0.3\n-0.3\thello\t-0.2\n\
-//!             -0.3\t</s>\n\n\\2-grams:\n-0.1\t<s> hello\n-0.2\thello </s>\n\n\\end\\\n";
-//! let model = ArpaModel::read_from(text.as_bytes(), "inline.arpa").unwrap();
-//! let hello = model.word_index("hello").unwrap();
-//! let (log10_hello, state) = model.score(&model.sentence_start(), hello);
-//! assert!((log10_hello - -0.1).abs() < 1e-6);
-//! assert!((model.sentence_end(&state) - -0.2).abs() < 1e-6);
+//! let sentences = ["the cat sat", "the cat ran", "a dog sat"]
+//!     .iter()
+//!     .map(|line| line.split_whitespace().map(String::from).collect::<Vec<_>>());
+//! let counts = NgramCounts::from_sentences(sentences, 3).unwrap();
+//! let estimated = estimate(&counts, Smoothing::ModifiedKneserNey).unwrap();
+//! let model = estimated.model; // tiny corpus: `estimated.warnings` explains the discount fallback
+//!
+//! let mut state = model.sentence_start();
+//! let mut log10_sentence = 0.0;
+//! for word in ["the", "cat", "sat"] {
+//!     let (log10_prob, next) = model.score(&state, model.word_index(word).unwrap());
+//!     log10_sentence += log10_prob;
+//!     state = next;
+//! }
+//! log10_sentence += model.sentence_end(&state);
+//! assert!(log10_sentence < 0.0 && log10_sentence > -3.0);
+//! // model.write_arpa("model.arpa") writes it; ArpaModel::read reads it back.
 //! ```
 #![deny(missing_docs)]
 
 mod arpa;
+mod counts;
 mod error;
+mod estimate;
+mod eval;
 mod model;
 
+pub use counts::{read_vocabulary, CountOptions, NgramCounts};
 pub use error::LmError;
+pub use estimate::{
+    estimate, estimate_with, Discounts, Estimate, EstimateOptions, InterpolatedModel, Smoothing,
+};
+pub use eval::{
+    evaluate_sentences, evaluate_text, read_sentences, score_sentence, Perplexity, SentenceScorer,
+};
 pub use model::{
     ArpaModel, LmState, WordIndex, MAX_ENTRIES_PER_ORDER, MAX_ORDER, SENTENCE_END, SENTENCE_START,
     UNKNOWN_WORD,
@@ -37,3 +57,5 @@ pub use model::{
 
 #[cfg(test)]
 mod tests_arpa;
+#[cfg(test)]
+mod tests_estimate;
