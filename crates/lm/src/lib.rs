@@ -40,7 +40,10 @@ mod counts;
 mod error;
 mod estimate;
 mod eval;
+mod mix;
 mod model;
+mod prune;
+mod rebuild;
 
 pub use counts::{read_vocabulary, CountOptions, NgramCounts};
 pub use error::LmError;
@@ -50,12 +53,16 @@ pub use estimate::{
 pub use eval::{
     evaluate_sentences, evaluate_text, read_sentences, score_sentence, Perplexity, SentenceScorer,
 };
+pub use mix::{estimate_weights, merge, Mixture, MixtureWeights};
 pub use model::{
     ArpaModel, LmState, WordIndex, MAX_ENTRIES_PER_ORDER, MAX_ORDER, SENTENCE_END, SENTENCE_START,
     UNKNOWN_WORD,
 };
+pub use prune::prune;
 
 #[cfg(test)]
 mod tests_arpa;
 #[cfg(test)]
 mod tests_estimate;
+#[cfg(test)]
+mod tests_mix;

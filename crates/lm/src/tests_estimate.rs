@@ -41,7 +41,7 @@ const METHODS: [Smoothing; 4] = [
 ];
 
 /// Σ_w P(w | h) over every predictable word, through the back-off recursion of the model.
-fn check_sum_to_one(model: &ArpaModel, label: &str) {
+pub(crate) fn check_sum_to_one(model: &ArpaModel, label: &str) {
     let words: Vec<WordIndex> = model.predictable_words().collect();
     let mut contexts: Vec<Vec<WordIndex>> = vec![Vec::new()];
     let counts = model.ngram_counts();
