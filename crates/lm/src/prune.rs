@@ -93,7 +93,7 @@ pub fn prune(model: &ArpaModel, threshold: f64) -> Result<ArpaModel, LmError> {
                     * (explicit * (new_probability - explicit.ln())
                         + left * (new_backoff - backoff));
                 // A NaN (degenerate context) keeps the n-gram.
-                keep[n - 1][id as usize] = !(divergence < threshold);
+                keep[n - 1][id as usize] = divergence.is_nan() || divergence >= threshold;
             }
             if keep[n - 1][id as usize] && n > 2 {
                 let prefix = model.find(&words[..n - 1]).unwrap_or(0);
