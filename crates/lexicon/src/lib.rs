@@ -28,6 +28,7 @@
 use std::path::PathBuf;
 
 pub mod coverage;
+pub mod graphone;
 mod lexicon;
 pub mod rules;
 
