@@ -18,13 +18,18 @@ pub fn graphone_key(letters: &[SymbolId], phonemes: &[SymbolId]) -> GraphoneKey 
     part(letters, 0) | part(letters, 1) << 16 | part(phonemes, 0) << 32 | part(phonemes, 1) << 48
 }
 
-/// The shape limits of a graphone.
+/// The shape limits of a graphone and the weight that keeps EM from preferring big ones.
 #[derive(Debug, Clone, Copy)]
 pub struct Shape {
     /// Most letters in one graphone.
     pub max_letters: usize,
     /// Most phonemes in one graphone.
     pub max_phonemes: usize,
+    /// Factor in `(0, 1]` applied to a graphone's probability for every side (letters or
+    /// phonemes) that holds two symbols. A unigram model explains an entry with fewer, bigger
+    /// graphones at fewer multiplications, so unpenalised EM drifts to 2×2 graphones, which
+    /// fragment the data the n-gram learns from; the factor counteracts that drift.
+    pub multi_symbol_penalty: f64,
 }
 
 /// One dictionary entry as symbol ids.
@@ -45,6 +50,8 @@ pub struct Aligner {
     /// `s` indexes `(a, b)`; `u32::MAX` where the shape does not fit.
     edges: Vec<Vec<u32>>,
     shapes: Vec<(usize, usize)>,
+    /// Per shape: the penalty factor applied to it.
+    shape_weights: Vec<f64>,
     /// Current unigram graphone probabilities.
     pub probabilities: Vec<f64>,
 }
@@ -80,8 +87,17 @@ impl Aligner {
             edges.push(cells);
         }
         let uniform = 1.0 / keys.len().max(1) as f64;
+        let shape_weights = shapes
+            .iter()
+            .map(|&(a, b)| {
+                shape
+                    .multi_symbol_penalty
+                    .powi(i32::from(a > 1) + i32::from(b > 1))
+            })
+            .collect();
         Aligner {
             shape,
+            shape_weights,
             probabilities: vec![uniform; keys.len()],
             keys,
             edges,
@@ -117,7 +133,7 @@ impl Aligner {
                         let id = cells[(i * width + j) * shapes + s];
                         if id != u32::MAX {
                             forward[(i + a) * width + j + b] +=
-                                here * self.probabilities[id as usize];
+                                here * self.probabilities[id as usize] * self.shape_weights[s];
                         }
                     }
                 }
@@ -154,6 +170,7 @@ impl Aligner {
                         if id != u32::MAX {
                             counts[id as usize] += here
                                 * self.probabilities[id as usize]
+                                * self.shape_weights[s]
                                 * backward[(i + a) * width + j + b]
                                 / total;
                         }
@@ -194,7 +211,7 @@ impl Aligner {
                             if id == u32::MAX {
                                 continue;
                             }
-                            let p = self.probabilities[id as usize];
+                            let p = self.probabilities[id as usize] * self.shape_weights[s];
                             if p <= 0.0 {
                                 continue;
                             }
@@ -255,6 +272,7 @@ mod tests {
         let shape = Shape {
             max_letters: 2,
             max_phonemes: 2,
+            multi_symbol_penalty: 0.5,
         };
         let mut aligner = Aligner::new(&pairs, shape);
         let mut previous = f64::NEG_INFINITY;

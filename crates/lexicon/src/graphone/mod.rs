@@ -16,7 +16,7 @@
 pub mod align;
 pub mod ngram;
 
-use std::collections::HashMap;
+use std::collections::{HashMap, HashSet};
 use std::fmt::Write as _;
 use std::path::Path;
 
@@ -36,6 +36,9 @@ pub struct G2pConfig {
     pub max_letters: usize,
     /// Most phonemes in a graphone (1 or 2).
     pub max_phonemes: usize,
+    /// Weight in `(0, 1]` on a graphone per side with two symbols during alignment (see
+    /// [`align::Shape::multi_symbol_penalty`]).
+    pub multi_symbol_penalty: f64,
 }
 
 impl Default for G2pConfig {
@@ -45,6 +48,7 @@ impl Default for G2pConfig {
             iterations: 10,
             max_letters: 2,
             max_phonemes: 2,
+            multi_symbol_penalty: 0.1,
         }
     }
 }
@@ -130,6 +134,11 @@ pub struct G2pModel {
     ngram: BackoffNgram,
     /// Letter sequence (0–2 letters) → graphone ids that spell it.
     by_letters: HashMap<Vec<String>, Vec<TokenId>>,
+    /// Every letter some graphone spells.
+    known_letters: HashSet<String>,
+    /// Phoneme symbols by id, and each graphone's phonemes as ids (the beam compares ids).
+    phoneme_names: Vec<String>,
+    graphone_phonemes: Vec<Vec<u32>>,
 }
 
 /// The letters of a word as the model sees them: lower-cased, NFC, one string per letter.
@@ -163,10 +172,14 @@ impl Interner {
                 "expected fewer than 65000 distinct letters or phonemes in the dictionary".into(),
             ));
         }
+        Ok(self.add(symbol))
+    }
+
+    fn add(&mut self, symbol: &str) -> SymbolId {
         let id = self.names.len() as SymbolId;
         self.ids.insert(symbol.to_string(), id);
         self.names.push(symbol.to_string());
-        Ok(id)
+        id
     }
 }
 
@@ -189,6 +202,12 @@ impl G2pModel {
             return Err(LexiconError::Parameter(format!(
                 "expected at most 1 or 2 letters and phonemes per graphone, found {} and {}",
                 config.max_letters, config.max_phonemes
+            )));
+        }
+        if !(config.multi_symbol_penalty > 0.0 && config.multi_symbol_penalty <= 1.0) {
+            return Err(LexiconError::Parameter(format!(
+                "expected a multi-symbol penalty in (0, 1], found {}",
+                config.multi_symbol_penalty
             )));
         }
         let mut letter_ids = Interner::new();
@@ -219,6 +238,7 @@ impl G2pModel {
         let shape = Shape {
             max_letters: config.max_letters,
             max_phonemes: config.max_phonemes,
+            multi_symbol_penalty: config.multi_symbol_penalty,
         };
         let mut aligner = Aligner::new(&pairs, shape);
         for iteration in 1..=config.iterations {
@@ -284,10 +304,33 @@ impl G2pModel {
                 .or_default()
                 .push(id as TokenId);
         }
+        let known_letters = graphones
+            .iter()
+            .flat_map(|g| g.letters.iter().cloned())
+            .collect();
+        let mut phonemes = Interner::new();
+        let graphone_phonemes = graphones
+            .iter()
+            .map(|g| {
+                g.phonemes
+                    .iter()
+                    .map(|p| {
+                        phonemes
+                            .ids
+                            .get(p)
+                            .copied()
+                            .unwrap_or_else(|| phonemes.add(p))
+                    })
+                    .collect()
+            })
+            .collect();
         G2pModel {
             graphones,
             ngram,
             by_letters,
+            known_letters,
+            phoneme_names: phonemes.names,
+            graphone_phonemes,
         }
     }
 
@@ -322,16 +365,24 @@ impl G2pModel {
         }
         let result = decode(
             &self.ngram,
-            &self.graphones,
+            &self.graphone_phonemes,
             &self.by_letters,
             &letters,
             config,
         );
         if result.is_empty() {
-            Err(G2pFailure::NoPath)
-        } else {
-            Ok(result)
+            return Err(G2pFailure::NoPath);
         }
+        Ok(result
+            .into_iter()
+            .map(|(ids, log10_probability)| ScoredPronunciation {
+                phonemes: ids
+                    .iter()
+                    .map(|&id| self.phoneme_names[id as usize].clone())
+                    .collect(),
+                log10_probability,
+            })
+            .collect())
     }
 
     /// Writes the model as one UTF-8 text file: the graphone inventory, then the n-gram in a
@@ -526,8 +577,8 @@ fn decode_key(key: GraphoneKey, letters: &[String], phonemes: &[String]) -> Grap
 #[derive(Clone)]
 struct Hypothesis<S> {
     state: S,
-    /// Graphone ids so far (their phonemes make the pronunciation).
-    phonemes: Vec<TokenId>,
+    /// Phoneme ids so far.
+    phonemes: Vec<u32>,
     /// Whether the last graphone had no letters (two such in a row are not allowed, so that a
     /// word cannot grow phonemes without end).
     after_insertion: bool,
@@ -549,50 +600,48 @@ fn log10_add(a: f64, b: f64) -> f64 {
 fn prune<S: Clone + Eq + std::hash::Hash>(
     hypotheses: Vec<Hypothesis<S>>,
     beam: usize,
-    phoneme_of: &dyn Fn(TokenId) -> Vec<String>,
 ) -> Vec<Hypothesis<S>> {
-    let mut merged: HashMap<(S, Vec<String>, bool), Hypothesis<S>> = HashMap::new();
+    let mut merged: HashMap<(S, Vec<u32>, bool), f64> = HashMap::with_capacity(hypotheses.len());
     for hypothesis in hypotheses {
-        let pronunciation: Vec<String> = hypothesis
-            .phonemes
-            .iter()
-            .flat_map(|&g| phoneme_of(g))
-            .collect();
         let key = (
-            hypothesis.state.clone(),
-            pronunciation,
+            hypothesis.state,
+            hypothesis.phonemes,
             hypothesis.after_insertion,
         );
-        match merged.get_mut(&key) {
-            Some(existing) => {
-                existing.log10_probability =
-                    log10_add(existing.log10_probability, hypothesis.log10_probability);
-            }
-            None => {
-                merged.insert(key, hypothesis);
-            }
-        }
+        let entry = merged.entry(key).or_insert(f64::NEG_INFINITY);
+        *entry = log10_add(*entry, hypothesis.log10_probability);
     }
-    let mut kept: Vec<Hypothesis<S>> = merged.into_values().collect();
+    let mut kept: Vec<Hypothesis<S>> = merged
+        .into_iter()
+        .map(
+            |((state, phonemes, after_insertion), log10_probability)| Hypothesis {
+                state,
+                phonemes,
+                after_insertion,
+                log10_probability,
+            },
+        )
+        .collect();
     kept.sort_by(|a, b| {
         b.log10_probability
             .total_cmp(&a.log10_probability)
             .then_with(|| a.phonemes.cmp(&b.phonemes))
+            .then_with(|| a.after_insertion.cmp(&b.after_insertion))
     });
     kept.truncate(beam);
     kept
 }
 
-/// Beam search over letter positions (see the module docs).
+/// Beam search over letter positions (see the module docs); returns phoneme-id sequences with
+/// their log10 probabilities, best first.
 fn decode<L: GraphoneLm>(
     lm: &L,
-    graphones: &[Graphone],
+    graphone_phonemes: &[Vec<u32>],
     by_letters: &HashMap<Vec<String>, Vec<TokenId>>,
     letters: &[String],
     config: &DecodeConfig,
-) -> Vec<ScoredPronunciation> {
+) -> Vec<(Vec<u32>, f64)> {
     let beam = config.beam.max(1);
-    let phoneme_of = |g: TokenId| graphones[g as usize].phonemes.clone();
     let n = letters.len();
     let mut at: Vec<Vec<Hypothesis<L::State>>> = vec![Vec::new(); n + 1];
     at[0].push(Hypothesis {
@@ -601,11 +650,10 @@ fn decode<L: GraphoneLm>(
         after_insertion: false,
         log10_probability: 0.0,
     });
-    let empty: Vec<TokenId> = Vec::new();
     let extend = |hypothesis: &Hypothesis<L::State>, graphone: TokenId, inserted: bool| {
         let (p, state) = lm.score(&hypothesis.state, graphone);
         let mut phonemes = hypothesis.phonemes.clone();
-        phonemes.push(graphone);
+        phonemes.extend_from_slice(&graphone_phonemes[graphone as usize]);
         Hypothesis {
             state,
             phonemes,
@@ -613,18 +661,20 @@ fn decode<L: GraphoneLm>(
             log10_probability: hypothesis.log10_probability + f64::from(p),
         }
     };
+    let insertions: &[TokenId] = by_letters.get(&Vec::new()).map_or(&[], Vec::as_slice);
     for position in 0..=n {
-        let mut current = std::mem::take(&mut at[position]);
+        let mut current = prune(std::mem::take(&mut at[position]), beam);
         // Graphones without letters stay at this position (at most one in a row).
-        let insertions = by_letters.get(&Vec::new()).unwrap_or(&empty);
         let mut inserted = Vec::new();
         for hypothesis in current.iter().filter(|h| !h.after_insertion) {
             for &g in insertions {
                 inserted.push(extend(hypothesis, g, true));
             }
         }
-        current.extend(inserted);
-        let current = prune(current, beam, &phoneme_of);
+        if !inserted.is_empty() {
+            current.extend(inserted);
+            current = prune(current, beam);
+        }
         for width in 1..=2 {
             if position + width > n {
                 break;
@@ -640,42 +690,22 @@ fn decode<L: GraphoneLm>(
         }
         at[position] = current;
     }
-    let finished: Vec<Hypothesis<L::State>> = at[n]
-        .iter()
-        .map(|h| {
-            let mut h = h.clone();
-            h.log10_probability += f64::from(lm.end(&h.state));
-            h
-        })
-        .collect();
-    let mut by_pronunciation: HashMap<Vec<String>, f64> = HashMap::new();
-    for hypothesis in finished {
-        let pronunciation: Vec<String> = hypothesis
-            .phonemes
-            .iter()
-            .flat_map(|&g| phoneme_of(g))
-            .collect();
-        if pronunciation.is_empty() {
+    let mut by_pronunciation: HashMap<Vec<u32>, f64> = HashMap::new();
+    for hypothesis in &at[n] {
+        if hypothesis.phonemes.is_empty() {
             continue;
         }
+        let total = hypothesis.log10_probability + f64::from(lm.end(&hypothesis.state));
         let entry = by_pronunciation
-            .entry(pronunciation)
+            .entry(hypothesis.phonemes.clone())
             .or_insert(f64::NEG_INFINITY);
-        *entry = log10_add(*entry, hypothesis.log10_probability);
+        *entry = log10_add(*entry, total);
     }
-    let mut results: Vec<ScoredPronunciation> = by_pronunciation
+    let mut results: Vec<(Vec<u32>, f64)> = by_pronunciation
         .into_iter()
         .filter(|(_, p)| p.is_finite())
-        .map(|(phonemes, log10_probability)| ScoredPronunciation {
-            phonemes,
-            log10_probability,
-        })
         .collect();
-    results.sort_by(|a, b| {
-        b.log10_probability
-            .total_cmp(&a.log10_probability)
-            .then_with(|| a.phonemes.cmp(&b.phonemes))
-    });
+    results.sort_by(|a, b| b.1.total_cmp(&a.1).then_with(|| a.0.cmp(&b.0)));
     results.truncate(config.nbest.max(1));
     results
 }

@@ -7,6 +7,7 @@
 //! inventory plus `</s>`), so there is no `<unk>`.
 
 use std::collections::HashMap;
+use std::hash::{BuildHasherDefault, Hasher};
 
 /// Longest n-gram order the model stores.
 pub const MAX_ORDER: usize = 8;
@@ -19,6 +20,40 @@ pub type TokenId = u32;
 
 /// An n-gram padded to [`MAX_ORDER`] with [`EMPTY`]; sorting keys groups n-grams by context.
 type Key = [u32; MAX_ORDER];
+
+/// A multiply-rotate hasher for small integer keys: n-gram look-ups dominate decoding time, and
+/// the keys come from our own model, not from an adversary, so a keyed hash buys nothing here.
+#[derive(Default, Clone, Copy)]
+pub struct TokenHasher(u64);
+
+impl Hasher for TokenHasher {
+    fn write(&mut self, bytes: &[u8]) {
+        for chunk in bytes.chunks(8) {
+            let mut word = [0u8; 8];
+            word[..chunk.len()].copy_from_slice(chunk);
+            self.write_u64(u64::from_le_bytes(word));
+        }
+    }
+
+    fn write_u64(&mut self, n: u64) {
+        self.0 = (self.0.rotate_left(5) ^ n).wrapping_mul(0x51_7c_c1_b7_27_22_0a_95);
+    }
+
+    fn write_u32(&mut self, n: u32) {
+        self.write_u64(u64::from(n));
+    }
+
+    fn write_usize(&mut self, n: usize) {
+        self.write_u64(n as u64);
+    }
+
+    fn finish(&self) -> u64 {
+        self.0
+    }
+}
+
+/// A hash map keyed by token ids with [`TokenHasher`].
+pub type TokenMap<K, V> = HashMap<K, V, BuildHasherDefault<TokenHasher>>;
 
 /// What the decoder needs from a graphone n-gram: scores are log10 probabilities.
 pub trait GraphoneLm {
@@ -64,7 +99,7 @@ pub struct BackoffNgram {
     /// Number of predictable tokens: graphones and `</s>`.
     vocabulary: u32,
     /// `tables[n - 1]` holds the n-grams of order n.
-    tables: Vec<HashMap<Key, (f32, f32)>>,
+    tables: Vec<TokenMap<Key, (f32, f32)>>,
 }
 
 /// Count-of-counts discounts D1, D2, D3+ for one order (Chen & Goodman 1998, eq. 26).
@@ -104,7 +139,7 @@ impl BackoffNgram {
         let order = order.clamp(1, MAX_ORDER);
         let end = vocabulary - 1;
         let start = vocabulary;
-        let mut raw: Vec<HashMap<Key, u64>> = vec![HashMap::new(); order];
+        let mut raw: Vec<TokenMap<Key, u64>> = vec![TokenMap::default(); order];
         for sequence in sequences {
             let mut tokens = Vec::with_capacity(sequence.len() + 2);
             tokens.push(start);
@@ -122,7 +157,7 @@ impl BackoffNgram {
         // otherwise the number of distinct one-token left extensions.
         let mut adjusted: Vec<Vec<(Key, u64)>> = Vec::with_capacity(order);
         for n in 1..=order {
-            let mut counts: HashMap<Key, u64> = HashMap::new();
+            let mut counts: TokenMap<Key, u64> = TokenMap::default();
             if n == order {
                 counts = raw[n - 1].clone();
             } else {
@@ -140,16 +175,16 @@ impl BackoffNgram {
             sorted.sort_unstable_by_key(|entry| entry.0);
             adjusted.push(sorted);
         }
-        let mut tables: Vec<HashMap<Key, (f32, f32)>> = Vec::with_capacity(order);
+        let mut tables: Vec<TokenMap<Key, (f32, f32)>> = Vec::with_capacity(order);
         // Interpolated probabilities (natural scale) of the previous order, for the recursion.
-        let mut lower: HashMap<Key, f64> = HashMap::new();
-        let mut gammas_by_order: Vec<HashMap<Key, f64>> = Vec::with_capacity(order);
+        let mut lower: TokenMap<Key, f64> = TokenMap::default();
+        let mut gammas_by_order: Vec<TokenMap<Key, f64>> = Vec::with_capacity(order);
         for n in 1..=order {
             let counts = &adjusted[n - 1];
             let d = discounts(counts.iter().map(|(_, c)| *c));
             let discount = |c: u64| d[(c.min(3) - 1) as usize];
-            let mut probabilities: HashMap<Key, f64> = HashMap::with_capacity(counts.len());
-            let mut gammas: HashMap<Key, f64> = HashMap::new();
+            let mut probabilities: TokenMap<Key, f64> = TokenMap::default();
+            let mut gammas: TokenMap<Key, f64> = TokenMap::default();
             let mut group_start = 0;
             while group_start < counts.len() {
                 let context = &counts[group_start].0[..n - 1];
@@ -231,7 +266,7 @@ impl BackoffNgram {
         if order == 0 || order > MAX_ORDER {
             return None;
         }
-        let mut tables = vec![HashMap::new(); order];
+        let mut tables = vec![TokenMap::default(); order];
         for (tokens, p, b) in ngrams {
             if tokens.is_empty() || tokens.len() > order {
                 return None;
@@ -293,9 +328,11 @@ impl GraphoneLm for BackoffNgram {
 
     fn score(&self, state: &Context, graphone: TokenId) -> (f32, Context) {
         let p = self.probability(state.as_slice(), graphone);
-        let mut history: Vec<u32> = state.as_slice().to_vec();
-        history.push(graphone);
-        (p, self.shorten(&history))
+        let mut history = [EMPTY; MAX_ORDER];
+        let len = state.len as usize;
+        history[..len].copy_from_slice(state.as_slice());
+        history[len] = graphone;
+        (p, self.shorten(&history[..=len]))
     }
 
     fn end(&self, state: &Context) -> f32 {
