@@ -36,7 +36,18 @@ pub enum Outcome {
 }
 
 fn main() -> ExitCode {
-    let cli = Cli::parse();
+    // Usage errors are bad input (exit 1 by our contract); help and version are successes.
+    let cli = match Cli::try_parse() {
+        Ok(cli) => cli,
+        Err(error) => {
+            let _ = error.print();
+            return if error.use_stderr() {
+                ExitCode::from(1)
+            } else {
+                ExitCode::SUCCESS
+            };
+        }
+    };
     let result: anyhow::Result<Outcome> = match cli.command {
         Command::Score(args) => commands::score::run(args),
         Command::Variants(args) => commands::variants::run(args),
