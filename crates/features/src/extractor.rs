@@ -19,8 +19,10 @@ pub struct FeatureExtractor {
     window: Vec<f32>,
     spectrum: PowerSpectrum,
     mel: MelFilterbank,
-    /// Orthonormal DCT-II rows c0…c(n−1) over the mel bins, row-major; empty for fbank.
-    dct: Vec<f32>,
+    /// Orthonormal DCT-II basis stored by mel bin: entry [m][k] is the weight of log-mel energy m
+    /// in cepstrum c_k, so a frame's cepstra are a sum of independent, vectorisable axpy steps
+    /// rather than serial dot products. Empty for fbank.
+    dct_by_mel_bin: Vec<f32>,
 }
 
 impl FeatureExtractor {
@@ -41,8 +43,11 @@ impl FeatureExtractor {
             window: symmetric_hamming(config.frame_length),
             spectrum: PowerSpectrum::new(config.fft_size),
             mel,
-            dct: match config.kind {
-                FeatureKind::Mfcc => orthonormal_dct_ii(config.cepstra, config.mel_bins),
+            dct_by_mel_bin: match config.kind {
+                FeatureKind::Mfcc => transpose(
+                    &orthonormal_dct_ii(config.cepstra, config.mel_bins),
+                    config.cepstra,
+                ),
                 FeatureKind::Fbank => Vec::new(),
             },
         })
@@ -91,8 +96,13 @@ impl FeatureExtractor {
             // the sample before the frame.
             let before = if start == 0 { 0.0 } else { samples[start - 1] };
             frame[0] = (x[0] - a * before) * self.window[0];
-            for i in 1..length {
-                frame[i] = (x[i] - a * x[i - 1]) * self.window[i];
+            for (((out, &now), &previous), &weight) in frame[1..length]
+                .iter_mut()
+                .zip(&x[1..])
+                .zip(x)
+                .zip(&self.window[1..])
+            {
+                *out = (now - a * previous) * weight;
             }
             // frame[length..] stays zero: the padding up to the FFT size.
             self.spectrum.compute(&frame, &mut buffers, &mut power);
@@ -103,15 +113,20 @@ impl FeatureExtractor {
             match config.kind {
                 FeatureKind::Fbank => row[..static_dims].copy_from_slice(&log_mel),
                 FeatureKind::Mfcc => {
-                    for (c, basis) in row[..static_dims]
-                        .iter_mut()
-                        .zip(self.dct.chunks_exact(config.mel_bins))
+                    let cepstra = &mut row[..static_dims];
+                    cepstra.fill(0.0);
+                    for (&energy, weights) in log_mel
+                        .iter()
+                        .zip(self.dct_by_mel_bin.chunks_exact(static_dims))
                     {
-                        *c = basis.iter().zip(&log_mel).map(|(b, e)| b * e).sum();
+                        for (c, w) in cepstra.iter_mut().zip(weights) {
+                            *c += w * energy;
+                        }
                     }
                 }
             }
         }
+        let mut delta = vec![0.0f32; static_dims];
         for order in 1..=config.delta_order() {
             regression_deltas(
                 data,
@@ -119,6 +134,7 @@ impl FeatureExtractor {
                 (order - 1) * static_dims..order * static_dims,
                 order * static_dims,
                 config.delta_window,
+                &mut delta,
             );
         }
         features
@@ -156,29 +172,44 @@ fn orthonormal_dct_ii(coefficients: usize, inputs: usize) -> Vec<f32> {
         .collect()
 }
 
+/// Matrix `rows × (values.len()/rows)`, row-major, transposed.
+fn transpose(values: &[f32], rows: usize) -> Vec<f32> {
+    let columns = values.len() / rows;
+    (0..columns)
+        .flat_map(|c| (0..rows).map(move |r| values[r * columns + c]))
+        .collect()
+}
+
 /// Writes the Δ of columns `source` into the columns starting at `target`, for every row of the
 /// row-major `data` (rows of `dims` values): d_t = Σ_n n·(c_{t+n} − c_{t−n}) / (2·Σ_n n²) over
-/// n = 1…window, with frames beyond either end replaced by the first or last frame.
+/// n = 1…window, with frames beyond either end replaced by the first or last frame. `delta` is
+/// scratch of `source.len()` values.
 fn regression_deltas(
     data: &mut [f32],
     dims: usize,
     source: std::ops::Range<usize>,
     target: usize,
     window: usize,
+    delta: &mut [f32],
 ) {
     let frames = data.len() / dims;
-    let last = frames as isize - 1;
+    let width = source.len();
     let denominator = 2.0 * (1..=window).map(|n| (n * n) as f32).sum::<f32>();
     for t in 0..frames {
-        for (j, column) in source.clone().enumerate() {
-            let mut sum = 0.0f32;
-            for n in 1..=window {
-                let later = (t as isize + n as isize).min(last) as usize;
-                let earlier = (t as isize - n as isize).max(0) as usize;
-                sum += n as f32 * (data[later * dims + column] - data[earlier * dims + column]);
+        delta.fill(0.0);
+        for n in 1..=window {
+            let later = (t + n).min(frames - 1) * dims + source.start;
+            let earlier = t.saturating_sub(n) * dims + source.start;
+            let weight = n as f32 / denominator;
+            for ((d, &after), &before) in delta
+                .iter_mut()
+                .zip(&data[later..later + width])
+                .zip(&data[earlier..earlier + width])
+            {
+                *d += weight * (after - before);
             }
-            data[t * dims + target + j] = sum / denominator;
         }
+        data[t * dims + target..t * dims + target + width].copy_from_slice(delta);
     }
 }
 
@@ -260,7 +291,7 @@ mod tests {
     fn deltas_of_a_ramp_are_its_slope_and_edges_replicate() {
         // One column c_t = 3t over 6 frames; Δ goes to column 1.
         let mut data: Vec<f32> = (0..6).flat_map(|t| [3.0 * t as f32, 0.0]).collect();
-        regression_deltas(&mut data, 2, 0..1, 1, 2);
+        regression_deltas(&mut data, 2, 0..1, 1, 2, &mut [0.0]);
         let deltas: Vec<f32> = data.chunks(2).map(|row| row[1]).collect();
         // Interior frames: slope 3. Frame 0 with c_{-1}=c_{-2}=c_0: (1·3 + 2·6)/10 = 1.5;
         // frame 1: (1·(6−0) + 2·(9−0))/10 = 2.4 (edge replication by hand).

@@ -109,13 +109,28 @@ impl MelFilterbank {
     pub fn apply(&self, power: &[f32], energies: &mut [f32]) {
         for ((first_bin, range), energy) in self.filters.iter().zip(energies.iter_mut()) {
             let weights = &self.weights[range.clone()];
-            *energy = power[*first_bin..first_bin + weights.len()]
-                .iter()
-                .zip(weights)
-                .map(|(p, w)| p * w)
-                .sum();
+            *energy = dot(&power[*first_bin..first_bin + weights.len()], weights);
         }
     }
+}
+
+/// Dot product with eight independent partial sums: a plain `.sum()` of f32 must add in order,
+/// one dependent addition after another, which neither vectorises nor pipelines.
+fn dot(a: &[f32], b: &[f32]) -> f32 {
+    let mut lanes = [0.0f32; 8];
+    let (a_chunks, b_chunks) = (a.chunks_exact(8), b.chunks_exact(8));
+    let tail: f32 = a_chunks
+        .remainder()
+        .iter()
+        .zip(b_chunks.remainder())
+        .map(|(x, y)| x * y)
+        .sum();
+    for (x, y) in a_chunks.zip(b_chunks) {
+        for ((lane, x), y) in lanes.iter_mut().zip(x).zip(y) {
+            *lane += x * y;
+        }
+    }
+    lanes.iter().sum::<f32>() + tail
 }
 
 #[cfg(test)]

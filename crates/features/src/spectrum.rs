@@ -15,14 +15,22 @@ use rustfft::{Fft, FftPlanner};
 pub(crate) struct PowerSpectrum {
     fft: Arc<dyn Fft<f32>>,
     half: usize,
-    /// e^(−2πik/n) for k = 0…n/2.
-    twiddles: Vec<Complex<f32>>,
+    /// With w_k = e^(−2πik/n): X[k] = p_k·Z[k] + q_k·Z*[n/2−k], p_k = (1 − i·w_k)/2,
+    /// q_k = (1 + i·w_k)/2, for k = 0…n/2 (Z[n/2] = Z[0]). Kept as separate real and imaginary
+    /// arrays so that the untangling loop vectorises.
+    p_re: Vec<f32>,
+    p_im: Vec<f32>,
+    q_re: Vec<f32>,
+    q_im: Vec<f32>,
 }
 
 /// Per-call working memory of [`PowerSpectrum::compute`].
 pub(crate) struct SpectrumBuffers {
     packed: Vec<Complex<f32>>,
     scratch: Vec<Complex<f32>>,
+    /// Re and Im of Z[0…n/2], with Z[n/2] = Z[0] appended so that Z[n/2−k] is a reversed read.
+    re: Vec<f32>,
+    im: Vec<f32>,
 }
 
 impl PowerSpectrum {
@@ -30,16 +38,23 @@ impl PowerSpectrum {
     pub(crate) fn new(fft_size: usize) -> Self {
         let half = fft_size / 2;
         let fft = FftPlanner::new().plan_fft_forward(half);
-        let twiddles = (0..=half)
-            .map(|k| {
-                let angle = -2.0 * std::f64::consts::PI * k as f64 / fft_size as f64;
-                Complex::new(angle.cos() as f32, angle.sin() as f32)
-            })
-            .collect();
+        let (mut p_re, mut p_im, mut q_re, mut q_im) = (vec![], vec![], vec![], vec![]);
+        for k in 0..=half {
+            let angle = -2.0 * std::f64::consts::PI * k as f64 / fft_size as f64;
+            let (w_re, w_im) = (angle.cos(), angle.sin());
+            // i·w = −w_im + i·w_re
+            p_re.push(((1.0 + w_im) / 2.0) as f32);
+            p_im.push((-w_re / 2.0) as f32);
+            q_re.push(((1.0 - w_im) / 2.0) as f32);
+            q_im.push((w_re / 2.0) as f32);
+        }
         PowerSpectrum {
             fft,
             half,
-            twiddles,
+            p_re,
+            p_im,
+            q_re,
+            q_im,
         }
     }
 
@@ -48,29 +63,36 @@ impl PowerSpectrum {
         SpectrumBuffers {
             packed: vec![Complex::default(); self.half],
             scratch: vec![Complex::default(); self.fft.get_inplace_scratch_len()],
+            re: vec![0.0; self.half + 1],
+            im: vec![0.0; self.half + 1],
         }
     }
 
     /// Writes the `fft_size/2 + 1` power values of `frame` (exactly `fft_size` samples) to `power`.
     pub(crate) fn compute(&self, frame: &[f32], buffers: &mut SpectrumBuffers, power: &mut [f32]) {
-        let half = self.half;
         for (z, pair) in buffers.packed.iter_mut().zip(frame.chunks_exact(2)) {
             *z = Complex::new(pair[0], pair[1]);
         }
         self.fft
             .process_with_scratch(&mut buffers.packed, &mut buffers.scratch);
-        let z = &buffers.packed;
-        // k = 0 and k = n/2 involve only Z[0]: X[0] = Re + Im, X[n/2] = Re − Im.
-        power[0] = (z[0].re + z[0].im).powi(2);
-        power[half] = (z[0].re - z[0].im).powi(2);
-        for k in 1..half {
-            let zk = z[k];
-            let zm = z[half - k].conj();
-            let even = (zk + zm) * 0.5;
-            let diff = (zk - zm) * 0.5;
-            // diff / i = (re + i·im)/i = im − i·re
-            let odd = Complex::new(diff.im, -diff.re);
-            power[k] = (even + self.twiddles[k] * odd).norm_sqr();
+        let (re, im) = (&mut buffers.re, &mut buffers.im);
+        for ((r, i), z) in re.iter_mut().zip(im.iter_mut()).zip(&buffers.packed) {
+            *r = z.re;
+            *i = z.im;
+        }
+        re[self.half] = re[0];
+        im[self.half] = im[0];
+        let forward = re.iter().zip(im.iter());
+        let mirrored = re.iter().rev().zip(im.iter().rev());
+        let p = self.p_re.iter().zip(&self.p_im);
+        let q = self.q_re.iter().zip(&self.q_im);
+        for ((((out, (a_re, a_im)), (b_re, b_im)), (p_re, p_im)), (q_re, q_im)) in
+            power.iter_mut().zip(forward).zip(mirrored).zip(p).zip(q)
+        {
+            // b = conj(Z[n/2−k]), so its imaginary part is −b_im.
+            let x_re = p_re * a_re - p_im * a_im + q_re * b_re + q_im * b_im;
+            let x_im = p_re * a_im + p_im * a_re - q_re * b_im + q_im * b_re;
+            *out = x_re * x_re + x_im * x_im;
         }
     }
 }
