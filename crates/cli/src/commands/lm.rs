@@ -6,8 +6,9 @@ use std::time::Instant;
 use anyhow::{bail, Context};
 use clap::{Args, Subcommand, ValueEnum};
 use isogloss_lm::{
-    estimate_weights, estimate_with, evaluate_sentences, merge, prune, read_sentences,
-    read_vocabulary, ArpaModel, CountOptions, EstimateOptions, NgramCounts, Perplexity, Smoothing,
+    estimate_weights, evaluate_sentences, merge, prune, read_sentences, read_vocabulary,
+    write_estimated_arpa, ArpaModel, CountOptions, EstimateOptions, NgramCounts, Perplexity,
+    Smoothing,
 };
 use serde_json::json;
 
@@ -180,7 +181,13 @@ fn build(args: BuildArgs) -> anyhow::Result<Outcome> {
         counts.tokens(),
         started.elapsed().as_secs_f64()
     );
-    let estimated = estimate_with(&counts, &EstimateOptions { smoothing, cutoffs })?;
+    let options = EstimateOptions {
+        smoothing,
+        cutoffs,
+        keep_interpolated: false,
+    };
+    // Streamed straight to the file: no query structure is built, which keeps memory low.
+    let estimated = write_estimated_arpa(&counts, &options, &args.out)?;
     for warning in &estimated.warnings {
         eprintln!("warning: {warning}");
     }
@@ -198,11 +205,10 @@ fn build(args: BuildArgs) -> anyhow::Result<Outcome> {
             );
         }
     }
-    estimated.model.write_arpa(&args.out)?;
     eprintln!(
         "wrote {} ({}) in {:.1} s",
         args.out.display(),
-        counts_text(&estimated.model.ngram_counts()),
+        counts_text(&estimated.ngram_counts),
         started.elapsed().as_secs_f64()
     );
     Ok(Outcome::Done)
