@@ -25,6 +25,8 @@ enum Command {
     Score(commands::score::ScoreArgs),
     /// Build a spelling-variant map from two word-aligned transcript columns.
     Variants(commands::variants::VariantsArgs),
+    /// N-gram language models: build, eval, mix, prune.
+    Lm(commands::lm::LmArgs),
 }
 
 /// How a command that did not fail outright ended.
@@ -51,6 +53,7 @@ fn main() -> ExitCode {
     let result: anyhow::Result<Outcome> = match cli.command {
         Command::Score(args) => commands::score::run(args),
         Command::Variants(args) => commands::variants::run(args),
+        Command::Lm(args) => commands::lm::run(args),
     };
     match result {
         Ok(Outcome::Done) => ExitCode::SUCCESS,

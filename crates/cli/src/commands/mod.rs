@@ -2,3 +2,4 @@
 
 pub mod score;
 pub mod variants;
+pub mod lm;
