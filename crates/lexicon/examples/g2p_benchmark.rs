@@ -30,6 +30,8 @@ fn main() -> Result<(), Box<dyn std::error::Error>> {
             "--seed" => seed = value()?.parse()?,
             "--order" => config.order = value()?.parse()?,
             "--iterations" => config.iterations = value()?.parse()?,
+            "--max-letters" => config.max_letters = value()?.parse()?,
+            "--max-phonemes" => config.max_phonemes = value()?.parse()?,
             "--penalty" => config.multi_symbol_penalty = value()?.parse()?,
             "--beam" => decode.beam = value()?.parse()?,
             _ => path = Some(PathBuf::from(arg)),
@@ -77,10 +79,12 @@ fn main() -> Result<(), Box<dyn std::error::Error>> {
     };
     let result = evaluate(&model, &test, &decode);
     println!(
-        "order {} iterations {} penalty {} beam {}: WER {:.2}%  PER {:.2}%  ({} words, {} reference phonemes); \
+        "order {} iterations {} shape {}x{} penalty {} beam {}: WER {:.2}%  PER {:.2}%  ({} words, {} reference phonemes); \
          training {:.1?}, decoding {:.1?}",
         config.order,
         config.iterations,
+        config.max_letters,
+        config.max_phonemes,
         config.multi_symbol_penalty,
         decode.beam,
         100.0 * result.word_error_rate(),

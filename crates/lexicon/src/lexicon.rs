@@ -42,24 +42,13 @@ impl Lexicon {
     /// A lexicon from `(word, units)` pairs; exact duplicate entries are kept once and entries
     /// with an empty word or no units are left out (they could never be decoded).
     pub fn from_entries(entries: impl IntoIterator<Item = (String, Vec<String>)>) -> Lexicon {
-        let mut lexicon = Lexicon::default();
-        for (word, units) in entries {
-            lexicon.add(word, units);
-        }
-        lexicon
-    }
-
-    /// Adds one entry unless it is already there or unusable (empty word or no units); returns
-    /// whether it was added.
-    pub fn add(&mut self, word: String, units: Vec<String>) -> bool {
-        if word.is_empty() || units.is_empty() {
-            return false;
-        }
-        if self.entries.iter().any(|(w, u)| *w == word && *u == units) {
-            return false;
-        }
-        self.entries.push((word, units));
-        true
+        let mut seen = HashSet::new();
+        let entries = entries
+            .into_iter()
+            .filter(|(word, units)| !word.is_empty() && !units.is_empty())
+            .filter(|entry| seen.insert(entry.clone()))
+            .collect();
+        Lexicon { entries }
     }
 
     /// Reads a lexicon file. Every non-blank line must be `word<TAB>units` with a non-empty word

@@ -153,7 +153,7 @@ impl Aligner {
                         let id = cells[(i * width + j) * shapes + s];
                         if id != u32::MAX {
                             sum +=
-                                self.probabilities[id as usize] * backward[(i + a) * width + j + b];
+                                self.probabilities[id as usize] * self.shape_weights[s] * backward[(i + a) * width + j + b];
                         }
                     }
                     backward[i * width + j] = sum;
