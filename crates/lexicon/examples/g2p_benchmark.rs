@@ -13,8 +13,6 @@ use std::time::Instant;
 
 use isogloss_lexicon::graphone::{evaluate, DecodeConfig, G2pConfig, G2pModel};
 use isogloss_lexicon::Lexicon;
-use rand::seq::SliceRandom;
-use rand::SeedableRng;
 
 fn main() -> Result<(), Box<dyn std::error::Error>> {
     let mut args = std::env::args().skip(1);
@@ -39,21 +37,11 @@ fn main() -> Result<(), Box<dyn std::error::Error>> {
     }
     let path = path.ok_or("usage: g2p_benchmark DICTIONARY.tsv [options]")?;
     let dictionary = Lexicon::read(&path)?;
-    let mut words: Vec<&str> = dictionary.words();
-    words.sort_unstable();
-    words.shuffle(&mut rand_chacha::ChaCha8Rng::seed_from_u64(seed));
-    let test_count = (words.len() as f64 * held_out).round() as usize;
-    let test_words: std::collections::HashSet<&str> = words[..test_count].iter().copied().collect();
-    let (test, train): (Vec<_>, Vec<_>) = dictionary
-        .entries
-        .iter()
-        .cloned()
-        .partition(|(w, _)| test_words.contains(w.as_str()));
-    let (train, test) = (Lexicon::from_entries(train), Lexicon::from_entries(test));
+    let (train, test) = dictionary.split_held_out(held_out, seed);
     println!(
         "{}: {} words; training on {} entries, testing on {} words (seed {seed})",
         path.display(),
-        words.len(),
+        dictionary.words().len(),
         train.entries.len(),
         test.words().len()
     );

@@ -144,6 +144,24 @@ impl Lexicon {
         index
     }
 
+    /// Splits the lexicon by word into `(rest, held_out)`: a random `fraction` of the distinct
+    /// words (rounded), all their pronunciations together, chosen reproducibly from `seed`.
+    pub fn split_held_out(&self, fraction: f64, seed: u64) -> (Lexicon, Lexicon) {
+        use rand::seq::SliceRandom;
+        use rand::SeedableRng;
+        let mut words = self.words();
+        words.sort_unstable();
+        words.shuffle(&mut rand_chacha::ChaCha8Rng::seed_from_u64(seed));
+        let count = (words.len() as f64 * fraction.clamp(0.0, 1.0)).round() as usize;
+        let held: HashSet<&str> = words[..count].iter().copied().collect();
+        let (held_out, rest): (Vec<_>, Vec<_>) = self
+            .entries
+            .iter()
+            .cloned()
+            .partition(|(word, _)| held.contains(word.as_str()));
+        (Lexicon { entries: rest }, Lexicon { entries: held_out })
+    }
+
     /// A grapheme lexicon for grapheme-unit acoustic models: each word's units are its
     /// [`letters`], followed by `boundary` when given (the word-boundary unit, e.g. `<wb>`).
     ///
