@@ -20,7 +20,10 @@ struct Cli {
 }
 
 #[derive(Subcommand)]
-enum Command {}
+enum Command {
+    /// Make pronunciation lexicons (rules, trained G2P) and measure their coverage.
+    Lexicon(commands::lexicon::LexiconArgs),
+}
 
 /// How a command that did not fail outright ended.
 pub enum Outcome {
@@ -32,7 +35,9 @@ pub enum Outcome {
 
 fn main() -> ExitCode {
     let cli = Cli::parse();
-    let result: anyhow::Result<Outcome> = match cli.command {};
+    let result: anyhow::Result<Outcome> = match cli.command {
+        Command::Lexicon(args) => commands::lexicon::run(args),
+    };
     match result {
         Ok(Outcome::Done) => ExitCode::SUCCESS,
         Ok(Outcome::SomeItemsFailed) => ExitCode::from(2),
