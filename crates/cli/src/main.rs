@@ -27,6 +27,8 @@ enum Command {
     Variants(commands::variants::VariantsArgs),
     /// N-gram language models: build, eval, mix, prune.
     Lm(commands::lm::LmArgs),
+    /// Make pronunciation lexicons (rules, trained G2P) and measure their coverage.
+    Lexicon(commands::lexicon::LexiconArgs),
 }
 
 /// How a command that did not fail outright ended.
@@ -54,6 +56,7 @@ fn main() -> ExitCode {
         Command::Score(args) => commands::score::run(args),
         Command::Variants(args) => commands::variants::run(args),
         Command::Lm(args) => commands::lm::run(args),
+        Command::Lexicon(args) => commands::lexicon::run(args),
     };
     match result {
         Ok(Outcome::Done) => ExitCode::SUCCESS,

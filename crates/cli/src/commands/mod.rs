@@ -3,3 +3,4 @@
 pub mod score;
 pub mod variants;
 pub mod lm;
+pub mod lexicon;
