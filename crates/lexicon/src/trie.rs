@@ -115,6 +115,11 @@ impl PrefixTrie {
         child
     }
 
+    /// Every node, in creation order (the root first, each parent before its children).
+    pub fn nodes(&self) -> impl Iterator<Item = TrieNode> {
+        (0..self.nodes.len() as u32).map(TrieNode)
+    }
+
     /// The root (the empty unit sequence).
     pub fn root(&self) -> TrieNode {
         TrieNode(0)
