@@ -40,6 +40,7 @@ mod graph;
 mod greedy;
 mod lm;
 mod search;
+pub mod output;
 pub mod segment;
 mod transcript;
 
