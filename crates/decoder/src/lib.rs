@@ -41,6 +41,7 @@ mod greedy;
 mod lm;
 mod search;
 pub mod output;
+pub mod pipeline;
 pub mod segment;
 mod transcript;
 
