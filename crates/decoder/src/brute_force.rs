@@ -62,7 +62,10 @@ pub(crate) fn label_probabilities(log_posteriors: &Array2<f32>) -> HashMap<Vec<u
 /// Every word sequence the labels can be read as.
 pub(crate) fn readings(rules: &Rules, labels: &[u32]) -> Vec<Vec<String>> {
     let spell = |units: &[u32]| -> String {
-        units.iter().map(|&u| rules.units[u as usize].as_str()).collect()
+        units
+            .iter()
+            .map(|&u| rules.units[u as usize].as_str())
+            .collect()
     };
     let homophones = |units: &[u32]| -> Vec<String> {
         let mut words: Vec<String> = rules
@@ -173,7 +176,9 @@ mod tests {
     use rand_chacha::ChaCha8Rng;
 
     use super::*;
-    use crate::{BigramModel, Decoder, NoLanguageModel, PrefixBeamSearch, SearchGraph, SearchOptions};
+    use crate::{
+        BigramModel, Decoder, NoLanguageModel, PrefixBeamSearch, SearchGraph, SearchOptions,
+    };
 
     /// A random tiny decoding problem.
     struct Case {
@@ -272,7 +277,11 @@ mod tests {
 
     fn graph_of(case: &Case) -> SearchGraph {
         match &case.lexicon {
-            Some(entries) => SearchGraph::with_lexicon(case.units.clone(), entries).unwrap().0,
+            Some(entries) => {
+                SearchGraph::with_lexicon(case.units.clone(), entries)
+                    .unwrap()
+                    .0
+            }
             None => SearchGraph::lexicon_free(case.units.clone()).unwrap(),
         }
     }
@@ -333,7 +342,8 @@ mod tests {
     #[test]
     fn exact_search_equals_enumeration_in_every_word_rule() {
         for seed in 0..60u64 {
-            for (lexicon, boundary) in [(true, true), (true, false), (false, true), (false, false)] {
+            for (lexicon, boundary) in [(true, true), (true, false), (false, true), (false, false)]
+            {
                 let case = random_case(seed, lexicon, boundary, 6);
                 // no LM, no bonus: pure CTC prefix search objective
                 check_against_enumeration(&case, &NoLanguageModel, 0.0, 0.0);
@@ -342,6 +352,35 @@ mod tests {
                 // LM with weight and bonus
                 check_against_enumeration(&case, &case.lm, 0.8, 0.5);
                 check_against_enumeration(&case, &case.lm, 2.0, -0.5);
+            }
+        }
+    }
+
+    /// A trigram Kneser-Ney model estimated from random sentences over the case's vocabulary
+    /// (some lexicon words left out so that `<unk>` is used).
+    fn arpa_for(case: &Case, seed: u64) -> isogloss_lm::ArpaModel {
+        let mut rng = ChaCha8Rng::seed_from_u64(seed);
+        let words = case.lm.words().to_vec();
+        let sentences: Vec<Vec<String>> = (0..30)
+            .map(|_| {
+                (0..rng.random_range(1..5))
+                    .map(|_| words[rng.random_range(0..words.len())].clone())
+                    .collect()
+            })
+            .collect();
+        let counts = isogloss_lm::NgramCounts::from_sentences(sentences, 3).unwrap();
+        isogloss_lm::estimate(&counts, isogloss_lm::Smoothing::ModifiedKneserNey)
+            .unwrap()
+            .model
+    }
+
+    #[test]
+    fn exact_search_equals_enumeration_with_an_estimated_trigram_model() {
+        for seed in 0..25u64 {
+            for (lexicon, boundary) in [(true, true), (true, false), (false, true)] {
+                let case = random_case(seed, lexicon, boundary, 6);
+                let arpa = arpa_for(&case, seed);
+                check_against_enumeration(&case, &arpa, 1.0, 0.3);
             }
         }
     }
@@ -361,7 +400,11 @@ mod tests {
                 for c in 1..y.len() as u32 {
                     let mut longer = prefix.clone();
                     longer.push(c);
-                    let from = if prefix.last() == Some(&c) { pb } else { pb + pnb };
+                    let from = if prefix.last() == Some(&c) {
+                        pb
+                    } else {
+                        pb + pnb
+                    };
                     next.entry(longer).or_insert((0.0, 0.0)).1 += from * y[c as usize];
                 }
             }

@@ -48,7 +48,10 @@ impl SearchGraph {
     /// otherwise every unit is a word.
     pub fn lexicon_free(units: Vec<String>) -> Result<Self, DecodeError> {
         check_units(&units)?;
-        let boundary = units.iter().position(|u| u == BOUNDARY_UNIT).map(|i| i as u32);
+        let boundary = units
+            .iter()
+            .position(|u| u == BOUNDARY_UNIT)
+            .map(|i| i as u32);
         Ok(SearchGraph {
             units,
             boundary,
@@ -128,6 +131,24 @@ impl SearchGraph {
         }
     }
 
+    /// Words of an LM vocabulary that the lexicon cannot produce, so the LM's probability mass
+    /// on them is lost (sentence markers and `<unk>` aside). Empty without a lexicon, where any
+    /// spelling can be produced.
+    pub fn unreachable_words<'v>(
+        &self,
+        vocabulary: impl IntoIterator<Item = &'v str>,
+    ) -> Vec<&'v str> {
+        if self.lexicon.is_none() {
+            return Vec::new();
+        }
+        let known: std::collections::HashSet<&str> =
+            self.words().iter().map(|w| w.as_str()).collect();
+        vocabulary
+            .into_iter()
+            .filter(|w| !matches!(*w, "<s>" | "</s>" | "<unk>") && !known.contains(w))
+            .collect()
+    }
+
     /// The lexicon trie, if any.
     pub fn trie(&self) -> Option<&PrefixTrie> {
         self.lexicon.as_ref().map(|(t, _)| t)
@@ -135,7 +156,10 @@ impl SearchGraph {
 
     /// The lexicon's distinct words, indexed by the word ids in the trie (empty without one).
     pub fn words(&self) -> &[String] {
-        self.lexicon.as_ref().map(|(_, w)| w.as_slice()).unwrap_or(&[])
+        self.lexicon
+            .as_ref()
+            .map(|(_, w)| w.as_slice())
+            .unwrap_or(&[])
     }
 }
 
@@ -195,6 +219,10 @@ mod tests {
             ]
         );
         assert_eq!(g.words(), &["ab".to_string()]);
+        assert_eq!(
+            g.unreachable_words(["<s>", "ab", "ax", "</s>", "<unk>"]),
+            vec!["ax"]
+        );
         let err = SearchGraph::with_lexicon(units(&["<blk>", "a"]), &[entry("q", &["q"])])
             .unwrap_err()
             .to_string();

@@ -32,7 +32,10 @@ impl Decoder for GreedyDecoder<'_> {
             let (best, &p) = row
                 .iter()
                 .enumerate()
-                .fold((0, &f32::NEG_INFINITY), |acc, x| if x.1 > acc.1 { x } else { acc });
+                .fold(
+                    (0, &f32::NEG_INFINITY),
+                    |acc, x| if x.1 > acc.1 { x } else { acc },
+                );
             path_score += p;
             if best != 0 {
                 if best == previous {
@@ -57,7 +60,11 @@ impl Decoder for GreedyDecoder<'_> {
             None => {
                 for i in 0..labels.len() {
                     spell(self.graph, &labels[i..=i], &mut text);
-                    spans.push(WordSpan { text: text.clone(), first: i, last: i });
+                    spans.push(WordSpan {
+                        text: text.clone(),
+                        first: i,
+                        last: i,
+                    });
                 }
             }
             Some(boundary) => {
@@ -68,7 +75,11 @@ impl Decoder for GreedyDecoder<'_> {
                     }
                     if i > start {
                         spell(self.graph, &labels[start..i], &mut text);
-                        spans.push(WordSpan { text: text.clone(), first: start, last: i - 1 });
+                        spans.push(WordSpan {
+                            text: text.clone(),
+                            first: start,
+                            last: i - 1,
+                        });
                     }
                     start = i + 1;
                 }
@@ -90,7 +101,10 @@ mod tests {
 
     #[test]
     fn collapses_repeats_drops_blanks_and_splits_at_the_boundary() {
-        let units: Vec<String> = ["<blk>", "a", "b", "<wb>"].iter().map(|s| s.to_string()).collect();
+        let units: Vec<String> = ["<blk>", "a", "b", "<wb>"]
+            .iter()
+            .map(|s| s.to_string())
+            .collect();
         let graph = SearchGraph::lexicon_free(units).unwrap();
         // best path: a a _ a <wb> b b
         let best = [1, 1, 0, 1, 3, 2, 2];

@@ -39,9 +39,9 @@
 mod graph;
 mod greedy;
 mod lm;
-mod search;
 pub mod output;
 pub mod pipeline;
+mod search;
 pub mod segment;
 mod transcript;
 
@@ -96,7 +96,10 @@ pub trait Decoder {
     fn decode(&mut self, log_posteriors: ArrayView2<'_, f32>) -> Result<Transcript, DecodeError>;
 }
 
-fn check_posteriors(graph: &SearchGraph, log_posteriors: ArrayView2<'_, f32>) -> Result<(), DecodeError> {
+fn check_posteriors(
+    graph: &SearchGraph,
+    log_posteriors: ArrayView2<'_, f32>,
+) -> Result<(), DecodeError> {
     if log_posteriors.ncols() != graph.units().len() {
         return Err(DecodeError::UnitCountMismatch {
             expected: graph.units().len(),

@@ -140,9 +140,71 @@ impl LanguageModel for BigramModel {
     }
 }
 
+/// `ln 10`: ARPA files store base-10 logarithms, the search works in natural logarithms.
+const LN_10: f32 = std::f32::consts::LN_10;
+
+/// The project's n-gram model. Scores are converted from log10 to natural log; a model
+/// without `</s>` charges nothing for ending the sentence (rather than making every
+/// hypothesis impossible).
+impl LanguageModel for isogloss_lm::ArpaModel {
+    type State = isogloss_lm::LmState;
+    type Word = isogloss_lm::WordIndex;
+
+    fn start_state(&self) -> Self::State {
+        self.sentence_start()
+    }
+
+    fn score(&self, state: &Self::State, word: Self::Word) -> (f32, Self::State) {
+        let (log10, next) = isogloss_lm::ArpaModel::score(self, state, word);
+        (log10 * LN_10, next)
+    }
+
+    fn end_score(&self, state: &Self::State) -> f32 {
+        if self.sentence_end_word().is_none() {
+            return 0.0;
+        }
+        self.sentence_end(state) * LN_10
+    }
+
+    fn lookup(&self, text: &str) -> Option<Self::Word> {
+        self.word_index(text)
+    }
+
+    fn unknown(&self) -> Option<Self::Word> {
+        self.unknown_word()
+    }
+
+    /// The unigram probability: the best a word can do without knowing its history.
+    fn lookahead_score(&self, word: Self::Word) -> f32 {
+        isogloss_lm::ArpaModel::score(self, &isogloss_lm::LmState::EMPTY, word).0 * LN_10
+    }
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    #[test]
+    fn arpa_scores_are_natural_logs_of_the_file_values() {
+        // a hand-written bigram model in the ARPA back-off format
+        let text = "\\data\\\nngram 1=4\nngram 2=2\n\n\\1-grams:\n-1.0\t<s>\t-0.5\n-0.7\thallo\t-0.3\n\
+                    -1.2\twelt\n-0.9\t</s>\n\n\\2-grams:\n-0.2\t<s> hallo\n-0.4\thallo welt\n\n\\end\\\n";
+        let model = isogloss_lm::ArpaModel::read_from(text.as_bytes(), "inline.arpa").unwrap();
+        let lm: &dyn LanguageModel<State = isogloss_lm::LmState, Word = isogloss_lm::WordIndex> =
+            &model;
+        let hallo = lm.lookup("hallo").unwrap();
+        let welt = lm.lookup("welt").unwrap();
+        let (p, s) = lm.score(&lm.start_state(), hallo);
+        assert!((p - (-0.2f32) * LN_10).abs() < 1e-5);
+        let (p, s) = lm.score(&s, welt);
+        assert!((p - (-0.4f32) * LN_10).abs() < 1e-5);
+        // back-off (ARPA format): P(</s> | welt) = P(</s>), welt has no back-off weight (0)
+        assert!((lm.end_score(&s) - (-0.9f32) * LN_10).abs() < 1e-5);
+        // P(welt | <s>) backs off: bo(<s>) + P(welt)
+        assert!((lm.score(&lm.start_state(), welt).0 - (-0.5f32 - 1.2) * LN_10).abs() < 1e-5);
+        assert!((lm.lookahead_score(welt) - (-1.2f32) * LN_10).abs() < 1e-5);
+        assert!(lm.unknown().is_none());
+    }
 
     #[test]
     fn bigram_model_reads_its_table() {

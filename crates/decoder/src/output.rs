@@ -37,7 +37,12 @@ impl TimedSegment {
     /// Places a transcript decoded from the audio `[start, end]` (seconds) on the recording's
     /// time line; `frame_shift` is the seconds between two posterior frames. Word times are
     /// clamped into the segment (a model's last frame may reach past the audio).
-    pub fn from_transcript(transcript: &Transcript, start: f64, end: f64, frame_shift: f64) -> Self {
+    pub fn from_transcript(
+        transcript: &Transcript,
+        start: f64,
+        end: f64,
+        frame_shift: f64,
+    ) -> Self {
         let clamp = |t: f64| t.clamp(start, end);
         let words = transcript
             .words
@@ -97,7 +102,11 @@ pub enum OutputFormat {
 
 /// Writes `items` in `format`. For WebVTT several items are written one after the other only
 /// if that keeps cue times increasing; callers write one file per recording.
-pub fn write_items(out: &mut impl Write, items: &[ItemTranscript], format: OutputFormat) -> io::Result<()> {
+pub fn write_items(
+    out: &mut impl Write,
+    items: &[ItemTranscript],
+    format: OutputFormat,
+) -> io::Result<()> {
     match format {
         OutputFormat::Tsv => {
             writeln!(out, "id\ttext")?;
@@ -230,7 +239,14 @@ pub(crate) mod webvtt_validator {
         let (seconds, fraction) = rest
             .split_once('.')
             .ok_or_else(|| format!("{text:?}: no '.' before the milliseconds"))?;
-        if !digits(hours) || minutes.len() != 2 || !digits(minutes) || seconds.len() != 2 || !digits(seconds) || fraction.len() != 3 || !digits(fraction) {
+        if !digits(hours)
+            || minutes.len() != 2
+            || !digits(minutes)
+            || seconds.len() != 2
+            || !digits(seconds)
+            || fraction.len() != 3
+            || !digits(fraction)
+        {
             return Err(format!("{text:?}: wrong digit counts"));
         }
         let (h, m, s, f): (f64, f64, f64, f64) = (
@@ -249,15 +265,21 @@ pub(crate) mod webvtt_validator {
     pub fn validate(file: &str) -> Result<Vec<(f64, f64, String)>, String> {
         // 4.1: optional BOM, "WEBVTT", then space, tab or a line terminator (or the end).
         let body = file.strip_prefix('\u{feff}').unwrap_or(file);
-        let after = body.strip_prefix("WEBVTT").ok_or("file does not start with WEBVTT")?;
+        let after = body
+            .strip_prefix("WEBVTT")
+            .ok_or("file does not start with WEBVTT")?;
         if !(after.is_empty() || after.starts_with([' ', '\t', '\n', '\r'])) {
             return Err("WEBVTT must be followed by a space, tab or line break".into());
         }
         let normalized = body.replace("\r\n", "\n").replace('\r', "\n");
-        let mut blocks = normalized.split("\n\n").filter(|b| !b.trim_matches('\n').is_empty());
+        let mut blocks = normalized
+            .split("\n\n")
+            .filter(|b| !b.trim_matches('\n').is_empty());
         let header = blocks.next().ok_or("empty file")?;
         if header.contains("-->") {
-            return Err("the header block must be separated from the first cue by a blank line".into());
+            return Err(
+                "the header block must be separated from the first cue by a blank line".into(),
+            );
         }
         let mut cues = Vec::new();
         let mut last_start = f64::NEG_INFINITY;
@@ -270,7 +292,12 @@ pub(crate) mod webvtt_validator {
             let (timing, payload) = if lines[0].contains("-->") {
                 (lines[0], &lines[1..])
             } else {
-                (*lines.get(1).ok_or(format!("cue {:?} has no timings", lines[0]))?, &lines[2..])
+                (
+                    *lines
+                        .get(1)
+                        .ok_or(format!("cue {:?} has no timings", lines[0]))?,
+                    &lines[2..],
+                )
             };
             let (start, rest) = timing
                 .split_once(" --> ")
@@ -291,7 +318,13 @@ pub(crate) mod webvtt_validator {
                 }
             }
             let text = payload.join("\n");
-            if text.contains('<') || text.replace("&amp;", "").replace("&lt;", "").replace("&gt;", "").contains('&') {
+            if text.contains('<')
+                || text
+                    .replace("&amp;", "")
+                    .replace("&lt;", "")
+                    .replace("&gt;", "")
+                    .contains('&')
+            {
                 return Err(format!("cue text {text:?} has an unescaped & or <"));
             }
             cues.push((start, end, text));
@@ -322,7 +355,13 @@ mod tests {
         // values from the W3C WebVTT spec's examples: "00:00:11.000", "00:01:14.815" (4.1 example)
         assert_eq!(timestamp("00:01:14.815").unwrap(), 74.815);
         assert_eq!(timestamp("01:14.815").unwrap(), 74.815);
-        for bad in ["1:14.815", "00:60:00.000", "00:00:00,000", "00:00:00.00", "0:00:00.000"] {
+        for bad in [
+            "1:14.815",
+            "00:60:00.000",
+            "00:00:00,000",
+            "00:00:00.00",
+            "0:00:00.000",
+        ] {
             assert!(timestamp(bad).is_err(), "{bad}");
         }
     }
@@ -333,7 +372,10 @@ mod tests {
         assert!(validate("WEBVTTX\n\n").is_err());
         assert!(validate("WEBVT\n\n").is_err());
         assert!(validate("WEBVTT\n\n00:02.000 --> 00:01.000\nhi\n").is_err());
-        assert!(validate("WEBVTT\n\n00:03.000 --> 00:04.000\na\n\n00:01.000 --> 00:02.000\nb\n").is_err());
+        assert!(
+            validate("WEBVTT\n\n00:03.000 --> 00:04.000\na\n\n00:01.000 --> 00:02.000\nb\n")
+                .is_err()
+        );
         assert!(validate("WEBVTT\n\n00:01.000 --> 00:02.000\na --> b\n").is_err());
         assert!(validate("WEBVTT\n\n00:01.000 --> 00:02.000\na < b\n").is_err());
     }
@@ -345,7 +387,9 @@ mod tests {
                 start: 0.5,
                 end: 9.0,
                 text: String::new(),
-                words: (0..20).map(|i| word(&format!("w{i}"), 0.5 + i as f64 * 0.4, 0.8 + i as f64 * 0.4)).collect(),
+                words: (0..20)
+                    .map(|i| word(&format!("w{i}"), 0.5 + i as f64 * 0.4, 0.8 + i as f64 * 0.4))
+                    .collect(),
             },
             TimedSegment {
                 start: 3725.0,
@@ -354,7 +398,12 @@ mod tests {
                 // zero-length word and characters that need escaping
                 words: vec![word("R&D", 3725.1, 3725.1), word("<b>", 3725.2, 3725.5)],
             },
-            TimedSegment { start: 3727.0, end: 3728.0, text: String::new(), words: vec![] },
+            TimedSegment {
+                start: 3727.0,
+                end: 3728.0,
+                text: String::new(),
+                words: vec![],
+            },
         ];
         let mut out = Vec::new();
         write_webvtt(&mut out, &segments, &CueLimits::default()).unwrap();
@@ -373,19 +422,37 @@ mod tests {
             id: "int-01".into(),
             audio: "a.wav".into(),
             segments: vec![
-                TimedSegment { start: 0.0, end: 1.0, text: "guten tag".into(), words: vec![] },
-                TimedSegment { start: 1.0, end: 2.0, text: String::new(), words: vec![] },
-                TimedSegment { start: 2.0, end: 3.0, text: "servus".into(), words: vec![] },
+                TimedSegment {
+                    start: 0.0,
+                    end: 1.0,
+                    text: "guten tag".into(),
+                    words: vec![],
+                },
+                TimedSegment {
+                    start: 1.0,
+                    end: 2.0,
+                    text: String::new(),
+                    words: vec![],
+                },
+                TimedSegment {
+                    start: 2.0,
+                    end: 3.0,
+                    text: "servus".into(),
+                    words: vec![],
+                },
             ],
         };
         let mut out = Vec::new();
         write_items(&mut out, std::slice::from_ref(&item), OutputFormat::Tsv).unwrap();
-        assert_eq!(String::from_utf8(out).unwrap(), "id\ttext\nint-01\tguten tag servus\n");
+        assert_eq!(
+            String::from_utf8(out).unwrap(),
+            "id\ttext\nint-01\tguten tag servus\n"
+        );
         let mut out = Vec::new();
-        write_items(&mut out, &[item.clone()], OutputFormat::Txt).unwrap();
+        write_items(&mut out, std::slice::from_ref(&item), OutputFormat::Txt).unwrap();
         assert_eq!(String::from_utf8(out).unwrap(), "guten tag\nservus\n");
         let mut out = Vec::new();
-        write_items(&mut out, &[item.clone()], OutputFormat::Json).unwrap();
+        write_items(&mut out, std::slice::from_ref(&item), OutputFormat::Json).unwrap();
         let back: Vec<ItemTranscript> = serde_json::from_slice(&out).unwrap();
         assert_eq!(back, vec![item]);
     }

@@ -83,7 +83,13 @@ where
     let mut consumed = 0u64;
     let batch = settings.batch_segments.max(1);
     let flush = |pending: &mut Vec<SpeechSegment>, out: &mut Vec<TimedSegment>| -> Result<(), E> {
-        for result in decode_segments(pending, sample_rate, frame_shift_seconds, &posteriors, &new_decoder) {
+        for result in decode_segments(
+            pending,
+            sample_rate,
+            frame_shift_seconds,
+            &posteriors,
+            &new_decoder,
+        ) {
             out.push(result?);
         }
         pending.clear();
@@ -114,16 +120,23 @@ mod tests {
     fn fake_posteriors(samples: &[f32]) -> Result<Array2<f32>, DecodeError> {
         let frames = samples.len() / 160;
         Ok(Array2::from_shape_fn((frames, 3), |(t, u)| {
-            let loud = samples[t * 160..(t + 1) * 160].iter().any(|x| x.abs() > 0.1);
+            let loud = samples[t * 160..(t + 1) * 160]
+                .iter()
+                .any(|x| x.abs() > 0.1);
             let hit = if loud { u == 1 } else { u == 0 };
-            if hit { (0.98f32).ln() } else { (0.01f32).ln() }
+            if hit {
+                (0.98f32).ln()
+            } else {
+                (0.01f32).ln()
+            }
         }))
     }
 
     #[test]
     fn words_land_on_the_recording_time_line_in_order() {
         let rate = 16_000;
-        let graph = SearchGraph::lexicon_free(vec!["<blk>".into(), "a".into(), "<wb>".into()]).unwrap();
+        let graph =
+            SearchGraph::lexicon_free(vec!["<blk>".into(), "a".into(), "<wb>".into()]).unwrap();
         // a loud square wave at 2–2.5 s, 10–10.5 s and 30–30.5 s in 40 s of faint noise
         let bursts = [2.0, 10.0, 30.0];
         let signal: Vec<f32> = (0..40 * rate)
@@ -134,7 +147,9 @@ mod tests {
                 sign * if loud { 0.5 } else { 0.001 }
             })
             .collect();
-        let chunks = signal.chunks(12_345).map(|c| Ok::<_, DecodeError>(c.to_vec()));
+        let chunks = signal
+            .chunks(12_345)
+            .map(|c| Ok::<_, DecodeError>(c.to_vec()));
         let mut progress = Vec::new();
         let segments = transcribe_stream(
             chunks,

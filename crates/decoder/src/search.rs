@@ -205,7 +205,13 @@ impl<'a, L: LanguageModel> PrefixBeamSearch<'a, L> {
             }
             lookahead = trie
                 .nodes()
-                .map(|n| if options.lookahead { trie.lookahead(n) } else { 0.0 })
+                .map(|n| {
+                    if options.lookahead {
+                        trie.lookahead(n)
+                    } else {
+                        0.0
+                    }
+                })
                 .collect();
         }
         PrefixBeamSearch {
@@ -313,10 +319,7 @@ impl<'a, L: LanguageModel> PrefixBeamSearch<'a, L> {
         self.stamp += 1;
         self.next.clear();
         self.candidates.clear();
-        let best_unit = frame[1..]
-            .iter()
-            .copied()
-            .fold(f32::NEG_INFINITY, f32::max);
+        let best_unit = frame[1..].iter().copied().fold(f32::NEG_INFINITY, f32::max);
         for (c, &p) in frame.iter().enumerate().skip(1) {
             if self.options.unit_prune.is_none_or(|m| p >= best_unit - m) {
                 self.candidates.push(c as u32);
@@ -328,7 +331,11 @@ impl<'a, L: LanguageModel> PrefixBeamSearch<'a, L> {
             self.add(h.node, total + frame[0], f32::NEG_INFINITY);
             let last = self.arena[h.node as usize].unit;
             if last != 0 {
-                self.add(h.node, f32::NEG_INFINITY, h.non_blank + frame[last as usize]);
+                self.add(
+                    h.node,
+                    f32::NEG_INFINITY,
+                    h.non_blank + frame[last as usize],
+                );
             }
             for k in 0..self.candidates.len() {
                 let c = self.candidates[k];
@@ -556,9 +563,8 @@ impl<'a, L: LanguageModel> PrefixBeamSearch<'a, L> {
                 continue;
             }
             let node = self.arena[h.node as usize].clone();
-            let closed = |lm: &L, state: &L::State| {
-                acoustic + node.context + weight * lm.end_score(state)
-            };
+            let closed =
+                |lm: &L, state: &L::State| acoustic + node.context + weight * lm.end_score(state);
             match (self.graph.word_rule(), self.graph.trie()) {
                 (WordRule::LexiconAtWordEnd, Some(trie)) => {
                     if node.trie == trie.root() {

@@ -168,7 +168,8 @@ impl Segmenter {
             self.floor.pop_front();
         }
         let floor = self.floor.front().map(|&(_, e)| e).unwrap_or(energy);
-        let speech = energy >= self.config.absolute_min_db && energy > floor + self.config.threshold_db;
+        let speech =
+            energy >= self.config.absolute_min_db && energy > floor + self.config.threshold_db;
         let block_start = index * self.block as u64;
         match &mut self.open {
             Some(open) => {
@@ -220,10 +221,14 @@ impl Segmenter {
     fn cut(&mut self, out: &mut Vec<SpeechSegment>) {
         let Some(open) = &mut self.open else { return };
         let half = open.energies.len() / 2;
-        let (offset, _) = open.energies[half..]
-            .iter()
-            .enumerate()
-            .fold((0, f32::INFINITY), |best, (i, &e)| if e < best.1 { (i, e) } else { best });
+        let (offset, _) =
+            open.energies[half..]
+                .iter()
+                .enumerate()
+                .fold(
+                    (0, f32::INFINITY),
+                    |best, (i, &e)| if e < best.1 { (i, e) } else { best },
+                );
         let cut_block = half + offset;
         let cut_sample = (cut_block * self.block).min(open.samples.len());
         let rest_samples = open.samples.split_off(cut_sample);
@@ -306,8 +311,14 @@ mod tests {
         let found = spans(&segments);
         assert_eq!(found.len(), 2, "{found:?}");
         for ((a, b), (start, end)) in [(1.0, 2.5), (5.0, 7.0)].into_iter().zip(found) {
-            assert!((start - (a - 0.15)).abs() <= 0.02, "start {start} for burst at {a}");
-            assert!((end - (b + 0.3)).abs() <= 0.03, "end {end} for burst ending at {b}");
+            assert!(
+                (start - (a - 0.15)).abs() <= 0.02,
+                "start {start} for burst at {a}"
+            );
+            assert!(
+                (end - (b + 0.3)).abs() <= 0.03,
+                "end {end} for burst ending at {b}"
+            );
         }
     }
 

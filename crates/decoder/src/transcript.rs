@@ -100,7 +100,13 @@ pub(crate) fn viterbi_runs(
     let frames = log_posteriors.nrows();
     // Extended sequence: blank, l1, blank, l2, ..., lL, blank.
     let states = 2 * labels.len() + 1;
-    let symbol = |s: usize| if s % 2 == 0 { 0 } else { labels[s / 2] as usize };
+    let symbol = |s: usize| {
+        if s % 2 == 0 {
+            0
+        } else {
+            labels[s / 2] as usize
+        }
+    };
     scores.clear();
     scores.resize(2 * states, f32::NEG_INFINITY);
     back.clear();
