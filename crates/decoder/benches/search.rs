@@ -88,9 +88,8 @@ fn main() {
                     for _ in 0..rng.random_range(1..=2) {
                         frames.push(u);
                     }
-                    for _ in 0..rng.random_range(1..=4) {
-                        frames.push(0);
-                    }
+                    let gap = rng.random_range(1..=4);
+                    frames.extend(std::iter::repeat_n(0, gap));
                 }
             }
             let mut posteriors = Array2::<f32>::zeros((frames.len(), units.len()));
