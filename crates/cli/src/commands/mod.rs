@@ -4,3 +4,4 @@ pub mod score;
 pub mod variants;
 pub mod lm;
 pub mod lexicon;
+pub mod decode;
