@@ -8,6 +8,7 @@ use std::fs;
 use std::path::{Path, PathBuf};
 
 use isogloss_corpus::tsv::Table;
+use isogloss_score::{tokenize, TokenRules};
 
 const MANIFEST_COLUMNS: [&str; 8] = [
     "id",
@@ -122,6 +123,10 @@ fn every_row_has_word_aligned_transcripts() {
             let d = tokens(&row.dialectal, &format!("{at}, dialectal"));
             let n = tokens(&row.normalized, &format!("{at}, normalized"));
             assert_eq!(d.len(), n.len(), "{at}: {d:?} vs {n:?}");
+            // The scorer's own tokenizer (the DESIGN.md token rules) sees the same words.
+            let rules = TokenRules::default();
+            assert_eq!(tokenize(&row.dialectal, &rules), d, "{at}: dialectal");
+            assert_eq!(tokenize(&row.normalized, &rules), n, "{at}: normalized");
             assert!(!row.speaker.is_empty(), "{at}: empty speaker");
         }
     }
