@@ -97,7 +97,8 @@ impl Fingerprint {
 
     /// Mixes in a file's name-independent content.
     pub fn file(&mut self, path: &Path) -> anyhow::Result<()> {
-        let mut file = File::open(path).with_context(|| format!("{}: cannot open", path.display()))?;
+        let mut file =
+            File::open(path).with_context(|| format!("{}: cannot open", path.display()))?;
         let mut buffer = vec![0u8; 1 << 16];
         loop {
             let n = file
@@ -158,7 +159,8 @@ impl Journal {
     ) -> anyhow::Result<(Journal, HashMap<String, ItemTranscript>)> {
         let path = Journal::path_for(out);
         if let Some(parent) = path.parent().filter(|p| !p.as_os_str().is_empty()) {
-            fs::create_dir_all(parent).with_context(|| format!("{}: cannot create", parent.display()))?;
+            fs::create_dir_all(parent)
+                .with_context(|| format!("{}: cannot create", parent.display()))?;
         }
         let mut done = HashMap::new();
         if resume && path.exists() {
@@ -224,7 +226,11 @@ impl Journal {
 
 /// Writes the items atomically: one file in `format`, or for WebVTT with several items one
 /// `ID.vtt` per item inside the directory `out`.
-pub fn write_output(out: &Path, items: &[ItemTranscript], format: OutputFormat) -> anyhow::Result<()> {
+pub fn write_output(
+    out: &Path,
+    items: &[ItemTranscript],
+    format: OutputFormat,
+) -> anyhow::Result<()> {
     if format == OutputFormat::Vtt && items.len() > 1 {
         for item in items {
             let mut bytes = Vec::new();
@@ -289,7 +295,10 @@ pub fn run_batch(
                 done.insert(item.id.clone(), transcript);
                 audio_seconds += seconds;
             }
-            Err(error) => failed.push((item.id.clone(), format!("{}: {error:#}", item.audio.display()))),
+            Err(error) => failed.push((
+                item.id.clone(),
+                format!("{}: {error:#}", item.audio.display()),
+            )),
         }
         bar.inc(1);
         let wall = started.elapsed().as_secs_f64();
@@ -368,9 +377,15 @@ mod tests {
         assert_eq!(report.failed.len(), 1);
         assert!(report.failed[0].1.contains("b.wav"));
         write_output(&out, &report.items, OutputFormat::Tsv).unwrap();
-        assert_eq!(fs::read_to_string(&out).unwrap(), "id\ttext\na\tfirst\nc\tfirst\n");
+        assert_eq!(
+            fs::read_to_string(&out).unwrap(),
+            "id\ttext\na\tfirst\nc\tfirst\n"
+        );
         // a torn line at the end, as a crash would leave
-        let mut f = OpenOptions::new().append(true).open(Journal::path_for(&out)).unwrap();
+        let mut f = OpenOptions::new()
+            .append(true)
+            .open(Journal::path_for(&out))
+            .unwrap();
         write!(f, "{{\"fingerprint\":\"model-1\",\"it").unwrap();
         drop(f);
         // resume with the same model: only "b" is decoded
@@ -394,8 +409,15 @@ mod tests {
     fn several_recordings_as_webvtt_become_one_file_each() {
         let dir = tempfile::tempdir().unwrap();
         let out = dir.path().join("subtitles");
-        write_output(&out, &[item("x", "hallo"), item("y", "grüezi")], OutputFormat::Vtt).unwrap();
-        assert!(fs::read_to_string(out.join("x.vtt")).unwrap().starts_with("WEBVTT"));
+        write_output(
+            &out,
+            &[item("x", "hallo"), item("y", "grüezi")],
+            OutputFormat::Vtt,
+        )
+        .unwrap();
+        assert!(fs::read_to_string(out.join("x.vtt"))
+            .unwrap()
+            .starts_with("WEBVTT"));
         assert!(out.join("y.vtt").exists());
     }
 }
