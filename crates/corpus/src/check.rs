@@ -142,6 +142,11 @@ pub fn check_manifests(
     }
     let (shared_speakers, leaks) = leakage(&read);
     problems.extend(leaks);
+    // Manifest by manifest in the order given, then by line; file-wide findings last.
+    problems.sort_by_key(|p| {
+        let file = paths.iter().position(|path| *path == p.file);
+        (file, p.line.is_none(), p.line)
+    });
     let errors = problems
         .iter()
         .filter(|p| p.severity == Severity::Error)
@@ -371,4 +376,129 @@ fn leakage(manifests: &[Manifest]) -> (Vec<SharedSpeakers>, Vec<Problem>) {
         }
     }
     (shared, problems)
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    /// Writes a 16 kHz mono 16-bit WAV of `seconds` of a quiet tone.
+    fn wav(path: &Path, seconds: f64) {
+        let spec = hound::WavSpec {
+            channels: 1,
+            sample_rate: 16_000,
+            bits_per_sample: 16,
+            sample_format: hound::SampleFormat::Int,
+        };
+        let mut writer = hound::WavWriter::create(path, spec).unwrap();
+        for i in 0..(seconds * 16_000.0) as usize {
+            writer.write_sample(((i % 50) as i16 - 25) * 100).unwrap();
+        }
+        writer.finalize().unwrap();
+    }
+
+    fn check_rows(rows: &str, audio_check: AudioCheck) -> CheckReport {
+        let dir = tempfile::tempdir().unwrap();
+        wav(&dir.path().join("one.wav"), 1.0);
+        wav(&dir.path().join("two.wav"), 2.0);
+        wav(&dir.path().join("cut.wav"), 1.0);
+        let cut = dir.path().join("cut.wav");
+        let bytes = std::fs::read(&cut).unwrap();
+        std::fs::write(&cut, &bytes[..bytes.len() - 1000]).unwrap();
+        std::fs::write(dir.path().join("text.wav"), "not audio\n").unwrap();
+        let path = dir.path().join("m.tsv");
+        std::fs::write(
+            &path,
+            format!("id\taudio\tstart\tend\tspeaker\tdialect\ttext\n{rows}"),
+        )
+        .unwrap();
+        check_manifests(&[path], audio_check, &mut |_, _| {})
+    }
+
+    fn messages(report: &CheckReport) -> Vec<String> {
+        report.problems.iter().map(ToString::to_string).collect()
+    }
+
+    #[test]
+    fn figures_per_dialect_and_vocabulary() {
+        let report = check_rows(
+            "a\tone.wav\t\t\ts1\tnorth\thoose doon hoose\n\
+             b\ttwo.wav\t0.5\t1.5\ts2\tnorth\tdoon\n\
+             c\ttwo.wav\t1.5\t\ts3\t\taye\n",
+            AudioCheck::Decode,
+        );
+        assert_eq!(report.errors, 0, "{:?}", messages(&report));
+        assert_eq!(report.utterances, 3);
+        assert!((report.hours * 3600.0 - 2.5).abs() < 1e-9);
+        let summary = &report.manifests[0];
+        assert_eq!(summary.audio_files, 2);
+        let north = &summary.dialects[1];
+        assert_eq!(
+            (north.dialect.as_str(), north.utterances, north.speakers),
+            ("north", 2, 2)
+        );
+        assert!((north.hours * 3600.0 - 2.0).abs() < 1e-9);
+        assert_eq!(summary.dialects[0].dialect, NO_DIALECT);
+        assert_eq!(
+            (summary.vocabulary[0].types, summary.vocabulary[0].tokens),
+            (3, 5)
+        );
+    }
+
+    #[test]
+    fn segment_bounds_are_checked_against_the_audio() {
+        let report = check_rows(
+            "a\tone.wav\t0.5\t1.005\ts\td\tx\n\
+             b\tone.wav\t0.5\t1.2\ts\td\tx\n\
+             c\tone.wav\t1.0\t\ts\td\tx\n\
+             d\tone.wav\t0.5\t0.51\ts\td\tx\n",
+            AudioCheck::Decode,
+        );
+        let listed = messages(&report);
+        assert_eq!((report.errors, report.warnings), (2, 1), "{listed:?}");
+        assert!(listed[0].contains("line 3") && listed[0].contains("found end 1.2 s"));
+        assert!(listed[1].contains("line 4") && listed[1].contains("found start 1 s"));
+        assert!(listed[2].contains("line 5") && listed[2].contains("shorter than one 25 ms"));
+    }
+
+    #[test]
+    fn the_same_segment_under_two_ids_is_a_warning() {
+        let report = check_rows(
+            "a\ttwo.wav\t0\t1\ts\td\tx\nb\ttwo.wav\t0.0\t1.0\ts\td\ty\n",
+            AudioCheck::Decode,
+        );
+        let listed = messages(&report);
+        assert_eq!((report.errors, report.warnings), (0, 1), "{listed:?}");
+        assert!(
+            listed[0].contains("same audio segment as `a` on line 2"),
+            "{listed:?}"
+        );
+    }
+
+    #[test]
+    fn a_bad_file_is_explained_once_however_many_rows_use_it() {
+        let report = check_rows(
+            "a\ttext.wav\t0\t1\ts\td\tx\nb\ttext.wav\t1\t2\ts\td\tx\nc\ttext.wav\t2\t3\ts\td\tx\n",
+            AudioCheck::Decode,
+        );
+        let listed = messages(&report);
+        assert_eq!(report.errors, 3, "{listed:?}");
+        assert!(
+            listed[0].contains("text.wav: not a readable audio file"),
+            "{listed:?}"
+        );
+        assert!(
+            listed[2].contains("line 4") && listed[2].contains("(see line 2)"),
+            "{listed:?}"
+        );
+    }
+
+    #[test]
+    fn only_decoding_finds_a_truncated_file() {
+        let rows = "a\tcut.wav\t\t\ts\td\tx\n";
+        let decoded = check_rows(rows, AudioCheck::Decode);
+        assert_eq!(decoded.errors, 1);
+        assert!(messages(&decoded)[0].contains("truncated"));
+        assert_eq!(check_rows(rows, AudioCheck::HeaderOnly).errors, 0);
+    }
 }

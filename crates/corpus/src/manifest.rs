@@ -437,18 +437,23 @@ fn absolute(path: &Path) -> std::io::Result<PathBuf> {
     Ok(normalized)
 }
 
-/// `path` relative to `folder` (both absolute and normalized), if they share a root.
+/// `path` relative to `folder` (both absolute and normalized), if they share more than the
+/// root (a manifest in /tmp pointing at /home/... is clearer with an absolute path).
 fn relative_to(path: &Path, folder: &Path) -> Option<PathBuf> {
     let path_parts: Vec<Component> = path.components().collect();
     let folder_parts: Vec<Component> = folder.components().collect();
-    if path_parts.first() != folder_parts.first() {
-        return None;
-    }
     let common = path_parts
         .iter()
         .zip(&folder_parts)
         .take_while(|(a, b)| a == b)
         .count();
+    let shares_a_folder = path_parts
+        .iter()
+        .take(common)
+        .any(|c| matches!(c, Component::Normal(_)));
+    if !shares_a_folder {
+        return None;
+    }
     let mut relative = PathBuf::new();
     for _ in common..folder_parts.len() {
         relative.push("..");
@@ -543,6 +548,20 @@ mod tests {
         expect(7, Severity::Error, "repeats line 2 exactly");
         let first = Manifest::read(&path).unwrap_err().to_string();
         assert!(first.contains("corpus.tsv, line 3"), "{first}");
+    }
+
+    #[test]
+    fn relative_paths_only_within_a_shared_folder() {
+        let relative = |a: &str, b: &str| relative_to(Path::new(a), Path::new(b));
+        assert_eq!(
+            relative("/data/corpus/audio/a.flac", "/data/corpus/splits"),
+            Some(PathBuf::from("../audio/a.flac"))
+        );
+        assert_eq!(
+            relative("/data/corpus/a.flac", "/data/corpus"),
+            Some(PathBuf::from("a.flac"))
+        );
+        assert_eq!(relative("/home/archive/a.flac", "/tmp/out"), None);
     }
 
     #[test]

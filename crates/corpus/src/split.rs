@@ -8,6 +8,10 @@
 //! dev, while that brings the part closer to its target share of the dialect's **duration**;
 //! the rest go to train. Fractions are of audio duration, not utterance counts, because hours
 //! are what training and evaluation consume.
+//!
+//! A dialect with few speakers often cannot give a fraction of a speaker; what it falls short
+//! of (or overshoots) its target is carried over to the next dialect (in shuffled order), so
+//! that six dialects of three speakers each still yield a test set of about the size asked.
 
 use std::collections::{BTreeMap, BTreeSet};
 use std::path::{Path, PathBuf};
@@ -157,12 +161,17 @@ pub fn split_by_speaker(
             .push(speaker);
     }
     let mut rng = ChaCha8Rng::seed_from_u64(config.seed);
+    // Sorted (from the BTreeMaps) before shuffling, so the order depends on the seed only.
+    let mut dialects: Vec<Vec<&str>> = speakers_of_dialect.into_values().collect();
+    dialects.shuffle(&mut rng);
     let mut part_of_speaker: BTreeMap<&str, Part> = BTreeMap::new();
-    for speakers in speakers_of_dialect.values_mut() {
-        // `speakers` is sorted (from the BTreeMap), so the shuffle depends on the seed only.
+    // Seconds by which earlier dialects fell short of their test and dev targets.
+    let (mut test_carry, mut dev_carry) = (0.0, 0.0);
+    for speakers in &mut dialects {
         speakers.shuffle(&mut rng);
         let total: f64 = speakers.iter().map(|s| speaker_seconds[s]).sum();
-        let (test_target, dev_target) = (config.test * total, config.dev * total);
+        let test_target = config.test * total + test_carry;
+        let dev_target = config.dev * total + dev_carry;
         let (mut test, mut dev) = (0.0, 0.0);
         for &speaker in speakers.iter() {
             let seconds = speaker_seconds[speaker];
@@ -179,6 +188,8 @@ pub fn split_by_speaker(
             };
             part_of_speaker.insert(speaker, part);
         }
+        test_carry = test_target - test;
+        dev_carry = dev_target - dev;
     }
     let mut split = Split::default();
     for (index, utterance) in manifest.utterances.iter().enumerate() {
@@ -255,15 +266,18 @@ impl Split {
 mod tests {
     use super::*;
 
-    /// A manifest of `speakers_per_dialect` speakers in each of three dialects, each speaker
-    /// with 4 utterances of 1 + (speaker number mod 3) seconds.
-    fn corpus(speakers_per_dialect: usize) -> (Manifest, Vec<f64>) {
+    const DIALECTS: [&str; 6] = ["fells", "marsh", "vale", "corran", "quays", "larch"];
+
+    /// A manifest of `speakers_per_dialect` speakers in each of the first `dialects` dialects,
+    /// each speaker with 4 utterances of 1 + (speaker number mod 3) seconds, or of 1 s each when
+    /// `equal`.
+    fn corpus(dialects: usize, speakers_per_dialect: usize, equal: bool) -> (Manifest, Vec<f64>) {
         let mut utterances = Vec::new();
         let mut durations = Vec::new();
-        for dialect in ["fells", "marsh", "vale"] {
+        for dialect in &DIALECTS[..dialects] {
             for s in 0..speakers_per_dialect {
                 for u in 0..4 {
-                    let seconds = 1.0 + (s % 3) as f64;
+                    let seconds = if equal { 1.0 } else { 1.0 + (s % 3) as f64 };
                     utterances.push(Utterance {
                         line: utterances.len() + 2,
                         id: format!("{dialect}{s:02}-{u}"),
@@ -295,7 +309,7 @@ mod tests {
 
     #[test]
     fn parts_are_speaker_disjoint_complete_and_stratified() {
-        let (manifest, durations) = corpus(20);
+        let (manifest, durations) = corpus(3, 20, false);
         let config = SplitConfig {
             dev: 0.1,
             test: 0.15,
@@ -330,8 +344,27 @@ mod tests {
     }
 
     #[test]
+    fn small_dialects_together_still_fill_dev_and_test() {
+        // Six dialects of three equal speakers: no dialect can give 10 % (0.3 of a speaker),
+        // so without carrying the shortfall over dev and test would be empty. With it they hold
+        // about 10 % of the audio, give or take one speaker (1/18 of the whole).
+        let (manifest, durations) = corpus(6, 3, true);
+        let config = SplitConfig {
+            dev: 0.1,
+            test: 0.1,
+            seed: 1,
+        };
+        let split = split_by_speaker(&manifest, &durations, &config).unwrap();
+        for part in &split.summarize(&manifest, &durations)[1..] {
+            let share = part.speakers as f64 / 18.0;
+            assert!(part.speakers >= 1, "{}: empty", part.part);
+            assert!((share - 0.1).abs() <= 1.0 / 18.0, "{}: {share}", part.part);
+        }
+    }
+
+    #[test]
     fn same_seed_same_split_other_seed_other_split() {
-        let (manifest, durations) = corpus(12);
+        let (manifest, durations) = corpus(3, 12, false);
         let config = SplitConfig {
             dev: 0.2,
             test: 0.2,
@@ -347,7 +380,7 @@ mod tests {
 
     #[test]
     fn bad_fractions_are_rejected() {
-        let (manifest, durations) = corpus(3);
+        let (manifest, durations) = corpus(3, 3, false);
         for (dev, test) in [(0.6, 0.5), (-0.1, 0.1), (f64::NAN, 0.1), (0.1, 1.0)] {
             let config = SplitConfig { dev, test, seed: 0 };
             let message = split_by_speaker(&manifest, &durations, &config)

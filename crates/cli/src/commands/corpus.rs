@@ -107,14 +107,15 @@ fn names(paths: &[PathBuf]) -> String {
         .join(", ")
 }
 
-/// Hours as `h:mm:ss`, readable for both a 5-second sample and a 300-hour archive.
+/// Hours as `h:mm:ss.s`, readable for both a 5-second sample and a 300-hour archive.
 fn clock(hours: f64) -> String {
-    let seconds = (hours * 3600.0).round() as u64;
+    let tenths = (hours * 36_000.0).round() as u64;
     format!(
-        "{}:{:02}:{:02}",
-        seconds / 3600,
-        seconds / 60 % 60,
-        seconds % 60
+        "{}:{:02}:{:02}.{}",
+        tenths / 36_000,
+        tenths / 600 % 60,
+        tenths / 10 % 60,
+        tenths % 10
     )
 }
 
@@ -151,7 +152,12 @@ fn print_report(report: &CheckReport) {
         let vocabulary: Vec<String> = manifest
             .vocabulary
             .iter()
-            .map(|v| format!("{} {} words / {} tokens", v.column, v.types, v.tokens))
+            .map(|v| {
+                format!(
+                    "{}: {} distinct words, {} in all",
+                    v.column, v.types, v.tokens
+                )
+            })
             .collect();
         println!("  vocabulary: {}", vocabulary.join("; "));
     }

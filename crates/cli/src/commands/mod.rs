@@ -1,4 +1,5 @@
 //! One module per command group; each exposes clap `Args` and a `run` returning an `Outcome`.
 
+pub mod corpus;
 pub mod score;
 pub mod variants;
