@@ -3,5 +3,6 @@
 pub mod decode;
 pub mod lexicon;
 pub mod lm;
+pub mod corpus;
 pub mod score;
 pub mod variants;
