@@ -235,7 +235,11 @@ pub fn read_segments(path: &Path, segments: &[Segment]) -> Result<Vec<Vec<f32>>,
     let last_needed = ranges.iter().map(|&(_, end)| end).max().unwrap_or(0);
     let mut cuts: Vec<Vec<f32>> = ranges
         .iter()
-        .map(|&(start, end)| Vec::with_capacity(end.saturating_sub(start).min(1 << 24) as usize))
+        .map(|&(start, end)| match end {
+            // Open-ended: the length is unknown until the stream ends.
+            u64::MAX => Vec::new(),
+            end => Vec::with_capacity(end.saturating_sub(start).min(1 << 24) as usize),
+        })
         .collect();
     let mut reader = ChunkReader::open(path, 1 << 15)?;
     let mut offset = 0u64;

@@ -115,7 +115,7 @@ pub fn check_manifests(
                 problems.extend(found);
                 read.push(manifest);
             }
-            Err(error) => problems.push(Problem::error(path, None, error.to_string())),
+            Err(error) => problems.push(Problem::from_corpus_error(error)),
         }
     }
     let audio_files: BTreeSet<&Path> = read

@@ -95,13 +95,19 @@ impl Problem {
         }
     }
 
-    fn from_corpus_error(error: CorpusError) -> Problem {
+    pub(crate) fn from_corpus_error(error: CorpusError) -> Problem {
         match error {
             CorpusError::Format {
                 path,
                 line,
                 message,
             } => Problem::error(&path, Some(line), message),
+            CorpusError::Io { path, source } => {
+                Problem::error(&path, None, format!("cannot read the file: {source}"))
+            }
+            CorpusError::Audio { path, line, source } => {
+                Problem::error(&path, Some(line), source.to_string())
+            }
             other => {
                 let path = other.path().to_path_buf();
                 Problem::error(&path, None, other.to_string())
