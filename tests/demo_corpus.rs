@@ -102,7 +102,9 @@ fn tokens<'a>(text: &'a str, what: &str) -> Vec<&'a str> {
             && !text.starts_with(' ')
             && !text.ends_with(' ')
             && !text.contains("  ")
-            && text.chars().all(|c| c.is_ascii_lowercase() || c == '\'' || c == ' '),
+            && text
+                .chars()
+                .all(|c| c.is_ascii_lowercase() || c == '\'' || c == ' '),
         "{what}: {text:?} is not lower-case words and apostrophes separated by single spaces"
     );
     text.split(' ').collect()
@@ -152,7 +154,10 @@ fn splits_are_speaker_disjoint_and_cover_every_region() {
     for split in SPLITS {
         for row in read_manifest(split) {
             assert!(!row.dialect.is_empty(), "{split}.tsv line {}", row.line);
-            per_region.entry(row.dialect).or_default().insert(row.speaker);
+            per_region
+                .entry(row.dialect)
+                .or_default()
+                .insert(row.speaker);
         }
     }
     assert!(per_region.len() >= 5, "regions: {:?}", per_region.keys());
@@ -160,7 +165,10 @@ fn splits_are_speaker_disjoint_and_cover_every_region() {
         assert!(spk.len() >= 4, "region {region} has speakers {spk:?}");
     }
     for split in ["dev", "test"] {
-        let regions: BTreeSet<String> = read_manifest(split).into_iter().map(|r| r.dialect).collect();
+        let regions: BTreeSet<String> = read_manifest(split)
+            .into_iter()
+            .map(|r| r.dialect)
+            .collect();
         assert_eq!(regions.len(), per_region.len(), "{split} misses regions");
     }
 }
@@ -169,12 +177,22 @@ fn splits_are_speaker_disjoint_and_cover_every_region() {
 fn dev_and_test_hold_words_never_seen_in_train() {
     let train: BTreeSet<String> = read_manifest("train")
         .iter()
-        .flat_map(|r| r.normalized.split(' ').map(str::to_string).collect::<Vec<_>>())
+        .flat_map(|r| {
+            r.normalized
+                .split(' ')
+                .map(str::to_string)
+                .collect::<Vec<_>>()
+        })
         .collect();
     for split in ["dev", "test"] {
         let unseen: BTreeSet<String> = read_manifest(split)
             .iter()
-            .flat_map(|r| r.normalized.split(' ').map(str::to_string).collect::<Vec<_>>())
+            .flat_map(|r| {
+                r.normalized
+                    .split(' ')
+                    .map(str::to_string)
+                    .collect::<Vec<_>>()
+            })
             .filter(|w| !train.contains(w))
             .collect();
         assert!(!unseen.is_empty(), "{split}: no out-of-vocabulary words");
@@ -208,7 +226,10 @@ fn transcribers_spell_some_words_in_several_ways() {
         .iter()
         .filter(|r| r.dialectal != r.normalized)
         .count();
-    assert!(differs * 3 > read_manifest("train").len(), "dialectal writing too rarely differs");
+    assert!(
+        differs * 3 > read_manifest("train").len(),
+        "dialectal writing too rarely differs"
+    );
 }
 
 #[test]
@@ -255,7 +276,11 @@ fn interview_segments_are_ordered_turns_with_pauses() {
             .or_default()
             .push((start, end, row.speaker));
     }
-    assert!((2..=3).contains(&by_file.len()), "{} interviews", by_file.len());
+    assert!(
+        (2..=3).contains(&by_file.len()),
+        "{} interviews",
+        by_file.len()
+    );
     let durations = read_durations();
     for (file, turns) in &by_file {
         let minutes = durations[file] as f64 / SAMPLE_RATE as f64 / 60.0;
@@ -279,7 +304,11 @@ fn interview_segments_are_ordered_turns_with_pauses() {
 /// semantics after the Vorbis I specification, appendix A (section numbers from memory).
 fn ogg_vorbis_info(path: &Path) -> (u32, u8, u64) {
     let bytes = fs::read(path).unwrap_or_else(|e| panic!("{}: {e}", path.display()));
-    assert!(bytes.starts_with(b"OggS"), "{}: no Ogg page", path.display());
+    assert!(
+        bytes.starts_with(b"OggS"),
+        "{}: no Ogg page",
+        path.display()
+    );
     let id = bytes
         .windows(7)
         .position(|w| w == b"\x01vorbis")
@@ -290,7 +319,12 @@ fn ogg_vorbis_info(path: &Path) -> (u32, u8, u64) {
         .windows(4)
         .rposition(|w| w == b"OggS")
         .expect("an Ogg page");
-    assert_eq!(bytes[last_page + 5] & 0x04, 0x04, "{}: last page lacks end-of-stream flag", path.display());
+    assert_eq!(
+        bytes[last_page + 5] & 0x04,
+        0x04,
+        "{}: last page lacks end-of-stream flag",
+        path.display()
+    );
     let granule = u64::from_le_bytes(
         bytes[last_page + 6..last_page + 14]
             .try_into()
