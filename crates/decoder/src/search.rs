@@ -12,6 +12,8 @@
 //!
 //! over all (labels, words) pairs where the words spell the labels by the graph's [`WordRule`].
 
+use std::sync::Arc;
+
 use ndarray::ArrayView2;
 
 use isogloss_lexicon::trie::TrieNode;
@@ -78,6 +80,9 @@ impl SearchOptions {
 }
 
 const NONE: u32 = u32::MAX;
+/// Arena size below which compaction is not worth its pass (tiny under test, so that every
+/// check of the search also runs through compaction).
+const MIN_COMPACT: usize = if cfg!(test) { 64 } else { 1 << 16 };
 /// Word code: the step completes no word.
 const NO_WORD: u32 = u32::MAX;
 /// Word code: the step completes a word spelled from units (no lexicon).
@@ -141,10 +146,12 @@ pub struct PrefixBeamSearch<'a, L: LanguageModel> {
     graph: &'a SearchGraph,
     lm: &'a L,
     options: SearchOptions,
-    /// LM handle for each lexicon word id (`None`: unknown to the LM).
-    lm_words: Vec<Option<L::Word>>,
-    /// `lm_weight × look-ahead` per trie node.
-    lookahead: Vec<f32>,
+    /// LM handle for each lexicon word id (`None`: unknown to the LM); shared by clones.
+    lm_words: Arc<[Option<L::Word>]>,
+    /// `lm_weight × look-ahead` per trie node; shared by clones.
+    lookahead: Arc<[f32]>,
+    /// Arena size that triggers the next compaction.
+    compact_at: usize,
     arena: Vec<PrefixNode<L::State>>,
     beam: Vec<Hypothesis>,
     next: Vec<Hypothesis>,
@@ -164,8 +171,9 @@ impl<'a, L: LanguageModel> Clone for PrefixBeamSearch<'a, L> {
             graph: self.graph,
             lm: self.lm,
             options: self.options.clone(),
-            lm_words: self.lm_words.clone(),
-            lookahead: self.lookahead.clone(),
+            lm_words: Arc::clone(&self.lm_words),
+            lookahead: Arc::clone(&self.lookahead),
+            compact_at: MIN_COMPACT,
             arena: Vec::new(),
             beam: Vec::new(),
             next: Vec::new(),
@@ -190,7 +198,7 @@ impl<'a, L: LanguageModel> PrefixBeamSearch<'a, L> {
             .iter()
             .map(|w| lm.lookup(w).or_else(|| lm.unknown()))
             .collect();
-        let mut lookahead = Vec::new();
+        let mut lookahead: Vec<f32> = Vec::new();
         if let Some(trie) = graph.trie() {
             // The graph's trie is shared by every search; fill a private copy's slots with this
             // search's weighted scores and keep them as a plain table by node index.
@@ -218,8 +226,9 @@ impl<'a, L: LanguageModel> PrefixBeamSearch<'a, L> {
             graph,
             lm,
             options,
-            lm_words,
-            lookahead,
+            lm_words: lm_words.into(),
+            lookahead: lookahead.into(),
+            compact_at: MIN_COMPACT,
             arena: Vec::new(),
             beam: Vec::new(),
             next: Vec::new(),
@@ -298,6 +307,7 @@ impl<'a, L: LanguageModel> PrefixBeamSearch<'a, L> {
             non_blank: f32::NEG_INFINITY,
         });
         self.stamp = 0;
+        self.compact_at = MIN_COMPACT;
     }
 
     /// A frame where blank dominates: hypotheses only absorb it by blank or by repeating their
@@ -348,6 +358,52 @@ impl<'a, L: LanguageModel> PrefixBeamSearch<'a, L> {
         }
         self.prune();
         std::mem::swap(&mut self.beam, &mut self.next);
+        if self.arena.len() >= self.compact_at {
+            self.compact();
+        }
+    }
+
+    /// Drops the arena nodes no surviving hypothesis descends from. A dropped prefix that comes
+    /// back later is rebuilt identically (its LM state and context depend only on its path), so
+    /// this changes memory, not results. Parents precede children in the arena, so one forward
+    /// pass renumbers everything.
+    fn compact(&mut self) {
+        let mut keep = vec![false; self.arena.len()];
+        keep[0] = true;
+        for h in &self.beam {
+            let mut n = h.node;
+            while n != NONE && !keep[n as usize] {
+                keep[n as usize] = true;
+                n = self.arena[n as usize].parent;
+            }
+        }
+        let mut renumber = vec![NONE; self.arena.len()];
+        let mut kept = 0usize;
+        for i in 0..self.arena.len() {
+            if !keep[i] {
+                continue;
+            }
+            renumber[i] = kept as u32;
+            let mut node = self.arena[i].clone();
+            if node.parent != NONE {
+                node.parent = renumber[node.parent as usize];
+            }
+            node.first_child = NONE;
+            node.next_sibling = NONE;
+            node.stamp = 0;
+            self.arena[kept] = node;
+            kept += 1;
+        }
+        self.arena.truncate(kept);
+        for i in 1..kept {
+            let parent = self.arena[i].parent as usize;
+            self.arena[i].next_sibling = self.arena[parent].first_child;
+            self.arena[parent].first_child = i as u32;
+        }
+        for h in &mut self.beam {
+            h.node = renumber[h.node as usize];
+        }
+        self.compact_at = (4 * kept).max(MIN_COMPACT);
     }
 
     fn rank(&self, h: &Hypothesis) -> f32 {
