@@ -12,6 +12,8 @@
 //!
 //! over all (labels, words) pairs where the words spell the labels by the graph's [`WordRule`].
 
+use std::collections::HashMap;
+use std::hash::{BuildHasherDefault, Hasher};
 use std::sync::Arc;
 
 use ndarray::ArrayView2;
@@ -104,8 +106,6 @@ struct PrefixNode<S> {
     context: f32,
     /// `lm_weight × look-ahead` of the unfinished word; ranking only.
     lookahead: f32,
-    first_child: u32,
-    next_sibling: u32,
     /// Step stamp and index of this node in the beam being built (avoids a hash map).
     stamp: u32,
     slot: u32,
@@ -116,6 +116,31 @@ struct Hypothesis {
     node: u32,
     blank: f32,
     non_blank: f32,
+    /// Ranking score, set by pruning.
+    rank: f32,
+}
+
+/// A multiply-rotate hasher for small integer keys (arena ids, unit ids): the keys are not
+/// adversarial, and the standard SipHash costs more than the lookup it serves.
+#[derive(Default)]
+struct IdHasher(u64);
+
+impl Hasher for IdHasher {
+    fn finish(&self) -> u64 {
+        // The multiply leaves the low bits poorly mixed, and the table indexes by them.
+        let x = self.0 ^ (self.0 >> 32);
+        x ^ (x >> 17)
+    }
+
+    fn write(&mut self, bytes: &[u8]) {
+        for &b in bytes {
+            self.write_u32(u32::from(b));
+        }
+    }
+
+    fn write_u32(&mut self, value: u32) {
+        self.0 = (self.0.rotate_left(5) ^ u64::from(value)).wrapping_mul(0x517c_c1b7_2722_0a95);
+    }
 }
 
 #[inline]
@@ -153,9 +178,12 @@ pub struct PrefixBeamSearch<'a, L: LanguageModel> {
     /// Arena size that triggers the next compaction.
     compact_at: usize,
     arena: Vec<PrefixNode<L::State>>,
+    /// `(parent, unit, word code)` → arena node.
+    children: HashMap<(u32, u32, u32), u32, BuildHasherDefault<IdHasher>>,
     beam: Vec<Hypothesis>,
     next: Vec<Hypothesis>,
     candidates: Vec<u32>,
+    is_candidate: Vec<bool>,
     frame: Vec<f32>,
     stamp: u32,
     text: String,
@@ -175,9 +203,11 @@ impl<'a, L: LanguageModel> Clone for PrefixBeamSearch<'a, L> {
             lookahead: Arc::clone(&self.lookahead),
             compact_at: MIN_COMPACT,
             arena: Vec::new(),
+            children: HashMap::default(),
             beam: Vec::new(),
             next: Vec::new(),
             candidates: Vec::new(),
+            is_candidate: Vec::new(),
             frame: Vec::new(),
             stamp: 0,
             text: String::new(),
@@ -230,9 +260,11 @@ impl<'a, L: LanguageModel> PrefixBeamSearch<'a, L> {
             lookahead: lookahead.into(),
             compact_at: MIN_COMPACT,
             arena: Vec::new(),
+            children: HashMap::default(),
             beam: Vec::new(),
             next: Vec::new(),
             candidates: Vec::new(),
+            is_candidate: Vec::new(),
             frame: Vec::new(),
             stamp: 0,
             text: String::new(),
@@ -280,6 +312,7 @@ impl<'a, L: LanguageModel> PrefixBeamSearch<'a, L> {
 
     fn reset(&mut self) {
         self.arena.clear();
+        self.children.clear();
         self.beam.clear();
         self.next.clear();
         let root_trie = self
@@ -296,8 +329,6 @@ impl<'a, L: LanguageModel> PrefixBeamSearch<'a, L> {
             lm_state: self.lm.start_state(),
             context: 0.0,
             lookahead: 0.0,
-            first_child: NONE,
-            next_sibling: NONE,
             stamp: 0,
             slot: 0,
         });
@@ -305,6 +336,7 @@ impl<'a, L: LanguageModel> PrefixBeamSearch<'a, L> {
             node: 0,
             blank: 0.0,
             non_blank: f32::NEG_INFINITY,
+            rank: 0.0,
         });
         self.stamp = 0;
         self.compact_at = MIN_COMPACT;
@@ -329,12 +361,17 @@ impl<'a, L: LanguageModel> PrefixBeamSearch<'a, L> {
         self.stamp += 1;
         self.next.clear();
         self.candidates.clear();
+        self.is_candidate.clear();
+        self.is_candidate.resize(frame.len(), false);
         let best_unit = frame[1..].iter().copied().fold(f32::NEG_INFINITY, f32::max);
         for (c, &p) in frame.iter().enumerate().skip(1) {
             if self.options.unit_prune.is_none_or(|m| p >= best_unit - m) {
                 self.candidates.push(c as u32);
+                self.is_candidate[c] = true;
             }
         }
+        let graph = self.graph;
+        let boundary = graph.boundary();
         for i in 0..self.beam.len() {
             let h = self.beam[i];
             let total = log_add(h.blank, h.non_blank);
@@ -347,13 +384,32 @@ impl<'a, L: LanguageModel> PrefixBeamSearch<'a, L> {
                     h.non_blank + frame[last as usize],
                 );
             }
-            for k in 0..self.candidates.len() {
-                let c = self.candidates[k];
+            let try_unit = |search: &mut Self, c: u32| {
                 let from = if c == last { h.blank } else { total };
-                if from == f32::NEG_INFINITY {
-                    continue;
+                if from != f32::NEG_INFINITY {
+                    search.extend(h.node, c, from + frame[c as usize]);
                 }
-                self.extend(h.node, c, from + frame[c as usize]);
+            };
+            match graph.trie() {
+                // With a lexicon only the trie node's children (and the boundary) can follow:
+                // walk those instead of every candidate unit.
+                Some(trie) => {
+                    let at = self.arena[h.node as usize].trie;
+                    for &(c, _) in trie.children(at) {
+                        if self.is_candidate[c as usize] {
+                            try_unit(self, c);
+                        }
+                    }
+                    if let Some(b) = boundary.filter(|&b| self.is_candidate[b as usize]) {
+                        try_unit(self, b);
+                    }
+                }
+                None => {
+                    for k in 0..self.candidates.len() {
+                        let c = self.candidates[k];
+                        try_unit(self, c);
+                    }
+                }
             }
         }
         self.prune();
@@ -388,17 +444,15 @@ impl<'a, L: LanguageModel> PrefixBeamSearch<'a, L> {
             if node.parent != NONE {
                 node.parent = renumber[node.parent as usize];
             }
-            node.first_child = NONE;
-            node.next_sibling = NONE;
             node.stamp = 0;
             self.arena[kept] = node;
             kept += 1;
         }
         self.arena.truncate(kept);
-        for i in 1..kept {
-            let parent = self.arena[i].parent as usize;
-            self.arena[i].next_sibling = self.arena[parent].first_child;
-            self.arena[parent].first_child = i as u32;
+        self.children.clear();
+        for (i, node) in self.arena.iter().enumerate().skip(1) {
+            self.children
+                .insert((node.parent, node.unit, node.word), i as u32);
         }
         for h in &mut self.beam {
             h.node = renumber[h.node as usize];
@@ -406,33 +460,21 @@ impl<'a, L: LanguageModel> PrefixBeamSearch<'a, L> {
         self.compact_at = (4 * kept).max(MIN_COMPACT);
     }
 
-    fn rank(&self, h: &Hypothesis) -> f32 {
-        let node = &self.arena[h.node as usize];
-        log_add(h.blank, h.non_blank) + node.context + node.lookahead
-    }
-
     fn prune(&mut self) {
+        // Rank once per hypothesis: the comparisons below would otherwise redo the log-add.
+        let mut best = f32::NEG_INFINITY;
+        for h in &mut self.next {
+            let node = &self.arena[h.node as usize];
+            h.rank = log_add(h.blank, h.non_blank) + node.context + node.lookahead;
+            best = best.max(h.rank);
+        }
         if let Some(margin) = self.options.score_margin {
-            let best = self
-                .next
-                .iter()
-                .map(|h| self.rank(h))
-                .fold(f32::NEG_INFINITY, f32::max);
-            let arena = &self.arena;
-            self.next.retain(|h| {
-                let node = &arena[h.node as usize];
-                log_add(h.blank, h.non_blank) + node.context + node.lookahead >= best - margin
-            });
+            self.next.retain(|h| h.rank >= best - margin);
         }
         if self.next.len() > self.options.beam {
-            let arena = &self.arena;
-            let rank = |h: &Hypothesis| {
-                let node = &arena[h.node as usize];
-                log_add(h.blank, h.non_blank) + node.context + node.lookahead
-            };
             let beam = self.options.beam;
             self.next
-                .select_nth_unstable_by(beam - 1, |a, b| rank(b).total_cmp(&rank(a)));
+                .select_nth_unstable_by(beam - 1, |a, b| b.rank.total_cmp(&a.rank));
             self.next.truncate(beam);
         }
     }
@@ -451,6 +493,7 @@ impl<'a, L: LanguageModel> PrefixBeamSearch<'a, L> {
                 node,
                 blank,
                 non_blank,
+                rank: 0.0,
             });
         }
     }
@@ -512,13 +555,8 @@ impl<'a, L: LanguageModel> PrefixBeamSearch<'a, L> {
 
     /// The arena node for `parent` + `unit` completing `word`, created on first use.
     fn child(&mut self, parent: u32, unit: u32, word: u32) -> u32 {
-        let mut c = self.arena[parent as usize].first_child;
-        while c != NONE {
-            let node = &self.arena[c as usize];
-            if node.unit == unit && node.word == word {
-                return c;
-            }
-            c = node.next_sibling;
+        if let Some(&c) = self.children.get(&(parent, unit, word)) {
+            return c;
         }
         let p = &self.arena[parent as usize];
         let graph = self.graph;
@@ -560,7 +598,6 @@ impl<'a, L: LanguageModel> PrefixBeamSearch<'a, L> {
             }
         }
         let id = self.arena.len() as u32;
-        let first = self.arena[parent as usize].first_child;
         self.arena.push(PrefixNode {
             parent,
             unit,
@@ -570,12 +607,10 @@ impl<'a, L: LanguageModel> PrefixBeamSearch<'a, L> {
             lm_state,
             context,
             lookahead,
-            first_child: NONE,
-            next_sibling: first,
             stamp: 0,
             slot: 0,
         });
-        self.arena[parent as usize].first_child = id;
+        self.children.insert((parent, unit, word), id);
         id
     }
 
