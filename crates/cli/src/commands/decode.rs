@@ -104,7 +104,10 @@ impl TranscribeArgs {
         if !(self.lm_weight.is_finite() && self.word_bonus.is_finite() && self.unit_prune > 0.0) {
             bail!("--lm-weight and --word-bonus must be numbers and --unit-prune positive");
         }
-        if !(0.0..=1.0).contains(&self.blank_skip) || self.max_segment.is_nan() || self.max_segment < 1.0 {
+        if !(0.0..=1.0).contains(&self.blank_skip)
+            || self.max_segment.is_nan()
+            || self.max_segment < 1.0
+        {
             bail!("--blank-skip must be in [0, 1] and --max-segment at least 1 second");
         }
         Ok(())
