@@ -385,6 +385,54 @@ mod tests {
         }
     }
 
+    #[test]
+    fn label_probabilities_match_torch_ctc_loss() {
+        // Fixture from scripts/reference/ctc_reference.py: torch.nn.functional.ctc_loss values.
+        let fixture: serde_json::Value = serde_json::from_str(include_str!(
+            "../../../tests/fixtures/decoder/ctc_torch.json"
+        ))
+        .unwrap();
+        for case in fixture["cases"].as_array().unwrap() {
+            let rows: Vec<Vec<f32>> =
+                serde_json::from_value(case["log_posteriors"].clone()).unwrap();
+            let (frames, units) = (rows.len(), rows[0].len());
+            let posteriors = Array2::from_shape_vec((frames, units), rows.concat()).unwrap();
+            let names: Vec<String> = (0..units)
+                .map(|u| {
+                    if u == 0 {
+                        "<blk>".into()
+                    } else {
+                        format!("u{u}")
+                    }
+                })
+                .collect();
+            let graph = SearchGraph::lexicon_free(names).unwrap();
+            let all =
+                PrefixBeamSearch::new(&graph, &NoLanguageModel, SearchOptions::exact(0.0, 0.0))
+                    .decode_nbest(posteriors.view(), usize::MAX)
+                    .unwrap();
+            let ours: HashMap<Vec<u32>, f32> = all
+                .into_iter()
+                .map(|t| (t.units, t.acoustic_score))
+                .collect();
+            let enumerated = label_probabilities(&posteriors);
+            for sequence in case["sequences"].as_array().unwrap() {
+                let labels: Vec<u32> = serde_json::from_value(sequence["labels"].clone()).unwrap();
+                let torch = sequence["log_probability"].as_f64().unwrap();
+                // torch.nn.functional.ctc_loss (negated), see the fixture script
+                assert!(
+                    (ours[&labels] as f64 - torch).abs() < 1e-4,
+                    "{labels:?}: {} vs torch {torch}",
+                    ours[&labels]
+                );
+                assert!(
+                    (enumerated[&labels].ln() - torch).abs() < 1e-5,
+                    "{labels:?}: enumeration vs torch"
+                );
+            }
+        }
+    }
+
     /// The textbook prefix beam search over label strings (hash map, no words).
     fn plain_prefix_search(posteriors: &Array2<f32>, beam: usize) -> (Vec<u32>, f64) {
         let mut hyps: HashMap<Vec<u32>, (f64, f64)> = HashMap::new();

@@ -12,6 +12,10 @@
 //! extending a hypothesis never copies its history. Per-frame work touches only the beam; the
 //! scratch buffers live in the search object and are reused across frames and utterances.
 //!
+//! Around the search: [`segment`] cuts long recordings by voice activity in bounded memory,
+//! [`pipeline`] decodes the segments in parallel (rayon) and puts word times on the recording's
+//! time line, and [`output`] writes TSV, JSON, WebVTT and plain text.
+//!
 //! Posteriors are natural-log softmax outputs shaped `[frames, units]`, blank at unit 0. How a
 //! unit sequence becomes words depends on the model and lexicon ([`WordRule`]): grapheme models
 //! end words at the boundary unit `<wb>`, phone models at lexicon word ends.

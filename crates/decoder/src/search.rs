@@ -12,6 +12,10 @@
 //!
 //! over all (labels, words) pairs where the words spell the labels by the graph's [`WordRule`].
 
+use std::collections::HashMap;
+use std::hash::{BuildHasherDefault, Hasher};
+use std::sync::Arc;
+
 use ndarray::ArrayView2;
 
 use isogloss_lexicon::trie::TrieNode;
@@ -78,6 +82,9 @@ impl SearchOptions {
 }
 
 const NONE: u32 = u32::MAX;
+/// Arena size below which compaction is not worth its pass (tiny under test, so that every
+/// check of the search also runs through compaction).
+const MIN_COMPACT: usize = if cfg!(test) { 64 } else { 1 << 16 };
 /// Word code: the step completes no word.
 const NO_WORD: u32 = u32::MAX;
 /// Word code: the step completes a word spelled from units (no lexicon).
@@ -99,8 +106,6 @@ struct PrefixNode<S> {
     context: f32,
     /// `lm_weight × look-ahead` of the unfinished word; ranking only.
     lookahead: f32,
-    first_child: u32,
-    next_sibling: u32,
     /// Step stamp and index of this node in the beam being built (avoids a hash map).
     stamp: u32,
     slot: u32,
@@ -111,6 +116,31 @@ struct Hypothesis {
     node: u32,
     blank: f32,
     non_blank: f32,
+    /// Ranking score, set by pruning.
+    rank: f32,
+}
+
+/// A multiply-rotate hasher for small integer keys (arena ids, unit ids): the keys are not
+/// adversarial, and the standard SipHash costs more than the lookup it serves.
+#[derive(Default)]
+struct IdHasher(u64);
+
+impl Hasher for IdHasher {
+    fn finish(&self) -> u64 {
+        // The multiply leaves the low bits poorly mixed, and the table indexes by them.
+        let x = self.0 ^ (self.0 >> 32);
+        x ^ (x >> 17)
+    }
+
+    fn write(&mut self, bytes: &[u8]) {
+        for &b in bytes {
+            self.write_u32(u32::from(b));
+        }
+    }
+
+    fn write_u32(&mut self, value: u32) {
+        self.0 = (self.0.rotate_left(5) ^ u64::from(value)).wrapping_mul(0x517c_c1b7_2722_0a95);
+    }
 }
 
 #[inline]
@@ -141,14 +171,19 @@ pub struct PrefixBeamSearch<'a, L: LanguageModel> {
     graph: &'a SearchGraph,
     lm: &'a L,
     options: SearchOptions,
-    /// LM handle for each lexicon word id (`None`: unknown to the LM).
-    lm_words: Vec<Option<L::Word>>,
-    /// `lm_weight × look-ahead` per trie node.
-    lookahead: Vec<f32>,
+    /// LM handle for each lexicon word id (`None`: unknown to the LM); shared by clones.
+    lm_words: Arc<[Option<L::Word>]>,
+    /// `lm_weight × look-ahead` per trie node; shared by clones.
+    lookahead: Arc<[f32]>,
+    /// Arena size that triggers the next compaction.
+    compact_at: usize,
     arena: Vec<PrefixNode<L::State>>,
+    /// `(parent, unit, word code)` → arena node.
+    children: HashMap<(u32, u32, u32), u32, BuildHasherDefault<IdHasher>>,
     beam: Vec<Hypothesis>,
     next: Vec<Hypothesis>,
     candidates: Vec<u32>,
+    is_candidate: Vec<bool>,
     frame: Vec<f32>,
     stamp: u32,
     text: String,
@@ -164,12 +199,15 @@ impl<'a, L: LanguageModel> Clone for PrefixBeamSearch<'a, L> {
             graph: self.graph,
             lm: self.lm,
             options: self.options.clone(),
-            lm_words: self.lm_words.clone(),
-            lookahead: self.lookahead.clone(),
+            lm_words: Arc::clone(&self.lm_words),
+            lookahead: Arc::clone(&self.lookahead),
+            compact_at: MIN_COMPACT,
             arena: Vec::new(),
+            children: HashMap::default(),
             beam: Vec::new(),
             next: Vec::new(),
             candidates: Vec::new(),
+            is_candidate: Vec::new(),
             frame: Vec::new(),
             stamp: 0,
             text: String::new(),
@@ -190,7 +228,7 @@ impl<'a, L: LanguageModel> PrefixBeamSearch<'a, L> {
             .iter()
             .map(|w| lm.lookup(w).or_else(|| lm.unknown()))
             .collect();
-        let mut lookahead = Vec::new();
+        let mut lookahead: Vec<f32> = Vec::new();
         if let Some(trie) = graph.trie() {
             // The graph's trie is shared by every search; fill a private copy's slots with this
             // search's weighted scores and keep them as a plain table by node index.
@@ -218,12 +256,15 @@ impl<'a, L: LanguageModel> PrefixBeamSearch<'a, L> {
             graph,
             lm,
             options,
-            lm_words,
-            lookahead,
+            lm_words: lm_words.into(),
+            lookahead: lookahead.into(),
+            compact_at: MIN_COMPACT,
             arena: Vec::new(),
+            children: HashMap::default(),
             beam: Vec::new(),
             next: Vec::new(),
             candidates: Vec::new(),
+            is_candidate: Vec::new(),
             frame: Vec::new(),
             stamp: 0,
             text: String::new(),
@@ -271,6 +312,7 @@ impl<'a, L: LanguageModel> PrefixBeamSearch<'a, L> {
 
     fn reset(&mut self) {
         self.arena.clear();
+        self.children.clear();
         self.beam.clear();
         self.next.clear();
         let root_trie = self
@@ -287,8 +329,6 @@ impl<'a, L: LanguageModel> PrefixBeamSearch<'a, L> {
             lm_state: self.lm.start_state(),
             context: 0.0,
             lookahead: 0.0,
-            first_child: NONE,
-            next_sibling: NONE,
             stamp: 0,
             slot: 0,
         });
@@ -296,8 +336,10 @@ impl<'a, L: LanguageModel> PrefixBeamSearch<'a, L> {
             node: 0,
             blank: 0.0,
             non_blank: f32::NEG_INFINITY,
+            rank: 0.0,
         });
         self.stamp = 0;
+        self.compact_at = MIN_COMPACT;
     }
 
     /// A frame where blank dominates: hypotheses only absorb it by blank or by repeating their
@@ -319,12 +361,17 @@ impl<'a, L: LanguageModel> PrefixBeamSearch<'a, L> {
         self.stamp += 1;
         self.next.clear();
         self.candidates.clear();
+        self.is_candidate.clear();
+        self.is_candidate.resize(frame.len(), false);
         let best_unit = frame[1..].iter().copied().fold(f32::NEG_INFINITY, f32::max);
         for (c, &p) in frame.iter().enumerate().skip(1) {
             if self.options.unit_prune.is_none_or(|m| p >= best_unit - m) {
                 self.candidates.push(c as u32);
+                self.is_candidate[c] = true;
             }
         }
+        let graph = self.graph;
+        let boundary = graph.boundary();
         for i in 0..self.beam.len() {
             let h = self.beam[i];
             let total = log_add(h.blank, h.non_blank);
@@ -337,46 +384,97 @@ impl<'a, L: LanguageModel> PrefixBeamSearch<'a, L> {
                     h.non_blank + frame[last as usize],
                 );
             }
-            for k in 0..self.candidates.len() {
-                let c = self.candidates[k];
+            let try_unit = |search: &mut Self, c: u32| {
                 let from = if c == last { h.blank } else { total };
-                if from == f32::NEG_INFINITY {
-                    continue;
+                if from != f32::NEG_INFINITY {
+                    search.extend(h.node, c, from + frame[c as usize]);
                 }
-                self.extend(h.node, c, from + frame[c as usize]);
+            };
+            match graph.trie() {
+                // With a lexicon only the trie node's children (and the boundary) can follow:
+                // walk those instead of every candidate unit.
+                Some(trie) => {
+                    let at = self.arena[h.node as usize].trie;
+                    for &(c, _) in trie.children(at) {
+                        if self.is_candidate[c as usize] {
+                            try_unit(self, c);
+                        }
+                    }
+                    if let Some(b) = boundary.filter(|&b| self.is_candidate[b as usize]) {
+                        try_unit(self, b);
+                    }
+                }
+                None => {
+                    for k in 0..self.candidates.len() {
+                        let c = self.candidates[k];
+                        try_unit(self, c);
+                    }
+                }
             }
         }
         self.prune();
         std::mem::swap(&mut self.beam, &mut self.next);
+        if self.arena.len() >= self.compact_at {
+            self.compact();
+        }
     }
 
-    fn rank(&self, h: &Hypothesis) -> f32 {
-        let node = &self.arena[h.node as usize];
-        log_add(h.blank, h.non_blank) + node.context + node.lookahead
+    /// Drops the arena nodes no surviving hypothesis descends from. A dropped prefix that comes
+    /// back later is rebuilt identically (its LM state and context depend only on its path), so
+    /// this changes memory, not results. Parents precede children in the arena, so one forward
+    /// pass renumbers everything.
+    fn compact(&mut self) {
+        let mut keep = vec![false; self.arena.len()];
+        keep[0] = true;
+        for h in &self.beam {
+            let mut n = h.node;
+            while n != NONE && !keep[n as usize] {
+                keep[n as usize] = true;
+                n = self.arena[n as usize].parent;
+            }
+        }
+        let mut renumber = vec![NONE; self.arena.len()];
+        let mut kept = 0usize;
+        for i in 0..self.arena.len() {
+            if !keep[i] {
+                continue;
+            }
+            renumber[i] = kept as u32;
+            let mut node = self.arena[i].clone();
+            if node.parent != NONE {
+                node.parent = renumber[node.parent as usize];
+            }
+            node.stamp = 0;
+            self.arena[kept] = node;
+            kept += 1;
+        }
+        self.arena.truncate(kept);
+        self.children.clear();
+        for (i, node) in self.arena.iter().enumerate().skip(1) {
+            self.children
+                .insert((node.parent, node.unit, node.word), i as u32);
+        }
+        for h in &mut self.beam {
+            h.node = renumber[h.node as usize];
+        }
+        self.compact_at = (4 * kept).max(MIN_COMPACT);
     }
 
     fn prune(&mut self) {
+        // Rank once per hypothesis: the comparisons below would otherwise redo the log-add.
+        let mut best = f32::NEG_INFINITY;
+        for h in &mut self.next {
+            let node = &self.arena[h.node as usize];
+            h.rank = log_add(h.blank, h.non_blank) + node.context + node.lookahead;
+            best = best.max(h.rank);
+        }
         if let Some(margin) = self.options.score_margin {
-            let best = self
-                .next
-                .iter()
-                .map(|h| self.rank(h))
-                .fold(f32::NEG_INFINITY, f32::max);
-            let arena = &self.arena;
-            self.next.retain(|h| {
-                let node = &arena[h.node as usize];
-                log_add(h.blank, h.non_blank) + node.context + node.lookahead >= best - margin
-            });
+            self.next.retain(|h| h.rank >= best - margin);
         }
         if self.next.len() > self.options.beam {
-            let arena = &self.arena;
-            let rank = |h: &Hypothesis| {
-                let node = &arena[h.node as usize];
-                log_add(h.blank, h.non_blank) + node.context + node.lookahead
-            };
             let beam = self.options.beam;
             self.next
-                .select_nth_unstable_by(beam - 1, |a, b| rank(b).total_cmp(&rank(a)));
+                .select_nth_unstable_by(beam - 1, |a, b| b.rank.total_cmp(&a.rank));
             self.next.truncate(beam);
         }
     }
@@ -395,6 +493,7 @@ impl<'a, L: LanguageModel> PrefixBeamSearch<'a, L> {
                 node,
                 blank,
                 non_blank,
+                rank: 0.0,
             });
         }
     }
@@ -456,13 +555,8 @@ impl<'a, L: LanguageModel> PrefixBeamSearch<'a, L> {
 
     /// The arena node for `parent` + `unit` completing `word`, created on first use.
     fn child(&mut self, parent: u32, unit: u32, word: u32) -> u32 {
-        let mut c = self.arena[parent as usize].first_child;
-        while c != NONE {
-            let node = &self.arena[c as usize];
-            if node.unit == unit && node.word == word {
-                return c;
-            }
-            c = node.next_sibling;
+        if let Some(&c) = self.children.get(&(parent, unit, word)) {
+            return c;
         }
         let p = &self.arena[parent as usize];
         let graph = self.graph;
@@ -504,7 +598,6 @@ impl<'a, L: LanguageModel> PrefixBeamSearch<'a, L> {
             }
         }
         let id = self.arena.len() as u32;
-        let first = self.arena[parent as usize].first_child;
         self.arena.push(PrefixNode {
             parent,
             unit,
@@ -514,12 +607,10 @@ impl<'a, L: LanguageModel> PrefixBeamSearch<'a, L> {
             lm_state,
             context,
             lookahead,
-            first_child: NONE,
-            next_sibling: first,
             stamp: 0,
             slot: 0,
         });
-        self.arena[parent as usize].first_child = id;
+        self.children.insert((parent, unit, word), id);
         id
     }
 

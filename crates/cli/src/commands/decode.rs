@@ -17,10 +17,366 @@ use std::str::FromStr;
 use std::time::Instant;
 
 use anyhow::{bail, Context};
-use isogloss_corpus::tsv::write_atomically;
-use isogloss_decoder::output::{write_items, ItemTranscript, OutputFormat};
+use isogloss_corpus::tsv::{write_atomically, Table};
+use isogloss_decoder::output::{write_items, ItemTranscript, OutputFormat, TimedSegment};
+use isogloss_decoder::pipeline::{transcribe_stream, StreamSettings};
+use isogloss_decoder::segment::VadConfig;
+use isogloss_decoder::{
+    DecodeError, Decoder, GreedyDecoder, LanguageModel, NoLanguageModel, PrefixBeamSearch,
+    SearchGraph, SearchOptions, Transcript,
+};
+use ndarray::{Array2, ArrayView2};
+use rayon::prelude::*;
 use serde::{Deserialize, Serialize};
 use sha2::{Digest, Sha256};
+
+use crate::Outcome;
+
+/// Flags of `isogloss transcribe`.
+#[derive(Debug, Clone, clap::Args)]
+pub struct TranscribeArgs {
+    /// Model directory (model.safetensors + model.toml).
+    #[arg(long)]
+    pub model: PathBuf,
+    /// ARPA language model (.arpa or .arpa.gz).
+    #[arg(long)]
+    pub lm: Option<PathBuf>,
+    /// Lexicon (word<TAB>units); without one, words are spelled from the units.
+    #[arg(long)]
+    pub lexicon: Option<PathBuf>,
+    /// Manifest whose rows (segments) to transcribe.
+    #[arg(long, conflicts_with = "audio", required_unless_present = "audio")]
+    pub manifest: Option<PathBuf>,
+    /// Audio files, each segmented by voice activity.
+    pub audio: Vec<PathBuf>,
+    /// Output file (for WebVTT and several recordings: a directory, one ID.vtt per recording).
+    #[arg(long)]
+    pub out: PathBuf,
+    /// Output format.
+    #[arg(long, value_enum, default_value = "tsv")]
+    pub format: FormatArg,
+    /// Hypotheses kept per frame.
+    #[arg(long, default_value_t = 16)]
+    pub beam: usize,
+    /// Weight of the LM's natural-log probabilities.
+    #[arg(long, default_value_t = 0.5)]
+    pub lm_weight: f32,
+    /// Score added per word.
+    #[arg(long, default_value_t = 1.0)]
+    pub word_bonus: f32,
+    /// Only units within this many nats of a frame's best unit extend hypotheses.
+    #[arg(long, default_value_t = 8.0)]
+    pub unit_prune: f32,
+    /// Frames whose blank probability reaches this are not searched for new units (1 = never skip).
+    #[arg(long, default_value_t = 0.999)]
+    pub blank_skip: f32,
+    /// Do not rank partial words by their best LM unigram below them in the lexicon.
+    #[arg(long)]
+    pub no_lookahead: bool,
+    /// Best-path decoding: no beam, lexicon or LM.
+    #[arg(long)]
+    pub greedy: bool,
+    /// Longest voice-activity segment, seconds.
+    #[arg(long, default_value_t = 30.0)]
+    pub max_segment: f64,
+    /// Skip items already transcribed into OUT's journal with the same model and settings.
+    #[arg(long)]
+    pub resume: bool,
+    /// Take only share K of N (1 ≤ K ≤ N), by a hash of the item id.
+    #[arg(long)]
+    pub shard: Option<Shard>,
+}
+
+impl TranscribeArgs {
+    fn search_options(&self) -> SearchOptions {
+        SearchOptions {
+            beam: self.beam.max(1),
+            lm_weight: self.lm_weight,
+            word_bonus: self.word_bonus,
+            unit_prune: Some(self.unit_prune),
+            blank_skip: (self.blank_skip < 1.0).then_some(self.blank_skip),
+            lookahead: !self.no_lookahead,
+            ..SearchOptions::default()
+        }
+    }
+
+    fn check(&self) -> anyhow::Result<()> {
+        if !(self.lm_weight.is_finite() && self.word_bonus.is_finite() && self.unit_prune > 0.0) {
+            bail!("--lm-weight and --word-bonus must be numbers and --unit-prune positive");
+        }
+        if !(0.0..=1.0).contains(&self.blank_skip)
+            || self.max_segment.is_nan()
+            || self.max_segment < 1.0
+        {
+            bail!("--blank-skip must be in [0, 1] and --max-segment at least 1 second");
+        }
+        Ok(())
+    }
+}
+
+/// What transcription needs from the acoustic side: the model's units, its frame shift, and
+/// posteriors for 16 kHz samples (features included).
+pub trait Recognizer: Sync {
+    /// Unit symbols, blank at 0.
+    fn units(&self) -> Vec<String>;
+    /// Seconds between two posterior frames.
+    fn frame_shift_seconds(&self) -> f64;
+    /// Natural-log posteriors `[frames, units]` for 16 kHz mono samples.
+    fn log_posteriors(&self, samples: &[f32]) -> anyhow::Result<Array2<f32>>;
+    /// Files whose content identifies the model (hashed for `--resume`).
+    fn files(&self) -> Vec<PathBuf>;
+}
+
+/// What transcription needs from the audio side.
+pub trait AudioSource: Sync {
+    /// 16 kHz mono samples of `[start, end)` seconds of a file (`end` None: to the end).
+    fn read_cut(&self, path: &Path, start: f64, end: Option<f64>) -> anyhow::Result<Vec<f32>>;
+    /// The whole file as a stream of 16 kHz mono chunks, in bounded memory.
+    fn chunks(
+        &self,
+        path: &Path,
+    ) -> anyhow::Result<Box<dyn Iterator<Item = anyhow::Result<Vec<f32>>> + '_>>;
+}
+
+/// Sample rate of everything the audio side delivers.
+const SAMPLE_RATE: u32 = 16_000;
+
+/// Either decoder, so that one code path serves `--greedy` and the beam search.
+enum AnyDecoder<'a, L: LanguageModel> {
+    Greedy(GreedyDecoder<'a>),
+    Beam(Box<PrefixBeamSearch<'a, L>>),
+}
+
+impl<L: LanguageModel> Decoder for AnyDecoder<'_, L> {
+    fn decode(&mut self, log_posteriors: ArrayView2<'_, f32>) -> Result<Transcript, DecodeError> {
+        match self {
+            AnyDecoder::Greedy(d) => d.decode(log_posteriors),
+            AnyDecoder::Beam(d) => d.decode(log_posteriors),
+        }
+    }
+}
+
+/// `isogloss transcribe`, given the acoustic model and audio reader. The caller loads both
+/// (see the module docs); everything else — lexicon, LM, batch, output — happens here.
+pub fn transcribe_with(
+    args: &TranscribeArgs,
+    recognizer: &impl Recognizer,
+    audio: &impl AudioSource,
+) -> anyhow::Result<Outcome> {
+    args.check()?;
+    let units = recognizer.units();
+    let graph = match (&args.lexicon, args.greedy) {
+        (Some(path), false) => {
+            let lexicon = isogloss_lexicon::Lexicon::read(path)?;
+            let (graph, report) = SearchGraph::with_lexicon(units, &lexicon.entries)
+                .with_context(|| format!("{}: lexicon does not fit the model", path.display()))?;
+            if let Some((word, unit)) = report.unknown_units.first() {
+                eprintln!(
+                    "warning: {}: {} lexicon entries use units the model does not know and are skipped (first: word {word:?}, unit {unit:?})",
+                    path.display(),
+                    report.unknown_units.len()
+                );
+            }
+            graph
+        }
+        _ => SearchGraph::lexicon_free(units)?,
+    };
+    let mut fingerprint = Fingerprint::new();
+    for file in recognizer.files() {
+        fingerprint.file(&file)?;
+    }
+    for file in [&args.lm, &args.lexicon].into_iter().flatten() {
+        fingerprint.file(file)?;
+    }
+    fingerprint.text(&format!(
+        "{:?} greedy={} max_segment={}",
+        args.search_options(),
+        args.greedy,
+        args.max_segment
+    ));
+    let fingerprint = fingerprint.finish();
+    let lm = match (&args.lm, args.greedy) {
+        (Some(path), false) => {
+            let lm = isogloss_lm::ArpaModel::read(path)?;
+            let missing = graph.unreachable_words(lm.vocabulary());
+            if !missing.is_empty() {
+                eprintln!(
+                    "warning: {}: {} of the LM's words are not in the lexicon and can never be output (e.g. {:?})",
+                    path.display(),
+                    missing.len(),
+                    missing[0]
+                );
+            }
+            Some(lm)
+        }
+        _ => None,
+    };
+    match &lm {
+        Some(lm) => run_items(args, &graph, lm, recognizer, audio, &fingerprint),
+        None => run_items(
+            args,
+            &graph,
+            &NoLanguageModel,
+            recognizer,
+            audio,
+            &fingerprint,
+        ),
+    }
+}
+
+/// Items from the manifest (its `id`, `audio`, `start`, `end` columns) or the audio paths.
+pub fn batch_items(args: &TranscribeArgs) -> anyhow::Result<Vec<BatchItem>> {
+    let mut items = Vec::new();
+    if let Some(manifest) = &args.manifest {
+        let table = Table::read_with_header(manifest)?;
+        let (id, audio) = (table.column("id")?, table.column("audio")?);
+        let (start, end) = (table.column("start")?, table.column("end")?);
+        let folder = manifest.parent().unwrap_or(Path::new(""));
+        for record in &table.records {
+            let seconds = |column: usize, name: &str| -> anyhow::Result<Option<f64>> {
+                let text = record.fields[column].trim();
+                if text.is_empty() {
+                    return Ok(None);
+                }
+                match text.parse::<f64>() {
+                    Ok(v) if v >= 0.0 && v.is_finite() => Ok(Some(v)),
+                    _ => bail!(
+                        "{}, line {}: column {name}: expected seconds, found {text:?}",
+                        manifest.display(),
+                        record.line
+                    ),
+                }
+            };
+            items.push(BatchItem {
+                id: record.fields[id].clone(),
+                audio: folder.join(&record.fields[audio]),
+                start: seconds(start, "start")?,
+                end: seconds(end, "end")?,
+            });
+        }
+    } else {
+        let mut seen: HashMap<String, usize> = HashMap::new();
+        for path in &args.audio {
+            let stem = path
+                .file_stem()
+                .map(|s| s.to_string_lossy().into_owned())
+                .unwrap_or_default();
+            let n = seen.entry(stem.clone()).or_insert(0);
+            *n += 1;
+            let id = if *n == 1 { stem } else { format!("{stem}-{n}") };
+            items.push(BatchItem {
+                id,
+                audio: path.clone(),
+                start: None,
+                end: None,
+            });
+        }
+    }
+    if let Some(shard) = args.shard {
+        items.retain(|item| shard.takes(&item.id));
+    }
+    Ok(items)
+}
+
+fn run_items<L: LanguageModel>(
+    args: &TranscribeArgs,
+    graph: &SearchGraph,
+    lm: &L,
+    recognizer: &impl Recognizer,
+    audio: &impl AudioSource,
+    fingerprint: &str,
+) -> anyhow::Result<Outcome> {
+    let items = batch_items(args)?;
+    let options = args.search_options();
+    let new_decoder = || {
+        if args.greedy {
+            AnyDecoder::Greedy(GreedyDecoder::new(graph))
+        } else {
+            AnyDecoder::Beam(Box::new(PrefixBeamSearch::new(graph, lm, options.clone())))
+        }
+    };
+    let shift = recognizer.frame_shift_seconds();
+    let settings = StreamSettings {
+        sample_rate: SAMPLE_RATE,
+        vad: VadConfig {
+            max_segment_seconds: args.max_segment,
+            ..VadConfig::default()
+        },
+        batch_segments: 2 * rayon::current_num_threads(),
+        frame_shift_seconds: shift,
+    };
+    let transcribe_one = |item: &BatchItem,
+                          decoder: &mut AnyDecoder<'_, L>|
+     -> anyhow::Result<(ItemTranscript, f64)> {
+        let audio_name = item.audio.display().to_string();
+        match (item.start, item.end) {
+            (None, None) => {
+                let mut seconds = 0.0;
+                let segments = transcribe_stream(
+                    audio.chunks(&item.audio)?,
+                    &settings,
+                    |samples| recognizer.log_posteriors(samples),
+                    new_decoder,
+                    |s| seconds = s,
+                )?;
+                Ok((
+                    ItemTranscript {
+                        id: item.id.clone(),
+                        audio: audio_name,
+                        segments,
+                    },
+                    seconds,
+                ))
+            }
+            (start, end) => {
+                let start = start.unwrap_or(0.0);
+                let samples = audio.read_cut(&item.audio, start, end)?;
+                let seconds = samples.len() as f64 / SAMPLE_RATE as f64;
+                let posteriors = recognizer.log_posteriors(&samples)?;
+                let transcript = decoder.decode(posteriors.view())?;
+                let segment =
+                    TimedSegment::from_transcript(&transcript, start, start + seconds, shift);
+                Ok((
+                    ItemTranscript {
+                        id: item.id.clone(),
+                        audio: audio_name,
+                        segments: vec![segment],
+                    },
+                    seconds,
+                ))
+            }
+        }
+    };
+    let (mut journal, done) = Journal::open(&args.out, fingerprint, args.resume)?;
+    let report = run_batch(&items, &mut journal, done, |group| {
+        group
+            .par_iter()
+            .map_init(new_decoder, |decoder, item| transcribe_one(item, decoder))
+            .collect()
+    })?;
+    write_output(&args.out, &report.items, args.format.into())?;
+    eprintln!(
+        "transcribed {} items ({} resumed) into {}; {:.1} s of audio in {:.1} s (RTF {:.3})",
+        report.items.len(),
+        report.resumed,
+        args.out.display(),
+        report.audio_seconds,
+        report.wall_seconds,
+        if report.audio_seconds > 0.0 {
+            report.wall_seconds / report.audio_seconds
+        } else {
+            0.0
+        }
+    );
+    if report.failed.is_empty() {
+        return Ok(Outcome::Done);
+    }
+    eprintln!("{} items failed:", report.failed.len());
+    for (id, error) in &report.failed {
+        eprintln!("  {id}: {error}");
+    }
+    Ok(Outcome::SomeItemsFailed)
+}
 
 /// `--shard K/N`: this process takes the items whose id hashes to `K-1` modulo `N`
 /// (1 ≤ K ≤ N). Hashing the id (not the position) keeps an item's shard fixed when the list
@@ -274,13 +630,15 @@ pub struct BatchReport {
     pub wall_seconds: f64,
 }
 
-/// Runs `transcribe` over the items not yet in the journal, recording each success; failures
-/// are collected, not fatal. `transcribe` returns the transcript and the audio seconds it read.
+/// Runs `transcribe` over the items not yet in the journal, a group at a time (a group is
+/// decoded in parallel), recording each success as soon as its group ends; failures are
+/// collected, not fatal. `transcribe` returns, per item of the group and in order, the
+/// transcript and the audio seconds it read.
 pub fn run_batch(
     items: &[BatchItem],
     journal: &mut Journal,
     mut done: HashMap<String, ItemTranscript>,
-    mut transcribe: impl FnMut(&BatchItem) -> anyhow::Result<(ItemTranscript, f64)>,
+    mut transcribe: impl FnMut(&[&BatchItem]) -> Vec<anyhow::Result<(ItemTranscript, f64)>>,
 ) -> anyhow::Result<BatchReport> {
     let started = Instant::now();
     let todo: Vec<&BatchItem> = items.iter().filter(|i| !done.contains_key(&i.id)).collect();
@@ -288,19 +646,22 @@ pub fn run_batch(
     let bar = crate::progress::bar(todo.len() as u64, "transcribe");
     let mut failed = Vec::new();
     let mut audio_seconds = 0.0;
-    for item in todo {
-        match transcribe(item) {
-            Ok((transcript, seconds)) => {
-                journal.record(&transcript)?;
-                done.insert(item.id.clone(), transcript);
-                audio_seconds += seconds;
+    let group_size = 2 * rayon::current_num_threads();
+    for group in todo.chunks(group_size) {
+        for (item, result) in group.iter().zip(transcribe(group)) {
+            match result {
+                Ok((transcript, seconds)) => {
+                    journal.record(&transcript)?;
+                    done.insert(item.id.clone(), transcript);
+                    audio_seconds += seconds;
+                }
+                Err(error) => failed.push((
+                    item.id.clone(),
+                    format!("{}: {error:#}", item.audio.display()),
+                )),
             }
-            Err(error) => failed.push((
-                item.id.clone(),
-                format!("{}: {error:#}", item.audio.display()),
-            )),
+            bar.inc(1);
         }
-        bar.inc(1);
         let wall = started.elapsed().as_secs_f64();
         if audio_seconds > 0.0 {
             bar.set_message(format!("RTF {:.3}", wall / audio_seconds));
@@ -367,11 +728,16 @@ mod tests {
         let items: Vec<BatchItem> = ["a", "b", "c"].iter().map(|id| batch_item(id)).collect();
         // first run: "b" fails
         let (mut journal, done) = Journal::open(&out, "model-1", false).unwrap();
-        let report = run_batch(&items, &mut journal, done, |i| {
-            if i.id == "b" {
-                bail!("cannot decode")
-            }
-            Ok((item(&i.id, "first"), 1.0))
+        let report = run_batch(&items, &mut journal, done, |group| {
+            group
+                .iter()
+                .map(|i| {
+                    if i.id == "b" {
+                        bail!("cannot decode")
+                    }
+                    Ok((item(&i.id, "first"), 1.0))
+                })
+                .collect()
         })
         .unwrap();
         assert_eq!(report.failed.len(), 1);
@@ -391,9 +757,14 @@ mod tests {
         // resume with the same model: only "b" is decoded
         let (mut journal, done) = Journal::open(&out, "model-1", true).unwrap();
         let mut seen = Vec::new();
-        let report = run_batch(&items, &mut journal, done, |i| {
-            seen.push(i.id.clone());
-            Ok((item(&i.id, "second"), 1.0))
+        let report = run_batch(&items, &mut journal, done, |group| {
+            group
+                .iter()
+                .map(|i| {
+                    seen.push(i.id.clone());
+                    Ok((item(&i.id, "second"), 1.0))
+                })
+                .collect()
         })
         .unwrap();
         assert_eq!(seen, vec!["b"]);
@@ -403,6 +774,171 @@ mod tests {
         // resume with another model: everything again
         let (_, done) = Journal::open(&out, "model-2", true).unwrap();
         assert!(done.is_empty());
+    }
+
+    /// Stands in for a (peaky) CTC acoustic model: 10 ms frames; the first frame of a loud
+    /// stretch says unit "a", every other frame blank, so every loud stretch is the word "a".
+    struct FakeRecognizer(PathBuf);
+
+    impl Recognizer for FakeRecognizer {
+        fn units(&self) -> Vec<String> {
+            ["<blk>", "a", "b", "<wb>"]
+                .iter()
+                .map(|s| s.to_string())
+                .collect()
+        }
+        fn frame_shift_seconds(&self) -> f64 {
+            0.01
+        }
+        fn log_posteriors(&self, samples: &[f32]) -> anyhow::Result<Array2<f32>> {
+            let frames = samples.len() / 160;
+            let loud = |t: usize| {
+                samples[t * 160..(t + 1) * 160]
+                    .iter()
+                    .any(|x| x.abs() > 0.1)
+            };
+            Ok(Array2::from_shape_fn((frames, 4), |(t, u)| {
+                let onset = loud(t) && (t == 0 || !loud(t - 1));
+                let hit = if onset { u == 1 } else { u == 0 };
+                if hit {
+                    (0.9998f32).ln()
+                } else {
+                    (0.0001f32).ln()
+                }
+            }))
+        }
+        fn files(&self) -> Vec<PathBuf> {
+            vec![self.0.clone()]
+        }
+    }
+
+    /// Files named `burst*.wav` hold 10 s with loud stretches at 2 s and 6 s; anything else
+    /// cannot be read.
+    struct FakeAudio;
+
+    fn bursts() -> Vec<f32> {
+        (0..10 * 16_000)
+            .map(|n| {
+                let t = n as f64 / 16_000.0;
+                let loud = (2.0..2.4).contains(&t) || (6.0..6.4).contains(&t);
+                let sign = if (n / 40) % 2 == 0 { 1.0 } else { -1.0 };
+                sign * if loud { 0.5 } else { 0.001 }
+            })
+            .collect()
+    }
+
+    impl AudioSource for FakeAudio {
+        fn read_cut(&self, path: &Path, start: f64, end: Option<f64>) -> anyhow::Result<Vec<f32>> {
+            let all = self.chunks(path)?.next().unwrap()?;
+            let a = (start * 16_000.0) as usize;
+            let b = end
+                .map_or(all.len(), |e| (e * 16_000.0) as usize)
+                .min(all.len());
+            Ok(all[a.min(b)..b].to_vec())
+        }
+        fn chunks(
+            &self,
+            path: &Path,
+        ) -> anyhow::Result<Box<dyn Iterator<Item = anyhow::Result<Vec<f32>>> + '_>> {
+            let name = path.file_name().unwrap().to_string_lossy();
+            if !name.starts_with("burst") {
+                bail!("not an audio file");
+            }
+            Ok(Box::new(std::iter::once(Ok(bursts()))))
+        }
+    }
+
+    fn args(dir: &Path, audio: &[&str], format: FormatArg, out: &str) -> TranscribeArgs {
+        let lexicon = dir.join("lexicon.tsv");
+        fs::write(&lexicon, "a\ta\nab\ta b\nqq\tq\n").unwrap();
+        TranscribeArgs {
+            model: dir.to_path_buf(),
+            lm: None,
+            lexicon: Some(lexicon),
+            manifest: None,
+            audio: audio.iter().map(|a| dir.join(a)).collect(),
+            out: dir.join(out),
+            format,
+            beam: 8,
+            lm_weight: 0.5,
+            word_bonus: 1.0,
+            unit_prune: 8.0,
+            blank_skip: 0.999,
+            no_lookahead: false,
+            greedy: false,
+            max_segment: 30.0,
+            resume: false,
+            shard: None,
+        }
+    }
+
+    #[test]
+    fn a_batch_carries_on_past_a_bad_file_and_resume_retries_only_that() {
+        let dir = tempfile::tempdir().unwrap();
+        let model = dir.path().join("model.toml");
+        fs::write(&model, "fake").unwrap();
+        let recognizer = FakeRecognizer(model);
+        let mut a = args(
+            dir.path(),
+            &["burst1.wav", "broken.wav", "burst2.wav"],
+            FormatArg::Json,
+            "out.json",
+        );
+        let outcome = transcribe_with(&a, &recognizer, &FakeAudio).unwrap();
+        assert!(matches!(outcome, Outcome::SomeItemsFailed));
+        let items: Vec<ItemTranscript> =
+            serde_json::from_str(&fs::read_to_string(&a.out).unwrap()).unwrap();
+        let ids: Vec<&str> = items.iter().map(|i| i.id.as_str()).collect();
+        assert_eq!(ids, vec!["burst1", "burst2"]);
+        for item in &items {
+            assert_eq!(item.text(), "a a", "{:#?}", item.segments);
+            // JSON word times: monotonic and inside their segment, near the loud stretches
+            let mut last = 0.0;
+            for segment in &item.segments {
+                for w in &segment.words {
+                    assert!(segment.start <= w.start && w.start < w.end && w.end <= segment.end);
+                    assert!(w.start >= last);
+                    last = w.end;
+                }
+            }
+            let starts: Vec<f64> = item
+                .segments
+                .iter()
+                .flat_map(|s| &s.words)
+                .map(|w| w.start)
+                .collect();
+            assert!(
+                (starts[0] - 2.0).abs() < 0.02 && (starts[1] - 6.0).abs() < 0.02,
+                "{starts:?}"
+            );
+        }
+        // the lexicon entry with an unknown unit was skipped, not fatal; resume redoes only broken
+        a.resume = true;
+        let outcome = transcribe_with(&a, &recognizer, &FakeAudio).unwrap();
+        assert!(matches!(outcome, Outcome::SomeItemsFailed));
+        let journal = fs::read_to_string(Journal::path_for(&a.out)).unwrap();
+        assert_eq!(journal.lines().count(), 2);
+        // the same run as WebVTT and from a manifest of cuts
+        let manifest = dir.path().join("cuts.tsv");
+        fs::write(
+            &manifest,
+            "id\taudio\tstart\tend\tspeaker\tdialect\ttext\nc1\tburst1.wav\t1.5\t3\ts\t\tx\nc2\tburst1.wav\t5.5\t\ts\t\tx\n",
+        )
+        .unwrap();
+        let mut m = args(dir.path(), &[], FormatArg::Tsv, "cuts-hyp.tsv");
+        m.manifest = Some(manifest);
+        assert!(matches!(
+            transcribe_with(&m, &recognizer, &FakeAudio).unwrap(),
+            Outcome::Done
+        ));
+        assert_eq!(
+            fs::read_to_string(&m.out).unwrap(),
+            "id\ttext\nc1\ta\nc2\ta\n"
+        );
+        let v = args(dir.path(), &["burst1.wav"], FormatArg::Vtt, "one.vtt");
+        transcribe_with(&v, &recognizer, &FakeAudio).unwrap();
+        let vtt = fs::read_to_string(&v.out).unwrap();
+        assert!(vtt.starts_with("WEBVTT\n\n1\n00:00:02.0"), "{vtt}");
     }
 
     #[test]
