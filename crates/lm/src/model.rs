@@ -97,19 +97,19 @@ fn unpack_state(packed: u32) -> LmState {
     }
 }
 
-/// One hash-table slot: the key, the entry index, and what a query needs without touching the
-/// entry arrays (the probability with any early back-off charge folded in, and the next state).
+/// One hash-table slot: the key and what a query needs without touching the entry arrays (the
+/// probability with any early back-off charge folded in, and the next state). Sixteen bytes, so a
+/// slot never straddles two cache lines; the entry index lives in a parallel array that only the
+/// slower paths read.
 #[derive(Clone, Copy)]
 struct Slot {
     key: u64,
-    id: u32,
     fast_log10_prob: f32,
     next: u32,
 }
 
 const EMPTY_SLOT: Slot = Slot {
     key: EMPTY_KEY,
-    id: 0,
     fast_log10_prob: 0.0,
     next: 0,
 };
@@ -118,6 +118,8 @@ const EMPTY_SLOT: Slot = Slot {
 #[derive(Clone)]
 struct NgramTable {
     slots: Vec<Slot>,
+    /// Entry index of each slot.
+    ids: Vec<u32>,
     shift: u32,
     len: usize,
 }
@@ -127,6 +129,7 @@ impl NgramTable {
         let size = (entries.max(4) * 2).next_power_of_two();
         NgramTable {
             slots: vec![EMPTY_SLOT; size],
+            ids: vec![0; size],
             shift: 64 - size.trailing_zeros(),
             len: 0,
         }
@@ -138,19 +141,28 @@ impl NgramTable {
     }
 
     #[inline]
-    fn find(&self, key: u64) -> Option<&Slot> {
+    fn position(&self, key: u64) -> Option<usize> {
         let mask = self.slots.len() - 1;
         let mut position = self.home(key);
         loop {
             let slot = &self.slots[position];
             if slot.key == key {
-                return Some(slot);
+                return Some(position);
             }
             if slot.key == EMPTY_KEY {
                 return None;
             }
             position = (position + 1) & mask;
         }
+    }
+
+    #[inline]
+    fn find(&self, key: u64) -> Option<&Slot> {
+        self.position(key).map(|position| &self.slots[position])
+    }
+
+    fn find_id(&self, key: u64) -> Option<u32> {
+        self.position(key).map(|position| self.ids[position])
     }
 
     /// Inserts a new key; returns the index already stored when the key is present.
@@ -163,11 +175,11 @@ impl NgramTable {
         loop {
             let slot = &mut self.slots[position];
             if slot.key == key {
-                return Err(slot.id);
+                return Err(self.ids[position]);
             }
             if slot.key == EMPTY_KEY {
                 slot.key = key;
-                slot.id = id;
+                self.ids[position] = id;
                 self.len += 1;
                 return Ok(());
             }
@@ -177,13 +189,19 @@ impl NgramTable {
 
     fn grow(&mut self) {
         let old = std::mem::replace(self, NgramTable::with_capacity(self.slots.len()));
-        for slot in old.slots.into_iter().filter(|slot| slot.key != EMPTY_KEY) {
+        for (slot, id) in old
+            .slots
+            .into_iter()
+            .zip(old.ids)
+            .filter(|(slot, _)| slot.key != EMPTY_KEY)
+        {
             let mask = self.slots.len() - 1;
             let mut position = self.home(slot.key);
             while self.slots[position].key != EMPTY_KEY {
                 position = (position + 1) & mask;
             }
             self.slots[position] = slot;
+            self.ids[position] = id;
             self.len += 1;
         }
     }
@@ -319,9 +337,34 @@ impl ModelBuilder {
         }
         let mut id = first;
         for (position, &word) in rest.iter().enumerate() {
-            id = self.tables[position + 1].find(ngram_key(id, word))?.id;
+            id = self.tables[position + 1].find_id(ngram_key(id, word))?;
         }
         Some(id)
+    }
+
+    /// Index of the n-gram (prefix n-gram of order `n` − 1, `word`) of order `n` ≥ 2, if present.
+    pub(crate) fn extend(&self, n: usize, prefix: u32, word: u32) -> Option<u32> {
+        self.tables[n - 1].find_id(ngram_key(prefix, word))
+    }
+
+    /// Adds an n-gram of order `n` ≥ 2 given its prefix's index; the suffix is found through the
+    /// prefix's own suffix (one probe).
+    pub(crate) fn add_with_prefix(
+        &mut self,
+        n: usize,
+        prefix: u32,
+        word: u32,
+        log10_prob: f64,
+        log10_backoff: f64,
+    ) -> Result<u32, AddError> {
+        let suffix = if n == 2 {
+            word
+        } else {
+            let prefix_suffix = self.orders[n - 2].suffix[prefix as usize];
+            self.extend(n - 1, prefix_suffix, word)
+                .ok_or(AddError::MissingSuffix)?
+        };
+        self.add_linked(n, prefix, word, suffix, log10_prob, log10_backoff)
     }
 
     /// Adds an n-gram (n = `words.len()` ≥ 2) whose prefix and suffix are already present.
@@ -418,8 +461,13 @@ impl ModelBuilder {
             })
             .collect();
         for (n, table) in tables.iter_mut().enumerate().skip(1) {
-            for slot in table.slots.iter_mut().filter(|slot| slot.key != EMPTY_KEY) {
-                let id = slot.id as usize;
+            for (slot, &id) in table
+                .slots
+                .iter_mut()
+                .zip(&table.ids)
+                .filter(|(slot, _)| slot.key != EMPTY_KEY)
+            {
+                let id = id as usize;
                 slot.fast_log10_prob = (orders[n].log10_prob[id] + charge[n][id]) as f32;
                 slot.next = pack_state(next[n][id]);
             }
@@ -590,8 +638,8 @@ impl ArpaModel {
                 continue;
             };
             let n = history.len() + 1;
-            if let Some(slot) = self.tables[n - 1].find(ngram_key(history_id, word.0)) {
-                return backoff + self.orders[n - 1].log10_prob[slot.id as usize];
+            if let Some(id) = self.tables[n - 1].find_id(ngram_key(history_id, word.0)) {
+                return backoff + self.orders[n - 1].log10_prob[id as usize];
             }
             backoff += self.orders[n - 2].log10_backoff[history_id as usize];
         }
@@ -606,7 +654,7 @@ impl ArpaModel {
         }
         let mut id = first;
         for (position, &word) in rest.iter().enumerate() {
-            id = self.tables[position + 1].find(ngram_key(id, word))?.id;
+            id = self.tables[position + 1].find_id(ngram_key(id, word))?;
         }
         Some(id)
     }
