@@ -256,6 +256,7 @@ fn read_arpa(reader: impl BufRead, path: &Path) -> Result<ArpaModel, LmError> {
             words.clear();
             let mut text_of_ngram = String::new();
             let mut shared = 0; // leading words equal to the previous line's
+            #[allow(clippy::needless_range_loop)] // `position` also counts the words found so far
             for position in 0..n {
                 let Some(word) = fields.next() else {
                     return Err(arpa_error(
