@@ -252,3 +252,41 @@ fn streamed_arpa_equals_the_built_model() {
         assert!(expected == streamed, "{smoothing:?}");
     }
 }
+
+#[test]
+fn fast_state_queries_agree_with_the_double_precision_recursion() {
+    let counts = NgramCounts::from_sentences(generated_text(51, 120, 15), 5).unwrap();
+    let model = estimate_with(
+        &counts,
+        &EstimateOptions {
+            smoothing: Smoothing::ModifiedKneserNey,
+            cutoffs: vec![1, 1, 1, 2, 2],
+            keep_interpolated: false,
+        },
+    )
+    .unwrap()
+    .model;
+    let unknown = model.unknown_word().unwrap();
+    for sentence in generated_text(52, 40, 18) {
+        let words: Vec<WordIndex> = sentence
+            .iter()
+            .map(|word| model.word_index(word).unwrap_or(unknown))
+            .collect();
+        let mut state = model.sentence_start();
+        let mut history = vec![model.sentence_start_word().unwrap()];
+        for &word in &words {
+            let (fast, next) = model.score(&state, word);
+            let slow = model.log10_probability(&history, word);
+            // f32 storage of the fast path: agreement to single precision.
+            assert!(
+                (f64::from(fast) - slow).abs() < 1e-5 * slow.abs().max(1.0),
+                "{fast} vs {slow}"
+            );
+            history.push(word);
+            state = next;
+        }
+        let end = model.sentence_end_word().unwrap();
+        let slow = model.log10_probability(&history, end);
+        assert!((f64::from(model.sentence_end(&state)) - slow).abs() < 1e-5 * slow.abs().max(1.0));
+    }
+}
