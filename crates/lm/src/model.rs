@@ -605,10 +605,11 @@ impl ArpaModel {
         let mut id = state.id;
         let mut backoff = 0.0f32;
         while length > 0 {
+            // Read before the probe: the two loads are independent, so their cache misses overlap.
+            let link = self.links[length - 1][id as usize];
             if let Some(slot) = self.tables[length].find(ngram_key(id, word)) {
                 return (backoff + slot.fast_log10_prob, unpack_state(slot.next));
             }
-            let link = self.links[length - 1][id as usize];
             backoff += link.log10_backoff;
             id = link.suffix;
             length -= 1;
