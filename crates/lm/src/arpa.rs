@@ -3,6 +3,9 @@
 //! The reader streams the file line by line (no whole-file buffer), checks that every section
 //! holds exactly the number of n-grams the `\data\` header announced, that the file ends with
 //! `\end\`, and that every field is what it should be; each problem is reported with its line.
+//! A listed n-gram whose prefix or suffix is missing (some pruning tools leave such files) gets
+//! that prefix or suffix added with the probability back-off already gave it, which changes no
+//! probability and keeps the query structure's invariant; [`ArpaModel::implied_ngrams`] counts them.
 
 use std::fs::File;
 use std::io::{BufRead, BufReader, BufWriter, Read, Write};
@@ -324,7 +327,7 @@ fn read_arpa(reader: impl BufRead, path: &Path) -> Result<ArpaModel, LmError> {
                         }
                     }
                 }
-                match missing {
+                let fast = match missing {
                     Some(length) => Err(AddError::MissingPrefix(length)),
                     None => builder.add_with_prefix(
                         n,
@@ -333,6 +336,14 @@ fn read_arpa(reader: impl BufRead, path: &Path) -> Result<ArpaModel, LmError> {
                         log10_prob,
                         log10_backoff,
                     ),
+                };
+                match fast {
+                    // Not closed under prefixes and suffixes: imply the missing entries.
+                    Err(AddError::MissingPrefix(_) | AddError::MissingSuffix) => {
+                        prefix_ids.clear();
+                        builder.add_ngram_implying(&words, log10_prob, log10_backoff)
+                    }
+                    other => other,
                 }
             };
             if n > 1 {

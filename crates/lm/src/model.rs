@@ -264,6 +264,8 @@ impl AddError {
 /// Collects n-grams order by order (every prefix and suffix before the n-gram itself) and then
 /// freezes them into an [`ArpaModel`].
 pub(crate) struct ModelBuilder {
+    /// Number of n-grams added only to restore prefix/suffix closure.
+    implied: usize,
     words: Vec<String>,
     index: WordMap,
     orders: Vec<OrderEntries>,
@@ -283,6 +285,7 @@ impl ModelBuilder {
             }));
         }
         ModelBuilder {
+            implied: 0,
             words: Vec::with_capacity(counts.first().copied().unwrap_or(0)),
             index: WordMap::default(),
             orders: counts
@@ -367,6 +370,54 @@ impl ModelBuilder {
         self.add_linked(n, prefix, word, suffix, log10_prob, log10_backoff)
     }
 
+    /// `log10 P(words[n-1] | words[..n-1])` by back-off through what has been added so far.
+    fn backoff_log10_prob(&self, words: &[u32]) -> f64 {
+        let n = words.len();
+        if let Some(id) = self.find(words) {
+            return self.orders[n - 1].log10_prob[id as usize];
+        }
+        if n == 1 {
+            return f64::NEG_INFINITY;
+        }
+        let backoff = self
+            .find(&words[..n - 1])
+            .map_or(0.0, |id| self.orders[n - 2].log10_backoff[id as usize]);
+        backoff + self.backoff_log10_prob(&words[1..])
+    }
+
+    /// The index of an n-gram, first adding it (and, recursively, its missing prefix and suffix)
+    /// with the probability the back-off already gives it and a back-off weight of one. Such an
+    /// entry changes no probability; it only restores the prefix and suffix closure the query
+    /// structure relies on (some pruning tools drop n-grams whose extensions they keep).
+    fn find_or_add_implied(&mut self, words: &[u32]) -> Result<u32, AddError> {
+        if let Some(id) = self.find(words) {
+            return Ok(id);
+        }
+        let n = words.len();
+        if n == 1 {
+            return Err(AddError::MissingPrefix(1));
+        }
+        let prefix = self.find_or_add_implied(&words[..n - 1])?;
+        let suffix = self.find_or_add_implied(&words[1..])?;
+        let log10_prob = self.backoff_log10_prob(words);
+        self.implied += 1;
+        self.add_linked(n, prefix, words[n - 1], suffix, log10_prob, 0.0)
+    }
+
+    /// Adds an n-gram (n = `words.len()` ≥ 2) of the highest order read so far, first adding
+    /// any missing prefix or suffix as an implied entry (see [`ModelBuilder::find_or_add_implied`]).
+    pub(crate) fn add_ngram_implying(
+        &mut self,
+        words: &[u32],
+        log10_prob: f64,
+        log10_backoff: f64,
+    ) -> Result<u32, AddError> {
+        let n = words.len();
+        let prefix = self.find_or_add_implied(&words[..n - 1])?;
+        let suffix = self.find_or_add_implied(&words[1..])?;
+        self.add_linked(n, prefix, words[n - 1], suffix, log10_prob, log10_backoff)
+    }
+
     /// Adds an n-gram (n = `words.len()` ≥ 2) whose prefix and suffix are already present.
     pub(crate) fn add_ngram(
         &mut self,
@@ -412,6 +463,7 @@ impl ModelBuilder {
     /// every entry, the state a query lands in and the back-off charged on entering it.
     pub(crate) fn finish(self) -> ArpaModel {
         let ModelBuilder {
+            implied,
             words,
             index,
             orders,
@@ -488,6 +540,7 @@ impl ModelBuilder {
         let sentence_end = index.get(SENTENCE_END).copied();
         let unknown = index.get(UNKNOWN_WORD).copied();
         ArpaModel {
+            implied,
             words,
             index,
             orders,
@@ -513,6 +566,7 @@ struct FastEntry {
 /// [`ArpaModel::sentence_start`], [`ArpaModel::score`] and [`ArpaModel::sentence_end`].
 #[derive(Clone)]
 pub struct ArpaModel {
+    implied: usize,
     words: Vec<String>,
     index: WordMap,
     orders: Vec<OrderEntries>,
@@ -538,6 +592,12 @@ impl ArpaModel {
     /// The model's order (the longest n-gram).
     pub fn order(&self) -> usize {
         self.orders.len()
+    }
+
+    /// Number of n-grams the reader added because a listed n-gram's prefix or suffix was missing
+    /// from the file (they carry the probability back-off already gave them, so nothing changes).
+    pub fn implied_ngrams(&self) -> usize {
+        self.implied
     }
 
     /// Number of n-grams of each order, unigrams first.
