@@ -57,7 +57,7 @@ pub(crate) fn check_sum_to_one(model: &ArpaModel, label: &str) {
             .iter()
             .map(|&word| 10f64.powf(model.log10_probability(context, word)))
             .sum();
-        // The defining property of a probability distribution (Chen & Goodman 1998, sec. 2).
+        // The defining property of a probability distribution (textbook definition).
         assert!(
             (total - 1.0).abs() < 1e-6,
             "{label}: context {context:?} sums to {total}"
@@ -151,7 +151,8 @@ fn hand_worked_modified_kneser_ney_bigram() {
     assert_eq!(counts.kneser_ney_count(&["</s>"]), 4);
     assert_eq!(counts.kneser_ney_count(&["e"]), 1);
     let estimated = estimate(&counts, Smoothing::ModifiedKneserNey).unwrap();
-    // Chen & Goodman (1998) eq. 26: Y = n1/(n1+2 n2) = 3/7; D1 = 1 − 2Y n2/n1 = 1 − 4/7 = 3/7;
+    // Chen & Goodman (1998), modified Kneser-Ney discount estimates (formulas quoted from memory
+    // of the paper): Y = n1/(n1+2 n2) = 3/7; D1 = 1 − 2Y n2/n1 = 1 − 4/7 = 3/7;
     // D2 = 2 − 3Y n3/n2 = 2 − 9/7 = 5/7; D3+ = 3 − 4Y n4/n3 = 3 − 12/7 = 9/7.
     let bigram = estimated.discounts[1];
     assert!((bigram.d1 - 3.0 / 7.0).abs() < 1e-12);
