@@ -3,6 +3,9 @@
 //! The reader streams the file line by line (no whole-file buffer), checks that every section
 //! holds exactly the number of n-grams the `\data\` header announced, that the file ends with
 //! `\end\`, and that every field is what it should be; each problem is reported with its line.
+//! A listed n-gram whose prefix or suffix is missing (some pruning tools leave such files) gets
+//! that prefix or suffix added with the probability back-off already gave it, which changes no
+//! probability and keeps the query structure's invariant; [`ArpaModel::implied_ngrams`] counts them.
 
 use std::fs::File;
 use std::io::{BufRead, BufReader, BufWriter, Read, Write};
@@ -12,7 +15,7 @@ use flate2::read::MultiGzDecoder;
 use flate2::write::GzEncoder;
 
 use crate::error::LmError;
-use crate::model::{ArpaModel, ModelBuilder, MAX_ORDER};
+use crate::model::{AddError, ArpaModel, ModelBuilder, MAX_ORDER};
 
 /// Opens a file for reading, transparently decompressing gzip (recognised by its magic bytes).
 pub(crate) fn open_text(path: &Path) -> Result<Box<dyn BufRead>, LmError> {
@@ -202,6 +205,11 @@ fn read_arpa(reader: impl BufRead, path: &Path) -> Result<ArpaModel, LmError> {
     let mut builder = ModelBuilder::new(&counts);
     let mut section = header_line;
     let mut words: Vec<u32> = Vec::with_capacity(MAX_ORDER);
+    // ARPA files list n-grams sorted, so consecutive lines share leading words: remember the
+    // previous line's words and prefix indices to skip most vocabulary and table look-ups.
+    let mut previous_text: Vec<String> = Vec::with_capacity(MAX_ORDER);
+    let mut previous_words: Vec<u32> = Vec::with_capacity(MAX_ORDER);
+    let mut prefix_ids: Vec<u32> = Vec::with_capacity(MAX_ORDER);
     for n in 1..=order {
         let Some((header, header_number)) = section.take() else {
             return Err(arpa_error(
@@ -218,6 +226,9 @@ fn read_arpa(reader: impl BufRead, path: &Path) -> Result<ArpaModel, LmError> {
             ));
         }
         let mut listed = 0usize;
+        previous_text.clear();
+        previous_words.clear();
+        prefix_ids.clear();
         loop {
             let line_number = lines.line + 1;
             let Some(line) = lines.next_line()? else {
@@ -247,6 +258,8 @@ fn read_arpa(reader: impl BufRead, path: &Path) -> Result<ArpaModel, LmError> {
             let log10_prob = parse_log10(probability, "probability", path, line_number)?;
             words.clear();
             let mut text_of_ngram = String::new();
+            let mut shared = 0; // leading words equal to the previous line's
+            #[allow(clippy::needless_range_loop)] // `position` also counts the words found so far
             for position in 0..n {
                 let Some(word) = fields.next() else {
                     return Err(arpa_error(
@@ -260,6 +273,15 @@ fn read_arpa(reader: impl BufRead, path: &Path) -> Result<ArpaModel, LmError> {
                 };
                 if n == 1 {
                     text_of_ngram.push_str(word);
+                    continue;
+                }
+                if shared == position
+                    && previous_text
+                        .get(position)
+                        .is_some_and(|previous| previous == word)
+                {
+                    words.push(previous_words[position]);
+                    shared += 1;
                     continue;
                 }
                 let Some(index) = builder.word(word) else {
@@ -288,8 +310,53 @@ fn read_arpa(reader: impl BufRead, path: &Path) -> Result<ArpaModel, LmError> {
             let added = if n == 1 {
                 builder.add_unigram(&text_of_ngram, log10_prob, log10_backoff)
             } else {
-                builder.add_ngram(&words, log10_prob, log10_backoff)
+                prefix_ids.truncate(shared.min(n - 1));
+                let mut missing = None;
+                while prefix_ids.len() < n - 1 {
+                    let length = prefix_ids.len();
+                    let id = if length == 0 {
+                        Some(words[0])
+                    } else {
+                        builder.extend(length + 1, prefix_ids[length - 1], words[length])
+                    };
+                    match id {
+                        Some(id) => prefix_ids.push(id),
+                        None => {
+                            missing = Some(length + 1);
+                            break;
+                        }
+                    }
+                }
+                let fast = match missing {
+                    Some(length) => Err(AddError::MissingPrefix(length)),
+                    None => builder.add_with_prefix(
+                        n,
+                        prefix_ids[n - 2],
+                        words[n - 1],
+                        log10_prob,
+                        log10_backoff,
+                    ),
+                };
+                match fast {
+                    // Not closed under prefixes and suffixes: imply the missing entries.
+                    Err(AddError::MissingPrefix(_) | AddError::MissingSuffix) => {
+                        prefix_ids.clear();
+                        builder.add_ngram_implying(&words, log10_prob, log10_backoff)
+                    }
+                    other => other,
+                }
             };
+            if n > 1 {
+                previous_text.clear();
+                previous_text.extend(
+                    trimmed
+                        .split_ascii_whitespace()
+                        .skip(1)
+                        .take(n)
+                        .map(str::to_string),
+                );
+                previous_words.clone_from(&words);
+            }
             if let Err(problem) = added {
                 let ngram: Vec<&str> = trimmed.split_ascii_whitespace().skip(1).take(n).collect();
                 return Err(arpa_error(

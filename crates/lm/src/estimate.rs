@@ -1,6 +1,6 @@
 //! Smoothing: turning counts into an interpolated model, then into back-off (ARPA) form.
 //!
-//! All four methods share one shape (Chen & Goodman 1998, section 2.8, common practice):
+//! All four methods share one shape (the interpolated form of Chen & Goodman 1998; common practice):
 //!
 //! ```text
 //! P(w | h) = d(c(h w)) / den(h) + γ(h) · P(w | h')        h' = h without its first word

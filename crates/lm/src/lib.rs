@@ -3,12 +3,22 @@
 //!
 //! # Key design decision
 //!
-//! Estimation and querying are separate. [`NgramCounts`] and [`estimate`] compute an interpolated
-//! model (modified Kneser-Ney by default, after Chen & Goodman 1998) and fold it into back-off
-//! form, the form the ARPA file stores. The decoder only ever sees [`ArpaModel`]: a hash table
-//! per order keyed by (prefix n-gram index, word), so that one query is a few probes, and a small
-//! `Copy` state ([`LmState`]) per hypothesis instead of a word history. Whatever the smoothing, a
-//! model read from disk and a freshly estimated one behave identically.
+//! Estimation and querying are separate. [`NgramCounts`] counts by sorting packed n-gram keys
+//! (lower orders are derived from the distinct higher-order n-grams, which yields Kneser-Ney
+//! continuation counts for free); [`estimate_with`] computes an interpolated model (modified
+//! Kneser-Ney by default, after Chen & Goodman 1998; also Kneser-Ney, Witten-Bell, add-k) and
+//! folds it into back-off form, the form the ARPA file stores. [`write_estimated_arpa`] streams
+//! that form to disk without building anything else, which keeps a 10-million-token build small.
+//!
+//! The decoder only ever sees [`ArpaModel`]: one hash table per order keyed by (prefix n-gram
+//! index, word), so that a query is a few probes, and a small `Copy` state ([`LmState`]) per
+//! hypothesis instead of a word history. Whatever the smoothing, a model read from disk and a
+//! freshly estimated one behave identically. [`merge`] (EM-weighted mixing) and [`prune`]
+//! (Stolcke's relative-entropy pruning) work on that back-off form and recompute back-off weights.
+//!
+//! Conventions (DESIGN.md, a contract): one `<s>` before and one `</s>` after every sentence;
+//! `<s>` is context only; unigrams interpolate with the uniform distribution over the vocabulary
+//! (training types + `</s>` + `<unk>`); perplexity counts every word and `</s>`, OOVs as `<unk>`.
 //!
 //! # Example
 //!

@@ -97,19 +97,19 @@ fn unpack_state(packed: u32) -> LmState {
     }
 }
 
-/// One hash-table slot: the key, the entry index, and what a query needs without touching the
-/// entry arrays (the probability with any early back-off charge folded in, and the next state).
+/// One hash-table slot: the key and what a query needs without touching the entry arrays (the
+/// probability with any early back-off charge folded in, and the next state). Sixteen bytes, so a
+/// slot never straddles two cache lines; the entry index lives in a parallel array that only the
+/// slower paths read.
 #[derive(Clone, Copy)]
 struct Slot {
     key: u64,
-    id: u32,
     fast_log10_prob: f32,
     next: u32,
 }
 
 const EMPTY_SLOT: Slot = Slot {
     key: EMPTY_KEY,
-    id: 0,
     fast_log10_prob: 0.0,
     next: 0,
 };
@@ -118,6 +118,8 @@ const EMPTY_SLOT: Slot = Slot {
 #[derive(Clone)]
 struct NgramTable {
     slots: Vec<Slot>,
+    /// Entry index of each slot.
+    ids: Vec<u32>,
     shift: u32,
     len: usize,
 }
@@ -127,6 +129,7 @@ impl NgramTable {
         let size = (entries.max(4) * 2).next_power_of_two();
         NgramTable {
             slots: vec![EMPTY_SLOT; size],
+            ids: vec![0; size],
             shift: 64 - size.trailing_zeros(),
             len: 0,
         }
@@ -138,19 +141,28 @@ impl NgramTable {
     }
 
     #[inline]
-    fn find(&self, key: u64) -> Option<&Slot> {
+    fn position(&self, key: u64) -> Option<usize> {
         let mask = self.slots.len() - 1;
         let mut position = self.home(key);
         loop {
             let slot = &self.slots[position];
             if slot.key == key {
-                return Some(slot);
+                return Some(position);
             }
             if slot.key == EMPTY_KEY {
                 return None;
             }
             position = (position + 1) & mask;
         }
+    }
+
+    #[inline]
+    fn find(&self, key: u64) -> Option<&Slot> {
+        self.position(key).map(|position| &self.slots[position])
+    }
+
+    fn find_id(&self, key: u64) -> Option<u32> {
+        self.position(key).map(|position| self.ids[position])
     }
 
     /// Inserts a new key; returns the index already stored when the key is present.
@@ -163,11 +175,11 @@ impl NgramTable {
         loop {
             let slot = &mut self.slots[position];
             if slot.key == key {
-                return Err(slot.id);
+                return Err(self.ids[position]);
             }
             if slot.key == EMPTY_KEY {
                 slot.key = key;
-                slot.id = id;
+                self.ids[position] = id;
                 self.len += 1;
                 return Ok(());
             }
@@ -177,13 +189,19 @@ impl NgramTable {
 
     fn grow(&mut self) {
         let old = std::mem::replace(self, NgramTable::with_capacity(self.slots.len()));
-        for slot in old.slots.into_iter().filter(|slot| slot.key != EMPTY_KEY) {
+        for (slot, id) in old
+            .slots
+            .into_iter()
+            .zip(old.ids)
+            .filter(|(slot, _)| slot.key != EMPTY_KEY)
+        {
             let mask = self.slots.len() - 1;
             let mut position = self.home(slot.key);
             while self.slots[position].key != EMPTY_KEY {
                 position = (position + 1) & mask;
             }
             self.slots[position] = slot;
+            self.ids[position] = id;
             self.len += 1;
         }
     }
@@ -246,6 +264,8 @@ impl AddError {
 /// Collects n-grams order by order (every prefix and suffix before the n-gram itself) and then
 /// freezes them into an [`ArpaModel`].
 pub(crate) struct ModelBuilder {
+    /// Number of n-grams added only to restore prefix/suffix closure.
+    implied: usize,
     words: Vec<String>,
     index: WordMap,
     orders: Vec<OrderEntries>,
@@ -265,6 +285,7 @@ impl ModelBuilder {
             }));
         }
         ModelBuilder {
+            implied: 0,
             words: Vec::with_capacity(counts.first().copied().unwrap_or(0)),
             index: WordMap::default(),
             orders: counts
@@ -319,9 +340,82 @@ impl ModelBuilder {
         }
         let mut id = first;
         for (position, &word) in rest.iter().enumerate() {
-            id = self.tables[position + 1].find(ngram_key(id, word))?.id;
+            id = self.tables[position + 1].find_id(ngram_key(id, word))?;
         }
         Some(id)
+    }
+
+    /// Index of the n-gram (prefix n-gram of order `n` − 1, `word`) of order `n` ≥ 2, if present.
+    pub(crate) fn extend(&self, n: usize, prefix: u32, word: u32) -> Option<u32> {
+        self.tables[n - 1].find_id(ngram_key(prefix, word))
+    }
+
+    /// Adds an n-gram of order `n` ≥ 2 given its prefix's index; the suffix is found through the
+    /// prefix's own suffix (one probe).
+    pub(crate) fn add_with_prefix(
+        &mut self,
+        n: usize,
+        prefix: u32,
+        word: u32,
+        log10_prob: f64,
+        log10_backoff: f64,
+    ) -> Result<u32, AddError> {
+        let suffix = if n == 2 {
+            word
+        } else {
+            let prefix_suffix = self.orders[n - 2].suffix[prefix as usize];
+            self.extend(n - 1, prefix_suffix, word)
+                .ok_or(AddError::MissingSuffix)?
+        };
+        self.add_linked(n, prefix, word, suffix, log10_prob, log10_backoff)
+    }
+
+    /// `log10 P(words[n-1] | words[..n-1])` by back-off through what has been added so far.
+    fn backoff_log10_prob(&self, words: &[u32]) -> f64 {
+        let n = words.len();
+        if let Some(id) = self.find(words) {
+            return self.orders[n - 1].log10_prob[id as usize];
+        }
+        if n == 1 {
+            return f64::NEG_INFINITY;
+        }
+        let backoff = self
+            .find(&words[..n - 1])
+            .map_or(0.0, |id| self.orders[n - 2].log10_backoff[id as usize]);
+        backoff + self.backoff_log10_prob(&words[1..])
+    }
+
+    /// The index of an n-gram, first adding it (and, recursively, its missing prefix and suffix)
+    /// with the probability the back-off already gives it and a back-off weight of one. Such an
+    /// entry changes no probability; it only restores the prefix and suffix closure the query
+    /// structure relies on (some pruning tools drop n-grams whose extensions they keep).
+    fn find_or_add_implied(&mut self, words: &[u32]) -> Result<u32, AddError> {
+        if let Some(id) = self.find(words) {
+            return Ok(id);
+        }
+        let n = words.len();
+        if n == 1 {
+            return Err(AddError::MissingPrefix(1));
+        }
+        let prefix = self.find_or_add_implied(&words[..n - 1])?;
+        let suffix = self.find_or_add_implied(&words[1..])?;
+        let log10_prob = self.backoff_log10_prob(words);
+        self.implied += 1;
+        self.add_linked(n, prefix, words[n - 1], suffix, log10_prob, 0.0)
+    }
+
+    /// Adds an n-gram (n = `words.len()` ≥ 2) of the highest order read so far, first adding
+    /// any missing prefix or suffix as an implied entry (see [`ModelBuilder::find_or_add_implied`]).
+    pub(crate) fn add_ngram_implying(
+        &mut self,
+        words: &[u32],
+        log10_prob: f64,
+        log10_backoff: f64,
+    ) -> Result<u32, AddError> {
+        let n = words.len();
+        let prefix = self.find_or_add_implied(&words[..n - 1])?;
+        let suffix = self.find_or_add_implied(&words[1..])?;
+        self.add_linked(n, prefix, words[n - 1], suffix, log10_prob, log10_backoff)
     }
 
     /// Adds an n-gram (n = `words.len()` ≥ 2) whose prefix and suffix are already present.
@@ -369,6 +463,7 @@ impl ModelBuilder {
     /// every entry, the state a query lands in and the back-off charged on entering it.
     pub(crate) fn finish(self) -> ArpaModel {
         let ModelBuilder {
+            implied,
             words,
             index,
             orders,
@@ -418,8 +513,13 @@ impl ModelBuilder {
             })
             .collect();
         for (n, table) in tables.iter_mut().enumerate().skip(1) {
-            for slot in table.slots.iter_mut().filter(|slot| slot.key != EMPTY_KEY) {
-                let id = slot.id as usize;
+            for (slot, &id) in table
+                .slots
+                .iter_mut()
+                .zip(&table.ids)
+                .filter(|(slot, _)| slot.key != EMPTY_KEY)
+            {
+                let id = id as usize;
                 slot.fast_log10_prob = (orders[n].log10_prob[id] + charge[n][id]) as f32;
                 slot.next = pack_state(next[n][id]);
             }
@@ -440,6 +540,7 @@ impl ModelBuilder {
         let sentence_end = index.get(SENTENCE_END).copied();
         let unknown = index.get(UNKNOWN_WORD).copied();
         ArpaModel {
+            implied,
             words,
             index,
             orders,
@@ -465,6 +566,7 @@ struct FastEntry {
 /// [`ArpaModel::sentence_start`], [`ArpaModel::score`] and [`ArpaModel::sentence_end`].
 #[derive(Clone)]
 pub struct ArpaModel {
+    implied: usize,
     words: Vec<String>,
     index: WordMap,
     orders: Vec<OrderEntries>,
@@ -490,6 +592,12 @@ impl ArpaModel {
     /// The model's order (the longest n-gram).
     pub fn order(&self) -> usize {
         self.orders.len()
+    }
+
+    /// Number of n-grams the reader added because a listed n-gram's prefix or suffix was missing
+    /// from the file (they carry the probability back-off already gave them, so nothing changes).
+    pub fn implied_ngrams(&self) -> usize {
+        self.implied
     }
 
     /// Number of n-grams of each order, unigrams first.
@@ -557,10 +665,11 @@ impl ArpaModel {
         let mut id = state.id;
         let mut backoff = 0.0f32;
         while length > 0 {
+            // Read before the probe: the two loads are independent, so their cache misses overlap.
+            let link = self.links[length - 1][id as usize];
             if let Some(slot) = self.tables[length].find(ngram_key(id, word)) {
                 return (backoff + slot.fast_log10_prob, unpack_state(slot.next));
             }
-            let link = self.links[length - 1][id as usize];
             backoff += link.log10_backoff;
             id = link.suffix;
             length -= 1;
@@ -590,8 +699,8 @@ impl ArpaModel {
                 continue;
             };
             let n = history.len() + 1;
-            if let Some(slot) = self.tables[n - 1].find(ngram_key(history_id, word.0)) {
-                return backoff + self.orders[n - 1].log10_prob[slot.id as usize];
+            if let Some(id) = self.tables[n - 1].find_id(ngram_key(history_id, word.0)) {
+                return backoff + self.orders[n - 1].log10_prob[id as usize];
             }
             backoff += self.orders[n - 2].log10_backoff[history_id as usize];
         }
@@ -606,7 +715,7 @@ impl ArpaModel {
         }
         let mut id = first;
         for (position, &word) in rest.iter().enumerate() {
-            id = self.tables[position + 1].find(ngram_key(id, word))?.id;
+            id = self.tables[position + 1].find_id(ngram_key(id, word))?;
         }
         Some(id)
     }

@@ -3,7 +3,8 @@
 //! Removing the n-gram (h, w) changes the model only in context h: P(w | h) becomes
 //! bo'(h)·P(w | h') and the back-off weight becomes
 //! `bo'(h) = (1 − Σ_{v∈S(h)} P(v|h) + P(w|h)) / (1 − Σ_{v∈S(h)} P(v|h') + P(w|h'))`.
-//! The relative entropy between the old and new model is (Stolcke's eq. 3–5, natural log)
+//! The relative entropy between the old and new model is (Stolcke 1998, as we recall his
+//! derivation; natural log)
 //!
 //! ```text
 //! D = −P(h) · { P(w|h) [ln P'(w|h) − ln P(w|h)] + (1 − Σ_{v∈S(h)} P(v|h)) [ln bo'(h) − ln bo(h)] }

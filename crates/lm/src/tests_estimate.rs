@@ -57,7 +57,7 @@ pub(crate) fn check_sum_to_one(model: &ArpaModel, label: &str) {
             .iter()
             .map(|&word| 10f64.powf(model.log10_probability(context, word)))
             .sum();
-        // The defining property of a probability distribution (Chen & Goodman 1998, sec. 2).
+        // The defining property of a probability distribution (textbook definition).
         assert!(
             (total - 1.0).abs() < 1e-6,
             "{label}: context {context:?} sums to {total}"
@@ -151,7 +151,8 @@ fn hand_worked_modified_kneser_ney_bigram() {
     assert_eq!(counts.kneser_ney_count(&["</s>"]), 4);
     assert_eq!(counts.kneser_ney_count(&["e"]), 1);
     let estimated = estimate(&counts, Smoothing::ModifiedKneserNey).unwrap();
-    // Chen & Goodman (1998) eq. 26: Y = n1/(n1+2 n2) = 3/7; D1 = 1 − 2Y n2/n1 = 1 − 4/7 = 3/7;
+    // Chen & Goodman (1998), modified Kneser-Ney discount estimates (formulas quoted from memory
+    // of the paper): Y = n1/(n1+2 n2) = 3/7; D1 = 1 − 2Y n2/n1 = 1 − 4/7 = 3/7;
     // D2 = 2 − 3Y n3/n2 = 2 − 9/7 = 5/7; D3+ = 3 − 4Y n4/n3 = 3 − 12/7 = 9/7.
     let bigram = estimated.discounts[1];
     assert!((bigram.d1 - 3.0 / 7.0).abs() < 1e-12);
@@ -250,5 +251,43 @@ fn streamed_arpa_equals_the_built_model() {
             .write_arpa_to(&mut streamed)
             .unwrap();
         assert!(expected == streamed, "{smoothing:?}");
+    }
+}
+
+#[test]
+fn fast_state_queries_agree_with_the_double_precision_recursion() {
+    let counts = NgramCounts::from_sentences(generated_text(51, 120, 15), 5).unwrap();
+    let model = estimate_with(
+        &counts,
+        &EstimateOptions {
+            smoothing: Smoothing::ModifiedKneserNey,
+            cutoffs: vec![1, 1, 1, 2, 2],
+            keep_interpolated: false,
+        },
+    )
+    .unwrap()
+    .model;
+    let unknown = model.unknown_word().unwrap();
+    for sentence in generated_text(52, 40, 18) {
+        let words: Vec<WordIndex> = sentence
+            .iter()
+            .map(|word| model.word_index(word).unwrap_or(unknown))
+            .collect();
+        let mut state = model.sentence_start();
+        let mut history = vec![model.sentence_start_word().unwrap()];
+        for &word in &words {
+            let (fast, next) = model.score(&state, word);
+            let slow = model.log10_probability(&history, word);
+            // f32 storage of the fast path: agreement to single precision.
+            assert!(
+                (f64::from(fast) - slow).abs() < 1e-5 * slow.abs().max(1.0),
+                "{fast} vs {slow}"
+            );
+            history.push(word);
+            state = next;
+        }
+        let end = model.sentence_end_word().unwrap();
+        let slow = model.log10_probability(&history, end);
+        assert!((f64::from(model.sentence_end(&state)) - slow).abs() < 1e-5 * slow.abs().max(1.0));
     }
 }

@@ -139,7 +139,15 @@ fn parse_cutoffs(text: &str) -> anyhow::Result<Vec<u32>> {
 }
 
 fn read_model(path: &PathBuf) -> anyhow::Result<ArpaModel> {
-    Ok(ArpaModel::read(path)?)
+    let model = ArpaModel::read(path)?;
+    if model.implied_ngrams() > 0 {
+        eprintln!(
+            "note: {}: {} n-grams were missing as prefix or suffix of listed ones; added with their back-off probabilities",
+            path.display(),
+            model.implied_ngrams()
+        );
+    }
+    Ok(model)
 }
 
 fn counts_text(counts: &[usize]) -> String {
