@@ -20,7 +20,12 @@ struct Cli {
 }
 
 #[derive(Subcommand)]
-enum Command {}
+enum Command {
+    /// Word error rate and flexible WER of hypotheses against a reference manifest.
+    Score(commands::score::ScoreArgs),
+    /// Build a spelling-variant map from two word-aligned transcript columns.
+    Variants(commands::variants::VariantsArgs),
+}
 
 /// How a command that did not fail outright ended.
 pub enum Outcome {
@@ -31,8 +36,22 @@ pub enum Outcome {
 }
 
 fn main() -> ExitCode {
-    let cli = Cli::parse();
-    let result: anyhow::Result<Outcome> = match cli.command {};
+    // Usage errors are bad input (exit 1 by our contract); help and version are successes.
+    let cli = match Cli::try_parse() {
+        Ok(cli) => cli,
+        Err(error) => {
+            let _ = error.print();
+            return if error.use_stderr() {
+                ExitCode::from(1)
+            } else {
+                ExitCode::SUCCESS
+            };
+        }
+    };
+    let result: anyhow::Result<Outcome> = match cli.command {
+        Command::Score(args) => commands::score::run(args),
+        Command::Variants(args) => commands::variants::run(args),
+    };
     match result {
         Ok(Outcome::Done) => ExitCode::SUCCESS,
         Ok(Outcome::SomeItemsFailed) => ExitCode::from(2),
