@@ -1,5 +1,6 @@
 //! Architecture and training settings, read from TOML (`configs/tdnn-*.toml`).
 
+use isogloss_features::{CmvnMode, FeatureConfig};
 use serde::{Deserialize, Serialize};
 
 use crate::AcousticError;
@@ -156,7 +157,7 @@ impl Default for TrainingConfig {
     }
 }
 
-/// A configuration file: `[model]` and `[training]` tables.
+/// A configuration file: `[model]`, `[training]` and `[features]` tables.
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 #[serde(deny_unknown_fields)]
 pub struct ModelConfig {
@@ -165,6 +166,17 @@ pub struct ModelConfig {
     /// How to train it.
     #[serde(default)]
     pub training: TrainingConfig,
+    /// The front end; by default the contract MFCC front end with per-speaker CMVN.
+    #[serde(default = "default_features")]
+    pub features: FeatureConfig,
+}
+
+/// The contract front end (MFCC + Δ + ΔΔ) with per-speaker mean and variance normalisation.
+pub fn default_features() -> FeatureConfig {
+    FeatureConfig {
+        cmvn: CmvnMode::Speaker,
+        ..FeatureConfig::default()
+    }
 }
 
 impl ModelConfig {
@@ -182,6 +194,7 @@ impl ModelConfig {
         let config: ModelConfig =
             toml::from_str(text).map_err(|e| AcousticError::Config(e.to_string()))?;
         config.model.validate()?;
+        config.features.validate()?;
         Ok(config)
     }
 

@@ -261,13 +261,16 @@ pub fn ctc_batch(
     Ok(BatchCtc { losses, grad })
 }
 
+/// The gradient kept between the forward and the backward pass, with its `[batch, frames, units]`.
+type StoredGradient = Option<(Vec<f32>, (usize, usize, usize))>;
+
 /// CTC as a candle operation: `logits [batch, frames, units] → losses [batch]`.
 ///
 /// The forward pass runs [`ctc_batch`] and keeps the gradient; the backward pass multiplies it by
 /// the incoming gradient of each utterance's loss. Apply it with [`CtcLoss::apply`].
 pub struct CtcLoss {
     targets: CtcTargets,
-    grad: Mutex<Option<(Vec<f32>, (usize, usize, usize))>>,
+    grad: Mutex<StoredGradient>,
 }
 
 impl CtcLoss {

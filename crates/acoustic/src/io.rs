@@ -1,7 +1,7 @@
 //! Writing tensors and files safely.
 
 use std::collections::BTreeMap;
-use std::path::{Path, PathBuf};
+use std::path::Path;
 
 use crate::AcousticError;
 
@@ -30,15 +30,7 @@ pub fn serialize_tensors(
 }
 
 /// Writes `bytes` to a temporary file next to `path`, then renames it over `path`, so that a
-/// crash leaves either the old or the new file, never a torn one.
+/// crash leaves either the old or the new file, never a torn one (the corpus crate's writer).
 pub fn write_atomically(path: &Path, bytes: &[u8]) -> Result<(), AcousticError> {
-    let io = |source| AcousticError::Io {
-        path: path.to_path_buf(),
-        source,
-    };
-    let mut temporary = path.as_os_str().to_owned();
-    temporary.push(".partial");
-    let temporary = PathBuf::from(temporary);
-    std::fs::write(&temporary, bytes).map_err(io)?;
-    std::fs::rename(&temporary, path).map_err(io)
+    Ok(isogloss_corpus::tsv::write_atomically(path, bytes)?)
 }

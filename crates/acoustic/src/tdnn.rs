@@ -226,10 +226,9 @@ impl Tdnn {
     ) -> Result<Tensor, AcousticError> {
         let mut x = input.clone();
         for layer in &self.layers {
-            let dropout = match dropout_rng.as_deref_mut() {
-                Some(rng) => Some((self.config.dropout, rng)),
-                None => None,
-            };
+            let dropout = dropout_rng
+                .as_deref_mut()
+                .map(|rng| (self.config.dropout, rng));
             x = layer.forward(&x, dropout)?;
         }
         Ok(x)

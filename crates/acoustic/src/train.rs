@@ -611,6 +611,7 @@ mod tests {
                 warmup_steps: 2,
                 ..TrainingConfig::default()
             },
+            features: crate::config::default_features(),
         }
     }
 
