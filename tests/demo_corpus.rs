@@ -8,6 +8,7 @@ use std::fs;
 use std::path::{Path, PathBuf};
 
 use isogloss_corpus::tsv::Table;
+use isogloss_score::{tokenize, TokenRules};
 
 const MANIFEST_COLUMNS: [&str; 8] = [
     "id",
@@ -122,6 +123,10 @@ fn every_row_has_word_aligned_transcripts() {
             let d = tokens(&row.dialectal, &format!("{at}, dialectal"));
             let n = tokens(&row.normalized, &format!("{at}, normalized"));
             assert_eq!(d.len(), n.len(), "{at}: {d:?} vs {n:?}");
+            // The scorer's own tokenizer (the DESIGN.md token rules) sees the same words.
+            let rules = TokenRules::default();
+            assert_eq!(tokenize(&row.dialectal, &rules), d, "{at}: dialectal");
+            assert_eq!(tokenize(&row.normalized, &rules), n, "{at}: normalized");
             assert!(!row.speaker.is_empty(), "{at}: empty speaker");
         }
     }
@@ -372,4 +377,103 @@ fn out_of_domain_text_is_standard_spelling_sentences() {
     for (i, line) in lines.iter().enumerate() {
         tokens(line, &format!("ood.txt line {}", i + 1));
     }
+}
+
+fn isogloss(args: &[&str]) -> serde_json::Value {
+    let output = std::process::Command::new(env!("CARGO_BIN_EXE_isogloss"))
+        .args(args)
+        .output()
+        .expect("the isogloss binary runs");
+    assert_eq!(
+        output.status.code(),
+        Some(0),
+        "isogloss {args:?}: {}",
+        String::from_utf8_lossy(&output.stderr)
+    );
+    if args.contains(&"--json") {
+        serde_json::from_slice(&output.stdout).expect("stdout is one JSON object")
+    } else {
+        serde_json::Value::Null
+    }
+}
+
+/// What the two writings are for: a transcript in standard spelling, scored against the
+/// dialectal reference, loses every respelled word under plain WER, while the flexible WER with
+/// the variants `isogloss variants` learns from the train manifest forgives the spellings seen
+/// in train. Both rates are bounded by counts taken straight from the manifests.
+#[test]
+fn flexible_scoring_forgives_the_eye_dialect_spellings() {
+    let scratch = tempfile::tempdir().expect("a temporary folder");
+    let variants = scratch.path().join("variants.tsv");
+    let hypotheses = scratch.path().join("hyp.tsv");
+    let demo = demo_dir();
+    let path = |p: &Path| p.to_str().expect("UTF-8 path").to_string();
+    isogloss(&[
+        "variants",
+        "--manifest",
+        &path(&demo.join("train.tsv")),
+        "--from",
+        "dialectal",
+        "--to",
+        "normalized",
+        "--out",
+        &path(&variants),
+    ]);
+
+    let train_pairs: BTreeSet<(String, String)> = read_manifest("train")
+        .iter()
+        .flat_map(|r| {
+            r.dialectal
+                .split(' ')
+                .zip(r.normalized.split(' '))
+                .map(|(d, n)| (d.to_string(), n.to_string()))
+                .collect::<Vec<_>>()
+        })
+        .collect();
+    let test = read_manifest("test");
+    let (mut words, mut respelled, mut respelled_unseen) = (0usize, 0usize, 0usize);
+    let mut hyp_text = String::from("id\ttext\n");
+    for row in &test {
+        hyp_text.push_str(&format!("{}\t{}\n", row.id, row.normalized));
+        for (d, n) in row.dialectal.split(' ').zip(row.normalized.split(' ')) {
+            words += 1;
+            if d != n {
+                respelled += 1;
+                if !train_pairs.contains(&(d.to_string(), n.to_string())) {
+                    respelled_unseen += 1;
+                }
+            }
+        }
+    }
+    fs::write(&hypotheses, hyp_text).expect("hypotheses written");
+
+    let report = isogloss(&[
+        "score",
+        "--ref",
+        &path(&demo.join("test.tsv")),
+        "--column",
+        "dialectal",
+        "--hyp",
+        &path(&hypotheses),
+        "--variants",
+        &path(&variants),
+        "--json",
+    ]);
+    let wer = report["wer"].as_f64().expect("wer");
+    let flexible = report["flexible_wer"].as_f64().expect("flexible_wer");
+    assert_eq!(report["ref_words"].as_u64(), Some(words as u64));
+    // Word-aligned columns: the substitutions at the differing positions are one alignment, so
+    // the minimum edit distance is at most that count (and the flexible one at most the count
+    // of respellings train never showed).
+    assert!(wer <= respelled as f64 / words as f64 + 1e-9, "wer {wer}");
+    assert!(
+        flexible <= respelled_unseen as f64 / words as f64 + 1e-9,
+        "flexible {flexible}"
+    );
+    // The scenario's promise: the writings differ noticeably, and variants forgive most of it.
+    assert!(
+        wer > 0.05,
+        "dialectal and normalized differ in only {wer} of the words"
+    );
+    assert!(flexible < wer / 3.0, "flexible {flexible} vs plain {wer}");
 }

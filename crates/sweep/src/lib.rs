@@ -11,6 +11,7 @@
 use std::path::PathBuf;
 
 pub mod config;
+pub mod resources;
 
 pub use config::{Cell, LexiconChoice, LexiconKind, LmChoice, Sweep};
 
@@ -35,4 +36,7 @@ pub enum SweepError {
         /// What was expected and what was found.
         message: String,
     },
+    /// Building a language model or lexicon failed (the message names the file).
+    #[error("{0}")]
+    Build(String),
 }
