@@ -1,2 +1,111 @@
-//! Acoustic model: a TDNN over feature frames trained with the CTC criterion on CPU.
+//! Acoustic model of isogloss: a time-delay neural network (TDNN) over feature frames, trained
+//! with connectionist temporal classification (CTC) on a CPU, and the model directory it lives in.
+//!
+//! * [`ctc`] — CTC loss and its exact gradient (forward–backward in log space, parallel over
+//!   utterances), wired into candle's backward pass as a custom operation.
+//! * [`tdnn`] — spliced affine layers with ReLU, layer normalisation, dropout and frame
+//!   subsampling; parameters named `layers.{i}.weight` etc.
+//! * [`optim`] — AdamW updating parameters in place; [`train`] — the training loop (bucketed
+//!   batches, warm-up and decay, clipping, early stopping, atomic checkpoints, exact resume);
+//!   [`pipeline`] — manifests to cached features to a model directory, and back to posteriors.
+//! * [`model`] — `model.toml` + `model.safetensors`, [`AcousticModel::log_posteriors`] and
+//!   [`greedy_decode`].
+//!
+//! Key design decision: candle builds the network and differentiates it, but the two places
+//! where a generic tensor graph is slow are written by hand: CTC (thousands of tiny log-sum-exp
+//! steps per utterance would each be a graph node; here one custom op computes loss *and*
+//! gradient in the same pass, and its backward only scales the stored gradient — exact, because
+//! the gradient of a sum of losses with respect to the logits is the per-utterance
+//! `softmax − occupancy`), and the optimizer (one fused loop per parameter instead of a dozen
+//! allocating tensor operations). Splicing is done as one matrix product with all offset
+//! matrices side by side followed by shifted adds, never by copying shifted frames.
+//!
+//! ```
+//! use isogloss_acoustic::ctc::{ctc_batch, CtcTargets};
+//!
+//! // Two frames, units {blank, a}: the label "a" is emitted by the paths a·a, a·blank, blank·a.
+//! let logits = [0.0f32, 0.0, 0.0, 0.0];
+//! let targets = CtcTargets { frame_lengths: vec![2], labels: vec![vec![1]], blank: 0 };
+//! let result = ctc_batch(&logits, (1, 2, 2), &targets)?;
+//! assert!((result.losses[0] - (4.0f32 / 3.0).ln()).abs() < 1e-6); // p = 3/4
+//! # Ok::<(), isogloss_acoustic::AcousticError>(())
+//! ```
 #![deny(missing_docs)]
+
+pub mod config;
+pub mod ctc;
+pub mod greedy;
+pub mod io;
+pub mod model;
+pub mod optim;
+pub mod tdnn;
+pub mod train;
+pub mod units;
+
+use std::path::PathBuf;
+
+pub use greedy::{greedy_decode, greedy_path};
+pub use model::AcousticModel;
+
+/// Everything that can go wrong in the acoustic stage.
+#[derive(Debug, thiserror::Error)]
+pub enum AcousticError {
+    /// Tensors or batches whose shapes do not agree.
+    #[error("shape mismatch: {0}")]
+    Shape(String),
+    /// An invalid architecture or training configuration.
+    #[error("invalid configuration: {0}")]
+    Config(String),
+    /// A file that could not be read or written.
+    #[error("{path}: {source}")]
+    Io {
+        /// The file.
+        path: PathBuf,
+        /// What the operating system said.
+        source: std::io::Error,
+    },
+    /// A transcript unit the model's inventory (or the lexicon) cannot map.
+    #[error("{item}: the unit {unit:?} is not in the model's unit inventory")]
+    UnknownUnit {
+        /// The utterance or word, with its file and line where known.
+        item: String,
+        /// The unit that could not be mapped.
+        unit: String,
+    },
+    /// A model directory that cannot be used.
+    #[error("{path}: {problem}")]
+    Model {
+        /// The file at fault.
+        path: PathBuf,
+        /// What is wrong with it.
+        problem: String,
+    },
+    /// A training checkpoint that cannot be resumed from.
+    #[error("checkpoint {path}: {problem}")]
+    Checkpoint {
+        /// The checkpoint file.
+        path: PathBuf,
+        /// What is wrong with it.
+        problem: String,
+    },
+    /// Input that cannot be used (empty manifest, nothing to resume, …).
+    #[error("{path}: {problem}")]
+    Input {
+        /// The file at fault.
+        path: PathBuf,
+        /// What is wrong.
+        problem: String,
+    },
+    /// A manifest or table that cannot be read.
+    #[error(transparent)]
+    Corpus(#[from] isogloss_corpus::CorpusError),
+    /// A front-end setting or feature file that cannot be used.
+    #[error(transparent)]
+    Features(#[from] isogloss_features::FeatureError),
+    /// A lexicon that cannot be read.
+    #[error(transparent)]
+    Lexicon(#[from] isogloss_lexicon::LexiconError),
+    /// An error from the tensor library.
+    #[error("tensor operation failed: {0}")]
+    Tensor(#[from] candle_core::Error),
+}

@@ -387,7 +387,7 @@ mod tests {
 
     #[test]
     fn label_probabilities_match_torch_ctc_loss() {
-        // Fixture from scripts/reference/ctc_reference.py: torch.nn.functional.ctc_loss values.
+        // Fixture from scripts/reference/ctc_decoder_reference.py: torch.nn.functional.ctc_loss values.
         let fixture: serde_json::Value = serde_json::from_str(include_str!(
             "../../../tests/fixtures/decoder/ctc_torch.json"
         ))

@@ -1,0 +1,123 @@
+//! Training-step throughput of the TDNN + CTC + AdamW (a benchmark, not a test), and the machine's
+//! matrix-multiply rate for the same shapes, so the step can be reported as a fraction of it.
+//!
+//! Mirrors `scripts/bench/tdnn_torch.py` (same config, batch, frames, units, labels):
+//! `RAYON_NUM_THREADS=2 cargo bench -p isogloss-acoustic --bench train_step -- --batch 16 --frames 600`
+//! Prints one JSON line.
+
+use std::time::Instant;
+
+use candle_core::{Device, Tensor};
+use isogloss_acoustic::config::ModelConfig;
+use isogloss_acoustic::train::Trainer;
+use isogloss_acoustic::units::{UnitInventory, UnitKind};
+use ndarray::Array2;
+use rand::{Rng, SeedableRng};
+use rand_chacha::ChaCha8Rng;
+
+fn median(mut values: Vec<f64>) -> f64 {
+    values.sort_by(|a, b| a.total_cmp(b));
+    values[values.len() / 2]
+}
+
+fn main() {
+    let mut config_path = None;
+    let (mut batch, mut frames, mut steps, mut dims, mut units, mut labels) =
+        (16, 600, 12, 39, 40, 60);
+    let args: Vec<String> = std::env::args().skip(1).collect();
+    let mut i = 0;
+    while i < args.len() {
+        let value = args.get(i + 1).cloned().unwrap_or_default();
+        match args[i].as_str() {
+            "--config" => config_path = Some(value),
+            "--batch" => batch = value.parse().unwrap_or(batch),
+            "--frames" => frames = value.parse().unwrap_or(frames),
+            "--steps" => steps = value.parse().unwrap_or(steps),
+            "--dims" => dims = value.parse().unwrap_or(dims),
+            "--units" => units = value.parse().unwrap_or(units),
+            "--labels" => labels = value.parse().unwrap_or(labels),
+            _ => {
+                i += 1;
+                continue;
+            }
+        }
+        i += 2;
+    }
+    let config = match config_path {
+        Some(path) => ModelConfig::read(std::path::Path::new(&path)).expect("readable config"),
+        None => ModelConfig::small(),
+    };
+    let inventory = UnitInventory {
+        kind: UnitKind::Phones,
+        units: (0..units)
+            .map(|u| {
+                if u == 0 {
+                    "<blk>".to_string()
+                } else {
+                    format!("u{u}")
+                }
+            })
+            .collect(),
+    };
+    let mut trainer = Trainer::new(config.clone(), inventory, dims, 0).expect("valid model");
+    let mut rng = ChaCha8Rng::seed_from_u64(0);
+    let features: Vec<Array2<f32>> = (0..batch)
+        .map(|_| Array2::from_shape_fn((frames, dims), |_| rng.random_range(-1.0..1.0)))
+        .collect();
+    let targets: Vec<Vec<u32>> = (0..batch)
+        .map(|_| {
+            (0..labels)
+                .map(|_| rng.random_range(1..units as u32))
+                .collect()
+        })
+        .collect();
+    let refs: Vec<&Array2<f32>> = features.iter().collect();
+    let mut times = Vec::new();
+    for _ in 0..steps {
+        let start = Instant::now();
+        trainer
+            .train_batch(&refs, targets.clone(), &mut rng)
+            .expect("training step runs");
+        times.push(start.elapsed().as_secs_f64());
+    }
+    let step = median(times[2..].to_vec());
+
+    // Matrix-product FLOPs of one step: forward product per layer, twice that backward.
+    let (left, right) = config.model.context();
+    let mut rows = batch * (frames + left + right);
+    let mut input = dims;
+    let mut flops = 0f64;
+    let mut widest = (0usize, 0usize, 0usize);
+    for layer in &config.model.layers {
+        let width = layer.offsets.len() * layer.dims;
+        flops += 2.0 * (rows * input * width) as f64;
+        if rows * input * width > widest.0 * widest.1 * widest.2 {
+            widest = (rows, input, width);
+        }
+        let span = (layer.offsets[layer.offsets.len() - 1] - layer.offsets[0]) as usize;
+        rows = (rows - batch * span) / layer.subsample;
+        input = layer.dims;
+    }
+    flops += 2.0 * (rows * input * units) as f64;
+    flops *= 3.0;
+
+    // The machine's matmul rate on the largest layer's shape.
+    let a = Tensor::randn(0f32, 1.0, (widest.0, widest.1), &Device::Cpu).expect("tensor");
+    let b = Tensor::randn(0f32, 1.0, (widest.1, widest.2), &Device::Cpu).expect("tensor");
+    let mut matmul_times = Vec::new();
+    for _ in 0..7 {
+        let start = Instant::now();
+        let c = a.matmul(&b).expect("matmul");
+        let _ = c.sum_all().expect("sum");
+        matmul_times.push(start.elapsed().as_secs_f64());
+    }
+    let matmul_gflops = 2.0 * (widest.0 * widest.1 * widest.2) as f64 / median(matmul_times) / 1e9;
+    let step_gflops = flops / step / 1e9;
+    println!(
+        "{{\"impl\": \"isogloss candle\", \"threads\": {}, \"batch\": {batch}, \"frames\": {frames}, \"parameters\": {}, \"median_step_seconds\": {step:.4}, \"frames_per_second\": {:.1}, \"step_matmul_gflops\": {step_gflops:.2}, \"machine_matmul_gflops\": {matmul_gflops:.2}, \"fraction_of_matmul_rate\": {:.3}}}",
+        std::env::var("RAYON_NUM_THREADS").unwrap_or_else(|_| "default".into()),
+        config.model.parameter_count(dims, units),
+        (batch * frames) as f64 / step,
+        step_gflops / matmul_gflops,
+    );
+}

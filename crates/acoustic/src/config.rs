@@ -1,0 +1,207 @@
+//! Architecture and training settings, read from TOML (`configs/tdnn-*.toml`).
+
+use isogloss_features::{CmvnMode, FeatureConfig};
+use serde::{Deserialize, Serialize};
+
+use crate::AcousticError;
+
+/// How hidden activations are normalised.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(rename_all = "lowercase")]
+pub enum Normalization {
+    /// Per frame over the hidden units (independent of batch composition and padding).
+    Layer,
+    /// No normalisation.
+    None,
+}
+
+/// One hidden TDNN layer: splice the input at `offsets`, affine, ReLU, normalisation, dropout.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct LayerConfig {
+    /// Frame offsets spliced together, in frames *of this layer's input*; sorted, distinct.
+    pub offsets: Vec<i32>,
+    /// Output width.
+    pub dims: usize,
+    /// Keep every `subsample`-th output frame (1 = no subsampling).
+    #[serde(default = "one")]
+    pub subsample: usize,
+}
+
+fn one() -> usize {
+    1
+}
+
+/// The network: hidden layers then a final affine layer over the units (blank included).
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct TdnnConfig {
+    /// Hidden layers in order.
+    pub layers: Vec<LayerConfig>,
+    /// Normalisation after each hidden ReLU.
+    pub normalization: Normalization,
+    /// Dropout probability on hidden activations during training.
+    #[serde(default)]
+    pub dropout: f32,
+}
+
+impl TdnnConfig {
+    /// Checks the invariants the model relies on, naming the layer at fault.
+    pub fn validate(&self) -> Result<(), AcousticError> {
+        if self.layers.is_empty() {
+            return Err(AcousticError::Config(
+                "the network needs at least one hidden layer, found none".into(),
+            ));
+        }
+        for (i, layer) in self.layers.iter().enumerate() {
+            let sorted = layer.offsets.windows(2).all(|w| w[0] < w[1]);
+            if layer.offsets.is_empty() || !sorted {
+                return Err(AcousticError::Config(format!(
+                    "layer {i}: offsets must be a non-empty increasing list, found {:?}",
+                    layer.offsets
+                )));
+            }
+            if layer.dims == 0 || layer.subsample == 0 {
+                return Err(AcousticError::Config(format!(
+                    "layer {i}: dims and subsample must be at least 1, found dims {} subsample {}",
+                    layer.dims, layer.subsample
+                )));
+            }
+        }
+        if !(0.0..1.0).contains(&self.dropout) {
+            return Err(AcousticError::Config(format!(
+                "dropout must be in [0, 1), found {}",
+                self.dropout
+            )));
+        }
+        Ok(())
+    }
+
+    /// Total subsampling factor (product over layers): one output frame per this many input frames.
+    pub fn subsampling(&self) -> usize {
+        self.layers.iter().map(|l| l.subsample).product()
+    }
+
+    /// Input frames needed to the left and right of a frame, at the input frame rate.
+    pub fn context(&self) -> (usize, usize) {
+        let (mut left, mut right, mut rate) = (0usize, 0usize, 1usize);
+        for layer in &self.layers {
+            let first = *layer.offsets.first().unwrap_or(&0);
+            let last = *layer.offsets.last().unwrap_or(&0);
+            left += (-first).max(0) as usize * rate;
+            right += last.max(0) as usize * rate;
+            rate *= layer.subsample;
+        }
+        (left, right)
+    }
+
+    /// Number of trainable parameters for `input_dims` features and `units` outputs.
+    pub fn parameter_count(&self, input_dims: usize, units: usize) -> usize {
+        let mut count = 0;
+        let mut dims = input_dims;
+        for layer in &self.layers {
+            count += layer.offsets.len() * dims * layer.dims + layer.dims;
+            if self.normalization == Normalization::Layer {
+                count += 2 * layer.dims;
+            }
+            dims = layer.dims;
+        }
+        count + dims * units + units
+    }
+}
+
+/// Optimisation settings.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields, default)]
+pub struct TrainingConfig {
+    /// Passes over the training data (the `--epochs` flag overrides it).
+    pub epochs: usize,
+    /// Upper bound on input frames (padding included) per batch.
+    pub batch_frames: usize,
+    /// Peak AdamW learning rate.
+    pub learning_rate: f64,
+    /// Linear warm-up from zero over this many updates.
+    pub warmup_steps: usize,
+    /// After warm-up the rate decays as `peak · sqrt(warmup / step)` (inverse square root).
+    pub decay: bool,
+    /// AdamW decoupled weight decay.
+    pub weight_decay: f64,
+    /// Global gradient norm clip.
+    pub clip_norm: f64,
+    /// Stop after this many epochs without a better dev loss.
+    pub patience: usize,
+    /// Speed perturbation factors drawn uniformly per utterance and epoch (1.0 = unchanged);
+    /// empty disables it.
+    pub speed_factors: Vec<f32>,
+    /// Volume perturbation: gain drawn uniformly in `[1/g, g]`; 1.0 disables it.
+    pub volume_range: f32,
+    /// SpecAugment on the training features.
+    pub spec_augment: bool,
+}
+
+impl Default for TrainingConfig {
+    fn default() -> Self {
+        TrainingConfig {
+            epochs: 20,
+            batch_frames: 12_000,
+            learning_rate: 2e-3,
+            warmup_steps: 200,
+            decay: true,
+            weight_decay: 1e-2,
+            clip_norm: 5.0,
+            patience: 4,
+            speed_factors: vec![0.9, 1.0, 1.1],
+            volume_range: 1.5,
+            spec_augment: true,
+        }
+    }
+}
+
+/// A configuration file: `[model]`, `[training]` and `[features]` tables.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct ModelConfig {
+    /// The network.
+    pub model: TdnnConfig,
+    /// How to train it.
+    #[serde(default)]
+    pub training: TrainingConfig,
+    /// The front end; by default the contract MFCC front end with per-speaker CMVN.
+    #[serde(default = "default_features")]
+    pub features: FeatureConfig,
+}
+
+/// The contract front end (MFCC + Δ + ΔΔ) with per-speaker mean and variance normalisation.
+pub fn default_features() -> FeatureConfig {
+    FeatureConfig {
+        cmvn: CmvnMode::Speaker,
+        ..FeatureConfig::default()
+    }
+}
+
+impl ModelConfig {
+    /// Reads and validates a TOML configuration file.
+    pub fn read(path: &std::path::Path) -> Result<ModelConfig, AcousticError> {
+        let text = std::fs::read_to_string(path).map_err(|source| AcousticError::Io {
+            path: path.to_path_buf(),
+            source,
+        })?;
+        Self::parse(&text).map_err(|e| AcousticError::Config(format!("{}: {e}", path.display())))
+    }
+
+    /// Parses and validates TOML text.
+    pub fn parse(text: &str) -> Result<ModelConfig, AcousticError> {
+        let config: ModelConfig =
+            toml::from_str(text).map_err(|e| AcousticError::Config(e.to_string()))?;
+        config.model.validate()?;
+        config.features.validate()?;
+        Ok(config)
+    }
+
+    /// The built-in small configuration (`configs/tdnn-small.toml`).
+    pub fn small() -> ModelConfig {
+        // The file is the single source of truth; it is embedded so the CLI works from anywhere.
+        Self::parse(include_str!("../../../configs/tdnn-small.toml"))
+            .unwrap_or_else(|e| panic!("configs/tdnn-small.toml is invalid: {e}"))
+    }
+}

@@ -1,0 +1,260 @@
+//! The model directory (`model.safetensors` + `model.toml`) and inference.
+
+use std::collections::BTreeMap;
+use std::path::Path;
+
+use candle_core::{Device, Tensor, Var};
+use ndarray::Array2;
+use serde::{Deserialize, Serialize};
+
+use crate::config::TdnnConfig;
+use crate::io::{serialize_tensors, write_atomically};
+use crate::tdnn::{var_builder, Tdnn};
+use crate::units::UnitInventory;
+use crate::AcousticError;
+
+/// Feature settings recorded in (and required by) the model; the features crate's contract type.
+pub use isogloss_features::FeatureConfig;
+
+/// Version of the `model.toml` layout written by this crate.
+pub const MODEL_FORMAT: u32 = 1;
+
+/// Where a model came from.
+#[derive(Debug, Clone, Default, PartialEq, Serialize, Deserialize)]
+pub struct Provenance {
+    /// SHA-256 of the training manifest file.
+    pub train_manifest_sha256: String,
+    /// SHA-256 of the dev manifest file.
+    pub dev_manifest_sha256: String,
+    /// Transcript column the units were taken from.
+    pub column: String,
+    /// Epochs trained when these weights were saved.
+    pub epochs: usize,
+    /// Per-frame dev CTC loss of these weights.
+    pub dev_loss: f64,
+    /// Greedy dev unit error rate of these weights.
+    pub dev_unit_error_rate: f64,
+    /// Training utterances used and skipped.
+    pub train_utterances: usize,
+    /// Training utterances skipped because their labels did not fit.
+    pub skipped_utterances: usize,
+    /// Seed of the run.
+    pub seed: u64,
+    /// Program that wrote the model.
+    pub written_by: String,
+}
+
+/// `model.toml`: everything decoding needs besides the weights.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct ModelDescription {
+    /// [`MODEL_FORMAT`].
+    pub format: u32,
+    /// Unit inventory, blank first.
+    pub units: UnitInventory,
+    /// Front end, including how features are normalised (`cmvn`).
+    pub features: FeatureConfig,
+    /// The network.
+    pub architecture: TdnnConfig,
+    /// Where the model came from.
+    pub provenance: Provenance,
+}
+
+/// A trained model ready for inference.
+pub struct AcousticModel {
+    description: ModelDescription,
+    network: Tdnn,
+}
+
+impl AcousticModel {
+    /// Writes `model.toml` and `model.safetensors` into `dir` (created if needed), atomically.
+    pub fn save(
+        dir: &Path,
+        description: &ModelDescription,
+        parameters: &BTreeMap<String, Var>,
+    ) -> Result<(), AcousticError> {
+        std::fs::create_dir_all(dir).map_err(|source| AcousticError::Io {
+            path: dir.to_path_buf(),
+            source,
+        })?;
+        let mut tensors = Vec::with_capacity(parameters.len());
+        for (name, var) in parameters {
+            let values: Vec<f32> = var.as_tensor().flatten_all()?.to_vec1()?;
+            tensors.push((name.clone(), var.dims().to_vec(), values));
+        }
+        write_atomically(
+            &dir.join("model.safetensors"),
+            &serialize_tensors(&tensors, None)?,
+        )?;
+        let text = toml::to_string_pretty(description).map_err(|e| {
+            AcousticError::Config(format!("model description does not serialise: {e}"))
+        })?;
+        write_atomically(&dir.join("model.toml"), text.as_bytes())
+    }
+
+    /// Loads a model directory.
+    pub fn load(dir: &Path) -> Result<AcousticModel, AcousticError> {
+        let toml_path = dir.join("model.toml");
+        let text = std::fs::read_to_string(&toml_path).map_err(|source| AcousticError::Io {
+            path: toml_path.clone(),
+            source,
+        })?;
+        let description: ModelDescription =
+            toml::from_str(&text).map_err(|e| AcousticError::Model {
+                path: toml_path.clone(),
+                problem: e.to_string(),
+            })?;
+        if description.format != MODEL_FORMAT {
+            return Err(AcousticError::Model {
+                path: toml_path,
+                problem: format!(
+                    "format {} is not supported (this program reads format {MODEL_FORMAT})",
+                    description.format
+                ),
+            });
+        }
+        description.units.validate()?;
+        let weights = dir.join("model.safetensors");
+        let tensors = candle_core::safetensors::load(&weights, &Device::Cpu).map_err(|e| {
+            AcousticError::Model {
+                path: weights.clone(),
+                problem: e.to_string(),
+            }
+        })?;
+        let vb =
+            candle_nn::VarBuilder::from_tensors(tensors, candle_core::DType::F32, &Device::Cpu);
+        let network = Tdnn::new(
+            vb,
+            &description.architecture,
+            description.features.dims(),
+            description.units.len(),
+        )
+        .map_err(|e| AcousticError::Model {
+            path: weights,
+            problem: e.to_string(),
+        })?;
+        Ok(AcousticModel {
+            description,
+            network,
+        })
+    }
+
+    /// A model from in-memory parameters (used right after training).
+    pub fn from_parameters(
+        description: ModelDescription,
+        parameters: &BTreeMap<String, Var>,
+    ) -> Result<AcousticModel, AcousticError> {
+        let network = Tdnn::new(
+            var_builder(parameters),
+            &description.architecture,
+            description.features.dims(),
+            description.units.len(),
+        )?;
+        Ok(AcousticModel {
+            description,
+            network,
+        })
+    }
+
+    /// Unit names, blank at index 0.
+    pub fn units(&self) -> &[String] {
+        &self.description.units.units
+    }
+
+    /// The unit inventory.
+    pub fn inventory(&self) -> &UnitInventory {
+        &self.description.units
+    }
+
+    /// Front-end settings the model was trained with.
+    pub fn feature_config(&self) -> &FeatureConfig {
+        &self.description.features
+    }
+
+    /// The whole `model.toml`.
+    pub fn description(&self) -> &ModelDescription {
+        &self.description
+    }
+
+    /// Seconds between output frames (10 ms × subsampling).
+    pub fn frame_shift_seconds(&self) -> f64 {
+        0.01 * self.description.architecture.subsampling() as f64
+    }
+
+    /// Natural-log posteriors `[⌈frames / subsampling⌉, units]` for `[frames, dims]` features
+    /// normalised as the front end's `cmvn` setting says. Empty input gives an empty output.
+    pub fn log_posteriors(&self, features: &Array2<f32>) -> Result<Array2<f32>, AcousticError> {
+        let (frames, dims) = features.dim();
+        let units = self.units().len();
+        if frames == 0 {
+            return Ok(Array2::zeros((0, units)));
+        }
+        if dims != self.description.features.dims() {
+            return Err(AcousticError::Shape(format!(
+                "features have {dims} dims, the model takes {}",
+                self.description.features.dims()
+            )));
+        }
+        let (left, right) = self.description.architecture.context();
+        let mut padded: Vec<f32> = Vec::with_capacity((frames + left + right) * dims);
+        for t in 0..frames + left + right {
+            let source = t.saturating_sub(left).min(frames - 1);
+            padded.extend(features.row(source).iter());
+        }
+        let input = Tensor::from_vec(padded, (1, frames + left + right, dims), &Device::Cpu)?;
+        let logits = self.network.forward(&input, None)?.squeeze(0)?;
+        let log_probs = candle_nn::ops::log_softmax(&logits, 1)?;
+        let out_frames = log_probs.dim(0)?;
+        let values: Vec<f32> = log_probs.flatten_all()?.to_vec1()?;
+        Array2::from_shape_vec((out_frames, units), values)
+            .map_err(|e| AcousticError::Shape(e.to_string()))
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::config::ModelConfig;
+    use crate::tdnn::initial_parameters;
+    use crate::units::UnitInventory;
+    use rand::{Rng, SeedableRng};
+    use rand_chacha::ChaCha8Rng;
+
+    #[test]
+    fn a_saved_model_loads_and_gives_normalised_posteriors() {
+        let config = ModelConfig::small();
+        let units = UnitInventory::graphemes(["abc de"]);
+        let mut rng = ChaCha8Rng::seed_from_u64(2);
+        let parameters =
+            initial_parameters(&config.model, config.features.dims(), units.len(), &mut rng)
+                .unwrap();
+        let description = ModelDescription {
+            format: MODEL_FORMAT,
+            units,
+            features: config.features.clone(),
+            architecture: config.model.clone(),
+            provenance: Provenance::default(),
+        };
+        let dir = tempfile::tempdir().unwrap();
+        AcousticModel::save(dir.path(), &description, &parameters).unwrap();
+        let model = AcousticModel::load(dir.path()).unwrap();
+        assert_eq!(model.description(), &description);
+        assert_eq!(model.units()[0], "<blk>");
+        let in_memory = AcousticModel::from_parameters(description, &parameters).unwrap();
+        let features = Array2::from_shape_fn((50, 39), |_| rng.random_range(-1.0f32..1.0));
+        let posteriors = model.log_posteriors(&features).unwrap();
+        assert_eq!(posteriors.dim(), (17, 7));
+        assert_eq!(posteriors, in_memory.log_posteriors(&features).unwrap());
+        for row in posteriors.rows() {
+            let total: f32 = row.iter().map(|v| v.exp()).sum();
+            assert!((total - 1.0).abs() < 1e-5);
+        }
+        assert_eq!(
+            model.log_posteriors(&Array2::zeros((0, 39))).unwrap().dim(),
+            (0, 7)
+        );
+        assert!(model.log_posteriors(&Array2::zeros((5, 13))).is_err());
+        std::fs::write(dir.path().join("model.toml"), "format = 99").unwrap();
+        let error = AcousticModel::load(dir.path()).err().unwrap();
+        assert!(error.to_string().contains("model.toml"), "{error}");
+    }
+}

@@ -1,0 +1,772 @@
+//! The training loop: duration-bucketed batches, CTC, AdamW with warm-up and decay, gradient
+//! clipping, early stopping, atomic checkpoints and exact resumption.
+//!
+//! Determinism: every random choice of epoch `e` (batch order, perturbation variant, SpecAugment
+//! masks, dropout) comes from a ChaCha stream keyed by `(seed, e)`. A checkpoint therefore only
+//! has to hold the parameters, the optimizer moments and counters; resuming after epoch `e`
+//! replays epoch `e + 1` exactly as an uninterrupted run would (for the same thread count: the
+//! matrix products split their work by thread count).
+
+use std::collections::BTreeMap;
+use std::path::{Path, PathBuf};
+use std::time::Instant;
+
+use candle_core::{Device, Tensor, Var};
+use ndarray::Array2;
+use rand::seq::SliceRandom;
+use rand::{Rng, RngCore, SeedableRng};
+use rand_chacha::ChaCha8Rng;
+use serde::{Deserialize, Serialize};
+
+use crate::config::ModelConfig;
+use crate::ctc::{min_frames_for, CtcLoss, CtcTargets};
+use crate::optim::{AdamW, Moments};
+use crate::tdnn::{initial_parameters, var_builder, Tdnn};
+use crate::units::UnitInventory;
+use crate::{greedy_path, AcousticError};
+
+/// One utterance ready for training: feature matrices (already normalised) and unit labels.
+#[derive(Debug, Clone)]
+pub struct PreparedUtterance {
+    /// Utterance id (for messages).
+    pub id: String,
+    /// `[frames, dims]` features; `variants[0]` is the unperturbed audio, the others are
+    /// perturbed copies (speed, volume) of which one is drawn per epoch.
+    pub variants: Vec<Array2<f32>>,
+    /// Unit indices (no blank).
+    pub labels: Vec<u32>,
+}
+
+/// Augments a training feature matrix in place (SpecAugment); supplied by the caller so that
+/// this crate does not fix how masks are drawn.
+pub type Augment = dyn Fn(&mut Array2<f32>, &mut dyn RngCore) + Sync;
+
+/// Something the training loop reports as it runs (the CLI draws the progress bar from these).
+#[derive(Debug, Clone)]
+pub enum TrainingEvent {
+    /// An epoch begins.
+    EpochStart {
+        /// 1-based epoch number.
+        epoch: usize,
+        /// Batches in the epoch.
+        batches: usize,
+        /// Input frames in the epoch.
+        frames: usize,
+    },
+    /// A batch was trained on.
+    Batch {
+        /// Batches done in this epoch.
+        done: usize,
+        /// Per-frame CTC loss of the batch.
+        loss: f64,
+        /// Input frames in the batch (padding excluded).
+        frames: usize,
+        /// Input frames per second of wall time over the epoch so far.
+        frames_per_second: f64,
+    },
+    /// A batch whose loss was not finite; no update was made.
+    BatchSkipped {
+        /// Batches done in this epoch.
+        done: usize,
+        /// Ids of the utterances in the batch.
+        utterances: Vec<String>,
+    },
+    /// An epoch ended.
+    EpochEnd(EpochRecord),
+}
+
+/// What one epoch achieved (one line of the JSON-lines training log).
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct EpochRecord {
+    /// 1-based epoch number.
+    pub epoch: usize,
+    /// Mean per-frame CTC loss over the training batches.
+    pub train_loss: f64,
+    /// Per-frame CTC loss on the dev set.
+    pub dev_loss: f64,
+    /// Greedy unit error rate on the dev set (edit distance / reference units).
+    pub dev_unit_error_rate: f64,
+    /// Batches skipped for a non-finite loss.
+    pub skipped_batches: usize,
+    /// Training input frames per second of wall time.
+    pub frames_per_second: f64,
+    /// Learning rate at the end of the epoch.
+    pub learning_rate: f64,
+    /// True when the dev loss was the best so far (the model directory was updated).
+    pub improved: bool,
+}
+
+/// Counters that survive a resume.
+#[derive(Debug, Clone, Default, PartialEq, Serialize, Deserialize)]
+pub struct TrainingProgress {
+    /// The seed every random stream derives from.
+    pub seed: u64,
+    /// Epochs completed.
+    pub epochs_done: usize,
+    /// Best dev loss so far.
+    pub best_dev_loss: Option<f64>,
+    /// Epochs since the best dev loss.
+    pub epochs_without_improvement: usize,
+    /// One record per completed epoch.
+    pub history: Vec<EpochRecord>,
+}
+
+/// Utterances left out because their labels cannot fit the output frames.
+#[derive(Debug, Clone, Default)]
+pub struct Admission {
+    /// Kept utterances (perturbed variants that do not fit are dropped from them).
+    pub kept: Vec<PreparedUtterance>,
+    /// Ids of utterances skipped, with their output frames and required frames.
+    pub skipped: Vec<(String, usize, usize)>,
+}
+
+/// The model being trained, its optimizer and progress.
+pub struct Trainer {
+    config: ModelConfig,
+    units: UnitInventory,
+    input_dims: usize,
+    parameters: BTreeMap<String, Var>,
+    network: Tdnn,
+    optimizer: AdamW,
+    progress: TrainingProgress,
+}
+
+fn epoch_rng(seed: u64, epoch: usize) -> ChaCha8Rng {
+    let mut rng = ChaCha8Rng::seed_from_u64(seed);
+    rng.set_stream(epoch as u64 + 1);
+    rng
+}
+
+/// Groups utterances of similar length: sort by frames (ties broken at random), cut into batches
+/// of at most `batch_frames` padded frames, then shuffle the batch order.
+pub fn bucketed_batches(
+    frames: &[usize],
+    batch_frames: usize,
+    rng: &mut impl Rng,
+) -> Vec<Vec<usize>> {
+    let mut order: Vec<(usize, u32, usize)> = frames
+        .iter()
+        .enumerate()
+        .map(|(i, &f)| (f, rng.random::<u32>(), i))
+        .collect();
+    order.sort_unstable();
+    let mut batches: Vec<Vec<usize>> = Vec::new();
+    let mut current: Vec<usize> = Vec::new();
+    for (length, _, index) in order {
+        // Sorted ascending, so `length` is the longest in the batch so far.
+        if !current.is_empty() && (current.len() + 1) * length > batch_frames {
+            batches.push(std::mem::take(&mut current));
+        }
+        current.push(index);
+    }
+    if !current.is_empty() {
+        batches.push(current);
+    }
+    batches.shuffle(rng);
+    batches
+}
+
+/// Levenshtein distance between unit sequences.
+pub fn edit_distance(reference: &[u32], hypothesis: &[u32]) -> usize {
+    let mut row: Vec<usize> = (0..=hypothesis.len()).collect();
+    for (i, r) in reference.iter().enumerate() {
+        let mut diagonal = row[0];
+        row[0] = i + 1;
+        for (j, h) in hypothesis.iter().enumerate() {
+            let substitution = diagonal + usize::from(r != h);
+            diagonal = row[j + 1];
+            row[j + 1] = substitution.min(row[j] + 1).min(diagonal + 1);
+        }
+    }
+    row[hypothesis.len()]
+}
+
+impl Trainer {
+    /// A freshly initialised model (weights drawn from `seed`).
+    pub fn new(
+        config: ModelConfig,
+        units: UnitInventory,
+        input_dims: usize,
+        seed: u64,
+    ) -> Result<Self, AcousticError> {
+        units.validate()?;
+        let mut rng = epoch_rng(seed, usize::MAX - 1);
+        let parameters = initial_parameters(&config.model, input_dims, units.len(), &mut rng)?;
+        let network = Tdnn::new(
+            var_builder(&parameters),
+            &config.model,
+            input_dims,
+            units.len(),
+        )?;
+        let optimizer = AdamW::new(config.training.weight_decay);
+        Ok(Trainer {
+            config,
+            units,
+            input_dims,
+            parameters,
+            network,
+            optimizer,
+            progress: TrainingProgress {
+                seed,
+                ..TrainingProgress::default()
+            },
+        })
+    }
+
+    /// The network.
+    pub fn network(&self) -> &Tdnn {
+        &self.network
+    }
+
+    /// Parameters by name.
+    pub fn parameters(&self) -> &BTreeMap<String, Var> {
+        &self.parameters
+    }
+
+    /// Counters and history.
+    pub fn progress(&self) -> &TrainingProgress {
+        &self.progress
+    }
+
+    /// The configuration.
+    pub fn config(&self) -> &ModelConfig {
+        &self.config
+    }
+
+    /// The unit inventory.
+    pub fn units(&self) -> &UnitInventory {
+        &self.units
+    }
+
+    /// Sets the number of epochs to train in total.
+    pub fn set_epochs(&mut self, epochs: usize) {
+        self.config.training.epochs = epochs;
+    }
+
+    /// True when training should stop (all epochs done or no dev improvement for `patience`).
+    pub fn finished(&self) -> bool {
+        self.progress.epochs_done >= self.config.training.epochs
+            || (self.config.training.patience > 0
+                && self.progress.epochs_without_improvement >= self.config.training.patience)
+    }
+
+    /// Keeps utterances whose labels fit their output frames; perturbed variants that do not
+    /// fit are dropped.
+    pub fn admit(&self, utterances: Vec<PreparedUtterance>) -> Admission {
+        let mut admission = Admission::default();
+        for mut utterance in utterances {
+            let needed = min_frames_for(&utterance.labels);
+            let frames = utterance.variants.first().map_or(0, |v| v.nrows());
+            let available = self.network.output_frames(frames);
+            if frames == 0 || needed > available {
+                admission.skipped.push((utterance.id, available, needed));
+                continue;
+            }
+            let first = utterance.variants.remove(0);
+            let network = &self.network;
+            utterance
+                .variants
+                .retain(|v| needed <= network.output_frames(v.nrows()));
+            utterance.variants.insert(0, first);
+            admission.kept.push(utterance);
+        }
+        admission
+    }
+
+    fn learning_rate(&self, step: u64) -> f64 {
+        let training = &self.config.training;
+        let peak = training.learning_rate;
+        let warmup = training.warmup_steps.max(1) as f64;
+        let step = step.max(1) as f64;
+        if step <= warmup {
+            peak * step / warmup
+        } else if training.decay {
+            peak * (warmup / step).sqrt()
+        } else {
+            peak
+        }
+    }
+
+    /// Pads each utterance by the network context (edge frames repeated) and to the longest.
+    fn batch_input(
+        &self,
+        features: &[&Array2<f32>],
+    ) -> Result<(Tensor, Vec<usize>), AcousticError> {
+        let (left, right) = self.config.model.context();
+        let longest = features.iter().map(|f| f.nrows()).max().unwrap_or(0);
+        let frames = longest + left + right;
+        let dims = self.input_dims;
+        let mut data = vec![0f32; features.len() * frames * dims];
+        let mut lengths = Vec::with_capacity(features.len());
+        for (b, matrix) in features.iter().enumerate() {
+            if matrix.ncols() != dims {
+                return Err(AcousticError::Shape(format!(
+                    "features have {} dims, the model takes {dims}",
+                    matrix.ncols()
+                )));
+            }
+            let n = matrix.nrows();
+            let block = &mut data[b * frames * dims..(b + 1) * frames * dims];
+            for t in 0..n + left + right {
+                let source = t.saturating_sub(left).min(n - 1);
+                for (d, value) in matrix.row(source).iter().enumerate() {
+                    block[t * dims + d] = *value;
+                }
+            }
+            lengths.push(self.network.output_frames(n));
+        }
+        let input = Tensor::from_vec(data, (features.len(), frames, dims), &Device::Cpu)?;
+        Ok((input, lengths))
+    }
+
+    /// One update on a batch of (augmented) feature matrices. Returns the per-frame loss and the
+    /// number of output frames, or `None` when the loss or gradient was not finite (no update).
+    pub fn train_batch(
+        &mut self,
+        features: &[&Array2<f32>],
+        labels: Vec<Vec<u32>>,
+        rng: &mut dyn RngCore,
+    ) -> Result<Option<(f64, usize)>, AcousticError> {
+        let (input, output_frames) = self.batch_input(features)?;
+        let logits = self.network.forward(&input, Some(rng))?;
+        let total_frames: usize = output_frames.iter().sum();
+        let targets = CtcTargets {
+            frame_lengths: output_frames,
+            labels,
+            blank: 0,
+        };
+        let losses = CtcLoss::apply(&logits, targets)?;
+        let loss = (losses.sum_all()? / total_frames.max(1) as f64)?;
+        let value = loss.to_scalar::<f32>()? as f64;
+        if !value.is_finite() {
+            return Ok(None);
+        }
+        let grads = loss.backward()?;
+        let norm = AdamW::gradient_norm(&self.parameters, &grads)?;
+        if !norm.is_finite() {
+            return Ok(None);
+        }
+        let clip = self.config.training.clip_norm;
+        let scale = if clip > 0.0 && norm > clip {
+            clip / norm
+        } else {
+            1.0
+        };
+        let rate = self.learning_rate(self.optimizer.step + 1);
+        self.optimizer
+            .update(&self.parameters, &grads, rate, scale)?;
+        Ok(Some((value, total_frames)))
+    }
+
+    /// Per-frame CTC loss and greedy unit error rate on `dev` (no dropout, no augmentation).
+    pub fn evaluate(&self, dev: &[PreparedUtterance]) -> Result<(f64, f64), AcousticError> {
+        let lengths: Vec<usize> = dev.iter().map(|u| u.variants[0].nrows()).collect();
+        let mut rng = ChaCha8Rng::seed_from_u64(0);
+        let batches = bucketed_batches(&lengths, self.config.training.batch_frames, &mut rng);
+        let (mut loss_sum, mut frames, mut errors, mut reference) = (0f64, 0usize, 0usize, 0usize);
+        for batch in batches {
+            let features: Vec<&Array2<f32>> = batch.iter().map(|&i| &dev[i].variants[0]).collect();
+            let (input, output_frames) = self.batch_input(&features)?;
+            let logits = self.network.forward(&input, None)?;
+            let targets = CtcTargets {
+                frame_lengths: output_frames.clone(),
+                labels: batch.iter().map(|&i| dev[i].labels.clone()).collect(),
+                blank: 0,
+            };
+            let losses: Vec<f32> = CtcLoss::apply(&logits, targets)?.to_vec1()?;
+            let logits: Vec<Vec<Vec<f32>>> = logits.to_vec3()?;
+            for (k, &i) in batch.iter().enumerate() {
+                if losses[k].is_finite() {
+                    loss_sum += losses[k] as f64;
+                    frames += output_frames[k];
+                }
+                let path = greedy_path(&logits[k][..output_frames[k]]);
+                errors += edit_distance(&dev[i].labels, &path);
+                reference += dev[i].labels.len();
+            }
+        }
+        Ok((
+            loss_sum / frames.max(1) as f64,
+            errors as f64 / reference.max(1) as f64,
+        ))
+    }
+
+    /// Trains one epoch over `train` (admitted utterances), then evaluates on `dev`.
+    pub fn run_epoch(
+        &mut self,
+        train: &[PreparedUtterance],
+        dev: &[PreparedUtterance],
+        augment: Option<&Augment>,
+        on_event: &mut dyn FnMut(&TrainingEvent),
+    ) -> Result<EpochRecord, AcousticError> {
+        if train.is_empty() {
+            return Err(AcousticError::Config(
+                "no training utterance is left to train on".into(),
+            ));
+        }
+        let epoch = self.progress.epochs_done + 1;
+        let mut rng = epoch_rng(self.progress.seed, epoch);
+        let lengths: Vec<usize> = train.iter().map(|u| u.variants[0].nrows()).collect();
+        let batches = bucketed_batches(&lengths, self.config.training.batch_frames, &mut rng);
+        on_event(&TrainingEvent::EpochStart {
+            epoch,
+            batches: batches.len(),
+            frames: lengths.iter().sum(),
+        });
+        let started = Instant::now();
+        let (mut loss_sum, mut loss_frames, mut epoch_frames, mut skipped) =
+            (0f64, 0usize, 0usize, 0);
+        for (done, batch) in batches.iter().enumerate() {
+            let mut features: Vec<Array2<f32>> = Vec::with_capacity(batch.len());
+            for &i in batch {
+                let variants = &train[i].variants;
+                let mut matrix = variants[rng.random_range(0..variants.len())].clone();
+                if let Some(augment) = augment {
+                    augment(&mut matrix, &mut rng);
+                }
+                features.push(matrix);
+            }
+            let refs: Vec<&Array2<f32>> = features.iter().collect();
+            let labels: Vec<Vec<u32>> = batch.iter().map(|&i| train[i].labels.clone()).collect();
+            let batch_frames: usize = refs.iter().map(|f| f.nrows()).sum();
+            epoch_frames += batch_frames;
+            let Some((value, total_frames)) = self.train_batch(&refs, labels, &mut rng)? else {
+                skipped += 1;
+                on_event(&TrainingEvent::BatchSkipped {
+                    done: done + 1,
+                    utterances: batch.iter().map(|&i| train[i].id.clone()).collect(),
+                });
+                continue;
+            };
+            loss_sum += value * total_frames as f64;
+            loss_frames += total_frames;
+            on_event(&TrainingEvent::Batch {
+                done: done + 1,
+                loss: value,
+                frames: batch_frames,
+                frames_per_second: epoch_frames as f64 / started.elapsed().as_secs_f64().max(1e-9),
+            });
+        }
+        let frames_per_second = epoch_frames as f64 / started.elapsed().as_secs_f64().max(1e-9);
+        let (dev_loss, dev_unit_error_rate) = self.evaluate(dev)?;
+        let improved = self
+            .progress
+            .best_dev_loss
+            .is_none_or(|best| dev_loss < best);
+        if improved {
+            self.progress.best_dev_loss = Some(dev_loss);
+            self.progress.epochs_without_improvement = 0;
+        } else {
+            self.progress.epochs_without_improvement += 1;
+        }
+        let record = EpochRecord {
+            epoch,
+            train_loss: loss_sum / loss_frames.max(1) as f64,
+            dev_loss,
+            dev_unit_error_rate,
+            skipped_batches: skipped,
+            frames_per_second,
+            learning_rate: self.learning_rate(self.optimizer.step),
+            improved,
+        };
+        self.progress.epochs_done = epoch;
+        self.progress.history.push(record.clone());
+        on_event(&TrainingEvent::EpochEnd(record.clone()));
+        Ok(record)
+    }
+
+    /// Writes parameters, optimizer moments and progress to one safetensors file, atomically.
+    pub fn save_checkpoint(&self, path: &Path) -> Result<(), AcousticError> {
+        let mut tensors: Vec<(String, Vec<usize>, Vec<f32>)> = Vec::new();
+        for (name, var) in &self.parameters {
+            let values: Vec<f32> = var.as_tensor().flatten_all()?.to_vec1()?;
+            tensors.push((format!("param/{name}"), var.dims().to_vec(), values));
+        }
+        for (name, moments) in &self.optimizer.moments {
+            let n = moments.first.len();
+            tensors.push((format!("adam.first/{name}"), vec![n], moments.first.clone()));
+            tensors.push((
+                format!("adam.second/{name}"),
+                vec![n],
+                moments.second.clone(),
+            ));
+        }
+        let mut metadata = BTreeMap::new();
+        let progress = serde_json::to_string(&self.progress)
+            .map_err(|e| AcousticError::Config(format!("progress does not serialise: {e}")))?;
+        metadata.insert("progress".to_string(), progress);
+        metadata.insert("adam_step".to_string(), self.optimizer.step.to_string());
+        let config = toml::to_string(&self.config)
+            .map_err(|e| AcousticError::Config(format!("configuration does not serialise: {e}")))?;
+        metadata.insert("config".to_string(), config);
+        let units = serde_json::to_string(&self.units)
+            .map_err(|e| AcousticError::Config(format!("units do not serialise: {e}")))?;
+        metadata.insert("units".to_string(), units);
+        metadata.insert("input_dims".to_string(), self.input_dims.to_string());
+        let bytes = crate::io::serialize_tensors(&tensors, Some(metadata))?;
+        crate::io::write_atomically(path, &bytes)
+    }
+
+    /// Restores a trainer from [`Trainer::save_checkpoint`] output.
+    pub fn load_checkpoint(path: &Path) -> Result<Self, AcousticError> {
+        let bytes = std::fs::read(path).map_err(|source| AcousticError::Io {
+            path: path.to_path_buf(),
+            source,
+        })?;
+        let corrupt = |what: &str| AcousticError::Checkpoint {
+            path: path.to_path_buf(),
+            problem: what.to_string(),
+        };
+        let (_, header) = safetensors::SafeTensors::read_metadata(&bytes)
+            .map_err(|e| corrupt(&format!("not a safetensors file ({e})")))?;
+        let metadata = header
+            .metadata()
+            .clone()
+            .ok_or_else(|| corrupt("no training metadata"))?;
+        let field = |key: &str| {
+            metadata
+                .get(key)
+                .ok_or_else(|| corrupt(&format!("no `{key}` entry")))
+        };
+        let progress: TrainingProgress = serde_json::from_str(field("progress")?)
+            .map_err(|e| corrupt(&format!("bad progress record ({e})")))?;
+        let config: ModelConfig =
+            toml::from_str(field("config")?).map_err(|e| corrupt(&format!("bad config ({e})")))?;
+        let units: UnitInventory = serde_json::from_str(field("units")?)
+            .map_err(|e| corrupt(&format!("bad units ({e})")))?;
+        let input_dims: usize = field("input_dims")?
+            .parse()
+            .map_err(|_| corrupt("bad input_dims"))?;
+        let step: u64 = field("adam_step")?
+            .parse()
+            .map_err(|_| corrupt("bad adam_step"))?;
+        let tensors = safetensors::SafeTensors::deserialize(&bytes)
+            .map_err(|e| corrupt(&format!("unreadable tensors ({e})")))?;
+        let mut trainer = Trainer::new(config, units, input_dims, progress.seed)?;
+        let read = |name: &str| -> Result<Vec<f32>, AcousticError> {
+            let view = tensors
+                .tensor(name)
+                .map_err(|_| corrupt(&format!("tensor `{name}` missing")))?;
+            Ok(view
+                .data()
+                .chunks_exact(4)
+                .map(|b| f32::from_le_bytes([b[0], b[1], b[2], b[3]]))
+                .collect())
+        };
+        for (name, var) in &trainer.parameters {
+            let values = read(&format!("param/{name}"))?;
+            if values.len() != var.elem_count() {
+                return Err(corrupt(&format!("parameter `{name}` has the wrong size")));
+            }
+            var.set(&Tensor::from_vec(values, var.shape(), &Device::Cpu)?)?;
+            if tensors.tensor(&format!("adam.first/{name}")).is_ok() {
+                trainer.optimizer.moments.insert(
+                    name.clone(),
+                    Moments {
+                        first: read(&format!("adam.first/{name}"))?,
+                        second: read(&format!("adam.second/{name}"))?,
+                    },
+                );
+            }
+        }
+        trainer.optimizer.step = step;
+        trainer.progress = progress;
+        Ok(trainer)
+    }
+}
+
+/// Where the training files live inside a model directory.
+pub fn checkpoint_path(model_dir: &Path) -> PathBuf {
+    model_dir.join("checkpoint.safetensors")
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::config::{LayerConfig, Normalization, TdnnConfig, TrainingConfig};
+    use crate::units::UnitKind;
+
+    fn tiny_config() -> ModelConfig {
+        ModelConfig {
+            model: TdnnConfig {
+                layers: vec![
+                    LayerConfig {
+                        offsets: vec![-1, 0, 1],
+                        dims: 24,
+                        subsample: 1,
+                    },
+                    LayerConfig {
+                        offsets: vec![-1, 0, 1],
+                        dims: 24,
+                        subsample: 3,
+                    },
+                ],
+                normalization: Normalization::Layer,
+                dropout: 0.1,
+            },
+            training: TrainingConfig {
+                epochs: 2,
+                batch_frames: 200,
+                learning_rate: 5e-3,
+                warmup_steps: 2,
+                ..TrainingConfig::default()
+            },
+            features: crate::config::default_features(),
+        }
+    }
+
+    fn units() -> UnitInventory {
+        UnitInventory {
+            kind: UnitKind::Phones,
+            units: ["<blk>", "a", "b", "c"]
+                .iter()
+                .map(|s| s.to_string())
+                .collect(),
+        }
+    }
+
+    /// Synthetic utterances: each label is a burst of frames with its own feature pattern.
+    fn synthetic(count: usize, seed: u64) -> Vec<PreparedUtterance> {
+        let mut rng = ChaCha8Rng::seed_from_u64(seed);
+        (0..count)
+            .map(|i| {
+                let labels: Vec<u32> = (0..rng.random_range(1..4))
+                    .map(|_| rng.random_range(1..4))
+                    .collect();
+                let mut rows = Vec::new();
+                for &label in &labels {
+                    for _ in 0..9 {
+                        let mut row = vec![0f32; 5];
+                        row[label as usize] = 1.0;
+                        row[4] = rng.random_range(-0.1..0.1);
+                        rows.push(row);
+                    }
+                    rows.push(vec![0.0; 5]);
+                    rows.push(vec![0.0; 5]);
+                    rows.push(vec![0.0; 5]);
+                }
+                let frames = rows.len();
+                let matrix = Array2::from_shape_vec((frames, 5), rows.concat()).unwrap();
+                PreparedUtterance {
+                    id: format!("utt{i}"),
+                    variants: vec![matrix],
+                    labels,
+                }
+            })
+            .collect()
+    }
+
+    fn weights(trainer: &Trainer) -> Vec<Vec<f32>> {
+        trainer
+            .parameters()
+            .values()
+            .map(|v| v.as_tensor().flatten_all().unwrap().to_vec1().unwrap())
+            .collect()
+    }
+
+    #[test]
+    fn resuming_from_a_checkpoint_gives_identical_weights() {
+        let train = synthetic(12, 1);
+        let dev = synthetic(3, 2);
+        let mut straight = Trainer::new(tiny_config(), units(), 5, 42).unwrap();
+        for _ in 0..2 {
+            straight.run_epoch(&train, &dev, None, &mut |_| {}).unwrap();
+        }
+        let dir = tempfile::tempdir().unwrap();
+        let path = checkpoint_path(dir.path());
+        let mut first = Trainer::new(tiny_config(), units(), 5, 42).unwrap();
+        first.run_epoch(&train, &dev, None, &mut |_| {}).unwrap();
+        first.save_checkpoint(&path).unwrap();
+        drop(first);
+        let mut resumed = Trainer::load_checkpoint(&path).unwrap();
+        assert_eq!(resumed.progress().epochs_done, 1);
+        resumed.run_epoch(&train, &dev, None, &mut |_| {}).unwrap();
+        assert_eq!(weights(&straight), weights(&resumed));
+        // Everything but the wall-clock speed must agree.
+        let without_speed = |trainer: &Trainer| {
+            let mut progress = trainer.progress().clone();
+            progress
+                .history
+                .iter_mut()
+                .for_each(|r| r.frames_per_second = 0.0);
+            progress
+        };
+        assert_eq!(without_speed(&straight), without_speed(&resumed));
+    }
+
+    #[test]
+    fn utterances_too_short_for_their_labels_are_skipped_and_counted() {
+        let trainer = Trainer::new(tiny_config(), units(), 5, 1).unwrap();
+        let mut utterances = synthetic(3, 3);
+        // 4 frames give ⌈4/3⌉ = 2 output frames: too few for three labels.
+        utterances[1].variants[0] = Array2::zeros((4, 5));
+        utterances[1].labels = vec![1, 2, 3];
+        // The unperturbed copy fits, a (speed-perturbed) shorter copy does not and is dropped.
+        utterances[2].labels = vec![1, 2];
+        let long = utterances[2].variants[0].clone();
+        utterances[2].variants = vec![long, Array2::zeros((3, 5))];
+        let admission = trainer.admit(utterances);
+        assert_eq!(admission.skipped, vec![("utt1".to_string(), 2, 3)]);
+        assert_eq!(admission.kept.len(), 2);
+        assert_eq!(admission.kept[1].variants.len(), 1);
+    }
+
+    #[test]
+    fn a_batch_with_non_finite_loss_is_skipped_and_reported() {
+        let mut config = tiny_config();
+        config.training.batch_frames = 10_000; // one batch
+        let mut trainer = Trainer::new(config, units(), 5, 1).unwrap();
+        let mut train = synthetic(4, 4);
+        train[2].variants[0][[3, 1]] = f32::NAN;
+        let before = weights(&trainer);
+        let mut skipped = Vec::new();
+        let record = trainer
+            .run_epoch(&train, &synthetic(2, 5), None, &mut |event| {
+                if let TrainingEvent::BatchSkipped { utterances, .. } = event {
+                    skipped.extend(utterances.clone());
+                }
+            })
+            .unwrap();
+        assert_eq!(record.skipped_batches, 1);
+        assert!(skipped.contains(&"utt2".to_string()));
+        assert_eq!(before, weights(&trainer), "no update from a skipped batch");
+    }
+
+    #[test]
+    fn learns_synthetic_bursts_to_zero_error() {
+        let mut config = tiny_config();
+        config.training.epochs = 60;
+        config.training.patience = 0;
+        config.model.dropout = 0.0;
+        let train = synthetic(16, 6);
+        let mut trainer = Trainer::new(config, units(), 5, 3).unwrap();
+        let mut last = None;
+        while !trainer.finished() {
+            last = Some(
+                trainer
+                    .run_epoch(&train, &train, None, &mut |_| {})
+                    .unwrap(),
+            );
+        }
+        let last = last.unwrap();
+        assert!(last.dev_unit_error_rate < 0.05, "{last:?}");
+    }
+
+    #[test]
+    fn batches_group_similar_lengths_within_the_frame_budget() {
+        let lengths = [10, 300, 12, 290, 11, 305, 50];
+        let mut rng = ChaCha8Rng::seed_from_u64(0);
+        let batches = bucketed_batches(&lengths, 700, &mut rng);
+        let mut seen: Vec<usize> = batches.concat();
+        seen.sort();
+        assert_eq!(seen, (0..lengths.len()).collect::<Vec<_>>());
+        for batch in &batches {
+            let longest = batch.iter().map(|&i| lengths[i]).max().unwrap();
+            assert!(
+                batch.len() == 1 || batch.len() * longest <= 700,
+                "{batch:?}"
+            );
+        }
+        assert_eq!(edit_distance(&[1, 2, 3], &[1, 3, 4, 5]), 3);
+    }
+}
