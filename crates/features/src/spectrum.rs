@@ -69,6 +69,8 @@ impl PowerSpectrum {
     }
 
     /// Writes the `fft_size/2 + 1` power values of `frame` (exactly `fft_size` samples) to `power`.
+    /// Inlined so that it is compiled for the caller's instruction set.
+    #[inline(always)]
     pub(crate) fn compute(&self, frame: &[f32], buffers: &mut SpectrumBuffers, power: &mut [f32]) {
         for (z, pair) in buffers.packed.iter_mut().zip(frame.chunks_exact(2)) {
             *z = Complex::new(pair[0], pair[1]);
