@@ -125,10 +125,8 @@ impl FeatureExtractor {
         // Pre-emphasised samples of one batch of frames: computed once per batch (frames overlap
         // 2.5-fold) into a buffer small enough to stay in the L1 cache.
         let mut emphasised = vec![0.0f32; (BATCH - 1) * config.frame_shift + length];
-        let mut frame = vec![0.0f32; config.fft_size];
         let mut buffers = self.spectrum.buffers();
-        let mut power = vec![0.0f32; config.fft_size / 2 + 1];
-        let mut power_batch = vec![[0.0f32; BATCH]; power.len()];
+        let mut power_batch = vec![[0.0f32; BATCH]; config.fft_size / 2 + 1];
         let mut log_mel_batch = vec![[0.0f32; BATCH]; config.mel_bins];
         for (batch, rows) in data.chunks_mut(BATCH * dims).enumerate() {
             let frames_here = rows.len() / dims;
@@ -147,18 +145,13 @@ impl FeatureExtractor {
             }
             for lane in 0..frames_here {
                 let start = lane * config.frame_shift;
-                for ((out, &y), &weight) in frame
-                    .iter_mut()
-                    .zip(&emphasised[start..start + length])
-                    .zip(&self.window)
-                {
-                    *out = y * weight;
-                }
-                // frame[length..] stays zero: the padding up to the FFT size.
-                self.spectrum.compute(&frame, &mut buffers, &mut power);
-                for (bin, &value) in power_batch.iter_mut().zip(&power) {
-                    bin[lane] = value;
-                }
+                self.spectrum.compute(
+                    &emphasised[start..start + length],
+                    &self.window,
+                    &mut buffers,
+                    &mut power_batch,
+                    lane,
+                );
             }
             // Lanes past `frames_here` (last batch only) hold stale spectra; they are computed
             // along and never written out.
