@@ -23,6 +23,8 @@ struct Cli {
 enum Command {
     /// Check corpus manifests, or split one into speaker-disjoint train/dev/test.
     Corpus(commands::corpus::CorpusArgs),
+    /// Compute MFCC or log-mel fbank features of one audio file into a safetensors file.
+    Features(commands::features::FeaturesArgs),
     /// Word error rate and flexible WER of hypotheses against a reference manifest.
     Score(commands::score::ScoreArgs),
     /// Build a spelling-variant map from two word-aligned transcript columns.
@@ -56,6 +58,7 @@ fn main() -> ExitCode {
     };
     let result: anyhow::Result<Outcome> = match cli.command {
         Command::Corpus(args) => commands::corpus::run(args),
+        Command::Features(args) => commands::features::run(args),
         Command::Score(args) => commands::score::run(args),
         Command::Variants(args) => commands::variants::run(args),
         Command::Lm(args) => commands::lm::run(args),

@@ -110,12 +110,15 @@ impl FeatureConfig {
 
     /// Parses and validates a TOML config.
     pub fn from_toml_str(text: &str, path: &Path) -> Result<Self, FeatureError> {
-        let config: FeatureConfig =
-            toml::from_str(text).map_err(|error| FeatureError::ConfigSyntax {
-                path: path.to_path_buf(),
-                message: error.to_string(),
-            })?;
-        config.validate()?;
+        let invalid = |message: String| FeatureError::ConfigFile {
+            path: path.to_path_buf(),
+            message,
+        };
+        let config: FeatureConfig = toml::from_str(text)
+            .map_err(|error| invalid(format!("not a valid feature config: {error}")))?;
+        config
+            .validate()
+            .map_err(|error| invalid(error.to_string()))?;
         Ok(config)
     }
 
@@ -329,7 +332,10 @@ mod tests {
             .unwrap_err()
             .to_string();
         assert!(
-            error.contains("high_hz") && error.contains("8000") && error.contains("9000"),
+            error.contains("my.toml")
+                && error.contains("high_hz")
+                && error.contains("8000")
+                && error.contains("9000"),
             "{error}"
         );
         let error = FeatureConfig::from_toml_str("cepstra = 41", Path::new("my.toml"))

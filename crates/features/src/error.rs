@@ -16,12 +16,13 @@ pub enum FeatureError {
         /// The value that was given.
         found: String,
     },
-    /// A TOML config file could not be parsed (the message carries the line and column).
-    #[error("{path}: not a valid feature config: {message}")]
-    ConfigSyntax {
+    /// A TOML config file could not be parsed or holds an invalid setting (the parser's message
+    /// carries the line and column; a setting out of range is named).
+    #[error("{path}: {message}")]
+    ConfigFile {
         /// The config file.
         path: PathBuf,
-        /// The parser's message, with line and column.
+        /// What was wrong: the parser's message with line and column, or the invalid setting.
         message: String,
     },
     /// Reading or writing a file failed.

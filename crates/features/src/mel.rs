@@ -105,32 +105,22 @@ impl MelFilterbank {
             .collect()
     }
 
-    /// Filter energies of one power spectrum (`fft_size/2 + 1` bins) into `energies` (`bins`).
-    pub fn apply(&self, power: &[f32], energies: &mut [f32]) {
+    /// Filter energies of a batch of power spectra into `energies` (`bins` rows). Row k of
+    /// `power` holds bin k of `LANES` spectra side by side, so every step of the sum is one
+    /// vector operation across the batch and no horizontal sums are needed; a single spectrum is
+    /// `LANES = 1`. Inlined so that it is compiled for the caller's instruction set.
+    #[inline(always)]
+    pub fn apply<const LANES: usize>(&self, power: &[[f32; LANES]], energies: &mut [[f32; LANES]]) {
         for ((first_bin, range), energy) in self.filters.iter().zip(energies.iter_mut()) {
-            let weights = &self.weights[range.clone()];
-            *energy = dot(&power[*first_bin..first_bin + weights.len()], weights);
+            let mut sum = [0.0f32; LANES];
+            for (bin, &weight) in power[*first_bin..].iter().zip(&self.weights[range.clone()]) {
+                for (lane, &value) in sum.iter_mut().zip(bin) {
+                    *lane += weight * value;
+                }
+            }
+            *energy = sum;
         }
     }
-}
-
-/// Dot product with eight independent partial sums: a plain `.sum()` of f32 must add in order,
-/// one dependent addition after another, which neither vectorises nor pipelines.
-fn dot(a: &[f32], b: &[f32]) -> f32 {
-    let mut lanes = [0.0f32; 8];
-    let (a_chunks, b_chunks) = (a.chunks_exact(8), b.chunks_exact(8));
-    let tail: f32 = a_chunks
-        .remainder()
-        .iter()
-        .zip(b_chunks.remainder())
-        .map(|(x, y)| x * y)
-        .sum();
-    for (x, y) in a_chunks.zip(b_chunks) {
-        for ((lane, x), y) in lanes.iter_mut().zip(x).zip(y) {
-            *lane += x * y;
-        }
-    }
-    lanes.iter().sum::<f32>() + tail
 }
 
 #[cfg(test)]

@@ -68,11 +68,34 @@ impl PowerSpectrum {
         }
     }
 
-    /// Writes the `fft_size/2 + 1` power values of `frame` (exactly `fft_size` samples) to `power`.
-    pub(crate) fn compute(&self, frame: &[f32], buffers: &mut SpectrumBuffers, power: &mut [f32]) {
-        for (z, pair) in buffers.packed.iter_mut().zip(frame.chunks_exact(2)) {
-            *z = Complex::new(pair[0], pair[1]);
+    /// Power spectrum of `samples`·`window` (equal lengths, at most `fft_size`; zero-padded to
+    /// it): the `fft_size/2 + 1` values go to `power[k][lane]`, so that a batch of spectra can be
+    /// laid out bin by bin. Windowing is fused with packing the FFT input. Inlined so that it is
+    /// compiled for the caller's instruction set.
+    #[inline(always)]
+    pub(crate) fn compute<const LANES: usize>(
+        &self,
+        samples: &[f32],
+        window: &[f32],
+        buffers: &mut SpectrumBuffers,
+        power: &mut [[f32; LANES]],
+        lane: usize,
+    ) {
+        let mut filled = 0;
+        for ((z, x), w) in buffers
+            .packed
+            .iter_mut()
+            .zip(samples.chunks_exact(2))
+            .zip(window.chunks_exact(2))
+        {
+            *z = Complex::new(x[0] * w[0], x[1] * w[1]);
+            filled += 1;
         }
+        if let (Some(x), Some(w)) = (samples.chunks_exact(2).remainder().first(), window.last()) {
+            buffers.packed[filled] = Complex::new(x * w, 0.0);
+            filled += 1;
+        }
+        buffers.packed[filled..].fill(Complex::default());
         self.fft
             .process_with_scratch(&mut buffers.packed, &mut buffers.scratch);
         let (re, im) = (&mut buffers.re, &mut buffers.im);
@@ -92,7 +115,7 @@ impl PowerSpectrum {
             // b = conj(Z[n/2−k]), so its imaginary part is −b_im.
             let x_re = p_re * a_re - p_im * a_im + q_re * b_re + q_im * b_im;
             let x_im = p_re * a_im + p_im * a_re - q_re * b_im + q_im * b_re;
-            *out = x_re * x_re + x_im * x_im;
+            out[lane] = x_re * x_re + x_im * x_im;
         }
     }
 }
@@ -101,9 +124,9 @@ impl PowerSpectrum {
 mod tests {
     use super::*;
 
-    /// The definition: X[k] = Σ x[m]·e^(−2πikm/n), evaluated directly in f64.
-    fn naive_power(frame: &[f32]) -> Vec<f64> {
-        let n = frame.len();
+    /// The definition: X[k] = Σ x[m]·e^(−2πikm/n) over the frame zero-padded to n, evaluated
+    /// directly in f64.
+    fn naive_power(frame: &[f32], n: usize) -> Vec<f64> {
         (0..=n / 2)
             .map(|k| {
                 let (mut re, mut im) = (0.0f64, 0.0f64);
@@ -124,17 +147,21 @@ mod tests {
             let frame: Vec<f32> = (0..n)
                 .map(|m| ((m * m) as f32 * 0.37).sin() + 0.25 * (m as f32 * 1.3).cos() - 0.1)
                 .collect();
-            let spectrum = PowerSpectrum::new(n);
-            let mut buffers = spectrum.buffers();
-            let mut power = vec![0.0; n / 2 + 1];
-            spectrum.compute(&frame, &mut buffers, &mut power);
-            let expected = naive_power(&frame);
-            let scale = expected.iter().cloned().fold(0.0, f64::max);
-            for (k, (&got, &want)) in power.iter().zip(&expected).enumerate() {
-                assert!(
-                    (f64::from(got) - want).abs() <= 1e-5 * scale,
-                    "n={n} k={k}: {got} vs {want}"
-                );
+            // Also frames shorter than the FFT, odd ones included, which are zero-padded.
+            for length in [n, n - 1, n / 2 + 1] {
+                let frame = &frame[..length];
+                let spectrum = PowerSpectrum::new(n);
+                let mut buffers = spectrum.buffers();
+                let mut power = vec![[0.0]; n / 2 + 1];
+                spectrum.compute(frame, &vec![1.0; length], &mut buffers, &mut power, 0);
+                let expected = naive_power(frame, n);
+                let scale = expected.iter().cloned().fold(0.0, f64::max);
+                for (k, (&[got], &want)) in power.iter().zip(&expected).enumerate() {
+                    assert!(
+                        (f64::from(got) - want).abs() <= 1e-5 * scale,
+                        "n={n} length={length} k={k}: {got} vs {want}"
+                    );
+                }
             }
         }
     }
