@@ -1,5 +1,6 @@
 //! End-to-end tests of `isogloss score` and `isogloss variants` on small committed fixtures
-//! (invented dialect sentences in `tests/fixtures/score/`). The expected counts are worked out
+//! (eye-dialect sentences of the project's invented Wendle Valley scenario, regions `fells` and
+//! `marsh`, in `tests/fixtures/score/`). The expected counts are worked out
 //! by hand in the comments; the aligner itself is checked against rapidfuzz in
 //! `crates/score/tests/rapidfuzz_reference.rs`.
 
@@ -60,9 +61,11 @@ fn json_carries_rates_counts_groups_and_intervals() {
         "--json",
     ]);
     let report = json_of(&output);
-    // Hand count over 27 reference words: u01 mir→mer, gsi→gsy (2 S, both variants);
-    // u02 `im` deleted; u03 schneits→schneit, bärg→bärgä (variant); u04 gsy→gsi (variant) and
-    // an inserted `go`; u05 has no hypothesis (4 D); u06 chunnsch→chunsch.
+    // Hand count over 27 reference words (4 + 5 + 5 + 5 + 4 + 4): u01 hoose→hoos, auld→owd
+    // (2 S, both variants in variants.tsv); u02 `the` deleted; u03 wisnae→wis (not a variant:
+    // `wisnae` is not in the map), cauld→cowd (variant); u04 an inserted second `us` and
+    // owd→auld (variant); u05 has no hypothesis (4 D); u06 tha’s→thas (not a variant; the
+    // typographic apostrophe keeps `tha’s` one word). S 6, D 5, I 1: 12 errors; 4 forgiven: 8.
     assert_eq!(report["ref_words"], 27);
     assert!(close(&report["wer"], 12.0 / 27.0), "{}", report["wer"]);
     assert!(
@@ -87,19 +90,41 @@ fn json_carries_rates_counts_groups_and_intervals() {
         assert!(low.as_f64().unwrap() <= point && point <= high.as_f64().unwrap());
     }
     let groups = report["groups"].as_array().unwrap();
-    // nord: u01–u03, 14 words, plain errors 2 + 1 + 2; süd: 13 words, 2 + 4 + 1.
+    // fells: u01–u03, 14 words, plain errors 2 + 1 + 2; marsh: u04–u06, 13 words, plain errors
+    // 2 + 4 + 1, flexible 1 + 4 + 1 (u04 owd→auld forgiven).
     assert_eq!(groups[0]["column"], "dialect");
-    assert_eq!(groups[0]["value"], "nord");
+    assert_eq!(groups[0]["value"], "fells");
     assert_eq!(groups[0]["ref_words"], 14);
     assert!(close(&groups[0]["wer"], 5.0 / 14.0));
     assert!(close(&groups[1]["flexible_wer"], 6.0 / 13.0));
     assert_eq!(groups.len(), 2 + 3, "two dialects, three speakers");
-    let confusions = report["confusions"].as_array().unwrap();
-    assert_eq!(confusions.len(), 6);
-    assert_eq!(confusions[0]["reference"], "bärg");
-    assert_eq!(confusions[0]["variant"], true);
-    assert_eq!(confusions[1]["reference"], "chunnsch");
-    assert_eq!(confusions[1]["variant"], false);
+    assert_eq!(groups[4]["column"], "speaker");
+    assert_eq!(groups[4]["value"], "zoë");
+    assert_eq!(groups[4]["ref_words"], 13);
+    // Every substitution occurs once, so the list is in alphabetical order of the pair.
+    let confusions: Vec<(&str, &str, bool)> = report["confusions"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|c| {
+            (
+                c["reference"].as_str().unwrap(),
+                c["hypothesis"].as_str().unwrap(),
+                c["variant"].as_bool().unwrap(),
+            )
+        })
+        .collect();
+    assert_eq!(
+        confusions,
+        [
+            ("auld", "owd", true),
+            ("cauld", "cowd", true),
+            ("hoose", "hoos", true),
+            ("owd", "auld", true),
+            ("tha’s", "thas", false),
+            ("wisnae", "wis", false),
+        ]
+    );
     assert!(String::from_utf8_lossy(&output.stderr).contains("u05"));
 }
 
@@ -122,7 +147,8 @@ fn compare_reports_a_paired_difference() {
     let second = fixture("hyp_b.tsv");
     let report = json_of(&score(&["--compare", second.to_str().unwrap(), "--json"]));
     let comparison = &report["comparison"];
-    // System 2 errs once (schneits→schneit): 1/27 against 12/27.
+    // System 2 errs once (wisnae→wis): 1/27 against 12/27. Its u05 writes `fête` decomposed
+    // (e + U+0302), which NFC makes equal to the reference's precomposed `fête`.
     assert!(close(&comparison["wer"], 1.0 / 27.0));
     let difference = &comparison["wer_difference"];
     assert!(close(&difference["difference"], -11.0 / 27.0));
@@ -167,7 +193,7 @@ fn markdown_by_default_and_csv_on_request() {
         "{}",
         lines[1]
     );
-    assert!(lines[2].starts_with("dialect,nord,3,14,"), "{}", lines[2]);
+    assert!(lines[2].starts_with("dialect,fells,3,14,"), "{}", lines[2]);
 }
 
 fn assert_fails(output: &Output, expected: &[&str]) {
@@ -238,7 +264,8 @@ fn variants_pairs_word_aligned_rows_and_lists_the_rest() {
     ]);
     assert_eq!(output.status.code(), Some(0));
     let stderr = String::from_utf8_lossy(&output.stderr);
-    // u03 has 5 dialectal words but 6 normalized ones (line 4 of the manifest).
+    // u03 has 5 dialectal words but 6 normalized ones (`wisnae` = `was not`; line 4 of the
+    // manifest).
     assert!(
         stderr.contains("line 4") && stderr.contains("`u03`"),
         "{stderr}"
@@ -247,16 +274,17 @@ fn variants_pairs_word_aligned_rows_and_lists_the_rest() {
     let lines: Vec<&str> = written.lines().collect();
     assert_eq!(lines[0], "variant\tnormalized");
     for pair in [
-        "gsi\tgewesen",
-        "gsy\tgewesen",
-        "mer\twir",
-        "mir\twir",
-        "chue\tkuh",
+        "auld\told",
+        "owd\told",
+        "wis\twas",
+        "were\twas",
+        "faither\tfather",
+        "tha’s\tyou're",
     ] {
         assert!(lines.contains(&pair), "`{pair}` missing in:\n{written}");
     }
     assert!(
-        !written.contains("schneits"),
+        !written.contains("wisnae"),
         "the skipped row must not contribute"
     );
 

@@ -1,10 +1,11 @@
 #!/usr/bin/env python3
 """Reference values for isogloss-score: word-level edit distances from rapidfuzz.
 
-Generates reference/hypothesis pairs of invented words (with capitals, decomposed accents and
-punctuation, so the token rules are exercised too), tokenizes them with an independent Python
-implementation of the DESIGN token rules (NFC via unicodedata, str.lower, Unicode general
-category P* except apostrophes and hyphens -> space, str.split) and records
+Generates reference/hypothesis pairs of words from the project's invented Wendle Valley scenario
+(eye-dialect spellings and English words with diacritics, with capitals, decomposed accents,
+apostrophes, hyphens and punctuation, so the token rules are exercised too), tokenizes them with
+an independent Python implementation of the DESIGN token rules (NFC via unicodedata, str.lower,
+Unicode general category P* except apostrophes and hyphens -> space, str.split) and records
 rapidfuzz.distance.Levenshtein.distance over the token lists.
 
 Run:  /work/venv/bin/python scripts/reference/score_reference.py > tests/fixtures/score/rapidfuzz_wer.json
@@ -21,11 +22,13 @@ from rapidfuzz.distance import Levenshtein
 # Same set as KEPT_PUNCTUATION in crates/score/src/tokens.rs.
 KEPT = {"'", "\u2019", "-", "\u2010", "\u2011"}
 
-# Invented dialect-like words; some written with a combining diaeresis (decomposed).
+# Eye-dialect spellings of the Wendle Valley scenario and English words with diacritics; some
+# written decomposed (e + U+0302 combining circumflex, i + U+0308 combining diaeresis), some with
+# capitals, typographic (U+2019) or ASCII apostrophes, or a hyphen.
 WORDS = [
-    "bärg", "ba\u0308rg", "hüüs", "gsi", "gsy", "hei", "mir", "dahei", "z’dorf", "z'dorf",
-    "bim", "hof", "chue", "chüe", "öppe", "no", "gäll", "ufe", "abe", "s-dach", "wätter",
-    "Gsi", "HEI", "Bärg", "loub", "tröim", "sunne", "schnee", "rägä", "näbu",
+    "fête", "fe\u0302te", "naïve", "nai\u0308ve", "coöperative", "hoose", "hoos", "aboot",
+    "doon", "owd", "auld", "cowd", "telt", "nowt", "yow", "lickle", "de", "dis", "nuffink", "fer",
+    "jus’", "jus'", "an’", "o’er", "fell-side", "mornin’", "Hoose", "OWD", "NAÏVE", "Fête",
 ]
 # Punctuation attached before/after words; all of these are P* in Unicode 14 and later.
 PUNCT_BEFORE = ["", "", "", "«", "(", "¿", "\u201e", "\""]

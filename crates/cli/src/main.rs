@@ -25,6 +25,10 @@ enum Command {
     Score(commands::score::ScoreArgs),
     /// Build a spelling-variant map from two word-aligned transcript columns.
     Variants(commands::variants::VariantsArgs),
+    /// N-gram language models: build, eval, mix, prune.
+    Lm(commands::lm::LmArgs),
+    /// Make pronunciation lexicons (rules, trained G2P) and measure their coverage.
+    Lexicon(commands::lexicon::LexiconArgs),
 }
 
 /// How a command that did not fail outright ended.
@@ -51,6 +55,8 @@ fn main() -> ExitCode {
     let result: anyhow::Result<Outcome> = match cli.command {
         Command::Score(args) => commands::score::run(args),
         Command::Variants(args) => commands::variants::run(args),
+        Command::Lm(args) => commands::lm::run(args),
+        Command::Lexicon(args) => commands::lexicon::run(args),
     };
     match result {
         Ok(Outcome::Done) => ExitCode::SUCCESS,

@@ -13,8 +13,6 @@ use std::time::Instant;
 
 use isogloss_lexicon::graphone::{evaluate, DecodeConfig, G2pConfig, G2pModel};
 use isogloss_lexicon::Lexicon;
-use rand::seq::SliceRandom;
-use rand::SeedableRng;
 
 fn main() -> Result<(), Box<dyn std::error::Error>> {
     let mut args = std::env::args().skip(1);
@@ -30,6 +28,8 @@ fn main() -> Result<(), Box<dyn std::error::Error>> {
             "--seed" => seed = value()?.parse()?,
             "--order" => config.order = value()?.parse()?,
             "--iterations" => config.iterations = value()?.parse()?,
+            "--max-letters" => config.max_letters = value()?.parse()?,
+            "--max-phonemes" => config.max_phonemes = value()?.parse()?,
             "--penalty" => config.multi_symbol_penalty = value()?.parse()?,
             "--beam" => decode.beam = value()?.parse()?,
             _ => path = Some(PathBuf::from(arg)),
@@ -37,21 +37,11 @@ fn main() -> Result<(), Box<dyn std::error::Error>> {
     }
     let path = path.ok_or("usage: g2p_benchmark DICTIONARY.tsv [options]")?;
     let dictionary = Lexicon::read(&path)?;
-    let mut words: Vec<&str> = dictionary.words();
-    words.sort_unstable();
-    words.shuffle(&mut rand_chacha::ChaCha8Rng::seed_from_u64(seed));
-    let test_count = (words.len() as f64 * held_out).round() as usize;
-    let test_words: std::collections::HashSet<&str> = words[..test_count].iter().copied().collect();
-    let (test, train): (Vec<_>, Vec<_>) = dictionary
-        .entries
-        .iter()
-        .cloned()
-        .partition(|(w, _)| test_words.contains(w.as_str()));
-    let (train, test) = (Lexicon::from_entries(train), Lexicon::from_entries(test));
+    let (train, test) = dictionary.split_held_out(held_out, seed);
     println!(
         "{}: {} words; training on {} entries, testing on {} words (seed {seed})",
         path.display(),
-        words.len(),
+        dictionary.words().len(),
         train.entries.len(),
         test.words().len()
     );
@@ -77,10 +67,12 @@ fn main() -> Result<(), Box<dyn std::error::Error>> {
     };
     let result = evaluate(&model, &test, &decode);
     println!(
-        "order {} iterations {} penalty {} beam {}: WER {:.2}%  PER {:.2}%  ({} words, {} reference phonemes); \
+        "order {} iterations {} shape {}x{} penalty {} beam {}: WER {:.2}%  PER {:.2}%  ({} words, {} reference phonemes); \
          training {:.1?}, decoding {:.1?}",
         config.order,
         config.iterations,
+        config.max_letters,
+        config.max_phonemes,
         config.multi_symbol_penalty,
         decode.beam,
         100.0 * result.word_error_rate(),

@@ -42,24 +42,13 @@ impl Lexicon {
     /// A lexicon from `(word, units)` pairs; exact duplicate entries are kept once and entries
     /// with an empty word or no units are left out (they could never be decoded).
     pub fn from_entries(entries: impl IntoIterator<Item = (String, Vec<String>)>) -> Lexicon {
-        let mut lexicon = Lexicon::default();
-        for (word, units) in entries {
-            lexicon.add(word, units);
-        }
-        lexicon
-    }
-
-    /// Adds one entry unless it is already there or unusable (empty word or no units); returns
-    /// whether it was added.
-    pub fn add(&mut self, word: String, units: Vec<String>) -> bool {
-        if word.is_empty() || units.is_empty() {
-            return false;
-        }
-        if self.entries.iter().any(|(w, u)| *w == word && *u == units) {
-            return false;
-        }
-        self.entries.push((word, units));
-        true
+        let mut seen = HashSet::new();
+        let entries = entries
+            .into_iter()
+            .filter(|(word, units)| !word.is_empty() && !units.is_empty())
+            .filter(|entry| seen.insert(entry.clone()))
+            .collect();
+        Lexicon { entries }
     }
 
     /// Reads a lexicon file. Every non-blank line must be `word<TAB>units` with a non-empty word
@@ -155,6 +144,24 @@ impl Lexicon {
         index
     }
 
+    /// Splits the lexicon by word into `(rest, held_out)`: a random `fraction` of the distinct
+    /// words (rounded), all their pronunciations together, chosen reproducibly from `seed`.
+    pub fn split_held_out(&self, fraction: f64, seed: u64) -> (Lexicon, Lexicon) {
+        use rand::seq::SliceRandom;
+        use rand::SeedableRng;
+        let mut words = self.words();
+        words.sort_unstable();
+        words.shuffle(&mut rand_chacha::ChaCha8Rng::seed_from_u64(seed));
+        let count = (words.len() as f64 * fraction.clamp(0.0, 1.0)).round() as usize;
+        let held: HashSet<&str> = words[..count].iter().copied().collect();
+        let (held_out, rest): (Vec<_>, Vec<_>) = self
+            .entries
+            .iter()
+            .cloned()
+            .partition(|(word, _)| held.contains(word.as_str()));
+        (Lexicon { entries: rest }, Lexicon { entries: held_out })
+    }
+
     /// A grapheme lexicon for grapheme-unit acoustic models: each word's units are its
     /// [`letters`], followed by `boundary` when given (the word-boundary unit, e.g. `<wb>`).
     ///
@@ -243,8 +250,8 @@ mod tests {
 
     #[test]
     fn grapheme_lexicon_keeps_apostrophes_and_hyphens_and_composes_letters() {
-        // "a" + U+0308 COMBINING DIAERESIS composes to one letter "ä" under NFC (Unicode UAX #15).
-        let lexicon = Lexicon::graphemes(["goin'", "owd-un", "ba\u{308}r", "goin'", ""], None);
+        // "i" + U+0308 COMBINING DIAERESIS composes to one letter "ï" under NFC (Unicode UAX #15).
+        let lexicon = Lexicon::graphemes(["goin'", "owd-un", "nai\u{308}ve", "goin'", ""], None);
         assert_eq!(lexicon.entries.len(), 3);
         assert_eq!(
             lexicon.pronunciations("goin'"),
@@ -255,8 +262,8 @@ mod tests {
             [strings(&["o", "w", "d", "-", "u", "n"])]
         );
         assert_eq!(
-            lexicon.pronunciations("ba\u{308}r"),
-            [strings(&["b", "ä", "r"])]
+            lexicon.pronunciations("nai\u{308}ve"),
+            [strings(&["n", "a", "ï", "v", "e"])]
         );
         let with_boundary = Lexicon::graphemes(["an"], Some("<wb>"));
         assert_eq!(

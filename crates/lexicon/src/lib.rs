@@ -12,8 +12,9 @@
 //!   phonemes; normalized writing does not, so pronunciations come from a dictionary and a model
 //!   trained on it ([`graphone::G2pModel`]) fills the gaps. Both report words they cannot
 //!   handle instead of dropping them.
-//! - **The graphone n-gram sits behind a small trait** ([`graphone::GraphoneLm`]) so that the
-//!   alignment and the decoder do not depend on how the n-gram is estimated.
+//! - **The graphone n-gram is the LM crate's**: the same modified Kneser-Ney estimation and
+//!   back-off model the decoder's word LM uses, behind a small trait
+//!   ([`graphone::GraphoneLm`]) that the beam search is written against.
 //! - **Letters are Unicode scalar values after NFC composition** (see
 //!   [`Lexicon::graphemes`]): a precomposed `ä` and `a` + combining diaeresis are one letter.
 //!
@@ -31,6 +32,7 @@ pub mod coverage;
 pub mod graphone;
 mod lexicon;
 pub mod rules;
+pub mod trie;
 
 pub use coverage::Coverage;
 pub use lexicon::{letters, read_word_list, Lexicon};
@@ -41,6 +43,10 @@ pub enum LexiconError {
     /// A tab-separated file could not be read (the message names the file and line).
     #[error(transparent)]
     Table(#[from] isogloss_corpus::CorpusError),
+    /// The n-gram part of a G2P model file is not valid ARPA text (the message names the file
+    /// and line).
+    #[error(transparent)]
+    Ngram(#[from] isogloss_lm::LmError),
     /// A file could not be read or written.
     #[error("{path}: {source}")]
     Io {

@@ -373,12 +373,12 @@ impl RuleSet {
         &self,
         words: impl IntoIterator<Item = &'a str>,
     ) -> (Lexicon, Vec<UncoveredWord>) {
-        let mut lexicon = Lexicon::default();
+        let mut entries = Vec::new();
         let mut uncovered = Vec::new();
         for word in words {
             match self.pronounce(word) {
                 Ok(phonemes) => {
-                    lexicon.add(word.to_string(), phonemes);
+                    entries.push((word.to_string(), phonemes));
                 }
                 Err(failure) => uncovered.push(UncoveredWord {
                     word: word.to_string(),
@@ -386,7 +386,7 @@ impl RuleSet {
                 }),
             }
         }
-        (lexicon, uncovered)
+        (Lexicon::from_entries(entries), uncovered)
     }
 }
 

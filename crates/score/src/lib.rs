@@ -18,11 +18,11 @@
 //! ```
 //! use isogloss_score::{align, tokenize, TokenRules, VariantMap};
 //! let rules = TokenRules::default();
-//! let reference = tokenize("Mir hei gsi dahei.", &rules);
-//! let hypothesis = tokenize("mir hend gsy", &rules);
+//! let reference = tokenize("We mended owd nets.", &rules);
+//! let hypothesis = tokenize("we minded auld", &rules);
 //! let mut variants = VariantMap::new();
-//! variants.insert("gsi", "gewesen");
-//! variants.insert("gsy", "gewesen");
+//! variants.insert("owd", "old");
+//! variants.insert("auld", "old");
 //! let plain = align(&reference, &hypothesis, &VariantMap::new()).counts();
 //! let flexible = align(&reference, &hypothesis, &variants).counts();
 //! assert_eq!((plain.errors(), flexible.errors()), (3, 2));

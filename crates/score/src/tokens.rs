@@ -7,8 +7,8 @@ use unicode_properties::{GeneralCategoryGroup, UnicodeGeneralCategory};
 /// Which parts of the token rules apply. `Default` is the contract: everything on.
 #[derive(Debug, Clone, Copy, PartialEq, Eq, serde::Serialize, serde::Deserialize)]
 pub struct TokenRules {
-    /// Compose to Unicode normalization form C, so that `ä` typed as `a` + combining diaeresis
-    /// and `ä` typed precomposed are one word.
+    /// Compose to Unicode normalization form C, so that `ï` typed as `i` + combining diaeresis
+    /// and `ï` typed precomposed are one word.
     pub nfc: bool,
     /// Fold to lower case (Unicode full case mapping).
     pub lowercase: bool,
@@ -29,7 +29,7 @@ impl Default for TokenRules {
 /// Apostrophes and hyphens that stay inside words. Besides the ASCII apostrophe and
 /// hyphen-minus we keep their typographic forms (U+2019 as typed by word processors for an
 /// apostrophe, U+2010 hyphen, U+2011 non-breaking hyphen), because dialect transcripts are often
-/// written in word processors and an elision like `z’Dorf` must not split into two words.
+/// written in word processors and an elision like `o’er` must not split into two words.
 /// U+02BC (modifier letter apostrophe) is a letter, not punctuation, so it stays anyway.
 const KEPT_PUNCTUATION: [char; 5] = ['\'', '\u{2019}', '-', '\u{2010}', '\u{2011}'];
 
@@ -58,8 +58,8 @@ pub fn normalize_word(word: &str, rules: &TokenRules) -> String {
 ///
 /// ```
 /// use isogloss_score::{tokenize, TokenRules};
-/// let words = tokenize("Grüezi, z’Dorf «am» Bärg-Hang!", &TokenRules::default());
-/// assert_eq!(words, ["grüezi", "z’dorf", "am", "bärg-hang"]);
+/// let words = tokenize("Fête, mornin’ o’er «at» Fell-Side!", &TokenRules::default());
+/// assert_eq!(words, ["fête", "mornin’", "o’er", "at", "fell-side"]);
 /// ```
 pub fn tokenize(text: &str, rules: &TokenRules) -> Vec<String> {
     let mut text = normalize_word(text, rules);
@@ -78,12 +78,12 @@ mod tests {
 
     #[test]
     fn default_rules_fold_case_compose_and_split_on_punctuation() {
-        // "a" + U+0308 combining diaeresis composes to U+00E4 under NFC (Unicode Standard Annex #15).
+        // "i" + U+0308 combining diaeresis composes to U+00EF under NFC (Unicode Standard Annex #15).
         let words = tokenize(
-            "Ba\u{308}rg. «Hüüs»;  dr-Hof's\tu¿q",
+            "Nai\u{308}ve. «Hoose»;  fell-side's\tu¿q",
             &TokenRules::default(),
         );
-        assert_eq!(words, ["b\u{e4}rg", "hüüs", "dr-hof's", "u", "q"]);
+        assert_eq!(words, ["na\u{ef}ve", "hoose", "fell-side's", "u", "q"]);
     }
 
     #[test]
@@ -94,8 +94,8 @@ mod tests {
             strip_punctuation: false,
         };
         assert_eq!(
-            tokenize("Ba\u{308}rg, Hof", &rules),
-            ["Ba\u{308}rg,", "Hof"]
+            tokenize("Nai\u{308}ve, Hoose", &rules),
+            ["Nai\u{308}ve,", "Hoose"]
         );
     }
 

@@ -242,17 +242,19 @@ mod tests {
     #[test]
     fn words_sharing_a_normalized_form_are_variants() {
         let mut map = VariantMap::new();
-        map.insert("gsi", "gewesen");
-        map.insert("gsy", "gewesen");
-        map.insert("hei", "haben");
-        map.insert("hei", "heim");
-        assert_eq!(map.compare("gsi", "gsy"), Match::Variant);
-        assert_eq!(map.compare("gsi", "gewesen"), Match::Variant);
-        assert_eq!(map.compare("gsi", "gsi"), Match::Exact);
-        assert_eq!(map.compare("gsi", "hei"), Match::Different);
-        assert_eq!(map.compare("heim", "hei"), Match::Variant);
-        assert_eq!(map.compare("unknown", "gsi"), Match::Different);
-        assert_eq!(map.normalized_forms_of("hei"), ["haben", "heim"]);
+        map.insert("owd", "old");
+        map.insert("auld", "old");
+        // `ar` is written for `yes` in one region and for `our` in another.
+        map.insert("ar", "yes");
+        map.insert("ar", "our");
+        assert_eq!(map.compare("owd", "auld"), Match::Variant);
+        assert_eq!(map.compare("owd", "old"), Match::Variant);
+        assert_eq!(map.compare("owd", "owd"), Match::Exact);
+        assert_eq!(map.compare("owd", "ar"), Match::Different);
+        assert_eq!(map.compare("our", "ar"), Match::Variant);
+        assert_eq!(map.compare("unknown", "owd"), Match::Different);
+        // In the order the normalized forms were first inserted.
+        assert_eq!(map.normalized_forms_of("ar"), ["yes", "our"]);
     }
 
     #[test]
@@ -261,18 +263,18 @@ mod tests {
         let path = temp_file(
             &dir,
             "v.tsv",
-            "variant\tnormalized\nGSI\tGewesen\n\nz’Dorf\tim-dorf\n",
+            "variant\tnormalized\nOWD\tOld\n\nLi’l-Un\tlittle-one\n",
         );
         let map = VariantMap::read(&path, &TokenRules::default()).unwrap();
-        assert_eq!(map.compare("gsi", "gewesen"), Match::Variant);
-        assert_eq!(map.compare("z’dorf", "im-dorf"), Match::Variant);
+        assert_eq!(map.compare("owd", "old"), Match::Variant);
+        assert_eq!(map.compare("li’l-un", "little-one"), Match::Variant);
         assert_eq!(map.normalized_forms(), 2);
     }
 
     #[test]
     fn a_variants_file_without_header_is_refused() {
         let dir = tempfile::tempdir().unwrap();
-        let path = temp_file(&dir, "v.tsv", "gsi\tgewesen\nhei\thaben\n");
+        let path = temp_file(&dir, "v.tsv", "owd\told\nar\tyes\n");
         let message = VariantMap::read(&path, &TokenRules::default())
             .unwrap_err()
             .to_string();
@@ -280,7 +282,7 @@ mod tests {
             message.contains("v.tsv")
                 && message.contains("line 1")
                 && message.contains("variant<TAB>normalized")
-                && message.contains("gsi<TAB>gewesen"),
+                && message.contains("owd<TAB>old"),
             "{message}"
         );
     }
@@ -288,12 +290,12 @@ mod tests {
     #[test]
     fn a_field_with_two_words_names_its_line() {
         let dir = tempfile::tempdir().unwrap();
-        let path = temp_file(&dir, "v.tsv", "variant\tnormalized\na\tb\nim dorf\tdorf\n");
+        let path = temp_file(&dir, "v.tsv", "variant\tnormalized\na\tb\ndoon by\tdown\n");
         let message = VariantMap::read(&path, &TokenRules::default())
             .unwrap_err()
             .to_string();
         assert!(
-            message.contains("line 3") && message.contains("`im dorf`"),
+            message.contains("line 3") && message.contains("`doon by`"),
             "{message}"
         );
     }
@@ -304,20 +306,20 @@ mod tests {
             TranscriptPair {
                 id: "u1",
                 line: 2,
-                from: "Mir hei gsi",
-                to: "wir haben gewesen",
+                from: "Me owd hoose",
+                to: "my old house",
             },
             TranscriptPair {
                 id: "u2",
                 line: 3,
-                from: "gsi dahei",
-                to: "gewesen zu hause",
+                from: "t’owd hoose",
+                to: "the old house",
             },
             TranscriptPair {
                 id: "u3",
                 line: 4,
-                from: "hei gsy",
-                to: "haben gewesen",
+                from: "auld hoose",
+                to: "old house",
             },
         ];
         let table = VariantTable::build(rows, &TokenRules::default());
@@ -333,16 +335,17 @@ mod tests {
         );
         assert!(table
             .pairs
-            .contains(&("gsy".to_string(), "gewesen".to_string())));
+            .contains(&("auld".to_string(), "old".to_string())));
+        // me→my, owd→old, hoose→house (twice), auld→old.
         assert_eq!(table.pairs.len(), 4);
         let map = table.to_map();
-        assert_eq!(map.compare("gsi", "gsy"), Match::Variant);
+        assert_eq!(map.compare("owd", "auld"), Match::Variant);
 
         let dir = tempfile::tempdir().unwrap();
         let path = dir.path().join("variants.tsv");
         table.write(&path).unwrap();
         let reread = VariantMap::read(&path, &TokenRules::default()).unwrap();
-        assert_eq!(reread.compare("gsi", "gsy"), Match::Variant);
+        assert_eq!(reread.compare("owd", "auld"), Match::Variant);
         assert_eq!(reread.words(), map.words());
     }
 }

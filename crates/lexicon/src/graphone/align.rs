@@ -152,8 +152,9 @@ impl Aligner {
                     for (s, &(a, b)) in self.shapes.iter().enumerate() {
                         let id = cells[(i * width + j) * shapes + s];
                         if id != u32::MAX {
-                            sum +=
-                                self.probabilities[id as usize] * backward[(i + a) * width + j + b];
+                            sum += self.probabilities[id as usize]
+                                * self.shape_weights[s]
+                                * backward[(i + a) * width + j + b];
                         }
                     }
                     backward[i * width + j] = sum;

@@ -3,8 +3,9 @@
 //!
 //! Training: letters and phonemes of every dictionary entry are aligned into graphones (pairs
 //! of 0–2 letters and 0–2 phonemes, never both empty) by EM over a unigram graphone model
-//! ([`align`]); the best segmentation of each entry is then modelled by an n-gram over graphones
-//! ([`ngram`], interpolated modified Kneser-Ney). Decoding: a beam search over the letters of a
+//! ([`align`]); the best segmentation of each entry is then modelled by an n-gram over graphones,
+//! estimated by the LM crate (interpolated modified Kneser-Ney, the project's LM conventions:
+//! a word is a sentence, its graphones the tokens). Decoding: a beam search over the letters of a
 //! new word extends each hypothesis by every graphone whose letters come next, scores it with
 //! the n-gram and keeps the best; hypotheses that reach the same n-gram state with the same
 //! phonemes are merged by adding their probabilities, so a pronunciation's score sums over its
@@ -14,21 +15,71 @@
 //! give the same model file, byte for byte.
 
 pub mod align;
-pub mod ngram;
 
 use std::collections::{HashMap, HashSet};
 use std::fmt::Write as _;
 use std::path::Path;
 
 use align::{Aligner, GraphoneKey, Pair, Shape, SymbolId};
-use ngram::{BackoffNgram, GraphoneLm, TokenId};
+use isogloss_lm::{estimate, ArpaModel, LmState, NgramCounts, Smoothing, WordIndex};
 
 use crate::{letters, Lexicon, LexiconError};
+
+/// A graphone's position in a model's inventory.
+pub type TokenId = u32;
+
+/// What the decoder needs from a graphone n-gram; scores are log10 probabilities. The beam
+/// search is written against this, not against a particular model.
+pub trait GraphoneLm {
+    /// The history the next score depends on.
+    type State: Clone + Eq + std::hash::Hash;
+    /// The state at the start of a word (context `<s>`).
+    fn start(&self) -> Self::State;
+    /// log10 P(graphone | state) and the state after it.
+    fn score(&self, state: &Self::State, graphone: TokenId) -> (f32, Self::State);
+    /// log10 P(`</s>` | state).
+    fn end(&self, state: &Self::State) -> f32;
+}
+
+/// The graphone n-gram as an LM-crate back-off model whose words are graphone ids (`"17"`).
+#[derive(Debug, Clone)]
+struct GraphoneNgram {
+    model: ArpaModel,
+    /// The model's word index of every graphone id.
+    words: Vec<WordIndex>,
+}
+
+impl GraphoneNgram {
+    /// Wraps a model; `None` when some graphone is missing from its vocabulary.
+    fn new(model: ArpaModel, graphones: usize) -> Option<GraphoneNgram> {
+        let words = (0..graphones)
+            .map(|id| model.word_index(&id.to_string()))
+            .collect::<Option<Vec<_>>>()?;
+        model.sentence_end_word()?;
+        Some(GraphoneNgram { model, words })
+    }
+}
+
+impl GraphoneLm for GraphoneNgram {
+    type State = LmState;
+
+    fn start(&self) -> LmState {
+        self.model.sentence_start()
+    }
+
+    fn score(&self, state: &LmState, graphone: TokenId) -> (f32, LmState) {
+        self.model.score(state, self.words[graphone as usize])
+    }
+
+    fn end(&self, state: &LmState) -> f32 {
+        self.model.sentence_end(state)
+    }
+}
 
 /// Training settings.
 #[derive(Debug, Clone, Copy, PartialEq)]
 pub struct G2pConfig {
-    /// N-gram order over graphones (1 to [`ngram::MAX_ORDER`]).
+    /// N-gram order over graphones (1 to [`isogloss_lm::MAX_ORDER`]).
     pub order: usize,
     /// EM iterations for the alignment.
     pub iterations: usize,
@@ -128,10 +179,10 @@ impl std::fmt::Display for G2pFailure {
 }
 
 /// A trained joint-sequence model.
-#[derive(Debug, Clone, PartialEq)]
+#[derive(Debug, Clone)]
 pub struct G2pModel {
     graphones: Vec<Graphone>,
-    ngram: BackoffNgram,
+    ngram: GraphoneNgram,
     /// Letter sequence (0–2 letters) → graphone ids that spell it.
     by_letters: HashMap<Vec<String>, Vec<TokenId>>,
     /// Every letter some graphone spells.
@@ -191,10 +242,10 @@ impl G2pModel {
         config: &G2pConfig,
         progress: &mut dyn FnMut(TrainingProgress),
     ) -> Result<(G2pModel, Vec<String>), LexiconError> {
-        if config.order == 0 || config.order > ngram::MAX_ORDER {
+        if config.order == 0 || config.order > isogloss_lm::MAX_ORDER {
             return Err(LexiconError::Parameter(format!(
                 "expected an n-gram order from 1 to {}, found {}",
-                ngram::MAX_ORDER,
+                isogloss_lm::MAX_ORDER,
                 config.order
             )));
         }
@@ -286,17 +337,30 @@ impl G2pModel {
                 graphones.len()
             ),
         });
-        let vocabulary = graphones.len() as u32 + 1;
-        let ngram = BackoffNgram::estimate(&sequences, vocabulary, config.order);
+        let sentences = sequences
+            .iter()
+            .map(|sequence| sequence.iter().map(|id| id.to_string()).collect());
+        let counts = NgramCounts::from_sentences(sentences, config.order)
+            .map_err(|e| LexiconError::Parameter(format!("graphone n-gram counts: {e}")))?;
+        let estimated = estimate(&counts, Smoothing::ModifiedKneserNey)
+            .map_err(|e| LexiconError::Parameter(format!("graphone n-gram: {e}")))?;
+        let ngram = GraphoneNgram::new(estimated.model, graphones.len()).ok_or_else(|| {
+            LexiconError::Parameter("the graphone n-gram lacks a graphone or `</s>`".into())
+        })?;
+        let mut message = format!("estimated the {}-gram over graphones", config.order);
+        for warning in &estimated.warnings {
+            message.push_str("; ");
+            message.push_str(warning);
+        }
         progress(TrainingProgress {
             step: steps,
             steps,
-            message: format!("estimated the {}-gram over graphones", config.order),
+            message,
         });
         Ok((G2pModel::assemble(graphones, ngram), skipped))
     }
 
-    fn assemble(graphones: Vec<Graphone>, ngram: BackoffNgram) -> G2pModel {
+    fn assemble(graphones: Vec<Graphone>, ngram: GraphoneNgram) -> G2pModel {
         let mut by_letters: HashMap<Vec<String>, Vec<TokenId>> = HashMap::new();
         for (id, graphone) in graphones.iter().enumerate() {
             by_letters
@@ -341,7 +405,7 @@ impl G2pModel {
 
     /// The n-gram order.
     pub fn order(&self) -> usize {
-        self.ngram.order()
+        self.ngram.model.order()
     }
 
     /// The `config.nbest` most probable pronunciations of `word`, best first.
@@ -356,7 +420,7 @@ impl G2pModel {
         let letters = word_letters(word);
         let mut unseen: Vec<String> = letters
             .iter()
-            .filter(|l| !self.by_letters.keys().any(|k| k.iter().any(|x| x == *l)))
+            .filter(|l| !self.known_letters.contains(*l))
             .cloned()
             .collect();
         if !unseen.is_empty() {
@@ -385,13 +449,14 @@ impl G2pModel {
             .collect())
     }
 
-    /// Writes the model as one UTF-8 text file: the graphone inventory, then the n-gram in a
-    /// back-off layout like the ARPA format's, with graphone ids as tokens.
+    /// Writes the model as one UTF-8 text file: a header and the graphone inventory (a graphone's
+    /// id is its position, `letters<TAB>phonemes`, symbols space-separated), then the n-gram in
+    /// ARPA back-off format with graphone ids as words. ARPA readers skip everything before
+    /// `\data\`, so the n-gram part reads as it is.
     pub fn write(&self, path: &Path) -> Result<(), LexiconError> {
         let mut text = String::new();
-        text.push_str("# isogloss joint-sequence grapheme-to-phoneme model\n");
+        text.push_str("isogloss joint-sequence grapheme-to-phoneme model\n");
         let _ = writeln!(text, "format\t1");
-        let _ = writeln!(text, "order\t{}", self.ngram.order());
         let _ = writeln!(text, "graphones\t{}", self.graphones.len());
         for graphone in &self.graphones {
             let _ = writeln!(
@@ -401,21 +466,15 @@ impl G2pModel {
                 graphone.phonemes.join(" ")
             );
         }
-        let end = self.graphones.len() as TokenId;
-        let token = |t: &TokenId| match *t {
-            t if t == end => "</s>".to_string(),
-            t if t == end + 1 => "<s>".to_string(),
-            t => t.to_string(),
-        };
-        for n in 1..=self.ngram.order() {
-            let rows = self.ngram.ngrams(n);
-            let _ = writeln!(text, "ngrams\t{n}\t{}", rows.len());
-            for (tokens, p, b) in rows {
-                let tokens: Vec<String> = tokens.iter().map(token).collect();
-                let _ = writeln!(text, "{}\t{p}\t{b}", tokens.join(" "));
-            }
-        }
-        isogloss_corpus::tsv::write_atomically(path, text.as_bytes())?;
+        let mut bytes = text.into_bytes();
+        self.ngram
+            .model
+            .write_arpa_to(&mut bytes)
+            .map_err(|source| LexiconError::Io {
+                path: path.to_path_buf(),
+                source,
+            })?;
+        isogloss_corpus::tsv::write_atomically(path, &bytes)?;
         Ok(())
     }
 
@@ -427,63 +486,46 @@ impl G2pModel {
             line,
             message,
         };
-        let mut lines = text
-            .lines()
-            .enumerate()
-            .map(|(i, l)| (i + 1, l.trim_end_matches('\r')))
-            .filter(|(_, l)| !l.starts_with('#'));
-        let mut next = |what: &str| {
-            lines.next().ok_or_else(|| {
-                error(
-                    text.lines().count(),
-                    format!("expected {what}, found the end of the file"),
-                )
-            })
-        };
-        let mut header = |name: &str| -> Result<(usize, usize), LexiconError> {
-            let (line, content) = next(&format!("a `{name}` line"))?;
-            let mut fields = content.split('\t');
-            if fields.next() != Some(name) {
-                return Err(error(
-                    line,
-                    format!("expected a `{name}<TAB>number` line, found `{content}`"),
-                ));
-            }
-            fields
-                .next()
-                .and_then(|v| v.parse().ok())
-                .map(|v| (line, v))
-                .ok_or_else(|| {
+        let lines: Vec<&str> = text.lines().map(|l| l.trim_end_matches('\r')).collect();
+        let field = |index: usize, name: &str| -> Result<usize, LexiconError> {
+            let line = lines.get(index).copied().unwrap_or("");
+            match line.split_once('\t') {
+                Some((key, value)) if key == name => value.trim().parse().map_err(|_| {
                     error(
-                        line,
-                        format!("expected a number after `{name}`, found `{content}`"),
+                        index + 1,
+                        format!("expected a number after `{name}`, found `{value}`"),
                     )
-                })
+                }),
+                _ => Err(error(
+                    index + 1,
+                    format!("expected a `{name}<TAB>number` line, found `{line}`"),
+                )),
+            }
         };
-        let (line, format) = header("format")?;
+        if lines.first().copied() != Some("isogloss joint-sequence grapheme-to-phoneme model") {
+            return Err(error(
+                1,
+                "expected the line `isogloss joint-sequence grapheme-to-phoneme model` \
+                 (is this a G2P model file?)"
+                    .into(),
+            ));
+        }
+        let format = field(1, "format")?;
         if format != 1 {
-            return Err(error(
-                line,
-                format!("expected model format 1, found {format}"),
-            ));
+            return Err(error(2, format!("expected model format 1, found {format}")));
         }
-        let (line, order) = header("order")?;
-        if order == 0 || order > ngram::MAX_ORDER {
-            return Err(error(
-                line,
-                format!(
-                    "expected an order from 1 to {}, found {order}",
-                    ngram::MAX_ORDER
-                ),
-            ));
-        }
-        let (_, count) = header("graphones")?;
+        let count = field(2, "graphones")?;
         let mut graphones = Vec::with_capacity(count);
-        for _ in 0..count {
-            let (line, content) = next("a graphone line")?;
+        for index in 3..3 + count {
+            let Some(content) = lines.get(index) else {
+                return Err(error(
+                    index + 1,
+                    format!("expected {count} graphone lines, found the end of the file"),
+                ));
+            };
             let (letters, phonemes) = content.split_once('\t').ok_or_else(|| {
                 error(
-                    line,
+                    index + 1,
                     format!("expected `letters<TAB>phonemes`, found `{content}`"),
                 )
             })?;
@@ -497,7 +539,7 @@ impl G2pModel {
                 || graphone.letters.len() + graphone.phonemes.len() == 0
             {
                 return Err(error(
-                    line,
+                    index + 1,
                     format!(
                         "expected 0–2 letters and 0–2 phonemes, not both none, found `{content}`"
                     ),
@@ -505,53 +547,15 @@ impl G2pModel {
             }
             graphones.push(graphone);
         }
-        let end = graphones.len() as TokenId;
-        let mut rows = Vec::new();
-        for n in 1..=order {
-            let (line, content) = next("an `ngrams` line")?;
-            let fields: Vec<&str> = content.split('\t').collect();
-            let size: usize = match fields.as_slice() {
-                ["ngrams", m, size] if m.parse() == Ok(n) => size.parse().map_err(|_| {
-                    error(
-                        line,
-                        format!("expected a count of {n}-grams, found `{size}`"),
-                    )
-                })?,
-                _ => {
-                    return Err(error(
-                        line,
-                        format!("expected `ngrams<TAB>{n}<TAB>count`, found `{content}`"),
-                    ))
-                }
-            };
-            for _ in 0..size {
-                let (line, content) = next(&format!("a {n}-gram line"))?;
-                let bad = || {
-                    error(line, format!("expected {n} tokens, a log10 probability and a log10 back-off weight, found `{content}`"))
-                };
-                let fields: Vec<&str> = content.split('\t').collect();
-                let [tokens, p, b] = fields.as_slice() else {
-                    return Err(bad());
-                };
-                let tokens: Vec<TokenId> = tokens
-                    .split(' ')
-                    .map(|t| match t {
-                        "</s>" => Some(end),
-                        "<s>" => Some(end + 1),
-                        t => t.parse().ok().filter(|&id: &TokenId| id < end),
-                    })
-                    .collect::<Option<_>>()
-                    .ok_or_else(bad)?;
-                if tokens.len() != n {
-                    return Err(bad());
-                }
-                let p: f32 = p.parse().map_err(|_| bad())?;
-                let b: f32 = b.parse().map_err(|_| bad())?;
-                rows.push((tokens, p, b));
-            }
-        }
-        let ngram = BackoffNgram::from_ngrams(order, end + 1, rows)
-            .ok_or_else(|| error(1, "expected n-grams no longer than the order".into()))?;
+        // The whole text goes to the ARPA reader so that its line numbers are the file's.
+        let model = ArpaModel::read_from(text.as_bytes(), path)?;
+        let ngram = GraphoneNgram::new(model, graphones.len()).ok_or_else(|| {
+            LexiconError::Parameter(format!(
+                "{}: expected the n-gram to list all {} graphones and `</s>`, found fewer",
+                path.display(),
+                graphones.len()
+            ))
+        })?;
         Ok(G2pModel::assemble(graphones, ngram))
     }
 }
@@ -881,12 +885,26 @@ mod tests {
         let path = dir.path().join("model.g2p");
         std::fs::write(
             &path,
-            "format\t1\norder\t2\ngraphones\t1\nc\tK\nngrams\t1\t2\n0\t-0.3\t0\n",
+            "isogloss joint-sequence grapheme-to-phoneme model\nformat\t1\ngraphones\t2\nc\tK\n",
         )
         .unwrap();
         let error = G2pModel::read(&path).unwrap_err().to_string();
         assert!(error.contains("model.g2p"), "{error}");
         assert!(error.contains("end of the file"), "{error}");
+
+        // A damaged n-gram part: the ARPA reader names the line of the whole file.
+        let (model, _) =
+            G2pModel::train(&toy_dictionary(), &G2pConfig::default(), &mut |_| {}).unwrap();
+        model.write(&path).unwrap();
+        let text = std::fs::read_to_string(&path).unwrap();
+        let damaged_line = text
+            .lines()
+            .position(|l| l.starts_with("ngram 1="))
+            .unwrap()
+            + 1;
+        std::fs::write(&path, text.replacen("ngram 1=", "ngram 1=x", 1)).unwrap();
+        let error = G2pModel::read(&path).unwrap_err().to_string();
+        assert!(error.contains(&format!(":{damaged_line}:")), "{error}");
     }
 
     #[test]
