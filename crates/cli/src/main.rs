@@ -21,6 +21,8 @@ struct Cli {
 
 #[derive(Subcommand)]
 enum Command {
+    /// Check corpus manifests, or split one into speaker-disjoint train/dev/test.
+    Corpus(commands::corpus::CorpusArgs),
     /// Word error rate and flexible WER of hypotheses against a reference manifest.
     Score(commands::score::ScoreArgs),
     /// Build a spelling-variant map from two word-aligned transcript columns.
@@ -53,6 +55,7 @@ fn main() -> ExitCode {
         }
     };
     let result: anyhow::Result<Outcome> = match cli.command {
+        Command::Corpus(args) => commands::corpus::run(args),
         Command::Score(args) => commands::score::run(args),
         Command::Variants(args) => commands::variants::run(args),
         Command::Lm(args) => commands::lm::run(args),

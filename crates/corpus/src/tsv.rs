@@ -29,52 +29,104 @@ pub struct Table {
 
 impl Table {
     /// Reads a table whose first line is a header. Every row must have as many fields as the
-    /// header; a trailing `\r` (Windows line ends) is removed.
+    /// header; a trailing `\r` (Windows line ends) is removed. Stops at the first bad row.
     pub fn read_with_header(path: &Path) -> Result<Table, CorpusError> {
-        let text = read_utf8(path)?;
-        let mut lines = text.lines().enumerate();
-        let header: Vec<String> = match lines.next() {
-            Some((_, line)) if !line.trim().is_empty() => line
-                .trim_end_matches('\r')
-                .split('\t')
-                .map(|f| f.trim().to_string())
-                .collect(),
-            _ => return Err(CorpusError::Format {
-                path: path.to_path_buf(),
-                line: 1,
-                message:
-                    "expected a header row naming the columns, found an empty line or an empty file"
-                        .into(),
-            }),
+        let (table, mut problems) = Table::read_with_header_collecting(path)?;
+        match problems.is_empty() {
+            true => Ok(table),
+            false => Err(problems.swap_remove(0)),
+        }
+    }
+
+    /// Reads a table whose first line is a header, skipping the rows that cannot be read (not
+    /// UTF-8, wrong number of fields) and returning a line-numbered error for each, so that a
+    /// validator can list every problem at once. Only an unreadable file or a missing header
+    /// row fails outright.
+    pub fn read_with_header_collecting(
+        path: &Path,
+    ) -> Result<(Table, Vec<CorpusError>), CorpusError> {
+        let bytes = fs::read(path).map_err(|source| CorpusError::Io {
+            path: path.to_path_buf(),
+            source,
+        })?;
+        let format_error = |line: usize, message: String| CorpusError::Format {
+            path: path.to_path_buf(),
+            line,
+            message,
         };
+        let mut problems = Vec::new();
+        let mut header: Option<Vec<String>> = None;
         let mut records = Vec::new();
-        for (index, line) in lines {
-            let line = line.trim_end_matches('\r');
+        let mut offset = 0;
+        for (index, raw) in bytes.split(|&b| b == b'\n').enumerate() {
+            let line_number = index + 1;
+            let line_start = offset;
+            offset += raw.len() + 1;
+            let line = match std::str::from_utf8(raw) {
+                Ok(line) => line.trim_end_matches('\r'),
+                Err(error) => {
+                    let problem = format_error(
+                        line_number,
+                        format!(
+                            "expected UTF-8 text, found an invalid byte sequence at byte {}",
+                            line_start + error.valid_up_to()
+                        ),
+                    );
+                    if header.is_none() {
+                        return Err(problem);
+                    }
+                    problems.push(problem);
+                    continue;
+                }
+            };
+            let Some(header) = &header else {
+                if line.trim().is_empty() {
+                    return Err(format_error(
+                        1,
+                        "expected a header row naming the columns, found an empty line or an empty file"
+                            .into(),
+                    ));
+                }
+                // A byte-order mark (some spreadsheet exports) is not part of the first name.
+                let line = line.trim_start_matches('\u{feff}');
+                header = Some(line.split('\t').map(|f| f.trim().to_string()).collect());
+                continue;
+            };
             if line.trim().is_empty() {
                 continue;
             }
             let fields: Vec<String> = line.split('\t').map(str::to_string).collect();
             if fields.len() != header.len() {
-                return Err(CorpusError::Format {
-                    path: path.to_path_buf(),
-                    line: index + 1,
-                    message: format!(
+                problems.push(format_error(
+                    line_number,
+                    format!(
                         "expected {} tab-separated fields as in the header, found {}",
                         header.len(),
                         fields.len()
                     ),
-                });
+                ));
+                continue;
             }
             records.push(Record {
-                line: index + 1,
+                line: line_number,
                 fields,
             });
         }
-        Ok(Table {
-            path: path.to_path_buf(),
-            header,
-            records,
-        })
+        let Some(header) = header else {
+            return Err(format_error(
+                1,
+                "expected a header row naming the columns, found an empty line or an empty file"
+                    .into(),
+            ));
+        };
+        Ok((
+            Table {
+                path: path.to_path_buf(),
+                header,
+                records,
+            },
+            problems,
+        ))
     }
 
     /// Reads a headerless table (e.g. a lexicon); every row must have at least `min_fields` fields.
@@ -229,6 +281,28 @@ mod tests {
         let message = Table::read_with_header(&path).unwrap_err().to_string();
         assert!(
             message.contains("line 3") && message.contains("UTF-8"),
+            "{message}"
+        );
+    }
+
+    #[test]
+    fn collecting_reader_lists_every_bad_row_and_keeps_the_good_ones() {
+        let (_dir, path) = file_with(b"id\ttext\na\tok\nb\t\xff\nc\tx\ty\nd\tfine\n");
+        let (table, problems) = Table::read_with_header_collecting(&path).unwrap();
+        assert_eq!(table.records.len(), 2);
+        assert_eq!(table.records[1].line, 5);
+        let messages: Vec<String> = problems.iter().map(|p| p.to_string()).collect();
+        assert_eq!(messages.len(), 2, "{messages:?}");
+        assert!(messages[0].contains("line 3") && messages[0].contains("UTF-8"));
+        assert!(messages[1].contains("line 4") && messages[1].contains("found 3"));
+    }
+
+    #[test]
+    fn empty_file_has_no_header() {
+        let (_dir, path) = file_with(b"");
+        let message = Table::read_with_header(&path).unwrap_err().to_string();
+        assert!(
+            message.contains("line 1") && message.contains("header"),
             "{message}"
         );
     }
