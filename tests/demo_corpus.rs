@@ -477,3 +477,63 @@ fn flexible_scoring_forgives_the_eye_dialect_spellings() {
     );
     assert!(flexible < wer / 3.0, "flexible {flexible} vs plain {wer}");
 }
+
+/// Decodes every sample of every file with the project's own audio reader and compares with the
+/// lengths the generator measured on the uncompressed audio before encoding. libsndfile
+/// (`scripts/reference/demo_corpus_durations.py`: 922 files, 0 mismatches) and the Ogg granule
+/// positions (`ogg_streams_are_16k_mono_and_as_long_as_stated`) agree with `durations.tsv`
+/// exactly; `isogloss_audio` decodes 26 of the 922 files 4 to 495 samples too long (it does not
+/// trim the last Vorbis block to the final granule position), so the exact check is ignored
+/// until that is fixed and this one guards against lost audio and gross errors meanwhile.
+#[test]
+fn decoded_audio_is_at_least_as_long_as_stated() {
+    for (audio, samples) in read_durations() {
+        let info = isogloss_audio::verify(&demo_dir().join(&audio))
+            .unwrap_or_else(|e| panic!("{audio}: {e}"));
+        assert_eq!((info.sample_rate, info.channels), (16_000, 1), "{audio}");
+        // 1024 samples: half of the long Vorbis block oggenc uses at 16 kHz (from memory), the
+        // most an untrimmed final block can add after overlap-add.
+        assert!(
+            samples <= info.frames && info.frames < samples + 1024,
+            "{audio}: decoded {} frames, durations.tsv says {samples}",
+            info.frames
+        );
+    }
+}
+
+#[test]
+#[ignore = "isogloss_audio does not trim Ogg Vorbis to the final granule position (26 files)"]
+fn decoded_audio_is_exactly_as_long_as_stated() {
+    let wrong: Vec<String> = read_durations()
+        .into_iter()
+        .filter_map(|(audio, samples)| {
+            let info = isogloss_audio::verify(&demo_dir().join(&audio))
+                .unwrap_or_else(|e| panic!("{audio}: {e}"));
+            (info.frames != samples).then(|| format!("{audio}: {} vs {samples}", info.frames))
+        })
+        .collect();
+    assert!(wrong.is_empty(), "{} files: {wrong:?}", wrong.len());
+}
+
+#[test]
+fn corpus_check_passes_on_every_committed_manifest() {
+    let demo = demo_dir();
+    let manifests: Vec<String> = ["train", "dev", "test", "interviews"]
+        .iter()
+        .map(|m| {
+            demo.join(format!("{m}.tsv"))
+                .to_str()
+                .expect("UTF-8 path")
+                .to_string()
+        })
+        .collect();
+    let mut args = vec!["corpus", "check", "--json"];
+    args.extend(manifests.iter().map(String::as_str));
+    let report = isogloss(&args);
+    assert_eq!(report["errors"].as_u64(), Some(0), "{report}");
+    let rows: usize = ["train", "dev", "test", "interviews"]
+        .iter()
+        .map(|m| read_manifest(m).len())
+        .sum();
+    assert_eq!(report["utterances"].as_u64(), Some(rows as u64));
+}
