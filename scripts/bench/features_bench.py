@@ -22,7 +22,7 @@ The rounds alternate Rust and librosa so that load from other processes hits bot
 gives medians over all runs. Speed is a multiple of real time: audio seconds / median seconds.
 
 Run from the repository root:
-  /work/venv/bin/python scripts/bench/features_bench.py [--seconds 60] [--rounds 3] [--runs 15]
+  ../venv/bin/python scripts/bench/features_bench.py [--seconds 60] [--rounds 3] [--runs 15]
 """
 
 import os

@@ -8,7 +8,7 @@ raw training-step throughput.
 
 Prints one JSON line: {"frames_per_second": median, ...}.
 
-Run: /work/venv/bin/python scripts/bench/tdnn_torch.py --threads 2 --batch 16 --frames 600
+Run: ../venv/bin/python scripts/bench/tdnn_torch.py --threads 2 --batch 16 --frames 600
 """
 
 import argparse

@@ -5,7 +5,7 @@ Writes crates/acoustic/tests/fixtures/ctc_torch.json: random logits of shape [ba
 torch.nn.functional.ctc_loss (blank 0, reduction='none') returns for the log-softmax of those
 logits, together with the gradient of the summed loss with respect to the raw logits.
 
-Run: /work/venv/bin/python scripts/reference/ctc_reference.py
+Run: ../venv/bin/python scripts/reference/ctc_reference.py
 """
 
 import json

@@ -4,7 +4,7 @@ reference decoder this project did not write) and compare the decoded length, sa
 channel count with `durations.tsv`, which the generator took from the uncompressed 16 kHz WAV
 before Ogg Vorbis encoding.
 
-    /work/venv/bin/python scripts/reference/demo_corpus_durations.py [tests/data/demo]
+    ../venv/bin/python scripts/reference/demo_corpus_durations.py [tests/data/demo]
 
 Prints one line per mismatch and a summary; exit code 1 when anything differs.
 """

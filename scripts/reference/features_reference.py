@@ -21,7 +21,7 @@ Writes (next to the WAV, under tests/fixtures/features/):
   reference-fbank.safetensors   f32 tensor `features` [frames, 40]   Python package, not by us)
   reference.json                provenance: library versions, settings, shapes, librosa's HTK mel scale
 
-Run: /work/venv/bin/python scripts/reference/features_reference.py [--synthesize]
+Run: ../venv/bin/python scripts/reference/features_reference.py [--synthesize]
 """
 
 import argparse

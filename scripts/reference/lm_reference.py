@@ -4,7 +4,7 @@
 Writes tests/fixtures/lm/nltk_reference.json from tests/fixtures/lm/nltk_train.txt and
 nltk_test.txt. Run with the project's reference venv:
 
-    /work/venv/bin/python scripts/reference/lm_reference.py
+    ../venv/bin/python scripts/reference/lm_reference.py
 
 Conventions are aligned with isogloss (DESIGN.md) where nltk lets us, and every difference is
 named here and in the Rust test:

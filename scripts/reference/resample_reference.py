@@ -4,7 +4,7 @@ scipy.signal.resample_poly (polyphase FIR, Kaiser window), for crates/audio/test
 
 Writes tests/fixtures/audio/resample_reference.json: the output length, the RMS of every
 10 ms frame (160 samples) and an 800-sample excerpt from the middle of the utterance.
-Run: /work/venv/bin/python scripts/reference/resample_reference.py
+Run: ../venv/bin/python scripts/reference/resample_reference.py
 """
 import json
 from math import gcd

@@ -8,7 +8,7 @@ an independent Python implementation of the DESIGN token rules (NFC via unicoded
 Unicode general category P* except apostrophes and hyphens -> space, str.split) and records
 rapidfuzz.distance.Levenshtein.distance over the token lists.
 
-Run:  /work/venv/bin/python scripts/reference/score_reference.py > tests/fixtures/score/rapidfuzz_wer.json
+Run:  ../venv/bin/python scripts/reference/score_reference.py > tests/fixtures/score/rapidfuzz_wer.json
 """
 
 import json

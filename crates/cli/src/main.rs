@@ -44,6 +44,13 @@ pub enum Outcome {
 }
 
 fn main() -> ExitCode {
+    // A closed pipe (`isogloss score --json | head`) ends the program quietly, as it ends any
+    // other command-line tool, instead of making `println!` panic.
+    #[cfg(unix)]
+    // SAFETY: restoring the default action of one signal before any thread starts.
+    unsafe {
+        libc::signal(libc::SIGPIPE, libc::SIG_DFL);
+    }
     // Usage errors are bad input (exit 1 by our contract); help and version are successes.
     let cli = match Cli::try_parse() {
         Ok(cli) => cli,

@@ -3,7 +3,7 @@
 //! the word and phoneme error rates on the held-out words are printed with the timings.
 //!
 //! ```text
-//! /work/venv/bin/python scripts/reference/cmudict_subset.py --full /tmp/cmudict.tsv
+//! ../venv/bin/python scripts/reference/cmudict_subset.py --full /tmp/cmudict.tsv
 //! cargo run --release -p isogloss-lexicon --example g2p_benchmark -- /tmp/cmudict.tsv \
 //!     [--held-out 0.1] [--seed 1] [--order 6] [--iterations 10] [--beam 40]
 //! ```
