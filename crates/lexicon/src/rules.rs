@@ -161,9 +161,10 @@ enum Where {
 }
 
 fn line_of(text: &str, offset: usize) -> usize {
-    text[..offset.min(text.len())]
-        .bytes()
-        .filter(|&b| b == b'\n')
+    let bytes = text.as_bytes();
+    bytes[..offset.min(bytes.len())]
+        .iter()
+        .filter(|&&b| b == b'\n')
         .count()
         + 1
 }
