@@ -8,6 +8,7 @@ use std::fs;
 use std::path::{Path, PathBuf};
 
 use isogloss_corpus::tsv::Table;
+use isogloss_score::{tokenize, TokenRules};
 
 const MANIFEST_COLUMNS: [&str; 8] = [
     "id",
@@ -102,7 +103,9 @@ fn tokens<'a>(text: &'a str, what: &str) -> Vec<&'a str> {
             && !text.starts_with(' ')
             && !text.ends_with(' ')
             && !text.contains("  ")
-            && text.chars().all(|c| c.is_ascii_lowercase() || c == '\'' || c == ' '),
+            && text
+                .chars()
+                .all(|c| c.is_ascii_lowercase() || c == '\'' || c == ' '),
         "{what}: {text:?} is not lower-case words and apostrophes separated by single spaces"
     );
     text.split(' ').collect()
@@ -120,6 +123,10 @@ fn every_row_has_word_aligned_transcripts() {
             let d = tokens(&row.dialectal, &format!("{at}, dialectal"));
             let n = tokens(&row.normalized, &format!("{at}, normalized"));
             assert_eq!(d.len(), n.len(), "{at}: {d:?} vs {n:?}");
+            // The scorer's own tokenizer (the DESIGN.md token rules) sees the same words.
+            let rules = TokenRules::default();
+            assert_eq!(tokenize(&row.dialectal, &rules), d, "{at}: dialectal");
+            assert_eq!(tokenize(&row.normalized, &rules), n, "{at}: normalized");
             assert!(!row.speaker.is_empty(), "{at}: empty speaker");
         }
     }
@@ -152,7 +159,10 @@ fn splits_are_speaker_disjoint_and_cover_every_region() {
     for split in SPLITS {
         for row in read_manifest(split) {
             assert!(!row.dialect.is_empty(), "{split}.tsv line {}", row.line);
-            per_region.entry(row.dialect).or_default().insert(row.speaker);
+            per_region
+                .entry(row.dialect)
+                .or_default()
+                .insert(row.speaker);
         }
     }
     assert!(per_region.len() >= 5, "regions: {:?}", per_region.keys());
@@ -160,7 +170,10 @@ fn splits_are_speaker_disjoint_and_cover_every_region() {
         assert!(spk.len() >= 4, "region {region} has speakers {spk:?}");
     }
     for split in ["dev", "test"] {
-        let regions: BTreeSet<String> = read_manifest(split).into_iter().map(|r| r.dialect).collect();
+        let regions: BTreeSet<String> = read_manifest(split)
+            .into_iter()
+            .map(|r| r.dialect)
+            .collect();
         assert_eq!(regions.len(), per_region.len(), "{split} misses regions");
     }
 }
@@ -169,12 +182,22 @@ fn splits_are_speaker_disjoint_and_cover_every_region() {
 fn dev_and_test_hold_words_never_seen_in_train() {
     let train: BTreeSet<String> = read_manifest("train")
         .iter()
-        .flat_map(|r| r.normalized.split(' ').map(str::to_string).collect::<Vec<_>>())
+        .flat_map(|r| {
+            r.normalized
+                .split(' ')
+                .map(str::to_string)
+                .collect::<Vec<_>>()
+        })
         .collect();
     for split in ["dev", "test"] {
         let unseen: BTreeSet<String> = read_manifest(split)
             .iter()
-            .flat_map(|r| r.normalized.split(' ').map(str::to_string).collect::<Vec<_>>())
+            .flat_map(|r| {
+                r.normalized
+                    .split(' ')
+                    .map(str::to_string)
+                    .collect::<Vec<_>>()
+            })
             .filter(|w| !train.contains(w))
             .collect();
         assert!(!unseen.is_empty(), "{split}: no out-of-vocabulary words");
@@ -208,7 +231,10 @@ fn transcribers_spell_some_words_in_several_ways() {
         .iter()
         .filter(|r| r.dialectal != r.normalized)
         .count();
-    assert!(differs * 3 > read_manifest("train").len(), "dialectal writing too rarely differs");
+    assert!(
+        differs * 3 > read_manifest("train").len(),
+        "dialectal writing too rarely differs"
+    );
 }
 
 #[test]
@@ -255,7 +281,11 @@ fn interview_segments_are_ordered_turns_with_pauses() {
             .or_default()
             .push((start, end, row.speaker));
     }
-    assert!((2..=3).contains(&by_file.len()), "{} interviews", by_file.len());
+    assert!(
+        (2..=3).contains(&by_file.len()),
+        "{} interviews",
+        by_file.len()
+    );
     let durations = read_durations();
     for (file, turns) in &by_file {
         let minutes = durations[file] as f64 / SAMPLE_RATE as f64 / 60.0;
@@ -279,7 +309,11 @@ fn interview_segments_are_ordered_turns_with_pauses() {
 /// semantics after the Vorbis I specification, appendix A (section numbers from memory).
 fn ogg_vorbis_info(path: &Path) -> (u32, u8, u64) {
     let bytes = fs::read(path).unwrap_or_else(|e| panic!("{}: {e}", path.display()));
-    assert!(bytes.starts_with(b"OggS"), "{}: no Ogg page", path.display());
+    assert!(
+        bytes.starts_with(b"OggS"),
+        "{}: no Ogg page",
+        path.display()
+    );
     let id = bytes
         .windows(7)
         .position(|w| w == b"\x01vorbis")
@@ -290,7 +324,12 @@ fn ogg_vorbis_info(path: &Path) -> (u32, u8, u64) {
         .windows(4)
         .rposition(|w| w == b"OggS")
         .expect("an Ogg page");
-    assert_eq!(bytes[last_page + 5] & 0x04, 0x04, "{}: last page lacks end-of-stream flag", path.display());
+    assert_eq!(
+        bytes[last_page + 5] & 0x04,
+        0x04,
+        "{}: last page lacks end-of-stream flag",
+        path.display()
+    );
     let granule = u64::from_le_bytes(
         bytes[last_page + 6..last_page + 14]
             .try_into()
@@ -338,4 +377,103 @@ fn out_of_domain_text_is_standard_spelling_sentences() {
     for (i, line) in lines.iter().enumerate() {
         tokens(line, &format!("ood.txt line {}", i + 1));
     }
+}
+
+fn isogloss(args: &[&str]) -> serde_json::Value {
+    let output = std::process::Command::new(env!("CARGO_BIN_EXE_isogloss"))
+        .args(args)
+        .output()
+        .expect("the isogloss binary runs");
+    assert_eq!(
+        output.status.code(),
+        Some(0),
+        "isogloss {args:?}: {}",
+        String::from_utf8_lossy(&output.stderr)
+    );
+    if args.contains(&"--json") {
+        serde_json::from_slice(&output.stdout).expect("stdout is one JSON object")
+    } else {
+        serde_json::Value::Null
+    }
+}
+
+/// What the two writings are for: a transcript in standard spelling, scored against the
+/// dialectal reference, loses every respelled word under plain WER, while the flexible WER with
+/// the variants `isogloss variants` learns from the train manifest forgives the spellings seen
+/// in train. Both rates are bounded by counts taken straight from the manifests.
+#[test]
+fn flexible_scoring_forgives_the_eye_dialect_spellings() {
+    let scratch = tempfile::tempdir().expect("a temporary folder");
+    let variants = scratch.path().join("variants.tsv");
+    let hypotheses = scratch.path().join("hyp.tsv");
+    let demo = demo_dir();
+    let path = |p: &Path| p.to_str().expect("UTF-8 path").to_string();
+    isogloss(&[
+        "variants",
+        "--manifest",
+        &path(&demo.join("train.tsv")),
+        "--from",
+        "dialectal",
+        "--to",
+        "normalized",
+        "--out",
+        &path(&variants),
+    ]);
+
+    let train_pairs: BTreeSet<(String, String)> = read_manifest("train")
+        .iter()
+        .flat_map(|r| {
+            r.dialectal
+                .split(' ')
+                .zip(r.normalized.split(' '))
+                .map(|(d, n)| (d.to_string(), n.to_string()))
+                .collect::<Vec<_>>()
+        })
+        .collect();
+    let test = read_manifest("test");
+    let (mut words, mut respelled, mut respelled_unseen) = (0usize, 0usize, 0usize);
+    let mut hyp_text = String::from("id\ttext\n");
+    for row in &test {
+        hyp_text.push_str(&format!("{}\t{}\n", row.id, row.normalized));
+        for (d, n) in row.dialectal.split(' ').zip(row.normalized.split(' ')) {
+            words += 1;
+            if d != n {
+                respelled += 1;
+                if !train_pairs.contains(&(d.to_string(), n.to_string())) {
+                    respelled_unseen += 1;
+                }
+            }
+        }
+    }
+    fs::write(&hypotheses, hyp_text).expect("hypotheses written");
+
+    let report = isogloss(&[
+        "score",
+        "--ref",
+        &path(&demo.join("test.tsv")),
+        "--column",
+        "dialectal",
+        "--hyp",
+        &path(&hypotheses),
+        "--variants",
+        &path(&variants),
+        "--json",
+    ]);
+    let wer = report["wer"].as_f64().expect("wer");
+    let flexible = report["flexible_wer"].as_f64().expect("flexible_wer");
+    assert_eq!(report["ref_words"].as_u64(), Some(words as u64));
+    // Word-aligned columns: the substitutions at the differing positions are one alignment, so
+    // the minimum edit distance is at most that count (and the flexible one at most the count
+    // of respellings train never showed).
+    assert!(wer <= respelled as f64 / words as f64 + 1e-9, "wer {wer}");
+    assert!(
+        flexible <= respelled_unseen as f64 / words as f64 + 1e-9,
+        "flexible {flexible}"
+    );
+    // The scenario's promise: the writings differ noticeably, and variants forgive most of it.
+    assert!(
+        wer > 0.05,
+        "dialectal and normalized differ in only {wer} of the words"
+    );
+    assert!(flexible < wer / 3.0, "flexible {flexible} vs plain {wer}");
 }

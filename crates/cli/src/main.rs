@@ -21,6 +21,12 @@ struct Cli {
 
 #[derive(Subcommand)]
 enum Command {
+    /// Word error rate and flexible WER of hypotheses against a reference manifest.
+    Score(commands::score::ScoreArgs),
+    /// Build a spelling-variant map from two word-aligned transcript columns.
+    Variants(commands::variants::VariantsArgs),
+    /// N-gram language models: build, eval, mix, prune.
+    Lm(commands::lm::LmArgs),
     /// Make pronunciation lexicons (rules, trained G2P) and measure their coverage.
     Lexicon(commands::lexicon::LexiconArgs),
 }
@@ -34,8 +40,22 @@ pub enum Outcome {
 }
 
 fn main() -> ExitCode {
-    let cli = Cli::parse();
+    // Usage errors are bad input (exit 1 by our contract); help and version are successes.
+    let cli = match Cli::try_parse() {
+        Ok(cli) => cli,
+        Err(error) => {
+            let _ = error.print();
+            return if error.use_stderr() {
+                ExitCode::from(1)
+            } else {
+                ExitCode::SUCCESS
+            };
+        }
+    };
     let result: anyhow::Result<Outcome> = match cli.command {
+        Command::Score(args) => commands::score::run(args),
+        Command::Variants(args) => commands::variants::run(args),
+        Command::Lm(args) => commands::lm::run(args),
         Command::Lexicon(args) => commands::lexicon::run(args),
     };
     match result {

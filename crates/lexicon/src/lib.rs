@@ -34,6 +34,7 @@ pub mod coverage;
 pub mod graphone;
 mod lexicon;
 pub mod rules;
+pub mod trie;
 
 pub use coverage::Coverage;
 pub use lexicon::{letters, read_word_list, Lexicon};

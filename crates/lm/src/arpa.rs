@@ -332,75 +332,158 @@ fn read_arpa(reader: impl BufRead, path: &Path) -> Result<ArpaModel, LmError> {
     Ok(builder.finish())
 }
 
-/// Formats a log10 value with eight decimals (enough that probabilities written and read back
-/// sum to one within 1e-7) and without a trailing "-0.00000000".
-fn format_log10(value: f64) -> String {
-    if value == 0.0 {
-        "0".to_string()
-    } else if value == f64::NEG_INFINITY {
-        "-99".to_string()
-    } else {
-        format!("{value:.8}")
+/// Appends a log10 value with eight decimals (enough that probabilities written and read back
+/// sum to one within 1e-7); `-99` stands for log10 0, as is common practice in ARPA files.
+pub(crate) fn push_log10(line: &mut Vec<u8>, value: f64) {
+    if value <= -99.0 || value.is_nan() {
+        line.extend_from_slice(b"-99");
+        return;
     }
+    let scaled = (value.abs() * 1e8).round() as u64;
+    if scaled == 0 {
+        line.push(b'0');
+        return;
+    }
+    if value < 0.0 {
+        line.push(b'-');
+    }
+    let whole = scaled / 100_000_000;
+    let fraction = scaled % 100_000_000;
+    let mut digits = [0u8; 20];
+    let mut length = 0;
+    let mut rest = whole;
+    loop {
+        digits[length] = b'0' + (rest % 10) as u8;
+        length += 1;
+        rest /= 10;
+        if rest == 0 {
+            break;
+        }
+    }
+    line.extend(digits[..length].iter().rev());
+    line.push(b'.');
+    let mut fraction_digits = [b'0'; 8];
+    let mut rest = fraction;
+    for digit in fraction_digits.iter_mut().rev() {
+        *digit = b'0' + (rest % 10) as u8;
+        rest /= 10;
+    }
+    line.extend_from_slice(&fraction_digits);
+}
+
+/// Appends one ARPA entry line: probability, tab, words separated by spaces, optional back-off.
+pub(crate) fn push_entry<'w>(
+    line: &mut Vec<u8>,
+    log10_prob: f64,
+    words: impl Iterator<Item = &'w str>,
+    log10_backoff: Option<f64>,
+) {
+    push_log10(line, log10_prob);
+    for (index, word) in words.enumerate() {
+        line.push(if index == 0 { b'\t' } else { b' ' });
+        line.extend_from_slice(word.as_bytes());
+    }
+    if let Some(backoff) = log10_backoff {
+        line.push(b'\t');
+        push_log10(line, backoff);
+    }
+    line.push(b'\n');
+}
+
+/// Writes the `\data\` header.
+pub(crate) fn write_header(writer: &mut dyn Write, counts: &[usize]) -> std::io::Result<()> {
+    writeln!(writer, "\\data\\")?;
+    for (position, count) in counts.iter().enumerate() {
+        writeln!(writer, "ngram {}={count}", position + 1)?;
+    }
+    Ok(())
+}
+
+/// Writes a file under a temporary name and renames it, so a failure leaves no half file; a path
+/// ending in `.gz` is gzip-compressed.
+pub(crate) fn write_atomically(
+    path: &Path,
+    write: impl FnOnce(&mut dyn Write) -> std::io::Result<()>,
+) -> Result<(), LmError> {
+    let temporary = path.with_file_name(format!(
+        ".{}.partial",
+        path.file_name()
+            .map(|name| name.to_string_lossy())
+            .unwrap_or_default()
+    ));
+    let file = File::create(&temporary)
+        .map_err(|error| LmError::io(&temporary, "cannot create", error))?;
+    let compressed = path.extension().is_some_and(|extension| extension == "gz");
+    let result = if compressed {
+        let mut encoder = GzEncoder::new(
+            BufWriter::with_capacity(1 << 20, file),
+            flate2::Compression::fast(),
+        );
+        write(&mut encoder).and_then(|()| encoder.finish()?.flush())
+    } else {
+        let mut writer = BufWriter::with_capacity(1 << 20, file);
+        write(&mut writer).and_then(|()| writer.flush())
+    };
+    if let Err(error) = result {
+        let _ = std::fs::remove_file(&temporary);
+        return Err(LmError::io(path, "cannot write", error));
+    }
+    std::fs::rename(&temporary, path).map_err(|error| LmError::io(path, "cannot write", error))
 }
 
 impl ArpaModel {
     /// Writes the model as ARPA text; a path ending in `.gz` is gzip-compressed.
     /// The file is written under a temporary name and renamed, so a failure leaves no half file.
     pub fn write_arpa(&self, path: impl AsRef<Path>) -> Result<(), LmError> {
-        let path = path.as_ref();
-        let temporary = path.with_file_name(format!(
-            ".{}.partial",
-            path.file_name()
-                .map(|name| name.to_string_lossy())
-                .unwrap_or_default()
-        ));
-        let file = File::create(&temporary)
-            .map_err(|error| LmError::io(&temporary, "cannot create", error))?;
-        let compressed = path.extension().is_some_and(|extension| extension == "gz");
-        let result = if compressed {
-            let mut encoder = GzEncoder::new(BufWriter::new(file), flate2::Compression::default());
-            self.write_arpa_to(&mut encoder)
-                .and_then(|()| encoder.finish()?.flush())
-        } else {
-            let mut writer = BufWriter::new(file);
-            self.write_arpa_to(&mut writer)
-                .and_then(|()| writer.flush())
-        };
-        if let Err(error) = result {
-            let _ = std::fs::remove_file(&temporary);
-            return Err(LmError::io(path, "cannot write", error));
-        }
-        std::fs::rename(&temporary, path).map_err(|error| LmError::io(path, "cannot write", error))
+        write_atomically(path.as_ref(), |writer| self.write_arpa_to(writer))
     }
 
     /// Writes the model as ARPA text to any writer.
-    pub fn write_arpa_to(&self, writer: &mut impl Write) -> std::io::Result<()> {
+    pub fn write_arpa_to(&self, writer: &mut dyn Write) -> std::io::Result<()> {
         let counts = self.ngram_counts();
-        writeln!(writer, "\\data\\")?;
-        for (position, count) in counts.iter().enumerate() {
-            writeln!(writer, "ngram {}={count}", position + 1)?;
-        }
+        write_header(writer, &counts)?;
         let order = self.order();
         let mut words = Vec::with_capacity(order);
         let vocabulary = self.words();
+        let mut line = Vec::with_capacity(256);
         for (position, &count) in counts.iter().enumerate() {
             let n = position + 1;
             writeln!(writer, "\n\\{n}-grams:")?;
             for id in 0..count as u32 {
                 let (log10_prob, log10_backoff) = self.entry_values(n, id);
                 self.ngram_words(n, id, &mut words);
-                write!(writer, "{}", format_log10(log10_prob))?;
-                for (index, &word) in words.iter().enumerate() {
-                    writer.write_all(if index == 0 { b"\t" } else { b" " })?;
-                    writer.write_all(vocabulary[word as usize].as_bytes())?;
-                }
-                if n < order {
-                    write!(writer, "\t{}", format_log10(log10_backoff))?;
-                }
-                writer.write_all(b"\n")?;
+                line.clear();
+                push_entry(
+                    &mut line,
+                    log10_prob,
+                    words.iter().map(|&word| vocabulary[word as usize].as_str()),
+                    (n < order).then_some(log10_backoff),
+                );
+                writer.write_all(&line)?;
             }
         }
         writeln!(writer, "\n\\end\\")
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::push_log10;
+
+    #[test]
+    fn log10_values_are_written_with_eight_decimals() {
+        for (value, expected) in [
+            (-0.5, "-0.50000000"),
+            (-12.345678912, "-12.34567891"),
+            (0.0, "0"),
+            (-0.000000001, "0"),
+            (-99.0, "-99"),
+            (f64::NEG_INFINITY, "-99"),
+            (0.25, "0.25000000"),
+        ] {
+            let mut line = Vec::new();
+            push_log10(&mut line, value);
+            assert_eq!(String::from_utf8(line).unwrap(), expected);
+        }
     }
 }

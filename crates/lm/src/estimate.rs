@@ -65,6 +65,8 @@ pub struct EstimateOptions {
     pub smoothing: Smoothing,
     /// Minimum raw count per order, unigrams first (missing entries and unigrams: keep all).
     pub cutoffs: Vec<u32>,
+    /// Also return the interpolated form ([`Estimate::interpolated`]), for checks; costs memory.
+    pub keep_interpolated: bool,
 }
 
 /// The discounts of one order (all zero for Witten-Bell and additive smoothing).
@@ -98,8 +100,8 @@ pub struct Estimate {
     pub discounts: Vec<Discounts>,
     /// Problems the caller should show the user (for example degenerate count-of-counts).
     pub warnings: Vec<String>,
-    /// The interpolated form, for checks against the back-off form.
-    pub interpolated: InterpolatedModel,
+    /// The interpolated form, when [`EstimateOptions::keep_interpolated`] asked for it.
+    pub interpolated: Option<InterpolatedModel>,
 }
 
 /// The model in its interpolated form: per order, the discounted term of every kept n-gram and
@@ -161,7 +163,7 @@ pub fn estimate(counts: &NgramCounts, smoothing: Smoothing) -> Result<Estimate, 
         counts,
         &EstimateOptions {
             smoothing,
-            cutoffs: Vec::new(),
+            ..EstimateOptions::default()
         },
     )
 }
@@ -241,83 +243,213 @@ fn discounts_for(
     }
 }
 
-/// Smooths `counts` into a back-off model (see the module documentation for the formulas).
-pub fn estimate_with(counts: &NgramCounts, options: &EstimateOptions) -> Result<Estimate, LmError> {
-    let smoothing = options.smoothing;
-    if let Smoothing::Additive { k } = smoothing {
-        if !(k > 0.0 && k.is_finite()) {
-            return Err(LmError::Invalid(format!(
-                "add-k smoothing: expected k > 0, found {k}"
-            )));
-        }
-    }
-    let kneser_ney = matches!(
-        smoothing,
-        Smoothing::ModifiedKneserNey | Smoothing::KneserNey
-    );
-    let order = counts.order();
-    let bits = counts.bits();
-    let words = counts.words();
-    let vocabulary_size = words.len() - 1; // every word but `<s>` can be predicted
-    let mut warnings = Vec::new();
-    let mut all_discounts = Vec::with_capacity(order);
+/// One order of a smoothed model, handed to a consumer in ascending order.
+struct SmoothedLevel<'a> {
+    n: usize,
+    /// Whether each entry survives the cut-offs (unigrams: all).
+    kept: &'a [bool],
+    /// Interpolated P (linear) of each kept entry.
+    probabilities: &'a [f64],
+    /// γ of each entry as a context (1 when it is none).
+    backoffs: &'a [f64],
+}
 
-    // Which n-grams survive the cut-offs; prefixes and suffixes of kept n-grams stay.
-    let mut kept: Vec<Vec<bool>> = counts
-        .levels
-        .iter()
-        .enumerate()
-        .map(|(position, level)| {
-            let cutoff = options.cutoffs.get(position + 1).copied().unwrap_or(1);
-            level.raw.iter().map(|&raw| raw >= cutoff).collect()
-        })
-        .collect();
-    for n in (3..=order).rev() {
-        let (lower, upper) = kept.split_at_mut(n - 2);
-        let level = &counts.levels[n - 2];
-        for (index, &keep) in upper[0].iter().enumerate() {
-            if keep {
-                lower[n - 3][level.prefix[index] as usize] = true;
-                lower[n - 3][level.suffix[index] as usize] = true;
+/// The smoothing computation, shared by [`estimate_with`] (builds a model) and
+/// [`write_estimated_arpa`] (streams ARPA text without building one). It holds at most two
+/// orders of probabilities at a time.
+struct Smoother<'a> {
+    counts: &'a NgramCounts,
+    smoothing: Smoothing,
+    kneser_ney: bool,
+    vocabulary_size: usize,
+    /// `kept[n-2]`: survivors of order n ≥ 2.
+    kept: Vec<Vec<bool>>,
+    discounts: Vec<Discounts>,
+    warnings: Vec<String>,
+}
+
+impl<'a> Smoother<'a> {
+    fn new(counts: &'a NgramCounts, options: &EstimateOptions) -> Result<Self, LmError> {
+        let smoothing = options.smoothing;
+        if let Smoothing::Additive { k } = smoothing {
+            if !(k > 0.0 && k.is_finite()) {
+                return Err(LmError::Invalid(format!(
+                    "add-k smoothing: expected k > 0, found {k}"
+                )));
             }
         }
+        let kneser_ney = matches!(
+            smoothing,
+            Smoothing::ModifiedKneserNey | Smoothing::KneserNey
+        );
+        let order = counts.order();
+        // Which n-grams survive the cut-offs; prefixes and suffixes of kept n-grams stay.
+        let mut kept: Vec<Vec<bool>> = counts
+            .levels
+            .iter()
+            .enumerate()
+            .map(|(position, level)| {
+                let cutoff = options.cutoffs.get(position + 1).copied().unwrap_or(1);
+                level.raw.iter().map(|&raw| raw >= cutoff).collect()
+            })
+            .collect();
+        for n in (3..=order).rev() {
+            let (lower, upper) = kept.split_at_mut(n - 2);
+            let level = &counts.levels[n - 2];
+            for (index, &keep) in upper[0].iter().enumerate() {
+                if keep {
+                    lower[n - 3][level.prefix[index] as usize] = true;
+                    lower[n - 3][level.suffix[index] as usize] = true;
+                }
+            }
+        }
+        let mut warnings = Vec::new();
+        let unigram_counts = if kneser_ney {
+            &counts.unigram_kneser_ney
+        } else {
+            &counts.unigram_raw
+        };
+        let mut discounts = vec![discounts_for(
+            smoothing,
+            1,
+            (0..counts.words.len())
+                .filter(|&word| word as u32 != START_ID)
+                .map(|word| unigram_counts[word]),
+            &mut warnings,
+        )];
+        for (position, level) in counts.levels.iter().enumerate() {
+            let level_counts = if kneser_ney {
+                &level.kneser_ney
+            } else {
+                &level.raw
+            };
+            discounts.push(discounts_for(
+                smoothing,
+                position + 2,
+                level_counts.iter().map(|&count| u64::from(count)),
+                &mut warnings,
+            ));
+        }
+        Ok(Smoother {
+            counts,
+            smoothing,
+            kneser_ney,
+            vocabulary_size: counts.words.len() - 1, // every word but `<s>` can be predicted
+            kept,
+            discounts,
+            warnings,
+        })
     }
 
-    // Unigrams.
-    let unigram_counts: &[u64] = if kneser_ney {
-        &counts.unigram_kneser_ney
-    } else {
-        &counts.unigram_raw
-    };
-    let predicted = || (0..words.len()).filter(|&word| word as u32 != START_ID);
-    let discounts = discounts_for(
-        smoothing,
-        1,
-        predicted().map(|word| unigram_counts[word]),
-        &mut warnings,
-    );
-    all_discounts.push(discounts);
-    let total: f64 = predicted().map(|word| unigram_counts[word] as f64).sum();
-    let seen = predicted().filter(|&word| unigram_counts[word] > 0).count() as f64;
-    let denominator = match smoothing {
-        Smoothing::WittenBell => total + seen,
-        Smoothing::Additive { k } => total + k * vocabulary_size as f64,
-        _ => total,
-    };
-    let mut unigram_term = vec![0.0; words.len()];
-    let mut kept_mass = 0.0;
-    for word in predicted() {
-        let count = unigram_counts[word];
-        let discounted = (count as f64 - discounts.of(count)).max(0.0);
-        unigram_term[word] = discounted / denominator;
-        kept_mass += discounted;
+    /// Number of n-grams per order in the smoothed model.
+    fn kept_counts(&self) -> Vec<usize> {
+        std::iter::once(self.counts.words.len())
+            .chain(
+                self.kept
+                    .iter()
+                    .map(|flags| flags.iter().filter(|&&keep| keep).count()),
+            )
+            .collect()
     }
-    let unigram_gamma = (denominator - kept_mass) / denominator;
-    let uniform = unigram_gamma / vocabulary_size as f64;
-    // probabilities[n-1][i]: interpolated P of entry i of order n (linear).
-    let mut probabilities: Vec<Vec<f64>> = Vec::with_capacity(order);
-    probabilities.push(
-        (0..words.len())
+
+    fn denominator(&self, total: f64, distinct: usize) -> f64 {
+        match self.smoothing {
+            Smoothing::WittenBell => total + distinct as f64,
+            Smoothing::Additive { k } => total + k * self.vocabulary_size as f64,
+            _ => total,
+        }
+    }
+
+    fn level_counts(&self, n: usize) -> &'a [u32] {
+        let level = &self.counts.levels[n - 2];
+        if self.kneser_ney {
+            &level.kneser_ney
+        } else {
+            &level.raw
+        }
+    }
+
+    /// Calls `group(context key, range)` for every context of order n ≥ 2.
+    fn for_each_context(&self, n: usize, mut group: impl FnMut(u128, std::ops::Range<usize>)) {
+        let keys = &self.counts.levels[n - 2].keys;
+        let bits = self.counts.bits();
+        let mut begin = 0;
+        while begin < keys.len() {
+            let context = keys[begin] >> bits;
+            let mut end = begin + 1;
+            while end < keys.len() && keys[end] >> bits == context {
+                end += 1;
+            }
+            group(context, begin..end);
+            begin = end;
+        }
+    }
+
+    /// (den(h), Σ kept discounted counts) of one context group of order n.
+    fn group_sums(&self, n: usize, group: std::ops::Range<usize>) -> (f64, f64) {
+        let counts = self.level_counts(n);
+        let discounts = self.discounts[n - 1];
+        let kept = &self.kept[n - 2];
+        let mut total = 0.0;
+        let mut kept_mass = 0.0;
+        for index in group.clone() {
+            let count = u64::from(counts[index]);
+            total += count as f64;
+            if kept[index] {
+                kept_mass += (count as f64 - discounts.of(count)).max(0.0);
+            }
+        }
+        (self.denominator(total, group.len()), kept_mass)
+    }
+
+    /// γ of every entry of order n − 1 as a context, from the groups of order n.
+    fn gammas_of_contexts(&self, n: usize) -> Vec<f64> {
+        let lower_len = if n == 2 {
+            self.counts.words.len()
+        } else {
+            self.counts.levels[n - 3].keys.len()
+        };
+        let mut gammas = vec![1.0; lower_len];
+        let prefix = &self.counts.levels[n - 2].prefix;
+        self.for_each_context(n, |_, group| {
+            let first = group.start;
+            let (denominator, kept_mass) = self.group_sums(n, group);
+            gammas[prefix[first] as usize] = (denominator - kept_mass) / denominator;
+        });
+        gammas
+    }
+
+    fn run(
+        &self,
+        mut interpolated: Option<&mut InterpolatedModel>,
+        visit: &mut dyn FnMut(SmoothedLevel<'_>) -> Result<(), LmError>,
+    ) -> Result<(), LmError> {
+        let counts = self.counts;
+        let order = counts.order();
+        let bits = counts.bits();
+        let words = &counts.words;
+        // Unigrams.
+        let unigram_counts = if self.kneser_ney {
+            &counts.unigram_kneser_ney
+        } else {
+            &counts.unigram_raw
+        };
+        let predicted = || (0..words.len()).filter(|&word| word as u32 != START_ID);
+        let discounts = self.discounts[0];
+        let total: f64 = predicted().map(|word| unigram_counts[word] as f64).sum();
+        let seen = predicted().filter(|&word| unigram_counts[word] > 0).count();
+        let denominator = self.denominator(total, seen);
+        let mut unigram_term = vec![0.0; words.len()];
+        let mut kept_mass = 0.0;
+        for word in predicted() {
+            let count = unigram_counts[word];
+            let discounted = (count as f64 - discounts.of(count)).max(0.0);
+            unigram_term[word] = discounted / denominator;
+            kept_mass += discounted;
+        }
+        let unigram_gamma = (denominator - kept_mass) / denominator;
+        let uniform = unigram_gamma / self.vocabulary_size as f64;
+        let mut lower_probabilities: Vec<f64> = (0..words.len())
             .map(|word| {
                 if word as u32 == START_ID {
                     0.0
@@ -325,15 +457,93 @@ pub fn estimate_with(counts: &NgramCounts, options: &EstimateOptions) -> Result<
                     unigram_term[word] + uniform
                 }
             })
-            .collect(),
-    );
-    // backoffs[n-1][i]: γ of entry i of order n as a context (1 when it is none).
-    let mut backoffs: Vec<Vec<f64>> = Vec::with_capacity(order);
-    let mut interpolated = InterpolatedModel {
+            .collect();
+        let mut lower_backoffs = if order > 1 {
+            self.gammas_of_contexts(2)
+        } else {
+            vec![1.0; words.len()]
+        };
+        visit(SmoothedLevel {
+            n: 1,
+            kept: &vec![true; words.len()],
+            probabilities: &lower_probabilities,
+            backoffs: &lower_backoffs,
+        })?;
+        if let Some(model) = interpolated.as_deref_mut() {
+            model.unigram_term = unigram_term;
+            model.unigram_gamma = unigram_gamma;
+        }
+        for n in 2..=order {
+            let level = &counts.levels[n - 2];
+            let level_counts = self.level_counts(n);
+            let discounts = self.discounts[n - 1];
+            let kept = &self.kept[n - 2];
+            let mut probabilities = vec![0.0; level.keys.len()];
+            let mut kept_keys = Vec::new();
+            let mut kept_terms = Vec::new();
+            let mut contexts = Vec::new();
+            let mut gammas = Vec::new();
+            let keep_interpolated = interpolated.is_some();
+            self.for_each_context(n, |context, group| {
+                let gamma = lower_backoffs[level.prefix[group.start] as usize];
+                let (denominator, _) = self.group_sums(n, group.clone());
+                if keep_interpolated {
+                    contexts.push(context);
+                    gammas.push(gamma);
+                }
+                for index in group {
+                    if !kept[index] {
+                        continue;
+                    }
+                    let count = u64::from(level_counts[index]);
+                    let term = (count as f64 - discounts.of(count)).max(0.0) / denominator;
+                    probabilities[index] =
+                        term + gamma * lower_probabilities[level.suffix[index] as usize];
+                    if keep_interpolated {
+                        kept_keys.push(level.keys[index]);
+                        kept_terms.push(term);
+                    }
+                }
+            });
+            let backoffs = if n < order {
+                self.gammas_of_contexts(n + 1)
+            } else {
+                vec![1.0; level.keys.len()]
+            };
+            visit(SmoothedLevel {
+                n,
+                kept,
+                probabilities: &probabilities,
+                backoffs: &backoffs,
+            })?;
+            if let Some(model) = interpolated.as_deref_mut() {
+                model.keys.push(kept_keys);
+                model.terms.push(kept_terms);
+                model.contexts.push(contexts);
+                model.gammas.push(gammas);
+            }
+            let _ = bits;
+            lower_probabilities = probabilities;
+            lower_backoffs = backoffs;
+        }
+        Ok(())
+    }
+}
+
+/// Smooths `counts` into a back-off model (see the module documentation for the formulas).
+pub fn estimate_with(counts: &NgramCounts, options: &EstimateOptions) -> Result<Estimate, LmError> {
+    let smoother = Smoother::new(counts, options)?;
+    let words = counts.words();
+    let bits = counts.bits();
+    let mut builder = ModelBuilder::new(&smoother.kept_counts());
+    let too_many = |problem: AddError| LmError::Invalid(problem.describe("(estimated model)"));
+    // previous_index[i]: index in the model of entry i of the order below.
+    let mut previous_index: Vec<u32> = Vec::new();
+    let mut interpolated = options.keep_interpolated.then(|| InterpolatedModel {
         bits,
-        vocabulary_size,
-        unigram_term,
-        unigram_gamma,
+        vocabulary_size: smoother.vocabulary_size,
+        unigram_term: Vec::new(),
+        unigram_gamma: 0.0,
         keys: Vec::new(),
         terms: Vec::new(),
         contexts: Vec::new(),
@@ -343,127 +553,133 @@ pub fn estimate_with(counts: &NgramCounts, options: &EstimateOptions) -> Result<
             .enumerate()
             .map(|(id, word)| (word.clone(), id as u32))
             .collect(),
-    };
-
-    for n in 2..=order {
-        let level = &counts.levels[n - 2];
-        let level_counts: &[u32] = if kneser_ney {
-            &level.kneser_ney
-        } else {
-            &level.raw
-        };
-        let discounts = discounts_for(
-            smoothing,
-            n,
-            level_counts.iter().map(|&count| u64::from(count)),
-            &mut warnings,
-        );
-        all_discounts.push(discounts);
-        let lower_probabilities = &probabilities[n - 2];
-        let mut context_backoff = vec![1.0; lower_probabilities.len()];
-        let mut level_probabilities = vec![0.0; level.keys.len()];
-        let mut kept_keys = Vec::new();
-        let mut kept_terms = Vec::new();
-        let mut contexts = Vec::new();
-        let mut gammas = Vec::new();
-        let mut begin = 0;
-        while begin < level.keys.len() {
-            let context = level.keys[begin] >> bits;
-            let mut end = begin;
-            while end < level.keys.len() && level.keys[end] >> bits == context {
-                end += 1;
+    });
+    smoother.run(interpolated.as_mut(), &mut |level| {
+        if level.n == 1 {
+            for (word, text) in words.iter().enumerate() {
+                let log10_prob = if word as u32 == START_ID {
+                    -99.0
+                } else {
+                    level.probabilities[word].log10()
+                };
+                builder
+                    .add_unigram(text, log10_prob, level.backoffs[word].log10())
+                    .map_err(too_many)?;
             }
-            let group = begin..end;
-            let total: f64 = level_counts[group.clone()]
-                .iter()
-                .map(|&count| f64::from(count))
-                .sum();
-            let denominator = match smoothing {
-                Smoothing::WittenBell => total + group.len() as f64,
-                Smoothing::Additive { k } => total + k * vocabulary_size as f64,
-                _ => total,
-            };
-            let mut kept_mass = 0.0;
-            for index in group.clone() {
-                if kept[n - 2][index] {
-                    let count = u64::from(level_counts[index]);
-                    kept_mass += (count as f64 - discounts.of(count)).max(0.0);
-                }
-            }
-            let gamma = (denominator - kept_mass) / denominator;
-            contexts.push(context);
-            gammas.push(gamma);
-            context_backoff[level.prefix[begin] as usize] = gamma;
-            for index in group {
-                if !kept[n - 2][index] {
-                    continue;
-                }
-                let count = u64::from(level_counts[index]);
-                let term = (count as f64 - discounts.of(count)).max(0.0) / denominator;
-                level_probabilities[index] =
-                    term + gamma * lower_probabilities[level.suffix[index] as usize];
-                kept_keys.push(level.keys[index]);
-                kept_terms.push(term);
-            }
-            begin = end;
+            previous_index = (0..words.len() as u32).collect();
+            return Ok(());
         }
-        backoffs.push(context_backoff);
-        probabilities.push(level_probabilities);
-        interpolated.keys.push(kept_keys);
-        interpolated.terms.push(kept_terms);
-        interpolated.contexts.push(contexts);
-        interpolated.gammas.push(gammas);
-    }
-    backoffs.push(vec![1.0; probabilities[order - 1].len()]);
-
-    // Fold into the back-off form.
-    let kept_counts: Vec<usize> = std::iter::once(words.len())
-        .chain(
-            kept.iter()
-                .map(|flags| flags.iter().filter(|&&keep| keep).count()),
-        )
-        .collect();
-    let mut builder = ModelBuilder::new(&kept_counts);
-    let too_many = |problem: AddError| LmError::Invalid(problem.describe("(estimated model)"));
-    for (word, text) in words.iter().enumerate() {
-        let log10_prob = if word as u32 == START_ID {
-            -99.0
-        } else {
-            probabilities[0][word].log10()
-        };
-        builder
-            .add_unigram(text, log10_prob, backoffs[0][word].log10())
-            .map_err(too_many)?;
-    }
-    // new_index[i]: index of entry i of the previous order in the model.
-    let mut previous_index: Vec<u32> = (0..words.len() as u32).collect();
-    for n in 2..=order {
-        let level = &counts.levels[n - 2];
-        let mut new_index = vec![u32::MAX; level.keys.len()];
+        let entries = &counts.levels[level.n - 2];
+        let mut new_index = vec![u32::MAX; level.kept.len()];
         let mut next = 0u32;
-        for index in 0..level.keys.len() {
-            if !kept[n - 2][index] {
+        for (index, &keep) in level.kept.iter().enumerate() {
+            if !keep {
                 continue;
             }
             builder
                 .add_linked(
-                    n,
-                    previous_index[level.prefix[index] as usize],
-                    (level.keys[index] & ((1u128 << bits) - 1)) as u32,
-                    previous_index[level.suffix[index] as usize],
-                    probabilities[n - 1][index].log10(),
-                    backoffs[n - 1][index].log10(),
+                    level.n,
+                    previous_index[entries.prefix[index] as usize],
+                    (entries.keys[index] & ((1u128 << bits) - 1)) as u32,
+                    previous_index[entries.suffix[index] as usize],
+                    level.probabilities[index].log10(),
+                    level.backoffs[index].log10(),
                 )
                 .map_err(too_many)?;
             new_index[index] = next;
             next += 1;
         }
         previous_index = new_index;
-    }
+        Ok(())
+    })?;
     Ok(Estimate {
         model: builder.finish(),
-        discounts: all_discounts,
-        warnings,
+        discounts: smoother.discounts.clone(),
+        warnings: smoother.warnings.clone(),
         interpolated,
+    })
+}
+
+/// What [`write_estimated_arpa`] reports.
+#[derive(Clone, Debug)]
+pub struct EstimateSummary {
+    /// Number of n-grams written per order, unigrams first.
+    pub ngram_counts: Vec<usize>,
+    /// Discounts per order, unigrams first.
+    pub discounts: Vec<Discounts>,
+    /// Problems the caller should show the user.
+    pub warnings: Vec<String>,
+}
+
+/// Smooths `counts` and streams the model as ARPA text to `path` (`.gz` compresses) without
+/// building the query structure: the memory-lean path for large corpora. The result is the same
+/// model [`estimate_with`] builds.
+pub fn write_estimated_arpa(
+    counts: &NgramCounts,
+    options: &EstimateOptions,
+    path: &std::path::Path,
+) -> Result<EstimateSummary, LmError> {
+    let smoother = Smoother::new(counts, options)?;
+    let ngram_counts = smoother.kept_counts();
+    let order = counts.order();
+    let bits = counts.bits();
+    let mask = (1u128 << bits) - 1;
+    let words = counts.words();
+    crate::arpa::write_atomically(path, |writer| {
+        let mut line = Vec::with_capacity(256);
+        crate::arpa::write_header(writer, &ngram_counts)?;
+        let mut ngram = Vec::with_capacity(order);
+        let mut failure = None;
+        let result = smoother.run(None, &mut |level| {
+            let written = (|| -> std::io::Result<()> {
+                writeln!(writer, "\n\\{}-grams:", level.n)?;
+                for (index, &keep) in level.kept.iter().enumerate() {
+                    if !keep {
+                        continue;
+                    }
+                    ngram.clear();
+                    if level.n == 1 {
+                        ngram.push(index as u32);
+                    } else {
+                        let mut key = counts.levels[level.n - 2].keys[index];
+                        for _ in 0..level.n {
+                            ngram.push((key & mask) as u32);
+                            key >>= bits;
+                        }
+                        ngram.reverse();
+                    }
+                    let log10_prob = if level.n == 1 && index as u32 == START_ID {
+                        -99.0
+                    } else {
+                        level.probabilities[index].log10()
+                    };
+                    line.clear();
+                    let backoff = (level.n < order).then(|| level.backoffs[index].log10());
+                    crate::arpa::push_entry(
+                        &mut line,
+                        log10_prob,
+                        ngram.iter().map(|&word| words[word as usize].as_str()),
+                        backoff,
+                    );
+                    writer.write_all(&line)?;
+                }
+                Ok(())
+            })();
+            written.map_err(|error| {
+                let message = error.to_string();
+                failure = Some(error);
+                LmError::Invalid(message)
+            })
+        });
+        if let Some(error) = failure {
+            return Err(error);
+        }
+        result.map_err(|error| std::io::Error::other(error.to_string()))?;
+        writeln!(writer, "\n\\end\\")
+    })?;
+    Ok(EstimateSummary {
+        ngram_counts,
+        discounts: smoother.discounts,
+        warnings: smoother.warnings,
     })
 }

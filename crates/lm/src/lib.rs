@@ -48,7 +48,8 @@ mod rebuild;
 pub use counts::{read_vocabulary, CountOptions, NgramCounts};
 pub use error::LmError;
 pub use estimate::{
-    estimate, estimate_with, Discounts, Estimate, EstimateOptions, InterpolatedModel, Smoothing,
+    estimate, estimate_with, write_estimated_arpa, Discounts, Estimate, EstimateOptions,
+    EstimateSummary, InterpolatedModel, Smoothing,
 };
 pub use eval::{
     evaluate_sentences, evaluate_text, read_sentences, score_sentence, Perplexity, SentenceScorer,

@@ -41,7 +41,12 @@ impl<'a> Mixture<'a> {
             )));
         }
         let total: f64 = weights.iter().sum();
-        if weights.iter().any(|&weight| weight.is_nan() || weight < 0.0) || total.is_nan() || total <= 0.0 {
+        if weights
+            .iter()
+            .any(|&weight| weight.is_nan() || weight < 0.0)
+            || total.is_nan()
+            || total <= 0.0
+        {
             return Err(LmError::Invalid(format!(
                 "mixing: expected non-negative weights with a positive sum, found {weights:?}"
             )));

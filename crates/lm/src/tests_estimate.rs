@@ -74,8 +74,15 @@ fn every_context_sums_to_one_for_every_method_and_order() {
         for smoothing in METHODS {
             for cutoffs in [vec![], vec![1, 2, 2, 2, 2]] {
                 let label = format!("order {order}, {smoothing:?}, cut-offs {cutoffs:?}");
-                let estimated =
-                    estimate_with(&counts, &EstimateOptions { smoothing, cutoffs }).unwrap();
+                let estimated = estimate_with(
+                    &counts,
+                    &EstimateOptions {
+                        smoothing,
+                        cutoffs,
+                        keep_interpolated: false,
+                    },
+                )
+                .unwrap();
                 // Through the written file, so the ARPA text keeps enough precision too.
                 let path = folder.path().join("model.arpa");
                 estimated.model.write_arpa(&path).unwrap();
@@ -98,6 +105,7 @@ fn back_off_form_equals_interpolated_form() {
                 &EstimateOptions {
                     smoothing,
                     cutoffs: vec![1, 1, 2, 2],
+                    keep_interpolated: true,
                 },
             )
             .unwrap();
@@ -106,7 +114,11 @@ fn back_off_form_equals_interpolated_form() {
             for sentence in &test {
                 let mut history = vec!["<s>"];
                 for word in sentence.iter().map(String::as_str).chain(["</s>"]) {
-                    interpolated += estimated.interpolated.log10_probability(&history, word);
+                    interpolated += estimated
+                        .interpolated
+                        .as_ref()
+                        .unwrap()
+                        .log10_probability(&history, word);
                     history.push(word);
                 }
             }
@@ -214,4 +226,29 @@ fn a_closed_vocabulary_maps_other_words_to_unk() {
     // An unseen vocabulary word still gets a unigram (from the uniform base distribution).
     assert!(model.word_index("zebra").is_some());
     assert!(model.word_index("c").is_none());
+}
+
+#[test]
+fn streamed_arpa_equals_the_built_model() {
+    let counts = NgramCounts::from_sentences(generated_text(41, 50, 9), 4).unwrap();
+    let folder = tempfile::tempdir().unwrap();
+    for smoothing in METHODS {
+        let options = EstimateOptions {
+            smoothing,
+            cutoffs: vec![1, 1, 2, 3],
+            keep_interpolated: false,
+        };
+        let built = estimate_with(&counts, &options).unwrap();
+        let path = folder.path().join("streamed.arpa.gz");
+        let summary = crate::write_estimated_arpa(&counts, &options, &path).unwrap();
+        assert_eq!(summary.ngram_counts, built.model.ngram_counts());
+        let mut expected = Vec::new();
+        built.model.write_arpa_to(&mut expected).unwrap();
+        let mut streamed = Vec::new();
+        ArpaModel::read(&path)
+            .unwrap()
+            .write_arpa_to(&mut streamed)
+            .unwrap();
+        assert!(expected == streamed, "{smoothing:?}");
+    }
 }

@@ -157,8 +157,8 @@ pub fn align_by<T>(
     let mut cost = vec![0u32; rows * cols];
     // The comparison is kept so that the backtrace need not call `compare` again.
     let mut matches = vec![Match::Different; reference.len() * hypothesis.len()];
-    for j in 0..cols {
-        cost[j] = j as u32;
+    for (j, first_row) in cost.iter_mut().take(cols).enumerate() {
+        *first_row = j as u32;
     }
     for i in 1..rows {
         cost[i * cols] = i as u32;

@@ -286,10 +286,12 @@ pub fn report(
     for (column_index, column) in reference.group_columns.iter().enumerate() {
         let mut members: BTreeMap<&str, Vec<&UtteranceScore>> = BTreeMap::new();
         for (utterance, score) in reference.utterances.iter().zip(&system.utterances) {
-            members
-                .entry(utterance.groups[column_index].as_str())
-                .or_default()
-                .push(score);
+            // A hand-built reference may lack a grouping value; it then falls in the empty group.
+            let value = utterance
+                .groups
+                .get(column_index)
+                .map_or("", String::as_str);
+            members.entry(value).or_default().push(score);
         }
         for (value, scores) in members {
             groups.push(GroupSummary {
@@ -313,7 +315,7 @@ pub fn report(
         })
         .collect();
     // Stable sort over the alphabetical map order: ties stay alphabetical.
-    confusions.sort_by(|a, b| b.count.cmp(&a.count));
+    confusions.sort_by_key(|c| std::cmp::Reverse(c.count));
     confusions.truncate(options.top_confusions);
 
     let comparison = second.map(|second| compare(system, second, options));

@@ -1,3 +1,7 @@
 //! One module per command group; each exposes clap `Args` and a `run` returning an `Outcome`.
 
+pub mod decode;
 pub mod lexicon;
+pub mod lm;
+pub mod score;
+pub mod variants;

@@ -1,0 +1,178 @@
+//! Long recordings: segment a stream of audio, decode the segments in parallel, and place the
+//! words on the recording's time line.
+//!
+//! The stream is consumed in chunks; speech segments are collected until a batch is full, the
+//! batch is decoded on all rayon threads (one decoder with its scratch buffers per thread), and
+//! only the timed words are kept. Memory therefore depends on the batch size and the segment
+//! cap, not on the recording's length.
+
+use ndarray::Array2;
+use rayon::prelude::*;
+
+use crate::output::TimedSegment;
+use crate::segment::{Segmenter, SpeechSegment, VadConfig};
+use crate::{DecodeError, Decoder};
+
+/// Decodes `segments` in parallel. `posteriors` turns a segment's samples into log posteriors
+/// `[frames, units]` (features + acoustic model); `new_decoder` makes one decoder per worker
+/// thread. Results keep the input order; one failing segment does not stop the others.
+pub fn decode_segments<D, E, P, N>(
+    segments: &[SpeechSegment],
+    sample_rate: u32,
+    frame_shift_seconds: f64,
+    posteriors: P,
+    new_decoder: N,
+) -> Vec<Result<TimedSegment, E>>
+where
+    D: Decoder,
+    E: From<DecodeError> + Send,
+    P: Fn(&[f32]) -> Result<Array2<f32>, E> + Sync,
+    N: Fn() -> D + Sync,
+{
+    segments
+        .par_iter()
+        .map_init(&new_decoder, |decoder, segment| {
+            let log_posteriors = posteriors(&segment.samples)?;
+            let transcript = decoder.decode(log_posteriors.view())?;
+            Ok(TimedSegment::from_transcript(
+                &transcript,
+                segment.start_seconds(sample_rate),
+                segment.end_seconds(sample_rate),
+                frame_shift_seconds,
+            ))
+        })
+        .collect()
+}
+
+/// How a stream is cut and batched.
+#[derive(Debug, Clone)]
+pub struct StreamSettings {
+    /// Sample rate of the chunks.
+    pub sample_rate: u32,
+    /// Voice-activity segmentation.
+    pub vad: VadConfig,
+    /// Segments decoded together (in parallel) before the next chunk is read.
+    pub batch_segments: usize,
+    /// Seconds between two posterior frames.
+    pub frame_shift_seconds: f64,
+}
+
+/// Transcribes a recording delivered as a stream of sample chunks: voice-activity
+/// segmentation, then [`decode_segments`] on batches of `batch_segments` segments.
+/// `on_progress` is called after each batch with the seconds of audio consumed so far.
+/// Stops at the first error (of the stream or of a segment).
+pub fn transcribe_stream<D, E, I, P, N>(
+    chunks: I,
+    settings: &StreamSettings,
+    posteriors: P,
+    new_decoder: N,
+    mut on_progress: impl FnMut(f64),
+) -> Result<Vec<TimedSegment>, E>
+where
+    D: Decoder,
+    E: From<DecodeError> + Send,
+    I: IntoIterator<Item = Result<Vec<f32>, E>>,
+    P: Fn(&[f32]) -> Result<Array2<f32>, E> + Sync,
+    N: Fn() -> D + Sync,
+{
+    let sample_rate = settings.sample_rate;
+    let frame_shift_seconds = settings.frame_shift_seconds;
+    let mut segmenter = Segmenter::new(settings.vad.clone(), sample_rate);
+    let mut pending = Vec::new();
+    let mut out = Vec::new();
+    let mut consumed = 0u64;
+    let batch = settings.batch_segments.max(1);
+    let flush = |pending: &mut Vec<SpeechSegment>, out: &mut Vec<TimedSegment>| -> Result<(), E> {
+        for result in decode_segments(
+            pending,
+            sample_rate,
+            frame_shift_seconds,
+            &posteriors,
+            &new_decoder,
+        ) {
+            out.push(result?);
+        }
+        pending.clear();
+        Ok(())
+    };
+    for chunk in chunks {
+        let chunk = chunk?;
+        consumed += chunk.len() as u64;
+        segmenter.push(&chunk, &mut pending);
+        if pending.len() >= batch {
+            flush(&mut pending, &mut out)?;
+            on_progress(consumed as f64 / sample_rate as f64);
+        }
+    }
+    segmenter.finish(&mut pending);
+    flush(&mut pending, &mut out)?;
+    on_progress(consumed as f64 / sample_rate as f64);
+    Ok(out)
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::{GreedyDecoder, SearchGraph};
+
+    /// A stand-in acoustic model: one frame per 10 ms; a frame is unit 1 ("a") when the
+    /// samples are loud, blank otherwise; a loud stretch is a word.
+    fn fake_posteriors(samples: &[f32]) -> Result<Array2<f32>, DecodeError> {
+        let frames = samples.len() / 160;
+        Ok(Array2::from_shape_fn((frames, 3), |(t, u)| {
+            let loud = samples[t * 160..(t + 1) * 160]
+                .iter()
+                .any(|x| x.abs() > 0.1);
+            let hit = if loud { u == 1 } else { u == 0 };
+            if hit {
+                (0.98f32).ln()
+            } else {
+                (0.01f32).ln()
+            }
+        }))
+    }
+
+    #[test]
+    fn words_land_on_the_recording_time_line_in_order() {
+        let rate = 16_000;
+        let graph =
+            SearchGraph::lexicon_free(vec!["<blk>".into(), "a".into(), "<wb>".into()]).unwrap();
+        // a loud square wave at 2–2.5 s, 10–10.5 s and 30–30.5 s in 40 s of faint noise
+        let bursts = [2.0, 10.0, 30.0];
+        let signal: Vec<f32> = (0..40 * rate)
+            .map(|n| {
+                let t = n as f64 / rate as f64;
+                let loud = bursts.iter().any(|&b| t >= b && t < b + 0.5);
+                let sign = if (n / 40) % 2 == 0 { 1.0 } else { -1.0 };
+                sign * if loud { 0.5 } else { 0.001 }
+            })
+            .collect();
+        let chunks = signal
+            .chunks(12_345)
+            .map(|c| Ok::<_, DecodeError>(c.to_vec()));
+        let mut progress = Vec::new();
+        let segments = transcribe_stream(
+            chunks,
+            &StreamSettings {
+                sample_rate: rate as u32,
+                vad: VadConfig::default(),
+                batch_segments: 2,
+                frame_shift_seconds: 0.01,
+            },
+            fake_posteriors,
+            || GreedyDecoder::new(&graph),
+            |seconds| progress.push(seconds),
+        )
+        .unwrap();
+        assert_eq!(segments.len(), 3);
+        for (segment, burst) in segments.iter().zip(bursts) {
+            assert_eq!(segment.words.len(), 1);
+            let w = &segment.words[0];
+            assert!((w.start - burst).abs() <= 0.011, "{w:?} vs {burst}");
+            assert!((w.end - (burst + 0.5)).abs() <= 0.011, "{w:?}");
+            assert!(segment.start <= w.start && w.end <= segment.end);
+        }
+        assert!(progress.windows(2).all(|p| p[0] <= p[1]));
+        assert_eq!(*progress.last().unwrap(), 40.0);
+    }
+}

@@ -1,0 +1,698 @@
+//! CTC prefix beam search with a lexicon trie and a word-level language model.
+//!
+//! A hypothesis is a node of a prefix tree (an arena that grows during one utterance): the
+//! emitted labels, the words completed so far with their LM state and summed LM score, and the
+//! position in the lexicon trie. For every hypothesis the search keeps two probabilities: of all
+//! alignments of its labels to the frames so far that end in blank, and that end in its last
+//! label (Graves & Jaitly 2014; Hannun et al. 2014). Two hypotheses with the same labels but
+//! different word segmentations (phone lexicons) or different homophones stay separate, so with an
+//! unlimited beam the search maximises exactly
+//!
+//! `ln P(labels | posteriors) + lm_weight × ln P_LM(words, </s>) + word_bonus × |words|`
+//!
+//! over all (labels, words) pairs where the words spell the labels by the graph's [`WordRule`].
+
+use ndarray::ArrayView2;
+
+use isogloss_lexicon::trie::TrieNode;
+
+use crate::graph::{SearchGraph, WordRule};
+use crate::lm::LanguageModel;
+use crate::transcript::{spell, timed_words, viterbi_runs, LabelRun, Transcript, WordSpan};
+use crate::{check_posteriors, DecodeError, Decoder};
+
+/// Tuning of the prefix beam search. Every pruning option trades accuracy for speed; with
+/// [`SearchOptions::exact`] nothing is pruned.
+#[derive(Debug, Clone, PartialEq)]
+pub struct SearchOptions {
+    /// Hypotheses kept after each frame.
+    pub beam: usize,
+    /// Factor on the LM's natural-log probabilities.
+    pub lm_weight: f32,
+    /// Added to the score for every word (counteracts the LM's preference for short outputs).
+    pub word_bonus: f32,
+    /// A frame only extends hypotheses by units whose log posterior is within this margin of
+    /// the frame's best non-blank unit; `None` tries every unit.
+    pub unit_prune: Option<f32>,
+    /// Hypotheses more than this below the frame's best are dropped; `None` keeps the beam full.
+    pub score_margin: Option<f32>,
+    /// Frames whose blank posterior is at least this probability only update existing
+    /// hypotheses (blank and repeat), without extending any; `None` treats every frame fully.
+    pub blank_skip: Option<f32>,
+    /// Rank partial words by the best LM look-ahead score in the lexicon trie below them.
+    pub lookahead: bool,
+    /// `ln P` charged for a word the LM neither knows nor can map to `<unk>`.
+    pub unknown_word_score: f32,
+}
+
+impl Default for SearchOptions {
+    fn default() -> Self {
+        SearchOptions {
+            beam: 16,
+            lm_weight: 0.5,
+            word_bonus: 1.0,
+            unit_prune: Some(8.0),
+            score_margin: Some(20.0),
+            blank_skip: Some(0.999),
+            lookahead: true,
+            unknown_word_score: -20.0,
+        }
+    }
+}
+
+impl SearchOptions {
+    /// No pruning at all: every hypothesis is kept. Exponential in the number of frames; meant
+    /// for checking the search against enumeration on tiny inputs.
+    pub fn exact(lm_weight: f32, word_bonus: f32) -> Self {
+        SearchOptions {
+            beam: usize::MAX,
+            lm_weight,
+            word_bonus,
+            unit_prune: None,
+            score_margin: None,
+            blank_skip: None,
+            lookahead: true,
+            unknown_word_score: -20.0,
+        }
+    }
+}
+
+const NONE: u32 = u32::MAX;
+/// Word code: the step completes no word.
+const NO_WORD: u32 = u32::MAX;
+/// Word code: the step completes a word spelled from units (no lexicon).
+const SPELLED: u32 = u32::MAX - 1;
+
+#[derive(Debug, Clone)]
+struct PrefixNode<S> {
+    parent: u32,
+    /// Label emitted by this step (0 only at the root).
+    unit: u32,
+    /// Word completed by this step: a lexicon word id, [`SPELLED`] or [`NO_WORD`].
+    word: u32,
+    /// Position in the lexicon trie after this step (the root between words).
+    trie: TrieNode,
+    /// Units in the current, unfinished spelled word.
+    word_len: u32,
+    lm_state: S,
+    /// `lm_weight × Σ ln P_LM + word_bonus × words` of the completed words.
+    context: f32,
+    /// `lm_weight × look-ahead` of the unfinished word; ranking only.
+    lookahead: f32,
+    first_child: u32,
+    next_sibling: u32,
+    /// Step stamp and index of this node in the beam being built (avoids a hash map).
+    stamp: u32,
+    slot: u32,
+}
+
+#[derive(Debug, Clone, Copy)]
+struct Hypothesis {
+    node: u32,
+    blank: f32,
+    non_blank: f32,
+}
+
+#[inline]
+fn log_add(a: f32, b: f32) -> f32 {
+    if a == f32::NEG_INFINITY {
+        return b;
+    }
+    if b == f32::NEG_INFINITY {
+        return a;
+    }
+    let (hi, lo) = if a > b { (a, b) } else { (b, a) };
+    hi + (lo - hi).exp().ln_1p()
+}
+
+/// A finished hypothesis: its node, the word still pending at the end (boundary rules), and
+/// its objective.
+struct Final {
+    node: u32,
+    pending: u32,
+    acoustic: f32,
+    score: f32,
+}
+
+/// CTC prefix beam search over one [`SearchGraph`] and one [`LanguageModel`]. Holds its scratch
+/// buffers, so one instance per thread decodes any number of utterances without reallocating
+/// once the buffers have grown.
+pub struct PrefixBeamSearch<'a, L: LanguageModel> {
+    graph: &'a SearchGraph,
+    lm: &'a L,
+    options: SearchOptions,
+    /// LM handle for each lexicon word id (`None`: unknown to the LM).
+    lm_words: Vec<Option<L::Word>>,
+    /// `lm_weight × look-ahead` per trie node.
+    lookahead: Vec<f32>,
+    arena: Vec<PrefixNode<L::State>>,
+    beam: Vec<Hypothesis>,
+    next: Vec<Hypothesis>,
+    candidates: Vec<u32>,
+    frame: Vec<f32>,
+    stamp: u32,
+    text: String,
+    units: Vec<u32>,
+    viterbi_scores: Vec<f32>,
+    viterbi_back: Vec<u8>,
+    runs: Vec<LabelRun>,
+}
+
+impl<'a, L: LanguageModel> Clone for PrefixBeamSearch<'a, L> {
+    fn clone(&self) -> Self {
+        PrefixBeamSearch {
+            graph: self.graph,
+            lm: self.lm,
+            options: self.options.clone(),
+            lm_words: self.lm_words.clone(),
+            lookahead: self.lookahead.clone(),
+            arena: Vec::new(),
+            beam: Vec::new(),
+            next: Vec::new(),
+            candidates: Vec::new(),
+            frame: Vec::new(),
+            stamp: 0,
+            text: String::new(),
+            units: Vec::new(),
+            viterbi_scores: Vec::new(),
+            viterbi_back: Vec::new(),
+            runs: Vec::new(),
+        }
+    }
+}
+
+impl<'a, L: LanguageModel> PrefixBeamSearch<'a, L> {
+    /// Prepares a search: maps the lexicon's words to LM words (falling back to the LM's
+    /// `<unk>`) and computes the trie look-ahead scores.
+    pub fn new(graph: &'a SearchGraph, lm: &'a L, options: SearchOptions) -> Self {
+        let lm_words: Vec<Option<L::Word>> = graph
+            .words()
+            .iter()
+            .map(|w| lm.lookup(w).or_else(|| lm.unknown()))
+            .collect();
+        let mut lookahead = Vec::new();
+        if let Some(trie) = graph.trie() {
+            // The graph's trie is shared by every search; fill a private copy's slots with this
+            // search's weighted scores and keep them as a plain table by node index.
+            let mut trie = trie.clone();
+            let weight = options.lm_weight;
+            let unknown = options.unknown_word_score;
+            if options.lookahead {
+                trie.fill_lookahead(|w| match lm_words[w as usize] {
+                    Some(word) => weight * lm.lookahead_score(word),
+                    None => weight * unknown,
+                });
+            }
+            lookahead = trie
+                .nodes()
+                .map(|n| {
+                    if options.lookahead {
+                        trie.lookahead(n)
+                    } else {
+                        0.0
+                    }
+                })
+                .collect();
+        }
+        PrefixBeamSearch {
+            graph,
+            lm,
+            options,
+            lm_words,
+            lookahead,
+            arena: Vec::new(),
+            beam: Vec::new(),
+            next: Vec::new(),
+            candidates: Vec::new(),
+            frame: Vec::new(),
+            stamp: 0,
+            text: String::new(),
+            units: Vec::new(),
+            viterbi_scores: Vec::new(),
+            viterbi_back: Vec::new(),
+            runs: Vec::new(),
+        }
+    }
+
+    /// The options this search runs with.
+    pub fn options(&self) -> &SearchOptions {
+        &self.options
+    }
+
+    /// The `n` best finished hypotheses, best first (fewer if fewer survive). Every hypothesis
+    /// obeys the graph's word rule: with a lexicon, only lexicon words.
+    pub fn decode_nbest(
+        &mut self,
+        log_posteriors: ArrayView2<'_, f32>,
+        n: usize,
+    ) -> Result<Vec<Transcript>, DecodeError> {
+        check_posteriors(self.graph, log_posteriors)?;
+        self.reset();
+        let blank_skip = self.options.blank_skip.map(|p| p.ln());
+        for t in 0..log_posteriors.nrows() {
+            // Copy the row: the posteriors may be a strided view; the copy reuses one buffer.
+            let mut frame = std::mem::take(&mut self.frame);
+            frame.clear();
+            frame.extend(log_posteriors.row(t).iter().copied());
+            match blank_skip {
+                Some(threshold) if frame[0] >= threshold => self.blank_step(&frame),
+                _ => self.full_step(&frame),
+            }
+            self.frame = frame;
+        }
+        let mut finals = self.finals();
+        finals.sort_by(|a, b| b.score.total_cmp(&a.score));
+        finals.truncate(n);
+        Ok(finals
+            .iter()
+            .map(|f| self.transcript(log_posteriors, f))
+            .collect())
+    }
+
+    fn reset(&mut self) {
+        self.arena.clear();
+        self.beam.clear();
+        self.next.clear();
+        let root_trie = self
+            .graph
+            .trie()
+            .map(|t| t.root())
+            .unwrap_or_else(|| isogloss_lexicon::trie::PrefixTrie::default().root());
+        self.arena.push(PrefixNode {
+            parent: NONE,
+            unit: 0,
+            word: NO_WORD,
+            trie: root_trie,
+            word_len: 0,
+            lm_state: self.lm.start_state(),
+            context: 0.0,
+            lookahead: 0.0,
+            first_child: NONE,
+            next_sibling: NONE,
+            stamp: 0,
+            slot: 0,
+        });
+        self.beam.push(Hypothesis {
+            node: 0,
+            blank: 0.0,
+            non_blank: f32::NEG_INFINITY,
+        });
+        self.stamp = 0;
+    }
+
+    /// A frame where blank dominates: hypotheses only absorb it by blank or by repeating their
+    /// last label; no new prefix is started.
+    fn blank_step(&mut self, frame: &[f32]) {
+        for h in &mut self.beam {
+            let last = self.arena[h.node as usize].unit as usize;
+            let total = log_add(h.blank, h.non_blank);
+            h.blank = total + frame[0];
+            h.non_blank = if last == 0 {
+                f32::NEG_INFINITY
+            } else {
+                h.non_blank + frame[last]
+            };
+        }
+    }
+
+    fn full_step(&mut self, frame: &[f32]) {
+        self.stamp += 1;
+        self.next.clear();
+        self.candidates.clear();
+        let best_unit = frame[1..].iter().copied().fold(f32::NEG_INFINITY, f32::max);
+        for (c, &p) in frame.iter().enumerate().skip(1) {
+            if self.options.unit_prune.is_none_or(|m| p >= best_unit - m) {
+                self.candidates.push(c as u32);
+            }
+        }
+        for i in 0..self.beam.len() {
+            let h = self.beam[i];
+            let total = log_add(h.blank, h.non_blank);
+            self.add(h.node, total + frame[0], f32::NEG_INFINITY);
+            let last = self.arena[h.node as usize].unit;
+            if last != 0 {
+                self.add(
+                    h.node,
+                    f32::NEG_INFINITY,
+                    h.non_blank + frame[last as usize],
+                );
+            }
+            for k in 0..self.candidates.len() {
+                let c = self.candidates[k];
+                let from = if c == last { h.blank } else { total };
+                if from == f32::NEG_INFINITY {
+                    continue;
+                }
+                self.extend(h.node, c, from + frame[c as usize]);
+            }
+        }
+        self.prune();
+        std::mem::swap(&mut self.beam, &mut self.next);
+    }
+
+    fn rank(&self, h: &Hypothesis) -> f32 {
+        let node = &self.arena[h.node as usize];
+        log_add(h.blank, h.non_blank) + node.context + node.lookahead
+    }
+
+    fn prune(&mut self) {
+        if let Some(margin) = self.options.score_margin {
+            let best = self
+                .next
+                .iter()
+                .map(|h| self.rank(h))
+                .fold(f32::NEG_INFINITY, f32::max);
+            let arena = &self.arena;
+            self.next.retain(|h| {
+                let node = &arena[h.node as usize];
+                log_add(h.blank, h.non_blank) + node.context + node.lookahead >= best - margin
+            });
+        }
+        if self.next.len() > self.options.beam {
+            let arena = &self.arena;
+            let rank = |h: &Hypothesis| {
+                let node = &arena[h.node as usize];
+                log_add(h.blank, h.non_blank) + node.context + node.lookahead
+            };
+            let beam = self.options.beam;
+            self.next
+                .select_nth_unstable_by(beam - 1, |a, b| rank(b).total_cmp(&rank(a)));
+            self.next.truncate(beam);
+        }
+    }
+
+    /// Adds probability mass to `node` in the beam being built.
+    fn add(&mut self, node: u32, blank: f32, non_blank: f32) {
+        let entry = &mut self.arena[node as usize];
+        if entry.stamp == self.stamp {
+            let h = &mut self.next[entry.slot as usize];
+            h.blank = log_add(h.blank, blank);
+            h.non_blank = log_add(h.non_blank, non_blank);
+        } else {
+            entry.stamp = self.stamp;
+            entry.slot = self.next.len() as u32;
+            self.next.push(Hypothesis {
+                node,
+                blank,
+                non_blank,
+            });
+        }
+    }
+
+    /// Extends `parent` by label `unit` with probability `p`, into every continuation the word
+    /// rule allows.
+    fn extend(&mut self, parent: u32, unit: u32, p: f32) {
+        let graph = self.graph;
+        let node = &self.arena[parent as usize];
+        let is_boundary = Some(unit) == graph.boundary();
+        match graph.word_rule() {
+            WordRule::LexiconAtWordEnd => {
+                let Some(trie) = graph.trie() else { return };
+                let Some(child) = trie.child(node.trie, unit) else {
+                    return;
+                };
+                if !trie.children(child).is_empty() {
+                    let target = self.child(parent, unit, NO_WORD);
+                    self.add(target, f32::NEG_INFINITY, p);
+                }
+                for &word in trie.words_at(child) {
+                    let target = self.child(parent, unit, word);
+                    self.add(target, f32::NEG_INFINITY, p);
+                }
+            }
+            WordRule::LexiconAtBoundary => {
+                let Some(trie) = graph.trie() else { return };
+                if is_boundary {
+                    if node.trie == trie.root() {
+                        let target = self.child(parent, unit, NO_WORD);
+                        self.add(target, f32::NEG_INFINITY, p);
+                    } else {
+                        let at = node.trie;
+                        for &word in trie.words_at(at) {
+                            let target = self.child(parent, unit, word);
+                            self.add(target, f32::NEG_INFINITY, p);
+                        }
+                    }
+                } else if trie.child(node.trie, unit).is_some() {
+                    let target = self.child(parent, unit, NO_WORD);
+                    self.add(target, f32::NEG_INFINITY, p);
+                }
+            }
+            WordRule::SpelledAtBoundary => {
+                let word = if is_boundary && node.word_len > 0 {
+                    SPELLED
+                } else {
+                    NO_WORD
+                };
+                let target = self.child(parent, unit, word);
+                self.add(target, f32::NEG_INFINITY, p);
+            }
+            WordRule::EveryUnit => {
+                let target = self.child(parent, unit, SPELLED);
+                self.add(target, f32::NEG_INFINITY, p);
+            }
+        }
+    }
+
+    /// The arena node for `parent` + `unit` completing `word`, created on first use.
+    fn child(&mut self, parent: u32, unit: u32, word: u32) -> u32 {
+        let mut c = self.arena[parent as usize].first_child;
+        while c != NONE {
+            let node = &self.arena[c as usize];
+            if node.unit == unit && node.word == word {
+                return c;
+            }
+            c = node.next_sibling;
+        }
+        let p = &self.arena[parent as usize];
+        let graph = self.graph;
+        let is_boundary = Some(unit) == graph.boundary();
+        let mut trie_node = p.trie;
+        let mut word_len = p.word_len;
+        let mut lm_state = p.lm_state;
+        let mut context = p.context;
+        let mut lookahead = 0.0;
+        match (graph.trie(), word) {
+            (Some(trie), NO_WORD) => {
+                if !is_boundary {
+                    if let Some(child) = trie.child(p.trie, unit) {
+                        trie_node = child;
+                        lookahead = self.lookahead[child.index()];
+                    }
+                }
+            }
+            (Some(trie), word) => {
+                let (lm, next) = self.word_score(&p.lm_state, word);
+                lm_state = next;
+                context += self.options.lm_weight * lm + self.options.word_bonus;
+                trie_node = trie.root();
+            }
+            (None, NO_WORD) => {
+                word_len = if is_boundary { 0 } else { word_len + 1 };
+            }
+            (None, _) => {
+                let state = p.lm_state;
+                if is_boundary {
+                    self.spelled_word(parent);
+                } else {
+                    spell(graph, &[unit], &mut self.text);
+                }
+                let (lm, next) = self.spelled_score(&state);
+                lm_state = next;
+                context += self.options.lm_weight * lm + self.options.word_bonus;
+                word_len = 0;
+            }
+        }
+        let id = self.arena.len() as u32;
+        let first = self.arena[parent as usize].first_child;
+        self.arena.push(PrefixNode {
+            parent,
+            unit,
+            word,
+            trie: trie_node,
+            word_len,
+            lm_state,
+            context,
+            lookahead,
+            first_child: NONE,
+            next_sibling: first,
+            stamp: 0,
+            slot: 0,
+        });
+        self.arena[parent as usize].first_child = id;
+        id
+    }
+
+    fn word_score(&self, state: &L::State, word: u32) -> (f32, L::State) {
+        match self.lm_words[word as usize] {
+            Some(w) => self.lm.score(state, w),
+            None => (self.options.unknown_word_score, *state),
+        }
+    }
+
+    /// Score of the word in `self.text`.
+    fn spelled_score(&self, state: &L::State) -> (f32, L::State) {
+        match self.lm.lookup(&self.text).or_else(|| self.lm.unknown()) {
+            Some(w) => self.lm.score(state, w),
+            None => (self.options.unknown_word_score, *state),
+        }
+    }
+
+    /// Spells the unfinished word ending at `node` into `self.text`.
+    fn spelled_word(&mut self, node: u32) {
+        self.units.clear();
+        let mut n = node;
+        for _ in 0..self.arena[node as usize].word_len {
+            self.units.push(self.arena[n as usize].unit);
+            n = self.arena[n as usize].parent;
+        }
+        self.units.reverse();
+        let units = std::mem::take(&mut self.units);
+        spell(self.graph, &units, &mut self.text);
+        self.units = units;
+    }
+
+    fn finals(&mut self) -> Vec<Final> {
+        let mut finals = Vec::new();
+        let weight = self.options.lm_weight;
+        let bonus = self.options.word_bonus;
+        for i in 0..self.beam.len() {
+            let h = self.beam[i];
+            let acoustic = log_add(h.blank, h.non_blank);
+            if acoustic == f32::NEG_INFINITY {
+                continue;
+            }
+            let node = self.arena[h.node as usize].clone();
+            let closed =
+                |lm: &L, state: &L::State| acoustic + node.context + weight * lm.end_score(state);
+            match (self.graph.word_rule(), self.graph.trie()) {
+                (WordRule::LexiconAtWordEnd, Some(trie)) => {
+                    if node.trie == trie.root() {
+                        finals.push(Final {
+                            node: h.node,
+                            pending: NO_WORD,
+                            acoustic,
+                            score: closed(self.lm, &node.lm_state),
+                        });
+                    }
+                }
+                (WordRule::LexiconAtBoundary, Some(trie)) => {
+                    if node.trie == trie.root() {
+                        finals.push(Final {
+                            node: h.node,
+                            pending: NO_WORD,
+                            acoustic,
+                            score: closed(self.lm, &node.lm_state),
+                        });
+                    } else {
+                        for &word in trie.words_at(node.trie) {
+                            let (lm, next) = self.word_score(&node.lm_state, word);
+                            finals.push(Final {
+                                node: h.node,
+                                pending: word,
+                                acoustic,
+                                score: closed(self.lm, &next) + weight * lm + bonus,
+                            });
+                        }
+                    }
+                }
+                (WordRule::SpelledAtBoundary, _) if node.word_len > 0 => {
+                    self.spelled_word(h.node);
+                    let (lm, next) = self.spelled_score(&node.lm_state);
+                    finals.push(Final {
+                        node: h.node,
+                        pending: SPELLED,
+                        acoustic,
+                        score: closed(self.lm, &next) + weight * lm + bonus,
+                    });
+                }
+                _ => finals.push(Final {
+                    node: h.node,
+                    pending: NO_WORD,
+                    acoustic,
+                    score: closed(self.lm, &node.lm_state),
+                }),
+            }
+        }
+        finals
+    }
+
+    fn transcript(&mut self, log_posteriors: ArrayView2<'_, f32>, f: &Final) -> Transcript {
+        // Labels and word codes from the root down.
+        let mut steps = Vec::new();
+        let mut n = f.node;
+        while n != 0 {
+            let node = &self.arena[n as usize];
+            steps.push((node.unit, node.word));
+            n = node.parent;
+        }
+        steps.reverse();
+        let labels: Vec<u32> = steps.iter().map(|s| s.0).collect();
+        let graph = self.graph;
+        let mut spans = Vec::new();
+        let mut start = 0usize;
+        let text_of = |word: u32, units: &[u32], text: &mut String| {
+            if word == SPELLED {
+                spell(graph, units, text);
+                text.clone()
+            } else {
+                graph.words()[word as usize].clone()
+            }
+        };
+        for (i, &(unit, word)) in steps.iter().enumerate() {
+            let is_boundary = Some(unit) == graph.boundary();
+            if is_boundary {
+                if word != NO_WORD {
+                    let text = text_of(word, &labels[start..i], &mut self.text);
+                    spans.push(WordSpan {
+                        text,
+                        first: start,
+                        last: i - 1,
+                    });
+                }
+                start = i + 1;
+            } else if word != NO_WORD {
+                let text = text_of(word, &labels[start..=i], &mut self.text);
+                spans.push(WordSpan {
+                    text,
+                    first: start,
+                    last: i,
+                });
+                start = i + 1;
+            }
+        }
+        if f.pending != NO_WORD && start < labels.len() {
+            let text = text_of(f.pending, &labels[start..], &mut self.text);
+            spans.push(WordSpan {
+                text,
+                first: start,
+                last: labels.len() - 1,
+            });
+        }
+        viterbi_runs(
+            log_posteriors,
+            &labels,
+            &mut self.viterbi_scores,
+            &mut self.viterbi_back,
+            &mut self.runs,
+        );
+        Transcript {
+            words: timed_words(spans, &self.runs),
+            units: labels,
+            score: f.score,
+            acoustic_score: f.acoustic,
+        }
+    }
+}
+
+impl<L: LanguageModel> Decoder for PrefixBeamSearch<'_, L> {
+    fn decode(&mut self, log_posteriors: ArrayView2<'_, f32>) -> Result<Transcript, DecodeError> {
+        let mut best = self.decode_nbest(log_posteriors, 1)?;
+        Ok(best.pop().unwrap_or(Transcript {
+            words: Vec::new(),
+            units: Vec::new(),
+            score: f32::NEG_INFINITY,
+            acoustic_score: f32::NEG_INFINITY,
+        }))
+    }
+}

@@ -1,0 +1,805 @@
+//! The sweep file: which models, test and dev sets, and which axes to cross.
+//!
+//! Everything is checked here, before any work starts: every named file exists, every axis has
+//! at least one value, names are unique, the baseline names values that exist. Inner code then
+//! receives a [`Sweep`] whose paths are absolute and whose grid is non-empty.
+
+use std::collections::BTreeSet;
+use std::path::{Path, PathBuf};
+
+use serde::Deserialize;
+
+use crate::SweepError;
+
+/// The placeholder in language-model text paths that stands for the transcript column, so that
+/// one recipe builds a dialectal LM for the dialectal column and a normalized one for the other.
+pub const COLUMN_PLACEHOLDER: &str = "{column}";
+
+/// The sweep file as written by the user (TOML).
+#[derive(Debug, Clone, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct SweepFile {
+    /// Folder for caches and results, relative to the sweep file.
+    pub out_dir: PathBuf,
+    /// Model directories (each with `model.safetensors` and `model.toml`).
+    pub models: Vec<PathBuf>,
+    /// The test manifest every cell is scored on.
+    pub test: PathBuf,
+    /// A development manifest for tuning the LM weight and word bonus (optional).
+    #[serde(default)]
+    pub dev: Option<PathBuf>,
+    /// Transcript columns to decode and score against (e.g. `dialectal`, `normalized`).
+    pub columns: Vec<String>,
+    /// Variant maps (`variant<TAB>normalized`) for flexible WER, one per column name; a column
+    /// without one is scored by plain WER only.
+    #[serde(default)]
+    pub variants: std::collections::BTreeMap<String, PathBuf>,
+    /// Grouping column of the test manifest for per-group figures.
+    #[serde(default = "default_group_by")]
+    pub group_by: String,
+    /// Seed of the bootstrap.
+    #[serde(default = "default_seed")]
+    pub seed: u64,
+    /// Bootstrap replicates.
+    #[serde(default = "default_resamples")]
+    pub resamples: usize,
+    /// The cell every other cell is compared with.
+    #[serde(default)]
+    pub baseline: Option<BaselineFile>,
+    /// The language-model axis.
+    #[serde(default, rename = "lm")]
+    pub lms: Vec<LmSpec>,
+    /// The lexicon axis.
+    #[serde(default, rename = "lexicon")]
+    pub lexicons: Vec<LexiconSpec>,
+    /// The decoder-settings axes.
+    #[serde(default)]
+    pub decoder: DecoderAxes,
+}
+
+fn default_group_by() -> String {
+    "dialect".into()
+}
+fn default_seed() -> u64 {
+    1
+}
+fn default_resamples() -> usize {
+    1000
+}
+
+/// The baseline cell, by the names of its axis values; unnamed axes take their first value.
+#[derive(Debug, Clone, Default, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct BaselineFile {
+    /// Model directory name (the folder's last component).
+    pub model: Option<String>,
+    /// Transcript column.
+    pub column: Option<String>,
+    /// LM name.
+    pub lm: Option<String>,
+    /// Lexicon name.
+    pub lexicon: Option<String>,
+}
+
+/// One value of the language-model axis: an ARPA file, or a recipe to build one.
+#[derive(Debug, Clone, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct LmSpec {
+    /// Short name shown in the results.
+    pub name: String,
+    /// An existing ARPA file (`.arpa` or `.arpa.gz`); excludes the recipe fields.
+    #[serde(default)]
+    pub file: Option<PathBuf>,
+    /// Recipe: n-gram order (1–6).
+    #[serde(default)]
+    pub order: Option<usize>,
+    /// Recipe: smoothing, `mkn`, `kn`, `wb` or `add`.
+    #[serde(default)]
+    pub smoothing: Option<String>,
+    /// Recipe: in-domain training texts; `{column}` is replaced by the transcript column.
+    #[serde(default)]
+    pub text: Vec<PathBuf>,
+    /// Recipe: out-of-domain text, mixed in with a weight estimated on the dev transcripts
+    /// (or `ood_weight` when given).
+    #[serde(default)]
+    pub ood: Option<PathBuf>,
+    /// Recipe: a fixed out-of-domain mixture weight in (0, 1) instead of estimating it.
+    #[serde(default)]
+    pub ood_weight: Option<f64>,
+}
+
+/// One value of the lexicon axis.
+#[derive(Debug, Clone, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct LexiconSpec {
+    /// Short name shown in the results.
+    pub name: String,
+    /// `grapheme` (spelling as units), `rules` (rule file), `g2p` (trained model) or `file`.
+    pub kind: String,
+    /// The rule file (`rules`), G2P model (`g2p`) or lexicon TSV (`file`).
+    #[serde(default)]
+    pub path: Option<PathBuf>,
+}
+
+/// Decoder settings crossed in the grid; each list must be non-empty.
+#[derive(Debug, Clone, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct DecoderAxes {
+    /// Beam widths.
+    #[serde(default = "default_beam")]
+    pub beam: Vec<usize>,
+    /// LM weights.
+    #[serde(default = "default_lm_weight")]
+    pub lm_weight: Vec<f32>,
+    /// Word insertion bonuses.
+    #[serde(default = "default_word_bonus")]
+    pub word_bonus: Vec<f32>,
+    /// Tune LM weight and word bonus on the dev set per LM × lexicon cell (`none` or `grid`):
+    /// with `grid` the weight and bonus lists are searched on dev and only the best pair is
+    /// scored on test.
+    #[serde(default = "default_tune")]
+    pub tune: String,
+}
+
+impl Default for DecoderAxes {
+    fn default() -> Self {
+        DecoderAxes {
+            beam: default_beam(),
+            lm_weight: default_lm_weight(),
+            word_bonus: default_word_bonus(),
+            tune: default_tune(),
+        }
+    }
+}
+
+fn default_beam() -> Vec<usize> {
+    vec![16]
+}
+fn default_lm_weight() -> Vec<f32> {
+    vec![0.8]
+}
+fn default_word_bonus() -> Vec<f32> {
+    vec![1.0]
+}
+fn default_tune() -> String {
+    "none".into()
+}
+
+/// A checked sweep: absolute paths, non-empty axes.
+#[derive(Debug, Clone)]
+pub struct Sweep {
+    /// The sweep file itself.
+    pub path: PathBuf,
+    /// Caches and results.
+    pub out_dir: PathBuf,
+    /// Model directories.
+    pub models: Vec<PathBuf>,
+    /// Test manifest.
+    pub test: PathBuf,
+    /// Dev manifest (required when tuning).
+    pub dev: Option<PathBuf>,
+    /// Transcript columns.
+    pub columns: Vec<String>,
+    /// Variant map per column (absent: plain WER only).
+    pub variants: std::collections::BTreeMap<String, PathBuf>,
+    /// Grouping column.
+    pub group_by: String,
+    /// Bootstrap seed.
+    pub seed: u64,
+    /// Bootstrap replicates.
+    pub resamples: usize,
+    /// Language models.
+    pub lms: Vec<LmChoice>,
+    /// Lexicons.
+    pub lexicons: Vec<LexiconChoice>,
+    /// Decoder settings.
+    pub decoder: DecoderGrid,
+    /// The baseline cell's axis values.
+    pub baseline: Baseline,
+}
+
+/// A checked language-model axis value.
+#[derive(Debug, Clone, PartialEq)]
+pub enum LmChoice {
+    /// An ARPA file used as it is.
+    File {
+        /// Name in the results.
+        name: String,
+        /// The ARPA file.
+        path: PathBuf,
+    },
+    /// A model built by the sweep.
+    Recipe {
+        /// Name in the results.
+        name: String,
+        /// N-gram order.
+        order: usize,
+        /// Smoothing code (`mkn`, `kn`, `wb`, `add`).
+        smoothing: String,
+        /// Training texts, `{column}` not yet replaced.
+        text: Vec<PathBuf>,
+        /// Out-of-domain text.
+        ood: Option<PathBuf>,
+        /// Fixed out-of-domain weight.
+        ood_weight: Option<f64>,
+    },
+}
+
+impl LmChoice {
+    /// The name shown in results.
+    pub fn name(&self) -> &str {
+        match self {
+            LmChoice::File { name, .. } | LmChoice::Recipe { name, .. } => name,
+        }
+    }
+}
+
+/// How a lexicon is made.
+#[derive(Debug, Clone, PartialEq)]
+pub enum LexiconKind {
+    /// Each word's letters are its units.
+    Grapheme,
+    /// Rule-based G2P with this rule file.
+    Rules(PathBuf),
+    /// Trained joint-sequence G2P with this model file.
+    G2p(PathBuf),
+    /// A lexicon file used as it is.
+    File(PathBuf),
+}
+
+/// A checked lexicon axis value.
+#[derive(Debug, Clone, PartialEq)]
+pub struct LexiconChoice {
+    /// Name in the results.
+    pub name: String,
+    /// How it is made.
+    pub kind: LexiconKind,
+}
+
+/// The decoder-settings axes, checked.
+#[derive(Debug, Clone, PartialEq)]
+pub struct DecoderGrid {
+    /// Beam widths.
+    pub beams: Vec<usize>,
+    /// LM weights.
+    pub lm_weights: Vec<f32>,
+    /// Word bonuses.
+    pub word_bonuses: Vec<f32>,
+    /// Whether LM weight and word bonus are tuned on dev.
+    pub tune_on_dev: bool,
+}
+
+/// The baseline cell's axis values, resolved to indices.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub struct Baseline {
+    /// Index into `models`.
+    pub model: usize,
+    /// Index into `columns`.
+    pub column: usize,
+    /// Index into `lms`.
+    pub lm: usize,
+    /// Index into `lexicons`.
+    pub lexicon: usize,
+}
+
+impl Sweep {
+    /// Reads and checks a sweep file. Relative paths are taken from the file's folder.
+    pub fn read(path: &Path) -> Result<Sweep, SweepError> {
+        let text = std::fs::read_to_string(path).map_err(|source| SweepError::Io {
+            path: path.to_path_buf(),
+            source,
+        })?;
+        let file: SweepFile = toml::from_str(&text).map_err(|error| {
+            let line = error
+                .span()
+                .map(|span| text[..span.start].matches('\n').count() + 1)
+                .unwrap_or(1);
+            SweepError::Config {
+                path: path.to_path_buf(),
+                line,
+                message: error.message().to_string(),
+            }
+        })?;
+        Sweep::check(path, file, &text)
+    }
+
+    fn check(path: &Path, file: SweepFile, text: &str) -> Result<Sweep, SweepError> {
+        let base = path.parent().unwrap_or(Path::new("")).to_path_buf();
+        let resolve = |p: &Path| -> PathBuf {
+            if p.is_absolute() {
+                p.to_path_buf()
+            } else {
+                base.join(p)
+            }
+        };
+        // Point the message at the line that mentions the offending key, when it can be found.
+        let line_of = |needle: &str| -> usize {
+            text.lines()
+                .position(|line| line.contains(needle))
+                .map_or(1, |i| i + 1)
+        };
+        let problem = |needle: &str, message: String| SweepError::Config {
+            path: path.to_path_buf(),
+            line: line_of(needle),
+            message,
+        };
+        let must_exist = |needle: &str, what: &str, p: &Path| -> Result<(), SweepError> {
+            if p.exists() {
+                Ok(())
+            } else {
+                Err(problem(
+                    needle,
+                    format!("{what} `{}` does not exist", p.display()),
+                ))
+            }
+        };
+
+        if file.models.is_empty() {
+            return Err(problem(
+                "models",
+                "the grid is empty: `models` lists no model".into(),
+            ));
+        }
+        let models: Vec<PathBuf> = file.models.iter().map(|m| resolve(m)).collect();
+        for (written, model) in file.models.iter().zip(&models) {
+            must_exist(&written.display().to_string(), "model directory", model)?;
+        }
+        let test = resolve(&file.test);
+        must_exist("test", "test manifest", &test)?;
+        let dev = file.dev.as_deref().map(resolve);
+        if let Some(dev) = &dev {
+            must_exist("dev", "dev manifest", dev)?;
+        }
+        if file.columns.is_empty() {
+            return Err(problem(
+                "columns",
+                "the grid is empty: `columns` lists no transcript column".into(),
+            ));
+        }
+        unique(&file.columns, |c| c.as_str())
+            .map_err(|c| problem("columns", format!("column `{c}` is listed twice")))?;
+        let mut variants = std::collections::BTreeMap::new();
+        for (column, written) in &file.variants {
+            if !file.columns.contains(column) {
+                return Err(problem(
+                    "variants",
+                    format!("a variant map is given for column `{column}`, which `columns` does not list"),
+                ));
+            }
+            let resolved = resolve(written);
+            must_exist(&written.display().to_string(), "variant map", &resolved)?;
+            variants.insert(column.clone(), resolved);
+        }
+
+        if file.lms.is_empty() {
+            return Err(problem(
+                "[[lm]]",
+                "the grid is empty: no `[[lm]]` entry".into(),
+            ));
+        }
+        unique(&file.lms, |l| l.name.as_str())
+            .map_err(|n| problem(&n, format!("LM name `{n}` is used twice")))?;
+        let mut lms = Vec::new();
+        for spec in &file.lms {
+            let needle = format!("\"{}\"", spec.name);
+            let recipe_fields = spec.order.is_some()
+                || spec.smoothing.is_some()
+                || !spec.text.is_empty()
+                || spec.ood.is_some();
+            match (&spec.file, recipe_fields) {
+                (Some(written), false) => {
+                    let p = resolve(written);
+                    must_exist(&needle, "language model", &p)?;
+                    lms.push(LmChoice::File { name: spec.name.clone(), path: p });
+                }
+                (Some(_), true) => {
+                    return Err(problem(&needle, format!("LM `{}` gives both `file` and recipe fields (order, smoothing, text, ood); give one or the other", spec.name)))
+                }
+                (None, _) => {
+                    let order = spec.order.ok_or_else(|| problem(&needle, format!("LM `{}` needs either `file` or a recipe with `order`", spec.name)))?;
+                    if !(1..=6).contains(&order) {
+                        return Err(problem(&needle, format!("LM `{}`: order must be 1 to 6, found {order}", spec.name)));
+                    }
+                    let smoothing = spec.smoothing.clone().unwrap_or_else(|| "mkn".into());
+                    if !["mkn", "kn", "wb", "add"].contains(&smoothing.as_str()) {
+                        return Err(problem(&needle, format!("LM `{}`: smoothing must be mkn, kn, wb or add, found `{smoothing}`", spec.name)));
+                    }
+                    if spec.text.is_empty() {
+                        return Err(problem(&needle, format!("LM `{}`: a recipe needs at least one `text`", spec.name)));
+                    }
+                    let text: Vec<PathBuf> = spec.text.iter().map(|t| resolve(t)).collect();
+                    for t in &text {
+                        for column in &file.columns {
+                            let concrete = with_column(t, column);
+                            must_exist(&needle, &format!("LM `{}` training text", spec.name), &concrete)?;
+                        }
+                    }
+                    let ood = spec.ood.as_deref().map(resolve);
+                    if let Some(ood) = &ood {
+                        must_exist(&needle, &format!("LM `{}` out-of-domain text", spec.name), ood)?;
+                        if spec.ood_weight.is_none() && dev.is_none() {
+                            return Err(problem(&needle, format!("LM `{}` mixes in out-of-domain text: give `ood_weight` or a `dev` manifest to estimate it on", spec.name)));
+                        }
+                    }
+                    if let Some(weight) = spec.ood_weight {
+                        if !(weight > 0.0 && weight < 1.0) {
+                            return Err(problem(&needle, format!("LM `{}`: ood_weight must lie strictly between 0 and 1, found {weight}", spec.name)));
+                        }
+                    }
+                    lms.push(LmChoice::Recipe { name: spec.name.clone(), order, smoothing, text, ood, ood_weight: spec.ood_weight });
+                }
+            }
+        }
+
+        if file.lexicons.is_empty() {
+            return Err(problem(
+                "[[lexicon]]",
+                "the grid is empty: no `[[lexicon]]` entry".into(),
+            ));
+        }
+        unique(&file.lexicons, |l| l.name.as_str())
+            .map_err(|n| problem(&n, format!("lexicon name `{n}` is used twice")))?;
+        let mut lexicons = Vec::new();
+        for spec in &file.lexicons {
+            let needle = format!("\"{}\"", spec.name);
+            let path_of = |what: &str| -> Result<PathBuf, SweepError> {
+                let written = spec.path.as_ref().ok_or_else(|| {
+                    problem(
+                        &needle,
+                        format!(
+                            "lexicon `{}` of kind `{}` needs a `path` to its {what}",
+                            spec.name, spec.kind
+                        ),
+                    )
+                })?;
+                let p = resolve(written);
+                must_exist(&needle, &format!("lexicon `{}` {what}", spec.name), &p)?;
+                Ok(p)
+            };
+            let kind = match spec.kind.as_str() {
+                "grapheme" => LexiconKind::Grapheme,
+                "rules" => LexiconKind::Rules(path_of("rule file")?),
+                "g2p" => LexiconKind::G2p(path_of("G2P model")?),
+                "file" => LexiconKind::File(path_of("lexicon file")?),
+                other => {
+                    return Err(problem(
+                        &needle,
+                        format!(
+                        "lexicon `{}`: kind must be grapheme, rules, g2p or file, found `{other}`",
+                        spec.name
+                    ),
+                    ))
+                }
+            };
+            lexicons.push(LexiconChoice {
+                name: spec.name.clone(),
+                kind,
+            });
+        }
+
+        let axes = &file.decoder;
+        if axes.beam.is_empty() || axes.lm_weight.is_empty() || axes.word_bonus.is_empty() {
+            return Err(problem(
+                "[decoder]",
+                "the grid is empty: a `[decoder]` list (beam, lm_weight, word_bonus) has no value"
+                    .into(),
+            ));
+        }
+        if let Some(beam) = axes.beam.iter().find(|&&b| b == 0) {
+            return Err(problem(
+                "beam",
+                format!("beam widths must be at least 1, found {beam}"),
+            ));
+        }
+        let tune_on_dev = match axes.tune.as_str() {
+            "none" => false,
+            "grid" => true,
+            other => {
+                return Err(problem(
+                    "tune",
+                    format!("tune must be `none` or `grid`, found `{other}`"),
+                ))
+            }
+        };
+        if tune_on_dev && dev.is_none() {
+            return Err(problem(
+                "tune",
+                "tuning on dev needs a `dev` manifest".into(),
+            ));
+        }
+        if file.resamples == 0 {
+            return Err(problem("resamples", "resamples must be at least 1".into()));
+        }
+
+        let baseline_file = file.baseline.clone().unwrap_or_default();
+        let find = |wanted: &Option<String>,
+                    names: Vec<String>,
+                    axis: &str|
+         -> Result<usize, SweepError> {
+            match wanted {
+                None => Ok(0),
+                Some(name) => names.iter().position(|n| n == name).ok_or_else(|| {
+                    problem("baseline", format!("the baseline names {axis} `{name}`, which the sweep does not have (it has: {})", names.join(", ")))
+                }),
+            }
+        };
+        let model_names: Vec<String> = models.iter().map(|m| model_name(m)).collect();
+        let baseline = Baseline {
+            model: find(&baseline_file.model, model_names, "model")?,
+            column: find(&baseline_file.column, file.columns.clone(), "column")?,
+            lm: find(
+                &baseline_file.lm,
+                lms.iter().map(|l| l.name().to_string()).collect(),
+                "LM",
+            )?,
+            lexicon: find(
+                &baseline_file.lexicon,
+                lexicons.iter().map(|l| l.name.clone()).collect(),
+                "lexicon",
+            )?,
+        };
+
+        Ok(Sweep {
+            path: path.to_path_buf(),
+            out_dir: resolve(&file.out_dir),
+            models,
+            test,
+            dev,
+            columns: file.columns,
+            variants,
+            group_by: file.group_by,
+            seed: file.seed,
+            resamples: file.resamples,
+            lms,
+            lexicons,
+            decoder: DecoderGrid {
+                beams: axes.beam.clone(),
+                lm_weights: axes.lm_weight.clone(),
+                word_bonuses: axes.word_bonus.clone(),
+                tune_on_dev,
+            },
+            baseline,
+        })
+    }
+
+    /// Every cell of the grid, in a fixed order (model, column, LM, lexicon, beam, and — unless
+    /// tuned on dev — LM weight and word bonus).
+    pub fn cells(&self) -> Vec<Cell> {
+        let (weights, bonuses): (Vec<Option<f32>>, Vec<Option<f32>>) = if self.decoder.tune_on_dev {
+            (vec![None], vec![None])
+        } else {
+            (
+                self.decoder.lm_weights.iter().copied().map(Some).collect(),
+                self.decoder
+                    .word_bonuses
+                    .iter()
+                    .copied()
+                    .map(Some)
+                    .collect(),
+            )
+        };
+        let mut cells = Vec::new();
+        for model in 0..self.models.len() {
+            for column in 0..self.columns.len() {
+                for lm in 0..self.lms.len() {
+                    for lexicon in 0..self.lexicons.len() {
+                        for &beam in &self.decoder.beams {
+                            for &lm_weight in &weights {
+                                for &word_bonus in &bonuses {
+                                    cells.push(Cell {
+                                        model,
+                                        column,
+                                        lm,
+                                        lexicon,
+                                        beam,
+                                        lm_weight,
+                                        word_bonus,
+                                    });
+                                }
+                            }
+                        }
+                    }
+                }
+            }
+        }
+        cells
+    }
+}
+
+/// One cell of the grid, by axis indices. LM weight and word bonus are `None` when they are
+/// tuned on dev.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct Cell {
+    /// Index into `Sweep::models`.
+    pub model: usize,
+    /// Index into `Sweep::columns`.
+    pub column: usize,
+    /// Index into `Sweep::lms`.
+    pub lm: usize,
+    /// Index into `Sweep::lexicons`.
+    pub lexicon: usize,
+    /// Beam width.
+    pub beam: usize,
+    /// LM weight (fixed), or `None` when tuned.
+    pub lm_weight: Option<f32>,
+    /// Word bonus (fixed), or `None` when tuned.
+    pub word_bonus: Option<f32>,
+}
+
+/// A model's short name: its directory's last component.
+pub fn model_name(dir: &Path) -> String {
+    dir.file_name()
+        .map(|n| n.to_string_lossy().into_owned())
+        .unwrap_or_else(|| dir.display().to_string())
+}
+
+/// Replaces `{column}` in a path by the column name.
+pub fn with_column(path: &Path, column: &str) -> PathBuf {
+    PathBuf::from(path.to_string_lossy().replace(COLUMN_PLACEHOLDER, column))
+}
+
+fn unique<T>(items: &[T], key: impl Fn(&T) -> &str) -> Result<(), String> {
+    let mut seen = BTreeSet::new();
+    for item in items {
+        if !seen.insert(key(item)) {
+            return Err(key(item).to_string());
+        }
+    }
+    Ok(())
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    /// A folder with the files a sweep names, and the sweep file itself.
+    fn setup(sweep: &str) -> (tempfile::TempDir, Result<Sweep, SweepError>) {
+        let dir = tempfile::tempdir().unwrap();
+        let root = dir.path();
+        std::fs::create_dir_all(root.join("models/small")).unwrap();
+        for file in [
+            "test.tsv",
+            "dev.tsv",
+            "train.dialectal.txt",
+            "train.normalized.txt",
+            "ood.txt",
+            "rules.toml",
+            "v.tsv",
+        ] {
+            std::fs::write(root.join(file), "x\n").unwrap();
+        }
+        let path = root.join("sweep.toml");
+        std::fs::write(&path, sweep).unwrap();
+        let result = Sweep::read(&path);
+        (dir, result)
+    }
+
+    const GOOD: &str = r#"
+out_dir = "out"
+models = ["models/small"]
+test = "test.tsv"
+dev = "dev.tsv"
+columns = ["dialectal", "normalized"]
+variants = { dialectal = "v.tsv" }
+baseline = { lm = "three", lexicon = "letters" }
+
+[[lm]]
+name = "two"
+order = 2
+smoothing = "wb"
+text = ["train.{column}.txt"]
+
+[[lm]]
+name = "three"
+order = 3
+text = ["train.{column}.txt"]
+ood = "ood.txt"
+
+[[lexicon]]
+name = "rules"
+kind = "rules"
+path = "rules.toml"
+
+[[lexicon]]
+name = "letters"
+kind = "grapheme"
+
+[decoder]
+beam = [8, 16]
+lm_weight = [0.5, 1.0, 1.5]
+"#;
+
+    #[test]
+    fn a_good_sweep_expands_to_the_full_grid() {
+        let (dir, sweep) = setup(GOOD);
+        let sweep = sweep.unwrap();
+        // 1 model × 2 columns × 2 LMs × 2 lexicons × 2 beams × 3 weights × 1 bonus
+        assert_eq!(sweep.cells().len(), 48);
+        assert_eq!(sweep.baseline.lm, 1);
+        assert_eq!(sweep.baseline.lexicon, 1);
+        assert_eq!(sweep.out_dir, dir.path().join("out"));
+        assert_eq!(
+            with_column(
+                match &sweep.lms[0] {
+                    LmChoice::Recipe { text, .. } => &text[0],
+                    LmChoice::File { .. } => unreachable!("the first LM is a recipe"),
+                },
+                "normalized"
+            ),
+            dir.path().join("train.normalized.txt")
+        );
+    }
+
+    #[test]
+    fn tuning_collapses_the_weight_and_bonus_axes() {
+        let (_dir, sweep) = setup(&GOOD.replace(
+            "lm_weight = [0.5, 1.0, 1.5]",
+            "lm_weight = [0.5, 1.0, 1.5]\ntune = \"grid\"",
+        ));
+        let cells = sweep.unwrap().cells();
+        assert_eq!(cells.len(), 16);
+        assert!(cells
+            .iter()
+            .all(|c| c.lm_weight.is_none() && c.word_bonus.is_none()));
+    }
+
+    fn error_of(sweep: &str) -> String {
+        setup(sweep).1.unwrap_err().to_string()
+    }
+
+    #[test]
+    fn a_missing_file_is_named_with_its_line() {
+        let message = error_of(&GOOD.replace("path = \"rules.toml\"", "path = \"nowhere.toml\""));
+        assert!(
+            message.contains("nowhere.toml") && message.contains("does not exist"),
+            "{message}"
+        );
+        assert!(message.contains("line 23"), "{message}"); // the entry's `name` line
+        let message =
+            error_of(&GOOD.replace("train.{column}.txt\"]\nood", "train.{column}.text\"]\nood"));
+        assert!(message.contains("train.dialectal.text"), "{message}");
+    }
+
+    #[test]
+    fn an_empty_axis_is_refused_before_any_work() {
+        let no_lexicon = GOOD.split("[[lexicon]]").next().unwrap().to_string() + "[decoder]\n";
+        assert!(error_of(&no_lexicon.replace(", lexicon = \"letters\"", ""))
+            .contains("no `[[lexicon]]`"));
+        assert!(error_of(&GOOD.replace("beam = [8, 16]", "beam = []")).contains("grid is empty"));
+        assert!(error_of(&GOOD.replace(
+            "columns = [\"dialectal\", \"normalized\"]\nvariants = { dialectal = \"v.tsv\" }",
+            "columns = []"
+        ))
+        .contains("grid is empty"));
+    }
+
+    #[test]
+    fn bad_values_are_explained() {
+        assert!(error_of(&GOOD.replace("order = 2", "order = 7"))
+            .contains("order must be 1 to 6, found 7"));
+        assert!(
+            error_of(&GOOD.replace("smoothing = \"wb\"", "smoothing = \"good-turing\""))
+                .contains("found `good-turing`")
+        );
+        assert!(error_of(&GOOD.replace("lm = \"three\"", "lm = \"four\""))
+            .contains("baseline names LM `four`"));
+        assert!(
+            error_of(&GOOD.replace("kind = \"grapheme\"", "kind = \"phones\""))
+                .contains("found `phones`")
+        );
+        assert!(
+            error_of(&GOOD.replace("name = \"two\"", "name = \"three\"")).contains("used twice")
+        );
+        let syntax = error_of(&GOOD.replace("order = 2", "order = = 2"));
+        assert!(syntax.contains("line 12"), "{syntax}");
+    }
+
+    #[test]
+    fn out_of_domain_mixing_needs_dev_or_a_weight() {
+        let no_dev = GOOD.replace("dev = \"dev.tsv\"\n", "");
+        assert!(error_of(&no_dev).contains("give `ood_weight` or a `dev` manifest"));
+        let (_dir, sweep) =
+            setup(&no_dev.replace("ood = \"ood.txt\"", "ood = \"ood.txt\"\nood_weight = 0.2"));
+        assert!(sweep.is_ok());
+    }
+}
