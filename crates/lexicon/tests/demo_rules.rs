@@ -5,7 +5,6 @@
 use std::path::{Path, PathBuf};
 
 use isogloss_corpus::tsv::Table;
-use isogloss_lexicon::coverage::tokens;
 use isogloss_lexicon::rules::RuleSet;
 
 fn root() -> PathBuf {
@@ -22,7 +21,8 @@ fn every_dialectal_word_of_the_demo_corpus_gets_a_pronunciation() {
                 .unwrap();
         let column = table.column("dialectal").unwrap();
         for record in &table.records {
-            words.extend(tokens(&record.fields[column]));
+            // The demo transcripts are lower case without punctuation: white space splits them.
+            words.extend(record.fields[column].split_whitespace().map(str::to_string));
         }
     }
     assert!(
@@ -35,7 +35,9 @@ fn every_dialectal_word_of_the_demo_corpus_gets_a_pronunciation() {
     // Hand-checked eye-dialect spellings (English-like letter-to-sound correspondences).
     for (word, expected) in [
         ("doon", "D UW N"),
-        ("oot", "UW T"),
+        ("dat", "D AE T"),
+        ("telt", "T EH L T"),
+        ("ah", "AA"),
         ("owd", "OW D"),
         ("goin'", "G OW IH N"),
         ("nuffink", "N AH F IH NG K"),
