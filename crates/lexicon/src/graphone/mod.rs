@@ -907,6 +907,86 @@ mod tests {
         assert!(error.contains(&format!(":{damaged_line}:")), "{error}");
     }
 
+    /// Every graphone sequence that spells `letters` (no two letterless graphones in a row),
+    /// scored by the model: the slow, obvious definition the beam search must agree with.
+    fn enumerate(
+        model: &G2pModel,
+        letters: &[String],
+        state: LmState,
+        after_insertion: bool,
+        phonemes: Vec<String>,
+        score: f64,
+        out: &mut HashMap<Vec<String>, f64>,
+    ) {
+        if letters.is_empty() {
+            let total = score + f64::from(model.ngram.end(&state));
+            if !phonemes.is_empty() {
+                let entry = out.entry(phonemes.clone()).or_insert(f64::NEG_INFINITY);
+                *entry = log10_add(*entry, total);
+            }
+        }
+        for (id, graphone) in model.graphones.iter().enumerate() {
+            let width = graphone.letters.len();
+            if (width == 0 && after_insertion) || !letters.starts_with(&graphone.letters) {
+                continue;
+            }
+            let (p, next) = model.ngram.score(&state, id as TokenId);
+            let mut extended = phonemes.clone();
+            extended.extend(graphone.phonemes.iter().cloned());
+            enumerate(
+                model,
+                &letters[width..],
+                next,
+                width == 0,
+                extended,
+                score + f64::from(p),
+                out,
+            );
+        }
+    }
+
+    #[test]
+    fn beam_search_with_a_wide_beam_equals_exhaustive_enumeration() {
+        let config = G2pConfig {
+            order: 3,
+            ..G2pConfig::default()
+        };
+        let (model, _) = G2pModel::train(&toy_dictionary(), &config, &mut |_| {}).unwrap();
+        for word in ["cat", "tax", "bac", "act"] {
+            let mut exhaustive = HashMap::new();
+            enumerate(
+                &model,
+                &word_letters(word),
+                model.ngram.start(),
+                false,
+                Vec::new(),
+                0.0,
+                &mut exhaustive,
+            );
+            let mut expected: Vec<(Vec<String>, f64)> = exhaustive.into_iter().collect();
+            expected.sort_by(|a, b| b.1.total_cmp(&a.1));
+            let found = model
+                .pronounce(
+                    word,
+                    &DecodeConfig {
+                        beam: 100_000,
+                        nbest: 3,
+                    },
+                )
+                .unwrap();
+            assert!(
+                expected.len() >= 3,
+                "{word}: {} pronunciations",
+                expected.len()
+            );
+            assert_eq!(found.len(), 3);
+            for (got, (phonemes, score)) in found.iter().zip(&expected) {
+                assert_eq!(&got.phonemes, phonemes, "{word}");
+                assert!((got.log10_probability - score).abs() < 1e-6, "{word}");
+            }
+        }
+    }
+
     #[test]
     fn edit_distance_matches_hand_counts() {
         // kitten → sitting: 3 edits, the textbook example (Levenshtein distance).
