@@ -5,8 +5,20 @@
 //! ```text
 //! ../venv/bin/python scripts/reference/cmudict_subset.py --full /tmp/cmudict.tsv
 //! cargo run --release -p isogloss-lexicon --example g2p_benchmark -- /tmp/cmudict.tsv \
-//!     [--held-out 0.1] [--seed 1] [--order 6] [--iterations 10] [--beam 40]
+//!     [--held-out 0.1] [--seed 1] [--order 6] [--iterations 10] [--penalty 0.3] [--beam 40]
 //! ```
+//!
+//! Measured 2026-12-02 on the full CMU Pronouncing Dictionary (CMUdict, Carnegie Mellon
+//! University, BSD-style licence; 126 052 words, stress removed), seed 1, 10% of the words held
+//! out, order 6, beam 40, on 12 605 held-out words: penalty 0.3 (the default) WER 25.82%,
+//! PER 6.31%; penalty 0.1 WER 25.99%, PER 6.36%; penalty 0.5 WER 26.33%, PER 6.43%; penalty 0.3 with beam 100: the same as with beam 40,
+//! so the beam is not what limits accuracy (training
+//! 1–2 min, decoding 7–22 min on a shared, heavily loaded 2-core machine). Published
+//! joint-sequence figures for CMUdict (Bisani & Ney 2008, from memory): about 24–25% WER and
+//! 6% PER.
+//!
+//! Environment: `G2P_DUMP=PATH` also writes the trained model there; `G2P_ON_TRAINING=1`
+//! scores the training words instead of the held-out ones (a sanity check: near zero errors).
 
 use std::path::PathBuf;
 use std::time::Instant;

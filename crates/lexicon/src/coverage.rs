@@ -4,39 +4,8 @@
 use std::collections::{HashMap, HashSet};
 
 use serde::Serialize;
-use unicode_normalization::UnicodeNormalization;
 
 use crate::Lexicon;
-
-/// Splits a transcript into words by the project's scoring token rules (DESIGN.md): NFC, lower
-/// case, punctuation other than apostrophes and hyphens replaced by a space, split on white
-/// space — so that coverage counts the words the scorer will count.
-///
-/// Punctuation is recognised as ASCII punctuation, the General Punctuation block (U+2010–U+205E)
-/// and the common quotation and inverted marks (« » ‹ › ¡ ¿ · 、 。 「 」); the typographic
-/// apostrophe U+2019 and the hyphens U+2010/U+2011 stay inside words. This covers the
-/// transcripts we know of without a Unicode category table; the scoring crate's tokenizer is the
-/// reference and should replace this once the two crates share it.
-pub fn tokens(text: &str) -> Vec<String> {
-    let is_separator = |c: char| {
-        let kept = matches!(c, '\'' | '-' | '\u{2019}' | '\u{2010}' | '\u{2011}');
-        let punctuation = c.is_ascii_punctuation()
-            || ('\u{2010}'..='\u{205E}').contains(&c)
-            || matches!(
-                c,
-                '«' | '»' | '‹' | '›' | '¡' | '¿' | '·' | '、' | '。' | '「' | '」'
-            );
-        punctuation && !kept
-    };
-    let normalized: String = text
-        .nfc()
-        .collect::<String>()
-        .to_lowercase()
-        .chars()
-        .map(|c| if is_separator(c) { ' ' } else { c })
-        .collect();
-    normalized.split_whitespace().map(str::to_string).collect()
-}
 
 /// Type and token coverage of a token stream by a lexicon.
 #[derive(Debug, Clone, PartialEq, Serialize)]
@@ -55,7 +24,8 @@ pub struct Coverage {
 }
 
 impl Coverage {
-    /// Counts `tokens` against the words of `lexicon` (exact string match; callers tokenize).
+    /// Counts `tokens` against the words of `lexicon` (exact string match; callers tokenize,
+    /// normally with the scoring crate's token rules so that coverage counts the scored words).
     pub fn count<'a>(lexicon: &Lexicon, tokens: impl IntoIterator<Item = &'a str>) -> Coverage {
         let known: HashSet<&str> = lexicon.entries.iter().map(|(w, _)| w.as_str()).collect();
         let mut counts: HashMap<&str, usize> = HashMap::new();
@@ -121,14 +91,5 @@ mod tests {
         );
         assert!((coverage.token_rate() - 5.0 / 8.0).abs() < 1e-12);
         assert_eq!(Coverage::count(&lexicon, []).token_rate(), 0.0);
-    }
-
-    #[test]
-    fn tokens_follow_the_scoring_rules() {
-        assert_eq!(
-            tokens("Oh aye, the Owd hoose — goin’ doon-by! «Aye»"),
-            ["oh", "aye", "the", "owd", "hoose", "goin’", "doon-by", "aye"]
-        );
-        assert_eq!(tokens("jus' an' \"that\"."), ["jus'", "an'", "that"]);
     }
 }

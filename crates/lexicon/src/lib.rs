@@ -17,6 +17,8 @@
 //!   ([`graphone::GraphoneLm`]) that the beam search is written against.
 //! - **Letters are Unicode scalar values after NFC composition** (see
 //!   [`Lexicon::graphemes`]): a precomposed `ä` and `a` + combining diaeresis are one letter.
+//!   Grapheme lexicons keep apostrophes and hyphens as units, because a grapheme acoustic model
+//!   trained on the same transcripts emits them.
 //!
 //! ```
 //! use isogloss_lexicon::Lexicon;

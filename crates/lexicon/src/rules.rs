@@ -16,7 +16,9 @@
 //! [[rule]]
 //! graphemes = "sch"        # the letter sequence this rule consumes
 //! phonemes = "S K"         # phoneme symbols, space-separated; "" = silent
-//! where = "word-start"     # optional: word-start | word-end | before-vowel | after-vowel
+//! where = "word-start"     # optional: word-start | word-end | before-vowel | after-vowel,
+//!                          # or a list that must all hold: ["word-start", "word-end"] makes
+//!                          # a whole-word rule (for irregular function words)
 //!
 //! [[rule]]
 //! graphemes = "c"
@@ -145,15 +147,24 @@ struct RawRule {
     graphemes: String,
     phonemes: String,
     #[serde(rename = "where")]
-    position: Option<String>,
+    position: Option<Where>,
     before: Option<String>,
     after: Option<String>,
 }
 
+/// `where = "word-start"` or several at once, `where = ["word-start", "word-end"]` (all hold).
+#[derive(Deserialize)]
+#[serde(untagged)]
+enum Where {
+    One(String),
+    All(Vec<String>),
+}
+
 fn line_of(text: &str, offset: usize) -> usize {
-    text[..offset.min(text.len())]
-        .bytes()
-        .filter(|&b| b == b'\n')
+    let bytes = text.as_bytes();
+    bytes[..offset.min(bytes.len())]
+        .iter()
+        .filter(|&&b| b == b'\n')
         .count()
         + 1
 }
@@ -234,8 +245,13 @@ impl RuleSet {
                 ));
             }
             let mut conditions = Vec::new();
-            if let Some(position) = &raw_rule.position {
-                conditions.push(match position.as_str() {
+            let positions: Vec<&str> = match &raw_rule.position {
+                None => Vec::new(),
+                Some(Where::One(one)) => vec![one.as_str()],
+                Some(Where::All(all)) => all.iter().map(String::as_str).collect(),
+            };
+            for position in positions {
+                conditions.push(match position {
                     "word-start" => Condition::WordStart,
                     "word-end" => Condition::WordEnd,
                     "before-vowel" => Condition::Before(class_index("vowel", line)?),
@@ -480,6 +496,17 @@ where = \"word-end\"
         // A final "e" is silent, a medial one is not.
         assert_eq!(phonemes(&set, "tone"), "T AA N");
         assert_eq!(phonemes(&set, "ten"), "T EH N");
+
+        let whole_word = rules(&format!(
+            "[[rule]]
+graphemes = \"the\"
+phonemes = \"DH AH\"
+where = [\"word-start\", \"word-end\"]
+{LETTERS}"
+        ));
+        assert_eq!(phonemes(&whole_word, "the"), "DH AH");
+        assert_eq!(phonemes(&whole_word, "then"), "T HH EH N");
+        assert_eq!(phonemes(&whole_word, "athe"), "AE T HH EH");
     }
 
     #[test]

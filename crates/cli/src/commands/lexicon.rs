@@ -8,7 +8,8 @@ use clap::{Args, Subcommand};
 use isogloss_corpus::tsv::{write_table, Table};
 use isogloss_lexicon::graphone::{evaluate, DecodeConfig, G2pConfig, G2pModel};
 use isogloss_lexicon::rules::RuleSet;
-use isogloss_lexicon::{coverage, read_word_list, Coverage, Lexicon, LexiconError};
+use isogloss_lexicon::{read_word_list, Coverage, Lexicon, LexiconError};
+use isogloss_score::{tokenize, TokenRules};
 
 use crate::Outcome;
 
@@ -267,10 +268,12 @@ fn coverage(args: CoverageArgs) -> anyhow::Result<Outcome> {
     let lexicon = Lexicon::read(&args.lexicon)?;
     let table = Table::read_with_header(&args.manifest)?;
     let column = table.column(&args.column)?;
+    // The scorer's token rules, so that coverage counts exactly the words WER will count.
+    let rules = TokenRules::default();
     let tokens: Vec<String> = table
         .records
         .iter()
-        .flat_map(|record| coverage::tokens(&record.fields[column]))
+        .flat_map(|record| tokenize(&record.fields[column], &rules))
         .collect();
     let counted = Coverage::count(&lexicon, tokens.iter().map(String::as_str));
     if args.json {
