@@ -5,4 +5,6 @@ pub mod decode;
 pub mod lexicon;
 pub mod lm;
 pub mod score;
+pub mod train;
+pub mod transcribe;
 pub mod variants;
