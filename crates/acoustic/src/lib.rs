@@ -38,6 +38,7 @@ pub mod greedy;
 pub mod io;
 pub mod model;
 pub mod optim;
+pub mod pipeline;
 pub mod tdnn;
 pub mod train;
 pub mod units;
@@ -105,6 +106,14 @@ pub enum AcousticError {
     /// A lexicon that cannot be read.
     #[error(transparent)]
     Lexicon(#[from] isogloss_lexicon::LexiconError),
+    /// A transcript word the lexicon has no pronunciation for.
+    #[error("{item}: the word {word:?} is not in the lexicon")]
+    NotInLexicon {
+        /// The utterance, with its manifest file and line.
+        item: String,
+        /// The word.
+        word: String,
+    },
     /// An error from the tensor library.
     #[error("tensor operation failed: {0}")]
     Tensor(#[from] candle_core::Error),

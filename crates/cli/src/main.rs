@@ -27,6 +27,10 @@ enum Command {
     Features(commands::features::FeaturesArgs),
     /// Word error rate and flexible WER of hypotheses against a reference manifest.
     Score(commands::score::ScoreArgs),
+    /// Train a TDNN acoustic model with CTC.
+    Train(commands::train::TrainArgs),
+    /// Transcribe a manifest with a trained model.
+    Transcribe(commands::transcribe::TranscribeArgs),
     /// Build a spelling-variant map from two word-aligned transcript columns.
     Variants(commands::variants::VariantsArgs),
     /// N-gram language models: build, eval, mix, prune.
@@ -70,6 +74,8 @@ fn main() -> ExitCode {
         Command::Variants(args) => commands::variants::run(args),
         Command::Lm(args) => commands::lm::run(args),
         Command::Lexicon(args) => commands::lexicon::run(args),
+        Command::Train(args) => commands::train::run(args),
+        Command::Transcribe(args) => commands::transcribe::run(args),
     };
     match result {
         Ok(Outcome::Done) => ExitCode::SUCCESS,

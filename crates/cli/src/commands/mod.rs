@@ -6,4 +6,6 @@ pub mod features;
 pub mod lexicon;
 pub mod lm;
 pub mod score;
+pub mod train;
+pub mod transcribe;
 pub mod variants;

@@ -1,0 +1,659 @@
+//! From manifests to a model directory, and from a model to posteriors: the file-level work
+//! behind `isogloss train` and `isogloss transcribe`.
+//!
+//! Features are computed once per utterance and perturbation (speed 0.9/1.0/1.1 with a random
+//! gain each) and cached as safetensors under `MODEL_DIR/cache/<key>/`, where the key hashes
+//! the manifest, the front end and the perturbation settings; normalisation (CMVN) is applied in
+//! memory afterwards, so a changed CMVN setting does not invalidate the cache.
+
+use std::collections::BTreeMap;
+use std::io::Write;
+use std::path::{Path, PathBuf};
+
+use isogloss_corpus::Manifest;
+use isogloss_features::{
+    read_features, write_features, Cmvn, CmvnMode, FeatureConfig, FeatureExtractor,
+    SpeakerCmvnStats, SpecAugment,
+};
+use isogloss_lexicon::Lexicon;
+use ndarray::Array2;
+use rand::{Rng, SeedableRng};
+use rand_chacha::ChaCha8Rng;
+use rayon::prelude::*;
+use sha2::{Digest, Sha256};
+
+use crate::config::ModelConfig;
+use crate::model::{AcousticModel, ModelDescription, Provenance, MODEL_FORMAT};
+use crate::train::{checkpoint_path, EpochRecord, PreparedUtterance, Trainer, TrainingEvent};
+use crate::units::{grapheme_sequence, transcript_words, UnitInventory, UnitKind};
+use crate::AcousticError;
+
+/// The feature matrices of one utterance (one per perturbation), or why there are none.
+pub type UtteranceFeatures = Result<Vec<Array2<f32>>, String>;
+
+/// What `isogloss train` asks for.
+#[derive(Debug, Clone)]
+pub struct TrainOptions {
+    /// Training manifest.
+    pub train_manifest: PathBuf,
+    /// Dev manifest (early stopping, error rate).
+    pub dev_manifest: PathBuf,
+    /// Transcript column to learn.
+    pub column: String,
+    /// Model directory to write.
+    pub out: PathBuf,
+    /// Architecture, training and front-end settings.
+    pub config: ModelConfig,
+    /// Overrides `config.training.epochs`.
+    pub epochs: Option<usize>,
+    /// Continue from `out/checkpoint.safetensors`.
+    pub resume: bool,
+    /// Seed of every random choice.
+    pub seed: u64,
+    /// Phone units from this lexicon instead of graphemes.
+    pub lexicon: Option<PathBuf>,
+}
+
+/// Progress of the whole run, for the CLI to draw.
+#[derive(Debug, Clone)]
+pub enum PipelineEvent {
+    /// Feature extraction: `done` of `total` audio files of a split.
+    Features {
+        /// "train" or "dev".
+        split: &'static str,
+        /// Files done.
+        done: usize,
+        /// Files in the split.
+        total: usize,
+    },
+    /// Something the user should know that does not stop the run.
+    Warning(String),
+    /// The training loop.
+    Training(TrainingEvent),
+}
+
+/// What a training run did.
+#[derive(Debug, Clone, Default)]
+pub struct TrainSummary {
+    /// Epochs completed in total (including earlier runs when resuming).
+    pub epochs_done: usize,
+    /// The epoch whose weights are in the model directory.
+    pub best: Option<EpochRecord>,
+    /// Training utterances skipped because their labels do not fit the frames (id, available
+    /// output frames, needed).
+    pub skipped_utterances: Vec<(String, usize, usize)>,
+    /// Utterances whose audio could not be read (id with manifest line, error).
+    pub failed_utterances: Vec<String>,
+    /// True when training stopped because the dev loss stopped improving.
+    pub stopped_early: bool,
+}
+
+fn sha256_file(path: &Path) -> Result<String, AcousticError> {
+    let bytes = std::fs::read(path).map_err(|source| AcousticError::Io {
+        path: path.to_path_buf(),
+        source,
+    })?;
+    Ok(format!("{:x}", Sha256::digest(&bytes)))
+}
+
+fn read_manifest(path: &Path, column: &str) -> Result<(Manifest, usize), AcousticError> {
+    let manifest = Manifest::read(path)?;
+    if manifest.utterances.is_empty() {
+        return Err(AcousticError::Input {
+            path: path.to_path_buf(),
+            problem:
+                "the manifest lists no utterances (expected at least one row after the header)"
+                    .into(),
+        });
+    }
+    let column = manifest.column_index(column)?;
+    Ok((manifest, column))
+}
+
+/// Unit names of one transcript: graphemes with `<wb>`, or the lexicon's first pronunciation of
+/// each word.
+fn unit_names(
+    text: &str,
+    lexicon: Option<&BTreeMap<String, Vec<String>>>,
+    item: &str,
+) -> Result<Vec<String>, AcousticError> {
+    match lexicon {
+        None => Ok(grapheme_sequence(text)),
+        Some(lexicon) => {
+            let mut units = Vec::new();
+            for word in transcript_words(text) {
+                match lexicon.get(&word) {
+                    Some(pronunciation) => units.extend(pronunciation.iter().cloned()),
+                    None => {
+                        return Err(AcousticError::NotInLexicon {
+                            item: item.to_string(),
+                            word,
+                        })
+                    }
+                }
+            }
+            Ok(units)
+        }
+    }
+}
+
+/// Feature matrices (before normalisation) for every utterance of a manifest, one per speed
+/// factor (`factors[0]` should be 1.0), cached under `cache` when given. Utterances whose audio
+/// fails are returned as errors; the others are unaffected.
+pub fn manifest_features(
+    manifest: &Manifest,
+    config: &FeatureConfig,
+    factors: &[f32],
+    volume_range: f32,
+    seed: u64,
+    cache: Option<&Path>,
+    on_file_done: &(dyn Fn(usize, usize) + Sync),
+) -> Result<Vec<UtteranceFeatures>, AcousticError> {
+    let extractor = FeatureExtractor::new(config)?;
+    if let Some(dir) = cache {
+        std::fs::create_dir_all(dir).map_err(|source| AcousticError::Io {
+            path: dir.to_path_buf(),
+            source,
+        })?;
+    }
+    // One decoding pass per audio file: group the utterances that cut segments out of it.
+    let mut by_file: BTreeMap<&Path, Vec<usize>> = BTreeMap::new();
+    for (i, utterance) in manifest.utterances.iter().enumerate() {
+        by_file
+            .entry(utterance.audio.as_path())
+            .or_default()
+            .push(i);
+    }
+    let files: Vec<(&Path, Vec<usize>)> = by_file.into_iter().collect();
+    let total = files.len();
+    let done = std::sync::atomic::AtomicUsize::new(0);
+    let per_file: Vec<Vec<(usize, UtteranceFeatures)>> = files
+        .par_iter()
+        .map(|(path, indices)| {
+            let cached =
+                |i: usize, v: usize| cache.map(|dir| dir.join(format!("{i}-{v}.safetensors")));
+            let mut results = Vec::with_capacity(indices.len());
+            let all_cached = indices
+                .iter()
+                .all(|&i| (0..factors.len()).all(|v| cached(i, v).is_some_and(|p| p.exists())));
+            let audio = if all_cached {
+                None
+            } else {
+                let segments: Vec<_> = indices
+                    .iter()
+                    .map(|&i| manifest.utterances[i].segment())
+                    .collect();
+                Some(isogloss_audio::read_segments(path, &segments))
+            };
+            for (k, &i) in indices.iter().enumerate() {
+                let utterance = &manifest.utterances[i];
+                let item = format!(
+                    "{}:{} ({})",
+                    manifest.path.display(),
+                    utterance.line,
+                    utterance.id
+                );
+                let mut variants = Vec::with_capacity(factors.len());
+                let mut failure = None;
+                for (v, &factor) in factors.iter().enumerate() {
+                    if let Some(path) = cached(i, v).filter(|p| p.exists()) {
+                        match read_features(&path) {
+                            Ok(matrix) => {
+                                variants.push(matrix);
+                                continue;
+                            }
+                            Err(e) => {
+                                failure = Some(format!("{item}: cached features unreadable: {e}"));
+                                break;
+                            }
+                        }
+                    }
+                    let samples = match &audio {
+                        Some(Ok(segments)) => &segments[k],
+                        Some(Err(e)) => {
+                            failure = Some(format!("{item}: {e}"));
+                            break;
+                        }
+                        None => {
+                            failure = Some(format!("{item}: cache incomplete"));
+                            break;
+                        }
+                    };
+                    let mut samples = if v == 0 {
+                        samples.clone()
+                    } else {
+                        isogloss_audio::speed_perturb(samples, factor as f64)
+                    };
+                    if v > 0 && volume_range > 1.0 {
+                        let mut rng =
+                            ChaCha8Rng::seed_from_u64(seed ^ ((i as u64) << 8) ^ (v as u64));
+                        let gain = rng.random_range(1.0 / volume_range..volume_range);
+                        isogloss_audio::volume_perturb(&mut samples, gain);
+                    }
+                    let matrix = extractor.extract(&samples);
+                    if let Some(path) = cached(i, v) {
+                        if let Err(e) = write_features(&path, &matrix) {
+                            failure = Some(format!("{item}: cannot cache features: {e}"));
+                            break;
+                        }
+                    }
+                    variants.push(matrix);
+                }
+                results.push((i, failure.map_or(Ok(variants), Err)));
+            }
+            let finished = done.fetch_add(1, std::sync::atomic::Ordering::Relaxed) + 1;
+            on_file_done(finished, total);
+            results
+        })
+        .collect();
+    let mut out: Vec<UtteranceFeatures> = (0..manifest.utterances.len())
+        .map(|_| Err(String::new()))
+        .collect();
+    for (i, result) in per_file.into_iter().flatten() {
+        out[i] = result;
+    }
+    Ok(out)
+}
+
+/// Normalises utterance features in place as `mode` says; `speakers[i]` is utterance `i`'s
+/// speaker. Statistics come from the first matrix of each utterance (the unperturbed one).
+pub fn normalize(
+    features: &mut [Vec<Array2<f32>>],
+    speakers: &[&str],
+    config: &FeatureConfig,
+) -> Result<(), AcousticError> {
+    match config.cmvn {
+        CmvnMode::None => Ok(()),
+        CmvnMode::Utterance => {
+            for (variants, speaker) in features.iter_mut().zip(speakers) {
+                if let Some(first) = variants.first() {
+                    let cmvn = Cmvn::from_features(first, config.normalize_variance, speaker)?;
+                    for matrix in variants.iter_mut() {
+                        cmvn.apply(matrix, speaker)?;
+                    }
+                }
+            }
+            Ok(())
+        }
+        CmvnMode::Speaker => {
+            let mut stats = SpeakerCmvnStats::new(config.dims());
+            for (variants, speaker) in features.iter().zip(speakers) {
+                if let Some(first) = variants.first() {
+                    stats.accumulate(speaker, first.view())?;
+                }
+            }
+            let by_speaker = stats.finish(config.normalize_variance)?;
+            for (variants, speaker) in features.iter_mut().zip(speakers) {
+                if let Some(cmvn) = by_speaker.get(*speaker) {
+                    for matrix in variants.iter_mut() {
+                        cmvn.apply(matrix, speaker)?;
+                    }
+                }
+            }
+            Ok(())
+        }
+    }
+}
+
+fn append_log(path: &Path, value: &serde_json::Value) -> Result<(), AcousticError> {
+    let io = |source| AcousticError::Io {
+        path: path.to_path_buf(),
+        source,
+    };
+    let mut file = std::fs::OpenOptions::new()
+        .create(true)
+        .append(true)
+        .open(path)
+        .map_err(io)?;
+    writeln!(file, "{value}").map_err(io)
+}
+
+struct Split {
+    utterances: Vec<PreparedUtterance>,
+    failed: Vec<String>,
+}
+
+#[allow(clippy::too_many_arguments)]
+fn prepare_split(
+    name: &'static str,
+    manifest: &Manifest,
+    column: usize,
+    units: &UnitInventory,
+    lexicon: Option<&BTreeMap<String, Vec<String>>>,
+    config: &ModelConfig,
+    factors: &[f32],
+    cache: &Path,
+    seed: u64,
+    strict_units: bool,
+    on_event: &mut dyn FnMut(&PipelineEvent),
+) -> Result<Split, AcousticError> {
+    let mut labels = Vec::with_capacity(manifest.utterances.len());
+    let mut failed = Vec::new();
+    for utterance in &manifest.utterances {
+        let item = format!(
+            "{}:{} ({})",
+            manifest.path.display(),
+            utterance.line,
+            utterance.id
+        );
+        let text = utterance
+            .transcripts
+            .get(column)
+            .map(String::as_str)
+            .unwrap_or("");
+        let encoded =
+            unit_names(text, lexicon, &item).and_then(|names| units.encode(&names, &item));
+        match encoded {
+            Ok(sequence) => labels.push(Some(sequence)),
+            Err(e) if strict_units => return Err(e),
+            Err(e) => {
+                on_event(&PipelineEvent::Warning(format!("skipped: {e}")));
+                failed.push(e.to_string());
+                labels.push(None);
+            }
+        }
+    }
+    let progress = std::sync::Mutex::new(Vec::<(usize, usize)>::new());
+    let mut features = manifest_features(
+        manifest,
+        &config.features,
+        factors,
+        config.training.volume_range,
+        seed,
+        Some(cache),
+        &|done, total| {
+            if let Ok(mut p) = progress.lock() {
+                p.push((done, total));
+            }
+        },
+    )?;
+    if let Ok(p) = progress.lock() {
+        if let Some(&(done, total)) = p.iter().max() {
+            on_event(&PipelineEvent::Features {
+                split: name,
+                done,
+                total,
+            });
+        }
+    }
+    let mut kept_features = Vec::new();
+    let mut kept = Vec::new();
+    for (i, (result, label)) in features.drain(..).zip(labels).enumerate() {
+        match (result, label) {
+            (Ok(variants), Some(label)) => {
+                kept_features.push(variants);
+                kept.push((i, label));
+            }
+            (Err(message), Some(_)) => {
+                on_event(&PipelineEvent::Warning(format!("skipped: {message}")));
+                failed.push(message);
+            }
+            (_, None) => {}
+        }
+    }
+    let speakers: Vec<&str> = kept
+        .iter()
+        .map(|(i, _)| manifest.utterances[*i].speaker.as_str())
+        .collect();
+    normalize(&mut kept_features, &speakers, &config.features)?;
+    let utterances = kept
+        .into_iter()
+        .zip(kept_features)
+        .map(|((i, labels), variants)| PreparedUtterance {
+            id: manifest.utterances[i].id.clone(),
+            variants,
+            labels,
+        })
+        .collect();
+    Ok(Split { utterances, failed })
+}
+
+/// Trains (or resumes training) a model as `options` says, writing the model directory, a
+/// checkpoint after every epoch and `training.jsonl`.
+pub fn train(
+    options: &TrainOptions,
+    on_event: &mut dyn FnMut(&PipelineEvent),
+) -> Result<TrainSummary, AcousticError> {
+    let (train_manifest, train_column) = read_manifest(&options.train_manifest, &options.column)?;
+    let (dev_manifest, dev_column) = read_manifest(&options.dev_manifest, &options.column)?;
+    let checkpoint = checkpoint_path(&options.out);
+    let lexicon: Option<BTreeMap<String, Vec<String>>> = match &options.lexicon {
+        Some(path) => {
+            let lexicon = Lexicon::read(path)?;
+            let mut first = BTreeMap::new();
+            for (word, units) in lexicon.entries {
+                first.entry(word).or_insert(units);
+            }
+            Some(first)
+        }
+        None => None,
+    };
+    let mut trainer = if options.resume {
+        if !checkpoint.exists() {
+            return Err(AcousticError::Input {
+                path: checkpoint,
+                problem: "--resume was given but there is no checkpoint to resume from".into(),
+            });
+        }
+        Trainer::load_checkpoint(&checkpoint)?
+    } else {
+        if checkpoint.exists() {
+            return Err(AcousticError::Input {
+                path: checkpoint,
+                problem: "a training run already wrote here; pass --resume to continue it or choose another --out".into(),
+            });
+        }
+        let units = match &lexicon {
+            Some(lexicon) => UnitInventory::phones(lexicon.values().flatten().cloned()),
+            None => UnitInventory::graphemes(train_manifest.utterances.iter().map(|u| {
+                u.transcripts
+                    .get(train_column)
+                    .map(String::as_str)
+                    .unwrap_or("")
+            })),
+        };
+        Trainer::new(
+            options.config.clone(),
+            units,
+            options.config.features.dims(),
+            options.seed,
+        )?
+    };
+    if let Some(epochs) = options.epochs {
+        trainer.set_epochs(epochs);
+    }
+    let config = trainer.config().clone();
+    let seed = trainer.progress().seed;
+    if trainer.units().kind == UnitKind::Phones && lexicon.is_none() {
+        return Err(AcousticError::Config(
+            "this run was started with phone units: pass the same --lexicon again".into(),
+        ));
+    }
+    let mut factors = vec![1.0f32];
+    factors.extend(config.training.speed_factors.iter().filter(|&&f| f != 1.0));
+    let train_hash = sha256_file(&options.train_manifest)?;
+    let dev_hash = sha256_file(&options.dev_manifest)?;
+    let key_text = format!(
+        "{train_hash}\n{}\n{factors:?}\n{}\n{seed}",
+        toml::to_string(&config.features).unwrap_or_default(),
+        config.training.volume_range
+    );
+    let key = format!("{:x}", Sha256::digest(key_text.as_bytes()));
+    let cache = options.out.join("cache").join(&key[..16]);
+    let units = trainer.units().clone();
+    let train_split = prepare_split(
+        "train",
+        &train_manifest,
+        train_column,
+        &units,
+        lexicon.as_ref(),
+        &config,
+        &factors,
+        &cache.join("train"),
+        seed,
+        true,
+        on_event,
+    )?;
+    let dev_split = prepare_split(
+        "dev",
+        &dev_manifest,
+        dev_column,
+        &units,
+        lexicon.as_ref(),
+        &config,
+        &[1.0],
+        &cache.join("dev"),
+        seed,
+        false,
+        on_event,
+    )?;
+    let admission = trainer.admit(train_split.utterances);
+    for (id, available, needed) in &admission.skipped {
+        on_event(&PipelineEvent::Warning(format!(
+            "skipped training utterance {id}: {needed} labels need {needed} output frames at least, it has {available}"
+        )));
+    }
+    let dev_admission = trainer.admit(dev_split.utterances);
+    for (id, available, needed) in &dev_admission.skipped {
+        on_event(&PipelineEvent::Warning(format!(
+            "skipped dev utterance {id}: needs {needed} output frames, has {available}"
+        )));
+    }
+    if dev_admission.kept.is_empty() {
+        return Err(AcousticError::Input {
+            path: options.dev_manifest.clone(),
+            problem: "no dev utterance is usable (all failed or were skipped)".into(),
+        });
+    }
+    let log_path = options.out.join("training.jsonl");
+    append_log(
+        &log_path,
+        &serde_json::json!({
+            "event": if options.resume { "resume" } else { "start" },
+            "epochs_done": trainer.progress().epochs_done,
+            "train_utterances": admission.kept.len(),
+            "skipped_utterances": admission.skipped.len(),
+            "failed_utterances": train_split.failed.len() + dev_split.failed.len(),
+            "dev_utterances": dev_admission.kept.len(),
+            "units": units.len(),
+            "parameters": config.model.parameter_count(config.features.dims(), units.len()),
+            "seed": seed,
+        }),
+    )?;
+    let spec = SpecAugment::default();
+    let blocks = config.features.delta_order() + 1;
+    let augment = move |m: &mut Array2<f32>, mut rng: &mut dyn rand::RngCore| {
+        spec.apply_blocks(m, blocks, &mut rng)
+    };
+    let augment: Option<&crate::train::Augment> = if config.training.spec_augment {
+        Some(&augment)
+    } else {
+        None
+    };
+    let mut summary = TrainSummary {
+        skipped_utterances: admission.skipped.clone(),
+        failed_utterances: train_split
+            .failed
+            .iter()
+            .chain(&dev_split.failed)
+            .cloned()
+            .collect(),
+        ..TrainSummary::default()
+    };
+    let mut log_error = None;
+    while !trainer.finished() {
+        let record = trainer.run_epoch(&admission.kept, &dev_admission.kept, augment, &mut |event| {
+            if let TrainingEvent::BatchSkipped { utterances, .. } = event {
+                let line = serde_json::json!({"event": "batch_skipped", "reason": "non-finite loss or gradient", "utterances": utterances});
+                if let Err(e) = append_log(&log_path, &line) {
+                    log_error = Some(e);
+                }
+            }
+            on_event(&PipelineEvent::Training(event.clone()));
+        })?;
+        if let Some(e) = log_error.take() {
+            return Err(e);
+        }
+        trainer.save_checkpoint(&checkpoint)?;
+        if record.improved {
+            let description = ModelDescription {
+                format: MODEL_FORMAT,
+                units: units.clone(),
+                features: config.features.clone(),
+                architecture: config.model.clone(),
+                provenance: Provenance {
+                    train_manifest_sha256: train_hash.clone(),
+                    dev_manifest_sha256: dev_hash.clone(),
+                    column: options.column.clone(),
+                    epochs: record.epoch,
+                    dev_loss: record.dev_loss,
+                    dev_unit_error_rate: record.dev_unit_error_rate,
+                    train_utterances: admission.kept.len(),
+                    skipped_utterances: admission.skipped.len(),
+                    seed,
+                    written_by: format!("isogloss-acoustic {}", env!("CARGO_PKG_VERSION")),
+                },
+            };
+            AcousticModel::save(&options.out, &description, trainer.parameters())?;
+            summary.best = Some(record.clone());
+        }
+        let mut line = serde_json::to_value(&record)
+            .map_err(|e| AcousticError::Config(format!("epoch record does not serialise: {e}")))?;
+        line["event"] = "epoch".into();
+        append_log(&log_path, &line)?;
+    }
+    summary.epochs_done = trainer.progress().epochs_done;
+    summary.stopped_early = summary.epochs_done < config.training.epochs;
+    if summary.best.is_none() {
+        summary.best = trainer
+            .progress()
+            .history
+            .iter()
+            .rfind(|r| r.improved)
+            .cloned();
+    }
+    Ok(summary)
+}
+
+/// Log-posteriors `[frames, units]` of every utterance of a manifest, normalised the way the
+/// model was trained; a failed utterance gives an error message and the others carry on.
+pub fn manifest_posteriors(
+    model: &AcousticModel,
+    manifest: &Manifest,
+    on_file_done: &(dyn Fn(usize, usize) + Sync),
+) -> Result<Vec<Result<Array2<f32>, String>>, AcousticError> {
+    let config = model.feature_config();
+    let raw = manifest_features(manifest, config, &[1.0], 1.0, 0, None, on_file_done)?;
+    let mut ok_indices = Vec::new();
+    let mut features = Vec::new();
+    let mut results: Vec<Result<Array2<f32>, String>> = Vec::with_capacity(raw.len());
+    for (i, result) in raw.into_iter().enumerate() {
+        match result {
+            Ok(variants) => {
+                ok_indices.push(i);
+                features.push(variants);
+                results.push(Ok(Array2::zeros((0, 0))));
+            }
+            Err(message) => results.push(Err(message)),
+        }
+    }
+    let speakers: Vec<&str> = ok_indices
+        .iter()
+        .map(|&i| manifest.utterances[i].speaker.as_str())
+        .collect();
+    normalize(&mut features, &speakers, config)?;
+    let posteriors: Vec<Result<Array2<f32>, String>> = features
+        .par_iter()
+        .zip(&ok_indices)
+        .map(|(variants, &i)| {
+            model.log_posteriors(&variants[0]).map_err(|e| {
+                let u = &manifest.utterances[i];
+                format!("{}:{} ({}): {e}", manifest.path.display(), u.line, u.id)
+            })
+        })
+        .collect();
+    for (i, p) in ok_indices.into_iter().zip(posteriors) {
+        results[i] = p;
+    }
+    Ok(results)
+}

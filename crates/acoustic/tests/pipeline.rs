@@ -1,0 +1,158 @@
+//! Training on real demo audio (tests/data/demo) and the errors a user gets for bad input.
+
+use std::path::{Path, PathBuf};
+
+use isogloss_acoustic::config::ModelConfig;
+use isogloss_acoustic::pipeline::{manifest_posteriors, train, TrainOptions};
+use isogloss_acoustic::{greedy_decode, AcousticError, AcousticModel};
+use isogloss_corpus::Manifest;
+
+fn demo() -> PathBuf {
+    Path::new(env!("CARGO_MANIFEST_DIR")).join("../../tests/data/demo")
+}
+
+/// A manifest in `dir` listing demo utterances by absolute audio path.
+fn manifest(dir: &Path, name: &str, ids: &[&str]) -> PathBuf {
+    let source = std::fs::read_to_string(demo().join("train.tsv")).unwrap();
+    let mut text = String::from("id\taudio\tstart\tend\tspeaker\tdialect\tdialectal\tnormalized\n");
+    for id in ids {
+        let line = source
+            .lines()
+            .find(|l| l.starts_with(&format!("{id}\t")))
+            .unwrap_or_else(|| panic!("{id} is in the demo corpus"));
+        let mut fields: Vec<String> = line.split('\t').map(str::to_string).collect();
+        fields[1] = demo().join(&fields[1]).display().to_string();
+        text.push_str(&fields.join("\t"));
+        text.push('\n');
+    }
+    let path = dir.join(name);
+    std::fs::write(&path, text).unwrap();
+    path
+}
+
+const TINY: &str = r#"
+[model]
+normalization = "layer"
+dropout = 0.0
+layers = [
+  { offsets = [-2, -1, 0, 1, 2], dims = 192 },
+  { offsets = [-1, 0, 1], dims = 192 },
+  { offsets = [-1, 0, 1], dims = 192, subsample = 3 },
+  { offsets = [-1, 0, 1], dims = 192 },
+  { offsets = [0], dims = 192 },
+]
+[training]
+epochs = 70
+batch_frames = 4000
+learning_rate = 0.003
+warmup_steps = 10
+patience = 0
+speed_factors = []
+volume_range = 1.0
+spec_augment = false
+"#;
+
+fn options(
+    dir: &Path,
+    train_manifest: PathBuf,
+    dev_manifest: PathBuf,
+    column: &str,
+) -> TrainOptions {
+    TrainOptions {
+        train_manifest,
+        dev_manifest,
+        column: column.to_string(),
+        out: dir.join("model"),
+        config: ModelConfig::parse(TINY).unwrap(),
+        epochs: None,
+        resume: false,
+        seed: 7,
+        lexicon: None,
+    }
+}
+
+#[test]
+fn overfits_a_handful_of_demo_utterances() {
+    let dir = tempfile::tempdir().unwrap();
+    let ids = [
+        "larch01-0006",
+        "vale02-0008",
+        "corran01-0003",
+        "quays01-0019",
+    ];
+    let path = manifest(dir.path(), "few.tsv", &ids);
+    let summary = train(
+        &options(dir.path(), path.clone(), path.clone(), "normalized"),
+        &mut |_| {},
+    )
+    .expect("training runs");
+    let best = summary.best.expect("some epoch improved");
+    assert!(
+        best.dev_unit_error_rate < 0.05,
+        "greedy unit error rate {best:?}"
+    );
+
+    // The saved model directory reproduces the transcripts through the public inference path.
+    let model = AcousticModel::load(&dir.path().join("model")).unwrap();
+    assert!((model.frame_shift_seconds() - 0.03).abs() < 1e-12);
+    let manifest = Manifest::read(&path).unwrap();
+    let posteriors = manifest_posteriors(&model, &manifest, &|_, _| {}).unwrap();
+    let mut correct = 0;
+    for (utterance, result) in manifest.utterances.iter().zip(posteriors) {
+        let text = model
+            .inventory()
+            .to_text(&greedy_decode(&result.unwrap(), model.units()));
+        correct += usize::from(text == utterance.transcripts[1]);
+    }
+    assert!(
+        correct >= 3,
+        "{correct} of 4 transcripts reproduced exactly"
+    );
+}
+
+#[test]
+fn bad_input_gets_errors_naming_the_file_and_item() {
+    let dir = tempfile::tempdir().unwrap();
+    let good = manifest(dir.path(), "good.tsv", &["vale02-0008"]);
+    let empty = manifest(dir.path(), "empty.tsv", &[]);
+
+    let error = train(
+        &options(dir.path(), empty.clone(), good.clone(), "normalized"),
+        &mut |_| {},
+    )
+    .unwrap_err();
+    assert!(matches!(error, AcousticError::Input { .. }), "{error}");
+    assert!(error.to_string().contains("empty.tsv") && error.to_string().contains("no utterances"));
+
+    let error = train(
+        &options(dir.path(), good.clone(), good.clone(), "phonetic"),
+        &mut |_| {},
+    )
+    .unwrap_err();
+    let message = error.to_string();
+    assert!(
+        message.contains("good.tsv") && message.contains("phonetic"),
+        "{message}"
+    );
+
+    // A lexicon that lacks every word of the transcript.
+    let lexicon = dir.path().join("lexicon.tsv");
+    std::fs::write(&lexicon, "zzyzx\tz ih z ih k s\n").unwrap();
+    let mut with_lexicon = options(dir.path(), good.clone(), good.clone(), "normalized");
+    with_lexicon.lexicon = Some(lexicon);
+    let error = train(&with_lexicon, &mut |_| {}).unwrap_err();
+    let message = error.to_string();
+    assert!(
+        matches!(error, AcousticError::NotInLexicon { .. }),
+        "{message}"
+    );
+    assert!(
+        message.contains("good.tsv:2") && message.contains("not in the lexicon"),
+        "{message}"
+    );
+
+    let mut resume = options(dir.path(), good.clone(), good, "normalized");
+    resume.resume = true;
+    let error = train(&resume, &mut |_| {}).unwrap_err();
+    assert!(error.to_string().contains("no checkpoint"), "{error}");
+}

@@ -1,0 +1,145 @@
+//! `isogloss train`: flags in, progress bars out; the work is `isogloss_acoustic::pipeline::train`.
+
+use std::path::PathBuf;
+
+use anyhow::Context;
+use clap::Args;
+use indicatif::ProgressBar;
+use isogloss_acoustic::config::ModelConfig;
+use isogloss_acoustic::pipeline::{self, PipelineEvent, TrainOptions};
+use isogloss_acoustic::train::TrainingEvent;
+
+use crate::Outcome;
+
+/// Train a TDNN acoustic model with CTC on a manifest's transcripts.
+#[derive(Args)]
+pub struct TrainArgs {
+    /// Training manifest (TSV).
+    #[arg(long)]
+    manifest: PathBuf,
+    /// Dev manifest (TSV) for early stopping and the per-epoch error rate.
+    #[arg(long)]
+    dev: PathBuf,
+    /// Transcript column to learn (e.g. `dialectal` or `normalized`).
+    #[arg(long)]
+    column: String,
+    /// Model directory to write (`model.toml`, `model.safetensors`, checkpoint, training log).
+    #[arg(long)]
+    out: PathBuf,
+    /// Architecture and training settings (TOML); default: configs/tdnn-small.toml.
+    #[arg(long)]
+    config: Option<PathBuf>,
+    /// Number of epochs (overrides the configuration).
+    #[arg(long)]
+    epochs: Option<usize>,
+    /// Continue an interrupted run from its last checkpoint.
+    #[arg(long)]
+    resume: bool,
+    /// Seed for initialisation, data order, augmentation and dropout.
+    #[arg(long, default_value_t = 1)]
+    seed: u64,
+    /// Phone units from this lexicon (word<TAB>units) instead of graphemes.
+    #[arg(long)]
+    lexicon: Option<PathBuf>,
+}
+
+/// Runs `isogloss train`.
+pub fn run(args: TrainArgs) -> anyhow::Result<Outcome> {
+    let config = match &args.config {
+        Some(path) => ModelConfig::read(path)?,
+        None => ModelConfig::small(),
+    };
+    let options = TrainOptions {
+        train_manifest: args.manifest,
+        dev_manifest: args.dev,
+        column: args.column,
+        out: args.out.clone(),
+        config,
+        epochs: args.epochs,
+        resume: args.resume,
+        seed: args.seed,
+        lexicon: args.lexicon,
+    };
+    let mut bar: Option<ProgressBar> = None;
+    let summary = pipeline::train(&options, &mut |event| match event {
+        PipelineEvent::Features { split, done, total } => {
+            eprintln!("features: {split}: {done}/{total} audio files");
+        }
+        PipelineEvent::Warning(message) => match &bar {
+            Some(bar) => bar.println(format!("warning: {message}")),
+            None => eprintln!("warning: {message}"),
+        },
+        PipelineEvent::Training(TrainingEvent::EpochStart { epoch, frames, .. }) => {
+            bar = Some(crate::progress::bar(*frames as u64, &format!("epoch {epoch}")));
+        }
+        PipelineEvent::Training(TrainingEvent::Batch {
+            loss,
+            frames,
+            frames_per_second,
+            ..
+        }) => {
+            if let Some(bar) = &bar {
+                bar.inc(*frames as u64);
+                bar.set_message(format!("loss {loss:.3} · {frames_per_second:.0} frames/s"));
+            }
+        }
+        PipelineEvent::Training(TrainingEvent::BatchSkipped { utterances, .. }) => {
+            let message = format!(
+                "warning: skipped a batch with a non-finite loss ({})",
+                utterances.join(", ")
+            );
+            match &bar {
+                Some(bar) => bar.println(message),
+                None => eprintln!("{message}"),
+            }
+        }
+        PipelineEvent::Training(TrainingEvent::EpochEnd(record)) => {
+            if let Some(bar) = bar.take() {
+                bar.finish_and_clear();
+            }
+            eprintln!(
+                "epoch {:>3}: train loss {:.4}  dev loss {:.4}  dev unit error rate {:.2}%  {:.0} frames/s{}",
+                record.epoch,
+                record.train_loss,
+                record.dev_loss,
+                100.0 * record.dev_unit_error_rate,
+                record.frames_per_second,
+                if record.improved { "  (saved)" } else { "" }
+            );
+        }
+    })
+    .with_context(|| format!("training into {}", args.out.display()))?;
+    if !summary.skipped_utterances.is_empty() {
+        eprintln!(
+            "{} training utterances were skipped: their labels do not fit their frames",
+            summary.skipped_utterances.len()
+        );
+    }
+    if summary.stopped_early {
+        eprintln!("stopped early: the dev loss stopped improving");
+    }
+    match &summary.best {
+        Some(best) => eprintln!(
+            "model: {} (epoch {}, dev unit error rate {:.2}%)",
+            args.out.display(),
+            best.epoch,
+            100.0 * best.dev_unit_error_rate
+        ),
+        None => eprintln!(
+            "no epoch improved on the checkpointed model; {} unchanged",
+            args.out.display()
+        ),
+    }
+    if summary.failed_utterances.is_empty() {
+        Ok(Outcome::Done)
+    } else {
+        eprintln!(
+            "{} utterances could not be used:",
+            summary.failed_utterances.len()
+        );
+        for failure in &summary.failed_utterances {
+            eprintln!("  {failure}");
+        }
+        Ok(Outcome::SomeItemsFailed)
+    }
+}
