@@ -29,8 +29,10 @@ enum Command {
     Score(commands::score::ScoreArgs),
     /// Train a TDNN acoustic model with CTC.
     Train(commands::train::TrainArgs),
-    /// Transcribe a manifest with a trained model.
-    Transcribe(commands::transcribe::TranscribeArgs),
+    /// Transcribe recordings or a manifest: beam search with LM and lexicon, or greedy.
+    Transcribe(commands::decode::TranscribeArgs),
+    /// Decode and score a grid of LM, lexicon, writing and decoder choices.
+    Sweep(commands::sweep::SweepArgs),
     /// Build a spelling-variant map from two word-aligned transcript columns.
     Variants(commands::variants::VariantsArgs),
     /// N-gram language models: build, eval, mix, prune.
@@ -76,6 +78,7 @@ fn main() -> ExitCode {
         Command::Lexicon(args) => commands::lexicon::run(args),
         Command::Train(args) => commands::train::run(args),
         Command::Transcribe(args) => commands::transcribe::run(args),
+        Command::Sweep(args) => commands::sweep::run(args),
     };
     match result {
         Ok(Outcome::Done) => ExitCode::SUCCESS,

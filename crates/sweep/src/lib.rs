@@ -11,9 +11,13 @@
 use std::path::PathBuf;
 
 pub mod config;
+pub mod posteriors;
+pub mod report;
 pub mod resources;
+pub mod run;
 
 pub use config::{Cell, LexiconChoice, LexiconKind, LmChoice, Sweep};
+pub use run::{CellResult, SweepEvent, SweepResults};
 
 /// Everything that can go wrong in a sweep.
 #[derive(Debug, thiserror::Error)]

@@ -6,8 +6,6 @@
 //! is the record of what was done; the output file is regenerated from it atomically at the end.
 //! Each journal line carries a fingerprint of the model, LM, lexicon and search settings, so that
 //! `--resume` only skips items decoded the same way.
-// The coordinator wires `run` into `enum Command`; until then the helpers are unused.
-#![allow(dead_code)]
 
 use std::collections::HashMap;
 use std::fs::{self, File, OpenOptions};

@@ -6,6 +6,7 @@ pub mod features;
 pub mod lexicon;
 pub mod lm;
 pub mod score;
+pub mod sweep;
 pub mod train;
 pub mod transcribe;
 pub mod variants;

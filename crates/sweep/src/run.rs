@@ -1,0 +1,611 @@
+//! Running a sweep: posteriors once per model, resources once per axis value, then every cell
+//! decodes and scores, in parallel, with finished cells cached.
+
+use std::collections::HashMap;
+use std::path::{Path, PathBuf};
+use std::sync::atomic::{AtomicUsize, Ordering};
+use std::time::Instant;
+
+use isogloss_acoustic::AcousticModel;
+use isogloss_corpus::Manifest;
+use isogloss_decoder::{Decoder, PrefixBeamSearch, SearchGraph, SearchOptions};
+use isogloss_lexicon::Coverage;
+use isogloss_lm::{evaluate_sentences, ArpaModel};
+use isogloss_score::{
+    report, score_system, BootstrapOptions, Hypotheses, PairedDifference, Reference, ScoreOptions,
+    Summary, TokenRules, VariantMap,
+};
+use rayon::prelude::*;
+use serde::{Deserialize, Serialize};
+
+use crate::config::{model_name, Cell, Sweep};
+use crate::posteriors::{model_key, posteriors, Posteriors};
+use crate::resources::{build_lexicon, build_lm, lm_words, ContentKey};
+use crate::SweepError;
+
+/// What a sweep reports as it goes, for a progress display.
+#[derive(Debug, Clone)]
+pub enum SweepEvent {
+    /// The acoustic pass over a manifest finished.
+    AcousticPass {
+        /// Model name.
+        model: String,
+        /// Utterances computed (0: all cached).
+        computed: usize,
+        /// Seconds it took.
+        seconds: f64,
+    },
+    /// The grid is known: this many cells will be decoded or read from the cache.
+    Cells(usize),
+    /// One cell finished.
+    CellDone {
+        /// Its label.
+        label: String,
+        /// Whether it came from the cache.
+        cached: bool,
+    },
+    /// Something the user should know (skipped combinations, estimation warnings).
+    Note(String),
+}
+
+/// The figures of one cell.
+#[derive(Debug, Clone, Serialize, Deserialize)]
+pub struct CellResult {
+    /// Model name.
+    pub model: String,
+    /// Transcript column.
+    pub column: String,
+    /// LM name.
+    pub lm: String,
+    /// Lexicon name.
+    pub lexicon: String,
+    /// Beam width.
+    pub beam: usize,
+    /// LM weight used (tuned or fixed).
+    pub lm_weight: f32,
+    /// Word bonus used (tuned or fixed).
+    pub word_bonus: f32,
+    /// Whether weight and bonus were tuned on dev.
+    pub tuned: bool,
+    /// LM perplexity on the test transcripts of the column.
+    pub perplexity: f64,
+    /// LM out-of-vocabulary rate on the test transcripts.
+    pub oov_rate: f64,
+    /// Lexicon token coverage of the test transcripts.
+    pub coverage: f64,
+    /// Lexicon type coverage of the test transcripts.
+    pub type_coverage: f64,
+    /// Overall WER / flexible WER with intervals.
+    pub overall: Summary,
+    /// One summary per value of the grouping column.
+    pub groups: Vec<(String, Summary)>,
+    /// Search seconds over the test set.
+    pub decode_seconds: f64,
+    /// Real-time factor of the search alone (search seconds / audio seconds).
+    pub search_rtf: f64,
+    /// The cell's hypotheses file.
+    pub hypotheses: PathBuf,
+    /// Paired bootstrap against the baseline cell (absent for the baseline itself).
+    pub versus_baseline: Option<PairedDifference>,
+    /// Paired bootstrap of flexible WER against the baseline.
+    pub flexible_versus_baseline: Option<PairedDifference>,
+}
+
+impl CellResult {
+    /// A one-line label of the cell's axis values.
+    pub fn label(&self) -> String {
+        format!(
+            "{} {} lm={} lex={} beam={} w={} b={}",
+            self.model,
+            self.column,
+            self.lm,
+            self.lexicon,
+            self.beam,
+            self.lm_weight,
+            self.word_bonus
+        )
+    }
+}
+
+/// Everything a sweep produced.
+#[derive(Debug, Clone, Serialize, Deserialize)]
+pub struct SweepResults {
+    /// One entry per cell, in grid order.
+    pub cells: Vec<CellResult>,
+    /// Index of the baseline cell in `cells`, when it ran.
+    pub baseline: Option<usize>,
+    /// Utterances that went through an acoustic model in this run.
+    pub acoustic_runs: usize,
+    /// Seconds of the acoustic passes in this run.
+    pub acoustic_seconds: f64,
+    /// Cells decoded in this run (the rest came from the cache).
+    pub cells_decoded: usize,
+    /// Test audio in seconds.
+    pub audio_seconds: f64,
+    /// Combinations left out, with the reason.
+    pub skipped: Vec<String>,
+}
+
+/// A lexicon ready for one (column, LM, lexicon) combination: its entries, its content key,
+/// and its token and type coverage of the test transcripts.
+type BuiltCellLexicon = (Vec<(String, Vec<String>)>, String, f64, f64);
+
+/// One model's data for the whole run.
+struct ModelPass {
+    name: String,
+    units: Vec<String>,
+    test: Posteriors,
+    dev: Option<Posteriors>,
+}
+
+fn sentences_of(manifest: &Manifest, column: &str) -> Result<Vec<Vec<String>>, SweepError> {
+    let index = manifest
+        .column_index(column)
+        .map_err(|e| SweepError::Build(e.to_string()))?;
+    Ok(manifest
+        .utterances
+        .iter()
+        .map(|u| {
+            u.transcripts[index]
+                .split_whitespace()
+                .map(str::to_string)
+                .collect()
+        })
+        .collect())
+}
+
+fn audio_seconds(manifest: &Manifest) -> f64 {
+    manifest
+        .utterances
+        .iter()
+        .map(|u| match (u.start, u.end) {
+            (Some(start), Some(end)) => end - start,
+            _ => isogloss_audio::probe(&u.audio)
+                .map(|info| info.duration_seconds - u.start.unwrap_or(0.0))
+                .unwrap_or(0.0),
+        })
+        .sum()
+}
+
+/// Decodes every utterance that has posteriors, in manifest order, into a hypotheses file.
+fn decode_to_file(
+    manifest: &Manifest,
+    posteriors: &Posteriors,
+    graph: &SearchGraph,
+    lm: &ArpaModel,
+    options: &SearchOptions,
+    path: &Path,
+) -> Result<f64, SweepError> {
+    let started = Instant::now();
+    let mut search = PrefixBeamSearch::new(graph, lm, options.clone());
+    let mut rows = Vec::new();
+    for utterance in &manifest.utterances {
+        if let Some(p) = posteriors.by_id.get(&utterance.id) {
+            let transcript = search
+                .decode(p.view())
+                .map_err(|e| SweepError::Build(format!("{}: {e}", utterance.id)))?;
+            rows.push(vec![utterance.id.clone(), transcript.text()]);
+        }
+    }
+    let seconds = started.elapsed().as_secs_f64();
+    isogloss_corpus::tsv::write_table(path, &["id", "text"], &rows)
+        .map_err(|e| SweepError::Build(e.to_string()))?;
+    Ok(seconds)
+}
+
+fn word_error_rate(manifest: &Path, column: &str, hypotheses: &Path) -> Result<f64, SweepError> {
+    let score_error = |e: isogloss_score::ScoreError| SweepError::Build(e.to_string());
+    let reference = Reference::read(manifest, column, &[]).map_err(score_error)?;
+    let hypotheses = Hypotheses::read(hypotheses).map_err(score_error)?;
+    let system =
+        score_system(&reference, &hypotheses, None, &TokenRules::default()).map_err(score_error)?;
+    let counts: isogloss_score::ErrorCounts = system.utterances.iter().map(|u| u.plain).sum();
+    Ok(counts.error_rate().unwrap_or(0.0))
+}
+
+/// Runs the sweep. Bad axis values were refused by [`Sweep::read`]; what can still fail here is
+/// reading the data itself.
+pub fn run(
+    sweep: &Sweep,
+    progress: &(dyn Fn(SweepEvent) + Sync),
+) -> Result<SweepResults, SweepError> {
+    let corpus_error = |e: isogloss_corpus::CorpusError| SweepError::Build(e.to_string());
+    let test = Manifest::read(&sweep.test).map_err(corpus_error)?;
+    let dev = sweep
+        .dev
+        .as_deref()
+        .map(Manifest::read)
+        .transpose()
+        .map_err(corpus_error)?;
+    for column in &sweep.columns {
+        test.column_index(column).map_err(corpus_error)?;
+        if let Some(dev) = &dev {
+            dev.column_index(column).map_err(corpus_error)?;
+        }
+    }
+    let cache = sweep.out_dir.join("cache");
+    let mut results = SweepResults {
+        cells: Vec::new(),
+        baseline: None,
+        acoustic_runs: 0,
+        acoustic_seconds: 0.0,
+        cells_decoded: 0,
+        audio_seconds: audio_seconds(&test),
+        skipped: Vec::new(),
+    };
+
+    // 1. One acoustic pass per model (and dev set when tuning), through the posterior cache.
+    let mut passes = Vec::new();
+    for dir in &sweep.models {
+        let model = AcousticModel::load(dir).map_err(|e| SweepError::Build(e.to_string()))?;
+        let key = model_key(dir)?;
+        let name = model_name(dir);
+        let test_pass = posteriors(&model, &key, &test, &cache.join("posteriors"))?;
+        progress(SweepEvent::AcousticPass {
+            model: name.clone(),
+            computed: test_pass.computed,
+            seconds: test_pass.seconds,
+        });
+        results.acoustic_runs += test_pass.computed;
+        results.acoustic_seconds += test_pass.seconds;
+        for (id, message) in &test_pass.failed {
+            progress(SweepEvent::Note(format!(
+                "{name}: utterance {id} failed: {message}"
+            )));
+        }
+        let dev_pass = match (&dev, sweep.decoder.tune_on_dev) {
+            (Some(dev), true) => {
+                let pass = posteriors(&model, &key, dev, &cache.join("posteriors"))?;
+                results.acoustic_runs += pass.computed;
+                results.acoustic_seconds += pass.seconds;
+                Some(pass)
+            }
+            _ => None,
+        };
+        passes.push(ModelPass {
+            name,
+            units: model.units().to_vec(),
+            test: test_pass,
+            dev: dev_pass,
+        });
+    }
+
+    // 2. LMs per (column, LM) and lexicons per (column, LM, lexicon), with their figures.
+    let mut lms: HashMap<(usize, usize), (ArpaModel, PathBuf, f64, f64)> = HashMap::new();
+    let mut lexicons: HashMap<(usize, usize, usize), BuiltCellLexicon> = HashMap::new();
+    for (c, column) in sweep.columns.iter().enumerate() {
+        let test_sentences = sentences_of(&test, column)?;
+        let dev_sentences = dev.as_ref().map(|d| sentences_of(d, column)).transpose()?;
+        let test_tokens: Vec<&str> = test_sentences
+            .iter()
+            .flatten()
+            .map(String::as_str)
+            .collect();
+        for (l, choice) in sweep.lms.iter().enumerate() {
+            let built = build_lm(choice, column, dev_sentences.as_deref(), &cache.join("lms"))?;
+            for warning in &built.warnings {
+                progress(SweepEvent::Note(format!(
+                    "LM {} ({column}): {warning}",
+                    choice.name()
+                )));
+            }
+            let figures = evaluate_sentences(&built.model, test_sentences.iter().cloned());
+            let words = lm_words(&built.model);
+            for (x, lexicon_choice) in sweep.lexicons.iter().enumerate() {
+                let lexicon = build_lexicon(lexicon_choice, &words)?;
+                if !lexicon.uncovered.is_empty() {
+                    progress(SweepEvent::Note(format!(
+                        "lexicon {} ({column}, LM {}): {} words got no pronunciation, e.g. {}",
+                        lexicon_choice.name,
+                        choice.name(),
+                        lexicon.uncovered.len(),
+                        lexicon.uncovered[0]
+                    )));
+                }
+                let coverage = Coverage::count(&lexicon.lexicon, test_tokens.iter().copied());
+                let mut key = ContentKey::new();
+                for (word, units) in &lexicon.lexicon.entries {
+                    key.text(word);
+                    key.text(&units.join(" "));
+                }
+                lexicons.insert(
+                    (c, l, x),
+                    (
+                        lexicon.lexicon.entries.clone(),
+                        key.finish(),
+                        coverage.token_rate(),
+                        coverage.type_rate(),
+                    ),
+                );
+            }
+            lms.insert(
+                (c, l),
+                (
+                    built.model,
+                    built.path,
+                    figures.perplexity(),
+                    figures.oov_rate(),
+                ),
+            );
+        }
+    }
+
+    // 3. The cells, after leaving out model × lexicon pairs whose units do not fit.
+    let mut graphs: HashMap<(usize, usize, usize, usize), SearchGraph> = HashMap::new();
+    let mut cells: Vec<Cell> = Vec::new();
+    for cell in sweep.cells() {
+        let graph_key = (cell.model, cell.column, cell.lm, cell.lexicon);
+        if let std::collections::hash_map::Entry::Vacant(slot) = graphs.entry(graph_key) {
+            let entries = &lexicons[&(cell.column, cell.lm, cell.lexicon)].0;
+            match SearchGraph::with_lexicon(passes[cell.model].units.clone(), entries) {
+                Ok((graph, report)) => {
+                    if !report.unknown_units.is_empty() {
+                        progress(SweepEvent::Note(format!(
+                            "model {} × lexicon {}: {} entries use units the model lacks (e.g. {} uses {})",
+                            passes[cell.model].name,
+                            sweep.lexicons[cell.lexicon].name,
+                            report.unknown_units.len(),
+                            report.unknown_units[0].0,
+                            report.unknown_units[0].1
+                        )));
+                    }
+                    slot.insert(graph);
+                }
+                Err(error) => {
+                    let reason = format!(
+                        "model {} × lexicon {} left out: {error}",
+                        passes[cell.model].name, sweep.lexicons[cell.lexicon].name
+                    );
+                    if !results.skipped.contains(&reason) {
+                        progress(SweepEvent::Note(reason.clone()));
+                        results.skipped.push(reason);
+                    }
+                    continue;
+                }
+            }
+        }
+        cells.push(cell);
+    }
+    progress(SweepEvent::Cells(cells.len()));
+
+    let decoded = AtomicUsize::new(0);
+    let cell_dir = sweep.out_dir.join("cells");
+    let scored: Vec<Result<(CellResult, Option<usize>), SweepError>> = cells
+        .par_iter()
+        .map(|cell| {
+            let pass = &passes[cell.model];
+            let column = &sweep.columns[cell.column];
+            let (lm, lm_path, perplexity, oov_rate) = &lms[&(cell.column, cell.lm)];
+            let (_, lexicon_key, coverage, type_coverage) =
+                &lexicons[&(cell.column, cell.lm, cell.lexicon)];
+            let graph = &graphs[&(cell.model, cell.column, cell.lm, cell.lexicon)];
+            let mut key = ContentKey::new();
+            key.text("cell v1");
+            key.text(&pass.test.key);
+            key.text(column);
+            key.file(lm_path)?;
+            key.text(lexicon_key);
+            key.file(&sweep.test)?;
+            key.text(&format!(
+                "{} {:?} {:?}",
+                cell.beam, cell.lm_weight, cell.word_bonus
+            ));
+            if let Some(dev) = &sweep.dev {
+                if let (None, Some(dev_pass)) = (cell.lm_weight, &pass.dev) {
+                    key.file(dev)?;
+                    key.text(&dev_pass.key);
+                    key.text(&format!(
+                        "{:?} {:?}",
+                        sweep.decoder.lm_weights, sweep.decoder.word_bonuses
+                    ));
+                }
+            }
+            let dir = cell_dir.join(key.finish());
+            let hypotheses = dir.join("hyp.tsv");
+            let settings_path = dir.join("settings.json");
+            let cached: Option<(f32, f32, f64)> = std::fs::read_to_string(&settings_path)
+                .ok()
+                .and_then(|text| serde_json::from_str(&text).ok())
+                .filter(|_| hypotheses.exists());
+            let (lm_weight, word_bonus, decode_seconds, was_cached) = match cached {
+                Some((w, b, s)) => (w, b, s, true),
+                None => {
+                    let options_for = |w: f32, b: f32| SearchOptions {
+                        beam: cell.beam,
+                        lm_weight: w,
+                        word_bonus: b,
+                        ..SearchOptions::default()
+                    };
+                    let (w, b) = match (cell.lm_weight, cell.word_bonus) {
+                        (Some(w), Some(b)) => (w, b),
+                        _ => {
+                            let (dev_manifest, dev_pass) = match (&dev, &pass.dev) {
+                                (Some(m), Some(p)) => (m, p),
+                                _ => {
+                                    return Err(SweepError::Build(
+                                        "tuning needs dev posteriors".into(),
+                                    ))
+                                }
+                            };
+                            let mut best = (f64::INFINITY, 0.0f32, 0.0f32);
+                            let tuning_file = dir.join("tuning.tsv");
+                            for &w in &sweep.decoder.lm_weights {
+                                for &b in &sweep.decoder.word_bonuses {
+                                    decode_to_file(
+                                        dev_manifest,
+                                        dev_pass,
+                                        graph,
+                                        lm,
+                                        &options_for(w, b),
+                                        &tuning_file,
+                                    )?;
+                                    let wer =
+                                        word_error_rate(&dev_manifest.path, column, &tuning_file)?;
+                                    if wer < best.0 {
+                                        best = (wer, w, b);
+                                    }
+                                }
+                            }
+                            (best.1, best.2)
+                        }
+                    };
+                    let seconds = decode_to_file(
+                        &test,
+                        &pass.test,
+                        graph,
+                        lm,
+                        &options_for(w, b),
+                        &hypotheses,
+                    )?;
+                    let settings = serde_json::to_string(&(w, b, seconds)).unwrap_or_default();
+                    std::fs::write(&settings_path, settings).map_err(|source| SweepError::Io {
+                        path: settings_path.clone(),
+                        source,
+                    })?;
+                    decoded.fetch_add(1, Ordering::Relaxed);
+                    (w, b, seconds, false)
+                }
+            };
+            let result = CellResult {
+                model: pass.name.clone(),
+                column: column.clone(),
+                lm: sweep.lms[cell.lm].name().to_string(),
+                lexicon: sweep.lexicons[cell.lexicon].name.clone(),
+                beam: cell.beam,
+                lm_weight,
+                word_bonus,
+                tuned: cell.lm_weight.is_none(),
+                perplexity: *perplexity,
+                oov_rate: *oov_rate,
+                coverage: *coverage,
+                type_coverage: *type_coverage,
+                overall: empty_summary(),
+                groups: Vec::new(),
+                decode_seconds,
+                search_rtf: decode_seconds / results.audio_seconds.max(1e-9),
+                hypotheses,
+                versus_baseline: None,
+                flexible_versus_baseline: None,
+            };
+            progress(SweepEvent::CellDone {
+                label: result.label(),
+                cached: was_cached,
+            });
+            let is_baseline = cell.model == sweep.baseline.model
+                && cell.column == sweep.baseline.column
+                && cell.lm == sweep.baseline.lm
+                && cell.lexicon == sweep.baseline.lexicon;
+            Ok((result, is_baseline.then_some(0)))
+        })
+        .collect();
+    let mut baseline = None;
+    for (index, item) in scored.into_iter().enumerate() {
+        let (cell, is_baseline) = item?;
+        if is_baseline.is_some() && baseline.is_none() {
+            baseline = Some(index);
+        }
+        results.cells.push(cell);
+    }
+    results.cells_decoded = decoded.load(Ordering::Relaxed);
+    results.baseline = baseline;
+    score_cells(sweep, &mut results)?;
+    Ok(results)
+}
+
+fn empty_summary() -> Summary {
+    isogloss_score::summarize(std::iter::empty(), &BootstrapOptions::default())
+}
+
+/// Scores every cell against the test manifest, with the paired comparison to the baseline.
+fn score_cells(sweep: &Sweep, results: &mut SweepResults) -> Result<(), SweepError> {
+    let score_error = |e: isogloss_score::ScoreError| SweepError::Build(e.to_string());
+    let options = ScoreOptions {
+        bootstrap: BootstrapOptions {
+            resamples: sweep.resamples,
+            seed: sweep.seed,
+            ..BootstrapOptions::default()
+        },
+        ..ScoreOptions::default()
+    };
+    let mut references: HashMap<String, Reference> = HashMap::new();
+    let mut variants: HashMap<String, Option<VariantMap>> = HashMap::new();
+    for column in &sweep.columns {
+        let reference = Reference::read(&sweep.test, column, std::slice::from_ref(&sweep.group_by))
+            .map_err(score_error)?;
+        references.insert(column.clone(), reference);
+        let map = sweep
+            .variants
+            .get(column)
+            .map(|p| VariantMap::read(p, &options.rules))
+            .transpose()
+            .map_err(score_error)?;
+        variants.insert(column.clone(), map);
+    }
+    let systems: Vec<isogloss_score::ScoredSystem> = results
+        .cells
+        .par_iter()
+        .map(|cell| {
+            let hypotheses = Hypotheses::read(&cell.hypotheses).map_err(score_error)?;
+            score_system(
+                &references[&cell.column],
+                &hypotheses,
+                variants[&cell.column].as_ref(),
+                &options.rules,
+            )
+            .map_err(score_error)
+        })
+        .collect::<Result<_, _>>()?;
+    let baseline = results.baseline.map(|b| &systems[b]);
+    let reports: Vec<_> = results
+        .cells
+        .par_iter()
+        .zip(&systems)
+        .enumerate()
+        .map(|(index, (cell, system))| {
+            // The comparison puts the baseline first, so differences read as "cell − baseline".
+            let second = (Some(index) != results.baseline).then_some(system);
+            match (baseline, second) {
+                (Some(base), Some(this)) => {
+                    let full = report(
+                        &references[&cell.column],
+                        base,
+                        Some(this),
+                        variants[&cell.column].as_ref(),
+                        &options,
+                    );
+                    let own = report(
+                        &references[&cell.column],
+                        this,
+                        None,
+                        variants[&cell.column].as_ref(),
+                        &options,
+                    );
+                    (own, full.comparison)
+                }
+                _ => (
+                    report(
+                        &references[&cell.column],
+                        system,
+                        None,
+                        variants[&cell.column].as_ref(),
+                        &options,
+                    ),
+                    None,
+                ),
+            }
+        })
+        .collect();
+    for (cell, (own, comparison)) in results.cells.iter_mut().zip(reports) {
+        cell.overall = own.overall;
+        cell.groups = own
+            .groups
+            .into_iter()
+            .map(|g| (g.value, g.summary))
+            .collect();
+        if let Some(comparison) = comparison {
+            cell.versus_baseline = comparison.wer_difference;
+            cell.flexible_versus_baseline = comparison.flexible_wer_difference;
+        }
+    }
+    Ok(())
+}
