@@ -165,6 +165,10 @@ pub fn build_lm(
         }
     };
     model.write_arpa(&path).map_err(lm_error)?;
+    // Decode and evaluate with the model as the ARPA file stores it (probabilities rounded to
+    // the file's precision), so that a fresh run, a cached run and `transcribe --lm FILE` agree
+    // to the last digit.
+    let model = ArpaModel::read(&path).map_err(lm_error)?;
     if let Some(weight) = weight {
         std::fs::write(&weight_path, format!("{weight}\n")).map_err(|source| SweepError::Io {
             path: weight_path.clone(),

@@ -245,10 +245,13 @@ pub fn batch_items(args: &TranscribeArgs) -> anyhow::Result<Vec<BatchItem>> {
                     ),
                 }
             };
+            // A manifest row is an utterance, already cut: it is decoded whole (from 0 when
+            // `start` is empty), never re-segmented; voice-activity segmentation is for the
+            // recordings given as AUDIO arguments.
             items.push(BatchItem {
                 id: record.fields[id].clone(),
                 audio: folder.join(&record.fields[audio]),
-                start: seconds(start, "start")?,
+                start: Some(seconds(start, "start")?.unwrap_or(0.0)),
                 end: seconds(end, "end")?,
             });
         }
@@ -607,7 +610,8 @@ pub struct BatchItem {
     pub id: String,
     /// The audio file.
     pub audio: PathBuf,
-    /// Cut from the file, seconds (`None`: whole file, segmented by voice activity).
+    /// Cut from the file, seconds (`None`: a whole recording given on the command line,
+    /// segmented by voice activity; manifest rows always have a start).
     pub start: Option<f64>,
     /// End of the cut, seconds.
     pub end: Option<f64>,

@@ -1,0 +1,264 @@
+//! End-to-end tests of `isogloss sweep` with the shipped demo model on a slice of the demo test
+//! split: every cell of a 2×2 grid (two transcript columns × two LM orders) equals a separate
+//! `lm build` + `transcribe` + `score` run with the same settings, and the posterior and cell
+//! caches recompute exactly what depends on a changed recording or model.
+
+use std::path::{Path, PathBuf};
+use std::process::{Command, Output};
+
+use isogloss_lexicon::Lexicon;
+use isogloss_lm::{ArpaModel, SENTENCE_END, SENTENCE_START, UNKNOWN_WORD};
+
+fn repo(path: &str) -> PathBuf {
+    Path::new(env!("CARGO_MANIFEST_DIR"))
+        .join("../..")
+        .join(path)
+}
+
+fn isogloss(args: &[&str]) -> Output {
+    let output = Command::new(env!("CARGO_BIN_EXE_isogloss"))
+        .args(args)
+        .output()
+        .expect("the isogloss binary runs");
+    assert!(
+        output.status.success(),
+        "isogloss {args:?} failed: {}",
+        String::from_utf8_lossy(&output.stderr)
+    );
+    output
+}
+
+fn text(path: &Path) -> String {
+    path.to_str().expect("test paths are UTF-8").to_string()
+}
+
+/// A small test manifest: the first utterances of two test speakers, with their audio copied
+/// into `dir` (so that the test may change a recording).
+fn slice_of_test_split(dir: &Path) -> (PathBuf, Vec<String>) {
+    let source = std::fs::read_to_string(repo("tests/data/demo/test.tsv")).unwrap();
+    let mut lines = source.lines();
+    let header = lines.next().unwrap();
+    let mut kept = vec![header.to_string()];
+    let mut speakers: Vec<String> = Vec::new();
+    let mut per_speaker = std::collections::HashMap::new();
+    std::fs::create_dir_all(dir.join("audio")).unwrap();
+    for line in lines {
+        let fields: Vec<&str> = line.split('\t').collect();
+        let speaker = fields[4].to_string();
+        if !speakers.contains(&speaker) {
+            if speakers.len() == 2 {
+                continue;
+            }
+            speakers.push(speaker.clone());
+        }
+        let count = per_speaker.entry(speaker).or_insert(0);
+        if *count == 4 {
+            continue;
+        }
+        *count += 1;
+        let audio = repo("tests/data/demo").join(fields[1]);
+        let name = audio.file_name().unwrap().to_string_lossy().into_owned();
+        std::fs::copy(&audio, dir.join("audio").join(&name)).unwrap();
+        let mut fields: Vec<String> = fields.iter().map(|f| f.to_string()).collect();
+        fields[1] = format!("audio/{name}");
+        kept.push(fields.join("\t"));
+    }
+    let manifest = dir.join("test.tsv");
+    std::fs::write(&manifest, kept.join("\n") + "\n").unwrap();
+    (manifest, speakers)
+}
+
+fn write_sweep(dir: &Path, model: &Path, manifest: &Path, variants: &Path) -> PathBuf {
+    let sweep = format!(
+        r#"out_dir = "{out}"
+models = ["{model}"]
+test = "{manifest}"
+columns = ["dialectal", "normalized"]
+variants = {{ dialectal = "{variants}" }}
+seed = 3
+resamples = 200
+baseline = {{ lm = "two", column = "dialectal" }}
+
+[[lm]]
+name = "two"
+order = 2
+text = ["{train}"]
+
+[[lm]]
+name = "three"
+order = 3
+text = ["{train}"]
+
+[[lexicon]]
+name = "letters"
+kind = "grapheme"
+
+[decoder]
+beam = [16]
+lm_weight = [0.8]
+word_bonus = [1.5]
+"#,
+        out = text(&dir.join("out")),
+        model = text(model),
+        manifest = text(manifest),
+        variants = text(variants),
+        train = text(&repo("tests/data/demo/train.{column}.txt")),
+    );
+    let path = dir.join("sweep.toml");
+    std::fs::write(&path, sweep).unwrap();
+    path
+}
+
+fn run_sweep(config: &Path) -> serde_json::Value {
+    let output = isogloss(&["sweep", "--config", &text(config), "--json"]);
+    serde_json::from_slice(&output.stdout).expect("sweep --json prints JSON")
+}
+
+fn hypotheses(path: &Path) -> Vec<String> {
+    std::fs::read_to_string(path)
+        .unwrap()
+        .lines()
+        .map(str::to_string)
+        .collect()
+}
+
+#[test]
+fn cells_equal_separate_transcribe_and_score_runs_and_caches_recompute_what_changed() {
+    let dir = tempfile::tempdir().unwrap();
+    let dir = dir.path();
+    let model = repo("models/demo");
+    let (manifest, speakers) = slice_of_test_split(dir);
+    let variants = dir.join("variants.tsv");
+    isogloss(&[
+        "variants",
+        "--manifest",
+        &text(&repo("tests/data/demo/train.tsv")),
+        "--from",
+        "dialectal",
+        "--to",
+        "normalized",
+        "--out",
+        &text(&variants),
+    ]);
+    let config = write_sweep(dir, &model, &manifest, &variants);
+
+    let results = run_sweep(&config);
+    let cells = results["cells"].as_array().unwrap();
+    assert_eq!(cells.len(), 4);
+    assert_eq!(results["acoustic_runs"], 8);
+    assert_eq!(results["cells_decoded"], 4);
+
+    for cell in cells {
+        let column = cell["column"].as_str().unwrap();
+        let order = if cell["lm"] == "two" { "2" } else { "3" };
+        // The same LM, built by the command line.
+        let arpa = dir.join(format!("{column}.{order}.arpa"));
+        isogloss(&[
+            "lm",
+            "build",
+            "--text",
+            &text(&repo(&format!("tests/data/demo/train.{column}.txt"))),
+            "--order",
+            order,
+            "--out",
+            &text(&arpa),
+        ]);
+        // The grapheme lexicon of the LM's words, as the sweep makes it.
+        let lm = ArpaModel::read(&arpa).unwrap();
+        let words: Vec<&str> = lm
+            .vocabulary()
+            .filter(|w| ![SENTENCE_START, SENTENCE_END, UNKNOWN_WORD].contains(w))
+            .collect();
+        let lexicon = dir.join(format!("{column}.{order}.lexicon.tsv"));
+        Lexicon::graphemes(words, None).write(&lexicon).unwrap();
+        let hyp = dir.join(format!("{column}.{order}.hyp.tsv"));
+        isogloss(&[
+            "transcribe",
+            "--model",
+            &text(&model),
+            "--lm",
+            &text(&arpa),
+            "--lexicon",
+            &text(&lexicon),
+            "--manifest",
+            &text(&manifest),
+            "--out",
+            &text(&hyp),
+            "--beam",
+            "16",
+            "--lm-weight",
+            "0.8",
+            "--word-bonus",
+            "1.5",
+        ]);
+        let cell_hyp = PathBuf::from(cell["hypotheses"].as_str().unwrap());
+        assert_eq!(
+            hypotheses(&hyp),
+            hypotheses(&cell_hyp),
+            "cell {column} order {order}"
+        );
+
+        let mut score_args = vec![
+            "score".to_string(),
+            "--ref".into(),
+            text(&manifest),
+            "--column".into(),
+            column.into(),
+            "--hyp".into(),
+            text(&hyp),
+            "--json".into(),
+        ];
+        if column == "dialectal" {
+            score_args.extend(["--variants".into(), text(&variants)]);
+        }
+        let args: Vec<&str> = score_args.iter().map(String::as_str).collect();
+        let scored: serde_json::Value = serde_json::from_slice(&isogloss(&args).stdout).unwrap();
+        assert_eq!(
+            scored["wer"], cell["overall"]["wer"],
+            "cell {column} order {order}"
+        );
+        assert_eq!(scored["ref_words"], cell["overall"]["ref_words"]);
+        if column == "dialectal" {
+            assert_eq!(scored["flexible_wer"], cell["overall"]["flexible_wer"]);
+        }
+    }
+
+    // Nothing changed: everything comes from the caches.
+    let again = run_sweep(&config);
+    assert_eq!(again["acoustic_runs"], 0);
+    assert_eq!(again["cells_decoded"], 0);
+    assert_eq!(again["cells"], results["cells"]);
+
+    // One recording of the first speaker changes: that speaker's four utterances are
+    // recomputed (per-speaker statistics may depend on every one of them), nobody else's.
+    let first_speaker_audio = std::fs::read_to_string(&manifest)
+        .unwrap()
+        .lines()
+        .skip(1)
+        .find(|line| line.split('\t').nth(4) == Some(speakers[0].as_str()))
+        .map(|line| dir.join(line.split('\t').nth(1).unwrap()))
+        .unwrap();
+    let other_audio = std::fs::read_dir(dir.join("audio"))
+        .unwrap()
+        .map(|e| e.unwrap().path())
+        .find(|p| *p != first_speaker_audio)
+        .unwrap();
+    std::fs::copy(&other_audio, &first_speaker_audio).unwrap();
+    let changed = run_sweep(&config);
+    assert_eq!(changed["acoustic_runs"], 4);
+    assert_eq!(changed["cells_decoded"], 4);
+
+    // A changed model recomputes every utterance.
+    let copy = dir.join("model-copy");
+    std::fs::create_dir_all(&copy).unwrap();
+    std::fs::copy(
+        model.join("model.safetensors"),
+        copy.join("model.safetensors"),
+    )
+    .unwrap();
+    let toml = std::fs::read_to_string(model.join("model.toml")).unwrap();
+    std::fs::write(copy.join("model.toml"), toml + "\n# a copy\n").unwrap();
+    let config = write_sweep(dir, &copy, &manifest, &variants);
+    let other_model = run_sweep(&config);
+    assert_eq!(other_model["acoustic_runs"], 8);
+}
