@@ -7,7 +7,6 @@
 use std::collections::{BTreeMap, BTreeSet};
 
 use serde::{Deserialize, Serialize};
-use unicode_normalization::UnicodeNormalization;
 
 use crate::AcousticError;
 
@@ -35,28 +34,11 @@ pub struct UnitInventory {
     pub units: Vec<String>,
 }
 
-/// Splits a transcript into words the way the scorer does (DESIGN.md token rules): NFC, lower
-/// case, punctuation other than apostrophe and hyphen turned into spaces, split on white space.
+/// Splits a transcript into words exactly as the scorer does (the DESIGN token rules: NFC, lower
+/// case, punctuation other than apostrophes and hyphens turned into spaces, split on white
+/// space), so that the model learns the words that WER will count.
 pub fn transcript_words(text: &str) -> Vec<String> {
-    let normalized: String = text
-        .nfc()
-        .flat_map(char::to_lowercase)
-        .map(|c| {
-            if c != '\'' && c != '-' && is_punctuation(c) {
-                ' '
-            } else {
-                c
-            }
-        })
-        .collect();
-    normalized.split_whitespace().map(str::to_string).collect()
-}
-
-fn is_punctuation(c: char) -> bool {
-    // Unicode general category P*: ASCII punctuation plus the common general-punctuation and CJK
-    // blocks; symbols (currency, maths) are kept as graphemes.
-    c.is_ascii_punctuation() && !matches!(c, '$' | '+' | '<' | '=' | '>' | '^' | '`' | '|' | '~')
-        || matches!(c, '\u{2010}'..='\u{2027}' | '\u{2030}'..='\u{205E}' | '\u{3001}'..='\u{3003}' | '\u{00A1}' | '\u{00A7}' | '\u{00AB}' | '\u{00B6}' | '\u{00B7}' | '\u{00BB}' | '\u{00BF}')
+    isogloss_score::tokenize(text, &isogloss_score::TokenRules::default())
 }
 
 /// Grapheme units of one transcript: the characters of each word, `<wb>` between words.
