@@ -7,7 +7,8 @@ use std::path::{Path, PathBuf};
 use std::process::{Command, Output};
 
 use isogloss_lexicon::Lexicon;
-use isogloss_lm::{ArpaModel, SENTENCE_END, SENTENCE_START, UNKNOWN_WORD};
+use isogloss_lm::ArpaModel;
+use isogloss_sweep::resources::lm_words;
 
 fn repo(path: &str) -> PathBuf {
     Path::new(env!("CARGO_MANIFEST_DIR"))
@@ -165,12 +166,11 @@ fn cells_equal_separate_transcribe_and_score_runs_and_caches_recompute_what_chan
         ]);
         // The grapheme lexicon of the LM's words, as the sweep makes it.
         let lm = ArpaModel::read(&arpa).unwrap();
-        let words: Vec<&str> = lm
-            .vocabulary()
-            .filter(|w| ![SENTENCE_START, SENTENCE_END, UNKNOWN_WORD].contains(w))
-            .collect();
+        let words = lm_words(&lm);
         let lexicon = dir.join(format!("{column}.{order}.lexicon.tsv"));
-        Lexicon::graphemes(words, None).write(&lexicon).unwrap();
+        Lexicon::graphemes(words.iter().map(String::as_str), None)
+            .write(&lexicon)
+            .unwrap();
         let hyp = dir.join(format!("{column}.{order}.hyp.tsv"));
         isogloss(&[
             "transcribe",

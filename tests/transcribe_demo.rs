@@ -6,7 +6,8 @@ use std::path::{Path, PathBuf};
 use std::process::{Command, Output};
 
 use isogloss_lexicon::Lexicon;
-use isogloss_lm::{ArpaModel, SENTENCE_END, SENTENCE_START, UNKNOWN_WORD};
+use isogloss_lm::ArpaModel;
+use isogloss_sweep::resources::lm_words;
 
 fn repo(path: &str) -> PathBuf {
     Path::new(env!("CARGO_MANIFEST_DIR"))
@@ -70,12 +71,11 @@ fn lm_and_lexicon_decoding_beats_greedy_on_the_test_split() {
         &text(&arpa),
     ]);
     let lm = ArpaModel::read(&arpa).unwrap();
-    let words: Vec<&str> = lm
-        .vocabulary()
-        .filter(|w| ![SENTENCE_START, SENTENCE_END, UNKNOWN_WORD].contains(w))
-        .collect();
+    let words = lm_words(&lm);
     let lexicon = dir.join("graphemes.tsv");
-    Lexicon::graphemes(words, None).write(&lexicon).unwrap();
+    Lexicon::graphemes(words.iter().map(String::as_str), None)
+        .write(&lexicon)
+        .unwrap();
 
     let greedy = dir.join("greedy.tsv");
     isogloss(&[

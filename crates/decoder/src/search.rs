@@ -195,27 +195,13 @@ pub struct PrefixBeamSearch<'a, L: LanguageModel> {
 
 impl<'a, L: LanguageModel> Clone for PrefixBeamSearch<'a, L> {
     fn clone(&self) -> Self {
-        PrefixBeamSearch {
-            graph: self.graph,
-            lm: self.lm,
-            options: self.options.clone(),
-            lm_words: Arc::clone(&self.lm_words),
-            lookahead: Arc::clone(&self.lookahead),
-            compact_at: MIN_COMPACT,
-            arena: Vec::new(),
-            children: HashMap::default(),
-            beam: Vec::new(),
-            next: Vec::new(),
-            candidates: Vec::new(),
-            is_candidate: Vec::new(),
-            frame: Vec::new(),
-            stamp: 0,
-            text: String::new(),
-            units: Vec::new(),
-            viterbi_scores: Vec::new(),
-            viterbi_back: Vec::new(),
-            runs: Vec::new(),
-        }
+        PrefixBeamSearch::with_tables(
+            self.graph,
+            self.lm,
+            self.options.clone(),
+            Arc::clone(&self.lm_words),
+            Arc::clone(&self.lookahead),
+        )
     }
 }
 
@@ -252,12 +238,24 @@ impl<'a, L: LanguageModel> PrefixBeamSearch<'a, L> {
                 })
                 .collect();
         }
+        PrefixBeamSearch::with_tables(graph, lm, options, lm_words.into(), lookahead.into())
+    }
+
+    /// A search over prepared word and look-ahead tables, with empty scratch buffers (they
+    /// grow on first use and are then reused).
+    fn with_tables(
+        graph: &'a SearchGraph,
+        lm: &'a L,
+        options: SearchOptions,
+        lm_words: Arc<[Option<L::Word>]>,
+        lookahead: Arc<[f32]>,
+    ) -> Self {
         PrefixBeamSearch {
             graph,
             lm,
             options,
-            lm_words: lm_words.into(),
-            lookahead: lookahead.into(),
+            lm_words,
+            lookahead,
             compact_at: MIN_COMPACT,
             arena: Vec::new(),
             children: HashMap::default(),
