@@ -21,6 +21,8 @@ struct Cli {
 
 #[derive(Subcommand)]
 enum Command {
+    /// Run the whole job on the shipped demo data and model: check, build LMs, transcribe, score.
+    Demo(commands::demo::DemoArgs),
     /// Check corpus manifests, or split one into speaker-disjoint train/dev/test.
     Corpus(commands::corpus::CorpusArgs),
     /// Compute MFCC or log-mel fbank features of one audio file into a safetensors file.
@@ -70,6 +72,7 @@ fn main() -> ExitCode {
         }
     };
     let result: anyhow::Result<Outcome> = match cli.command {
+        Command::Demo(args) => commands::demo::run(args),
         Command::Corpus(args) => commands::corpus::run(args),
         Command::Features(args) => commands::features::run(args),
         Command::Score(args) => commands::score::run(args),

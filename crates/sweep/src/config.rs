@@ -134,9 +134,10 @@ pub struct DecoderAxes {
     /// Word insertion bonuses.
     #[serde(default = "default_word_bonus")]
     pub word_bonus: Vec<f32>,
-    /// Tune LM weight and word bonus on the dev set per LM × lexicon cell (`none` or `grid`):
-    /// with `grid` the weight and bonus lists are searched on dev and only the best pair is
-    /// scored on test.
+    /// Tune LM weight and word bonus on the dev set per LM × lexicon cell (`none`, `grid` or
+    /// `coordinate`): `grid` tries every weight × bonus pair of the lists on dev, `coordinate`
+    /// walks the two lists one at a time from their middle values (fewer dev decodes), and only
+    /// the best pair is scored on test.
     #[serde(default = "default_tune")]
     pub tune: String,
 }
@@ -265,8 +266,20 @@ pub struct DecoderGrid {
     pub lm_weights: Vec<f32>,
     /// Word bonuses.
     pub word_bonuses: Vec<f32>,
-    /// Whether LM weight and word bonus are tuned on dev.
-    pub tune_on_dev: bool,
+    /// Whether and how LM weight and word bonus are tuned on dev.
+    pub tuning: Tuning,
+}
+
+/// How LM weight and word bonus are chosen per cell.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum Tuning {
+    /// Every weight × bonus pair is a cell of its own, scored on test.
+    None,
+    /// Every pair is decoded on dev; the best is scored on test.
+    Grid,
+    /// Coordinate search on dev: from the middle of both lists, the best weight for the current
+    /// bonus, then the best bonus for that weight, until neither changes.
+    Coordinate,
 }
 
 /// The baseline cell's axis values, resolved to indices.
@@ -491,17 +504,18 @@ impl Sweep {
                 format!("beam widths must be at least 1, found {beam}"),
             ));
         }
-        let tune_on_dev = match axes.tune.as_str() {
-            "none" => false,
-            "grid" => true,
+        let tuning = match axes.tune.as_str() {
+            "none" => Tuning::None,
+            "grid" => Tuning::Grid,
+            "coordinate" => Tuning::Coordinate,
             other => {
                 return Err(problem(
                     "tune",
-                    format!("tune must be `none` or `grid`, found `{other}`"),
+                    format!("tune must be `none`, `grid` or `coordinate`, found `{other}`"),
                 ))
             }
         };
-        if tune_on_dev && dev.is_none() {
+        if tuning != Tuning::None && dev.is_none() {
             return Err(problem(
                 "tune",
                 "tuning on dev needs a `dev` manifest".into(),
@@ -556,7 +570,7 @@ impl Sweep {
                 beams: axes.beam.clone(),
                 lm_weights: axes.lm_weight.clone(),
                 word_bonuses: axes.word_bonus.clone(),
-                tune_on_dev,
+                tuning,
             },
             baseline,
         })
@@ -565,7 +579,7 @@ impl Sweep {
     /// Every cell of the grid, in a fixed order (model, column, LM, lexicon, beam, and — unless
     /// tuned on dev — LM weight and word bonus).
     pub fn cells(&self) -> Vec<Cell> {
-        let (weights, bonuses): (Vec<Option<f32>>, Vec<Option<f32>>) = if self.decoder.tune_on_dev {
+        let (weights, bonuses): (Vec<Option<f32>>, Vec<Option<f32>>) = if self.decoder.tuning != Tuning::None {
             (vec![None], vec![None])
         } else {
             (

@@ -154,41 +154,63 @@ pub fn csv(results: &SweepResults) -> String {
 
 /// A bar chart of WER and flexible WER per cell, as SVG.
 pub fn chart(results: &SweepResults, path: &Path) -> Result<(), SweepError> {
+    let rows: Vec<(String, Option<f64>, Option<f64>)> = results
+        .cells
+        .iter()
+        .map(|c| (c.label(), c.overall.wer, c.overall.flexible_wer))
+        .collect();
+    error_rate_bars(
+        &rows,
+        "WER (dark) and flexible WER (light) per cell, %",
+        path,
+    )
+}
+
+/// A horizontal bar chart, as SVG: one row per `(label, WER, flexible WER)`, two bars a row
+/// (plain WER dark above, flexible WER light below); a missing rate draws no bar.
+pub fn error_rate_bars(
+    rows: &[(String, Option<f64>, Option<f64>)],
+    caption: &str,
+    path: &Path,
+) -> Result<(), SweepError> {
     let plot_error = |e: String| SweepError::Build(format!("{}: {e}", path.display()));
-    let cells = &results.cells;
-    let height = 120 + 28 * cells.len().max(1) as u32;
+    let height = 120 + 28 * rows.len().max(1) as u32;
+    let label_width = rows
+        .iter()
+        .map(|r| r.0.chars().count())
+        .max()
+        .unwrap_or(0)
+        .clamp(8, 60) as u32
+        * 7
+        + 20;
     let backend = SVGBackend::new(path, (900, height));
     let root = backend.into_drawing_area();
     root.fill(&WHITE).map_err(|e| plot_error(e.to_string()))?;
-    let highest = cells
+    let highest = rows
         .iter()
-        .flat_map(|c| [c.overall.wer, c.overall.flexible_wer])
+        .flat_map(|r| [r.1, r.2])
         .flatten()
         .fold(0.0f64, f64::max);
     let top = (100.0 * highest * 1.1).max(1.0);
     let mut chart = ChartBuilder::on(&root)
-        .caption(
-            "WER (dark) and flexible WER (light) per cell, %",
-            ("sans-serif", 18),
-        )
+        .caption(caption, ("sans-serif", 18))
         .margin(10)
         .x_label_area_size(30)
-        .y_label_area_size(330)
-        .build_cartesian_2d(0.0..top, (0..cells.len().max(1)).into_segmented())
+        .y_label_area_size(label_width)
+        .build_cartesian_2d(0.0..top, (0..rows.len().max(1)).into_segmented())
         .map_err(|e| plot_error(e.to_string()))?;
-    let labels: Vec<String> = cells.iter().map(CellResult::label).collect();
     chart
         .configure_mesh()
         .disable_y_mesh()
-        .y_labels(cells.len().max(1))
+        .y_labels(rows.len().max(1))
         .y_label_formatter(&|v| match v {
-            SegmentValue::CenterOf(i) => labels.get(*i).cloned().unwrap_or_default(),
+            SegmentValue::CenterOf(i) => rows.get(*i).map(|r| r.0.clone()).unwrap_or_default(),
             _ => String::new(),
         })
         .x_desc("%")
         .draw()
         .map_err(|e| plot_error(e.to_string()))?;
-    // Each cell's row holds two half-height bars: plain WER above, flexible WER below.
+    // Each row holds two half-height bars: plain WER above, flexible WER below.
     let bar = |i: usize,
                value: f64,
                upper: bool,
@@ -206,18 +228,89 @@ pub fn chart(results: &SweepResults, path: &Path) -> Result<(), SweepError> {
         rectangle
     };
     chart
-        .draw_series(cells.iter().enumerate().filter_map(|(i, c)| {
-            c.overall
-                .wer
-                .map(|w| bar(i, 100.0 * w, true, RGBColor(40, 70, 140)))
-        }))
+        .draw_series(
+            rows.iter()
+                .enumerate()
+                .filter_map(|(i, r)| r.1.map(|w| bar(i, 100.0 * w, true, RGBColor(40, 70, 140)))),
+        )
         .map_err(|e| plot_error(e.to_string()))?;
     chart
-        .draw_series(cells.iter().enumerate().filter_map(|(i, c)| {
-            c.overall
-                .flexible_wer
-                .map(|w| bar(i, 100.0 * w, false, RGBColor(140, 170, 220)))
+        .draw_series(rows.iter().enumerate().filter_map(|(i, r)| {
+            r.2.map(|w| bar(i, 100.0 * w, false, RGBColor(140, 170, 220)))
         }))
+        .map_err(|e| plot_error(e.to_string()))?;
+    root.present().map_err(|e| plot_error(e.to_string()))?;
+    Ok(())
+}
+
+/// A training curve, as SVG: train and dev loss per epoch (left axis) and the dev unit error
+/// rate in % (right axis).
+/// `epochs` holds `(epoch, train loss, dev loss, dev unit error rate)`.
+pub fn training_curve(epochs: &[(usize, f64, f64, f64)], path: &Path) -> Result<(), SweepError> {
+    let plot_error = |e: String| SweepError::Build(format!("{}: {e}", path.display()));
+    let backend = SVGBackend::new(path, (800, 420));
+    let root = backend.into_drawing_area();
+    root.fill(&WHITE).map_err(|e| plot_error(e.to_string()))?;
+    let last = epochs.iter().map(|e| e.0).max().unwrap_or(1).max(2);
+    let highest_loss = epochs
+        .iter()
+        .flat_map(|e| [e.1, e.2])
+        .filter(|v| v.is_finite())
+        .fold(0.0f64, f64::max)
+        .max(1e-6)
+        * 1.1;
+    let mut chart = ChartBuilder::on(&root)
+        .caption("Training curve", ("sans-serif", 18))
+        .margin(10)
+        .x_label_area_size(35)
+        .y_label_area_size(50)
+        .right_y_label_area_size(50)
+        .build_cartesian_2d(1usize..last, 0.0..highest_loss)
+        .map_err(|e| plot_error(e.to_string()))?
+        .set_secondary_coord(1usize..last, 0.0..100.0);
+    chart
+        .configure_mesh()
+        .x_desc("epoch")
+        .y_desc("CTC loss per frame")
+        .draw()
+        .map_err(|e| plot_error(e.to_string()))?;
+    chart
+        .configure_secondary_axes()
+        .y_desc("dev unit error rate, %")
+        .draw()
+        .map_err(|e| plot_error(e.to_string()))?;
+    let train_color = RGBColor(40, 70, 140);
+    let dev_color = RGBColor(200, 90, 40);
+    let error_color = RGBColor(60, 140, 60);
+    chart
+        .draw_series(LineSeries::new(
+            epochs.iter().map(|e| (e.0, e.1)),
+            train_color.stroke_width(2),
+        ))
+        .map_err(|e| plot_error(e.to_string()))?
+        .label("train loss")
+        .legend(move |(x, y)| PathElement::new(vec![(x, y), (x + 20, y)], train_color));
+    chart
+        .draw_series(LineSeries::new(
+            epochs.iter().map(|e| (e.0, e.2)),
+            dev_color.stroke_width(2),
+        ))
+        .map_err(|e| plot_error(e.to_string()))?
+        .label("dev loss")
+        .legend(move |(x, y)| PathElement::new(vec![(x, y), (x + 20, y)], dev_color));
+    chart
+        .draw_secondary_series(LineSeries::new(
+            epochs.iter().map(|e| (e.0, 100.0 * e.3)),
+            error_color.stroke_width(2),
+        ))
+        .map_err(|e| plot_error(e.to_string()))?
+        .label("dev unit error rate (right axis)")
+        .legend(move |(x, y)| PathElement::new(vec![(x, y), (x + 20, y)], error_color));
+    chart
+        .configure_series_labels()
+        .background_style(WHITE.mix(0.8))
+        .border_style(BLACK)
+        .draw()
         .map_err(|e| plot_error(e.to_string()))?;
     root.present().map_err(|e| plot_error(e.to_string()))?;
     Ok(())

@@ -18,7 +18,7 @@ use isogloss_score::{
 use rayon::prelude::*;
 use serde::{Deserialize, Serialize};
 
-use crate::config::{model_name, Cell, Sweep};
+use crate::config::{model_name, Cell, Sweep, Tuning};
 use crate::posteriors::{model_key, posteriors, Posteriors};
 use crate::resources::{build_lexicon, build_lm, lm_words, ContentKey};
 use crate::SweepError;
@@ -253,8 +253,8 @@ pub fn run(
                 "{name}: utterance {id} failed: {message}"
             )));
         }
-        let dev_pass = match (&dev, sweep.decoder.tune_on_dev) {
-            (Some(dev), true) => {
+        let dev_pass = match (&dev, sweep.decoder.tuning) {
+            (Some(dev), Tuning::Grid | Tuning::Coordinate) => {
                 let pass = posteriors(&model, &key, dev, &cache.join("posteriors"))?;
                 results.acoustic_runs += pass.computed;
                 results.acoustic_seconds += pass.seconds;
@@ -395,8 +395,8 @@ pub fn run(
                     key.file(dev)?;
                     key.text(&dev_pass.key);
                     key.text(&format!(
-                        "{:?} {:?}",
-                        sweep.decoder.lm_weights, sweep.decoder.word_bonuses
+                        "{:?} {:?} {:?}",
+                        sweep.decoder.tuning, sweep.decoder.lm_weights, sweep.decoder.word_bonuses
                     ));
                 }
             }
@@ -427,26 +427,36 @@ pub fn run(
                                     ))
                                 }
                             };
-                            let mut best = (f64::INFINITY, 0.0f32, 0.0f32);
-                            let tuning_file = dir.join("tuning.tsv");
-                            for &w in &sweep.decoder.lm_weights {
-                                for &b in &sweep.decoder.word_bonuses {
-                                    decode_to_file(
-                                        dev_manifest,
-                                        dev_pass,
-                                        graph,
-                                        lm,
-                                        &options_for(w, b),
-                                        &tuning_file,
-                                    )?;
-                                    let wer =
-                                        word_error_rate(&dev_manifest.path, column, &tuning_file)?;
-                                    if wer < best.0 {
-                                        best = (wer, w, b);
-                                    }
-                                }
+                            let dev_hypotheses = dir.join("dev-hyp.tsv");
+                            let mut dev_wer = |w: f32, b: f32| -> Result<f64, SweepError> {
+                                decode_to_file(
+                                    dev_manifest,
+                                    dev_pass,
+                                    graph,
+                                    lm,
+                                    &options_for(w, b),
+                                    &dev_hypotheses,
+                                )?;
+                                word_error_rate(&dev_manifest.path, column, &dev_hypotheses)
+                            };
+                            let (w, b, tried) = tune(
+                                sweep.decoder.tuning,
+                                &sweep.decoder.lm_weights,
+                                &sweep.decoder.word_bonuses,
+                                &mut dev_wer,
+                            )?;
+                            let mut trace = String::from("lm_weight\tword_bonus\tdev_wer\n");
+                            for (w, b, wer) in &tried {
+                                trace.push_str(&format!("{w}\t{b}\t{wer:.6}\n"));
                             }
-                            (best.1, best.2)
+                            let trace_path = dir.join("tuning.tsv");
+                            std::fs::write(&trace_path, trace).map_err(|source| {
+                                SweepError::Io {
+                                    path: trace_path.clone(),
+                                    source,
+                                }
+                            })?;
+                            (w, b)
                         }
                     };
                     let seconds = decode_to_file(
@@ -510,6 +520,75 @@ pub fn run(
     results.baseline = baseline;
     score_cells(sweep, &mut results)?;
     Ok(results)
+}
+
+/// Chooses LM weight and word bonus from the lists by the dev WER `dev_wer(w, b)`, returning the
+/// choice and every pair tried with its dev WER, in the order tried. Ties keep the pair found
+/// first. `Grid` tries every pair; `Coordinate` starts from the middle of both lists and
+/// alternately moves the weight (bonus fixed) and the bonus (weight fixed) to their best values
+/// until a round changes neither; every pair is decoded at most once.
+pub fn tune(
+    tuning: Tuning,
+    weights: &[f32],
+    bonuses: &[f32],
+    dev_wer: &mut dyn FnMut(f32, f32) -> Result<f64, SweepError>,
+) -> Result<(f32, f32, Vec<(f32, f32, f64)>), SweepError> {
+    if weights.is_empty() || bonuses.is_empty() {
+        return Err(SweepError::Build("tuning needs at least one LM weight and one word bonus".into()));
+    }
+    let mut tried: Vec<(usize, usize, f64)> = Vec::new();
+    let mut measure = |i: usize, j: usize, tried: &mut Vec<(usize, usize, f64)>| {
+        if let Some(&(_, _, wer)) = tried.iter().find(|t| t.0 == i && t.1 == j) {
+            return Ok(wer);
+        }
+        let wer = dev_wer(weights[i], bonuses[j])?;
+        tried.push((i, j, wer));
+        Ok::<f64, SweepError>(wer)
+    };
+    let (mut best_i, mut best_j) = (0usize, 0usize);
+    match tuning {
+        Tuning::None | Tuning::Grid => {
+            let mut best = f64::INFINITY;
+            for i in 0..weights.len() {
+                for j in 0..bonuses.len() {
+                    let wer = measure(i, j, &mut tried)?;
+                    if wer < best {
+                        (best, best_i, best_j) = (wer, i, j);
+                    }
+                }
+            }
+        }
+        Tuning::Coordinate => {
+            (best_i, best_j) = ((weights.len() - 1) / 2, (bonuses.len() - 1) / 2);
+            let mut best = measure(best_i, best_j, &mut tried)?;
+            loop {
+                let before = (best_i, best_j);
+                for i in 0..weights.len() {
+                    let wer = measure(i, best_j, &mut tried)?;
+                    if wer < best {
+                        (best, best_i) = (wer, i);
+                    }
+                }
+                for j in 0..bonuses.len() {
+                    let wer = measure(best_i, j, &mut tried)?;
+                    if wer < best {
+                        (best, best_j) = (wer, j);
+                    }
+                }
+                if (best_i, best_j) == before {
+                    break;
+                }
+            }
+        }
+    }
+    Ok((
+        weights[best_i],
+        bonuses[best_j],
+        tried
+            .into_iter()
+            .map(|(i, j, wer)| (weights[i], bonuses[j], wer))
+            .collect(),
+    ))
 }
 
 fn empty_summary() -> Summary {
@@ -608,4 +687,72 @@ fn score_cells(sweep: &Sweep, results: &mut SweepResults) -> Result<(), SweepErr
         }
     }
     Ok(())
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    /// A dev "WER" surface with its minimum at weight 1.0, bonus 2.0 and no interaction between
+    /// the two, so that coordinate search must find the same pair as the full grid.
+    fn bowl(w: f32, b: f32) -> f64 {
+        f64::from((w - 1.0).powi(2) + 0.5 * (b - 2.0).powi(2))
+    }
+
+    #[test]
+    fn coordinate_search_finds_the_grid_optimum_with_fewer_decodes() {
+        let weights = [0.2, 0.6, 1.0, 1.4, 1.8];
+        let bonuses = [0.0, 1.0, 2.0, 3.0, 4.0];
+        let mut calls = 0;
+        let grid = tune(Tuning::Grid, &weights, &bonuses, &mut |w, b| {
+            calls += 1;
+            Ok(bowl(w, b))
+        })
+        .unwrap();
+        assert_eq!((grid.0, grid.1), (1.0, 2.0));
+        assert_eq!(calls, 25);
+        assert_eq!(grid.2.len(), 25);
+        let mut calls = 0;
+        let coordinate = tune(Tuning::Coordinate, &weights, &bonuses, &mut |w, b| {
+            calls += 1;
+            Ok(bowl(w, b))
+        })
+        .unwrap();
+        assert_eq!((coordinate.0, coordinate.1), (1.0, 2.0));
+        // Start (1.0, 2.0) is already the optimum: one weight sweep (5 pairs, the start among
+        // them) and one bonus sweep (4 new pairs).
+        assert_eq!(calls, 9);
+        assert_eq!(coordinate.2.len(), 9);
+    }
+
+    #[test]
+    fn coordinate_search_walks_to_an_off_centre_optimum() {
+        let weights = [0.2, 0.6, 1.0, 1.4, 1.8];
+        let bonuses = [0.0, 1.0, 2.0, 3.0, 4.0];
+        // Optimum at the corner (1.8, 0.0), with the two settings interacting.
+        let surface = |w: f32, b: f32| f64::from((w - 1.8).powi(2) + (b - 0.5 * w + 0.9).powi(2));
+        let grid = tune(Tuning::Grid, &weights, &bonuses, &mut |w, b| Ok(surface(w, b))).unwrap();
+        let coordinate =
+            tune(Tuning::Coordinate, &weights, &bonuses, &mut |w, b| Ok(surface(w, b))).unwrap();
+        assert_eq!((grid.0, grid.1), (1.8, 0.0));
+        assert_eq!((coordinate.0, coordinate.1), (grid.0, grid.1));
+        assert!(coordinate.2.len() < grid.2.len());
+        // No pair is decoded twice.
+        let mut pairs: Vec<(u32, u32)> = coordinate
+            .2
+            .iter()
+            .map(|t| (t.0.to_bits(), t.1.to_bits()))
+            .collect();
+        pairs.sort_unstable();
+        pairs.dedup();
+        assert_eq!(pairs.len(), coordinate.2.len());
+    }
+
+    #[test]
+    fn an_error_while_tuning_is_passed_on() {
+        let result = tune(Tuning::Coordinate, &[1.0], &[1.0], &mut |_, _| {
+            Err(SweepError::Build("dev decoding failed".into()))
+        });
+        assert!(result.unwrap_err().to_string().contains("dev decoding failed"));
+    }
 }

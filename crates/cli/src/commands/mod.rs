@@ -2,6 +2,7 @@
 
 pub mod corpus;
 pub mod decode;
+pub mod demo;
 pub mod features;
 pub mod lexicon;
 pub mod lm;

@@ -60,8 +60,50 @@ pub fn run(args: TrainArgs) -> anyhow::Result<Outcome> {
         seed: args.seed,
         lexicon: args.lexicon,
     };
+    let summary = train_with_progress(&options)
+    .with_context(|| format!("training into {}", args.out.display()))?;
+    if !summary.skipped_utterances.is_empty() {
+        eprintln!(
+            "{} training utterances were skipped: their labels do not fit their frames",
+            summary.skipped_utterances.len()
+        );
+    }
+    if summary.stopped_early {
+        eprintln!("stopped early: the dev loss stopped improving");
+    }
+    match &summary.best {
+        Some(best) => eprintln!(
+            "model: {} (epoch {}, dev unit error rate {:.2}%)",
+            args.out.display(),
+            best.epoch,
+            100.0 * best.dev_unit_error_rate
+        ),
+        None => eprintln!(
+            "no epoch improved on the checkpointed model; {} unchanged",
+            args.out.display()
+        ),
+    }
+    if summary.failed_utterances.is_empty() {
+        Ok(Outcome::Done)
+    } else {
+        eprintln!(
+            "{} utterances could not be used:",
+            summary.failed_utterances.len()
+        );
+        for failure in &summary.failed_utterances {
+            eprintln!("  {failure}");
+        }
+        Ok(Outcome::SomeItemsFailed)
+    }
+}
+
+/// Runs a training with progress bars and one line per epoch on stderr (shared by `train` and
+/// `demo --train`).
+pub fn train_with_progress(
+    options: &TrainOptions,
+) -> Result<pipeline::TrainSummary, isogloss_acoustic::AcousticError> {
     let mut bar: Option<ProgressBar> = None;
-    let summary = pipeline::train(&options, &mut |event| match event {
+    pipeline::train(options, &mut |event| match event {
         PipelineEvent::Features { split, done, total } => {
             eprintln!("features: {split}: {done}/{total} audio files");
         }
@@ -108,38 +150,4 @@ pub fn run(args: TrainArgs) -> anyhow::Result<Outcome> {
             );
         }
     })
-    .with_context(|| format!("training into {}", args.out.display()))?;
-    if !summary.skipped_utterances.is_empty() {
-        eprintln!(
-            "{} training utterances were skipped: their labels do not fit their frames",
-            summary.skipped_utterances.len()
-        );
-    }
-    if summary.stopped_early {
-        eprintln!("stopped early: the dev loss stopped improving");
-    }
-    match &summary.best {
-        Some(best) => eprintln!(
-            "model: {} (epoch {}, dev unit error rate {:.2}%)",
-            args.out.display(),
-            best.epoch,
-            100.0 * best.dev_unit_error_rate
-        ),
-        None => eprintln!(
-            "no epoch improved on the checkpointed model; {} unchanged",
-            args.out.display()
-        ),
-    }
-    if summary.failed_utterances.is_empty() {
-        Ok(Outcome::Done)
-    } else {
-        eprintln!(
-            "{} utterances could not be used:",
-            summary.failed_utterances.len()
-        );
-        for failure in &summary.failed_utterances {
-            eprintln!("  {failure}");
-        }
-        Ok(Outcome::SomeItemsFailed)
-    }
 }

@@ -1,0 +1,628 @@
+//! `isogloss demo`: the whole job on the committed demo data, in one command.
+//!
+//! It checks the corpus, builds an in-domain and a mixed (in-domain + out-of-domain) trigram LM,
+//! transcribes the test split with the shipped model (greedy, then with each LM and the grapheme
+//! lexicon), scores WER and flexible WER per dialect with bootstrap intervals, transcribes one
+//! long interview recording to WebVTT, and writes a report folder. `--train` first retrains a
+//! small model from scratch and uses it instead of the shipped one.
+//!
+//! The flow is a small sweep (the sweep crate does the LMs, the posterior cache, the decoding and
+//! the scoring) plus the greedy baseline and the interview; nothing here is demo-specific logic
+//! that a user could not reproduce with `corpus check`, `lm build`, `transcribe` and `score`.
+
+use std::collections::BTreeMap;
+use std::fmt::Write as _;
+use std::path::{Path, PathBuf};
+use std::time::Instant;
+
+use anyhow::{bail, Context};
+use clap::Args;
+use isogloss_acoustic::config::ModelConfig;
+use isogloss_acoustic::pipeline::TrainOptions;
+use isogloss_acoustic::AcousticModel;
+use isogloss_corpus::check::{check_manifests, AudioCheck};
+use isogloss_corpus::tsv::write_atomically;
+use isogloss_corpus::Manifest;
+use isogloss_decoder::{Decoder, GreedyDecoder, SearchGraph};
+use isogloss_score::{
+    report, score_system, BootstrapOptions, Hypotheses, Reference, ScoreOptions, Summary,
+    VariantMap,
+};
+use isogloss_sweep::config::{Baseline, DecoderGrid, Tuning};
+use isogloss_sweep::posteriors::{model_key, posteriors};
+use isogloss_sweep::report::{error_rate_bars, training_curve};
+use isogloss_sweep::resources::{build_lexicon, build_lm, lm_words};
+use isogloss_sweep::{run as sweep_run, LexiconChoice, LexiconKind, LmChoice, Sweep, SweepEvent};
+
+use super::decode::{FormatArg, TranscribeArgs};
+use crate::Outcome;
+
+/// Decoder settings of the demo (measured on the demo dev split with the shipped model; see the
+/// README's demo section).
+const BEAM: usize = 16;
+const LM_WEIGHT: f32 = 0.8;
+const WORD_BONUS: f32 = 1.5;
+/// Bootstrap replicates and seed of the intervals.
+const RESAMPLES: usize = 1000;
+const SEED: u64 = 1;
+
+/// Run the whole job on the shipped demo data and model: check, build LMs, transcribe, score.
+#[derive(Args)]
+pub struct DemoArgs {
+    /// The demo corpus folder (train/dev/test manifests, their texts, ood.txt, interviews).
+    #[arg(long, default_value = "tests/data/demo")]
+    data: PathBuf,
+    /// The model directory to transcribe with (ignored with --train).
+    #[arg(long, default_value = "models/demo")]
+    model: PathBuf,
+    /// Spelling-variant map of the dialectal writing, for the flexible WER.
+    #[arg(long, default_value = "models/demo-variants.tsv")]
+    variants: PathBuf,
+    /// Report folder (created; earlier results in it are reused where nothing changed).
+    #[arg(long, default_value = "demo-report")]
+    out: PathBuf,
+    /// Retrain a small model from scratch first (about 10 minutes on two cores) and use it.
+    #[arg(long)]
+    train: bool,
+    /// Architecture and training settings for --train.
+    #[arg(long, default_value = "configs/tdnn-demo.toml")]
+    config: PathBuf,
+    /// Epochs for --train.
+    #[arg(long, default_value_t = 10)]
+    epochs: usize,
+    /// The long recording transcribed to WebVTT (relative to --data).
+    #[arg(long, default_value = "interviews/interview1.ogg")]
+    interview: PathBuf,
+}
+
+/// One decoded system of the demo: its name and per-dialect figures.
+struct System {
+    name: String,
+    overall: Summary,
+    groups: Vec<(String, Summary)>,
+    perplexity: Option<f64>,
+    oov_rate: Option<f64>,
+    versus_greedy: Option<f64>,
+}
+
+fn step(number: usize, text: &str) {
+    eprintln!("\n[{number}/6] {text}");
+}
+
+fn need(path: &Path, what: &str) -> anyhow::Result<()> {
+    if !path.exists() {
+        bail!(
+            "{}: {what} not found (run `isogloss demo` from the repository root, or pass the path)",
+            path.display()
+        );
+    }
+    Ok(())
+}
+
+/// Runs `isogloss demo`.
+pub fn run(args: DemoArgs) -> anyhow::Result<Outcome> {
+    let started = Instant::now();
+    let data = &args.data;
+    let manifests: Vec<PathBuf> = ["train.tsv", "dev.tsv", "test.tsv"]
+        .iter()
+        .map(|name| data.join(name))
+        .collect();
+    for path in &manifests {
+        need(path, "demo manifest")?;
+    }
+    for name in ["train.dialectal.txt", "dev.dialectal.txt", "ood.txt"] {
+        need(&data.join(name), "demo text")?;
+    }
+    need(&args.variants, "variant map")?;
+    let interview = data.join(&args.interview);
+    need(&interview, "interview recording")?;
+    std::fs::create_dir_all(&args.out)
+        .with_context(|| format!("creating {}", args.out.display()))?;
+    let out = &args.out;
+
+    // 1. The corpus.
+    step(1, "checking the corpus");
+    let check = check_manifests(&manifests, AudioCheck::Decode, &mut |_, _| {});
+    for manifest in &check.manifests {
+        eprintln!(
+            "  {}: {} utterances, {:.1} min, {} speakers",
+            manifest.path.display(),
+            manifest.utterances,
+            manifest.hours * 60.0,
+            manifest.speakers
+        );
+    }
+    if check.errors > 0 {
+        for problem in check.problems.iter().take(20) {
+            eprintln!("  {problem}");
+        }
+        bail!(
+            "the demo corpus has {} error(s); `isogloss corpus check` lists them all",
+            check.errors
+        );
+    }
+    eprintln!(
+        "  {} errors, {} warnings, {} speakers shared between splits",
+        check.errors,
+        check.warnings,
+        check.shared_speakers.len()
+    );
+
+    // 2. The model: shipped, or retrained now.
+    let model_dir = if args.train {
+        step(2, "training a small model from scratch (--train)");
+        let model_dir = out.join("model");
+        let options = TrainOptions {
+            train_manifest: manifests[0].clone(),
+            dev_manifest: manifests[1].clone(),
+            column: "dialectal".into(),
+            out: model_dir.clone(),
+            config: ModelConfig::read(&args.config)?,
+            epochs: Some(args.epochs),
+            resume: model_dir.join("checkpoint.safetensors").exists(),
+            seed: SEED,
+            lexicon: None,
+        };
+        super::train::train_with_progress(&options)
+            .with_context(|| format!("training into {}", model_dir.display()))?;
+        let curve = read_training_log(&model_dir.join("training.jsonl"))?;
+        training_curve(&curve, &out.join("training-curve.svg"))?;
+        eprintln!(
+            "  training curve: {}",
+            out.join("training-curve.svg").display()
+        );
+        model_dir
+    } else {
+        step(2, "using the shipped model");
+        need(&args.model.join("model.toml"), "model")?;
+        eprintln!("  {}", args.model.display());
+        args.model.clone()
+    };
+
+    // 3–4. LMs, lexicon, posteriors and the LM cells: a two-cell sweep.
+    step(3, "building the language models and transcribing the test split");
+    let lms = vec![
+        LmChoice::Recipe {
+            name: "in-domain 3-gram".into(),
+            order: 3,
+            smoothing: "mkn".into(),
+            text: vec![data.join("train.{column}.txt")],
+            ood: None,
+            ood_weight: None,
+        },
+        LmChoice::Recipe {
+            name: "in-domain + out-of-domain 3-gram".into(),
+            order: 3,
+            smoothing: "mkn".into(),
+            text: vec![data.join("train.{column}.txt")],
+            ood: Some(data.join("ood.txt")),
+            ood_weight: None,
+        },
+    ];
+    let lexicon_choice = LexiconChoice {
+        name: "grapheme".into(),
+        kind: LexiconKind::Grapheme,
+    };
+    let sweep = Sweep {
+        path: out.join("(demo)"),
+        out_dir: out.clone(),
+        models: vec![model_dir.clone()],
+        test: manifests[2].clone(),
+        dev: Some(manifests[1].clone()),
+        columns: vec!["dialectal".into()],
+        variants: BTreeMap::from([("dialectal".to_string(), args.variants.clone())]),
+        group_by: "dialect".into(),
+        seed: SEED,
+        resamples: RESAMPLES,
+        lms: lms.clone(),
+        lexicons: vec![lexicon_choice.clone()],
+        decoder: DecoderGrid {
+            beams: vec![BEAM],
+            lm_weights: vec![LM_WEIGHT],
+            word_bonuses: vec![WORD_BONUS],
+            tuning: Tuning::None,
+        },
+        baseline: Baseline {
+            model: 0,
+            column: 0,
+            lm: 0,
+            lexicon: 0,
+        },
+    };
+    let results = sweep_run::run(&sweep, &|event| match event {
+        SweepEvent::AcousticPass {
+            computed, seconds, ..
+        } => eprintln!(
+            "  acoustic model: {computed} utterances in {seconds:.1} s (the rest from the cache)"
+        ),
+        SweepEvent::Note(note) => eprintln!("  note: {note}"),
+        _ => {}
+    })?;
+
+    // The LMs and the lexicon as files, for the interview and for the user to reuse.
+    let dev_manifest = Manifest::read(&manifests[1])?;
+    let dev_column = dev_manifest.column_index("dialectal")?;
+    let dev_sentences: Vec<Vec<String>> = dev_manifest
+        .utterances
+        .iter()
+        .map(|u| {
+            u.transcripts[dev_column]
+                .split_whitespace()
+                .map(str::to_string)
+                .collect()
+        })
+        .collect();
+    let lm_dir = out.join("lm");
+    std::fs::create_dir_all(&lm_dir).with_context(|| format!("creating {}", lm_dir.display()))?;
+    let mut lm_files = Vec::new();
+    for (choice, file) in lms.iter().zip(["indomain-3gram.arpa", "mixed-3gram.arpa"]) {
+        let built = build_lm(
+            choice,
+            "dialectal",
+            Some(&dev_sentences),
+            &out.join("cache").join("lms"),
+        )?;
+        let target = lm_dir.join(file);
+        std::fs::copy(&built.path, &target)
+            .with_context(|| format!("copying {} to {}", built.path.display(), target.display()))?;
+        if let Some(weight) = built.ood_weight {
+            eprintln!("  {}: out-of-domain weight {weight:.3} (EM on dev)", file);
+        }
+        lm_files.push((target, built.model));
+    }
+    let lexicon = build_lexicon(&lexicon_choice, &lm_words(&lm_files[0].1))?;
+    let lexicon_path = out.join("lexicon-grapheme.tsv");
+    lexicon.lexicon.write(&lexicon_path)?;
+
+    // The greedy baseline from the cached posteriors.
+    let model = AcousticModel::load(&model_dir)?;
+    let test_manifest = Manifest::read(&manifests[2])?;
+    let pass = posteriors(
+        &model,
+        &model_key(&model_dir)?,
+        &test_manifest,
+        &out.join("cache").join("posteriors"),
+    )?;
+    let graph = SearchGraph::lexicon_free(model.units().to_vec())?;
+    let mut greedy = GreedyDecoder::new(&graph);
+    let mut rows = Vec::new();
+    for utterance in &test_manifest.utterances {
+        if let Some(p) = pass.by_id.get(&utterance.id) {
+            rows.push(vec![utterance.id.clone(), greedy.decode(p.view())?.text()]);
+        }
+    }
+    let greedy_path = out.join("hyp-greedy.tsv");
+    isogloss_corpus::tsv::write_table(&greedy_path, &["id", "text"], &rows)?;
+
+    // 5. Scores.
+    step(4, "scoring WER and flexible WER per dialect");
+    let options = ScoreOptions {
+        bootstrap: BootstrapOptions {
+            resamples: RESAMPLES,
+            seed: SEED,
+            ..BootstrapOptions::default()
+        },
+        ..ScoreOptions::default()
+    };
+    let reference = Reference::read(&manifests[2], "dialectal", &["dialect".to_string()])?;
+    let variants = VariantMap::read(&args.variants, &options.rules)?;
+    let greedy_system = score_system(
+        &reference,
+        &Hypotheses::read(&greedy_path)?,
+        Some(&variants),
+        &options.rules,
+    )?;
+    let greedy_report = report(&reference, &greedy_system, None, Some(&variants), &options);
+    let mut systems = vec![System {
+        name: "greedy (no LM, no lexicon)".into(),
+        overall: greedy_report.overall,
+        groups: greedy_report
+            .groups
+            .into_iter()
+            .map(|g| (g.value, g.summary))
+            .collect(),
+        perplexity: None,
+        oov_rate: None,
+        versus_greedy: None,
+    }];
+    let greedy_wer = systems[0].overall.wer;
+    for cell in &results.cells {
+        systems.push(System {
+            name: format!("{} + grapheme lexicon", cell.lm),
+            overall: cell.overall.clone(),
+            groups: cell.groups.clone(),
+            perplexity: Some(cell.perplexity),
+            oov_rate: Some(cell.oov_rate),
+            versus_greedy: cell.overall.wer.zip(greedy_wer).map(|(a, b)| a - b),
+        });
+    }
+    // Copy each cell's hypotheses next to the report under a readable name.
+    for (cell, name) in results
+        .cells
+        .iter()
+        .zip(["hyp-indomain.tsv", "hyp-mixed.tsv"])
+    {
+        let target = out.join(name);
+        std::fs::copy(&cell.hypotheses, &target).with_context(|| {
+            format!(
+                "copying {} to {}",
+                cell.hypotheses.display(),
+                target.display()
+            )
+        })?;
+    }
+
+    // 6. The interview.
+    step(5, "transcribing a long interview recording to WebVTT");
+    let vtt = out.join(format!(
+        "{}.vtt",
+        interview
+            .file_stem()
+            .map(|s| s.to_string_lossy().into_owned())
+            .unwrap_or_else(|| "interview".into())
+    ));
+    let transcribe = TranscribeArgs {
+        model: model_dir.clone(),
+        lm: Some(lm_files[0].0.clone()),
+        lexicon: Some(lexicon_path.clone()),
+        manifest: None,
+        audio: vec![interview.clone()],
+        out: vtt.clone(),
+        format: FormatArg::Vtt,
+        beam: BEAM,
+        lm_weight: LM_WEIGHT,
+        word_bonus: WORD_BONUS,
+        unit_prune: 8.0,
+        blank_skip: 0.999,
+        no_lookahead: false,
+        greedy: false,
+        max_segment: 30.0,
+        resume: false,
+        shard: None,
+    };
+    let interview_started = Instant::now();
+    let interview_seconds = isogloss_audio::probe(&interview)
+        .map(|info| info.duration_seconds)
+        .unwrap_or(0.0);
+    if let Outcome::SomeItemsFailed = super::transcribe::run(transcribe)? {
+        bail!("{}: the interview could not be transcribed", interview.display());
+    }
+    eprintln!(
+        "  {} ({:.1} min of audio in {:.1} s)",
+        vtt.display(),
+        interview_seconds / 60.0,
+        interview_started.elapsed().as_secs_f64()
+    );
+
+    // 7. The report.
+    step(6, "writing the report");
+    let chosen = systems
+        .iter()
+        .skip(1)
+        .min_by(|a, b| {
+            a.overall
+                .wer
+                .unwrap_or(f64::INFINITY)
+                .total_cmp(&b.overall.wer.unwrap_or(f64::INFINITY))
+        })
+        .unwrap_or(&systems[0]);
+    let mut bars: Vec<(String, Option<f64>, Option<f64>)> = chosen
+        .groups
+        .iter()
+        .map(|(dialect, s)| (dialect.clone(), s.wer, s.flexible_wer))
+        .collect();
+    bars.push((
+        "all dialects".into(),
+        chosen.overall.wer,
+        chosen.overall.flexible_wer,
+    ));
+    error_rate_bars(
+        &bars,
+        &format!(
+            "WER (dark) and flexible WER (light) per dialect, %: {}",
+            chosen.name
+        ),
+        &out.join("chart.svg"),
+    )?;
+    let markdown = render_markdown(&systems, chosen, &results.audio_seconds, &vtt);
+    write_atomically(&out.join("results.md"), markdown.as_bytes())?;
+    write_atomically(&out.join("results.csv"), render_csv(&systems).as_bytes())?;
+    println!("{}", render_table(&systems, chosen));
+    eprintln!(
+        "report: {} (results.md, results.csv, chart.svg, {}{}), {:.0} s in all",
+        out.display(),
+        vtt.file_name()
+            .map(|n| n.to_string_lossy().into_owned())
+            .unwrap_or_default(),
+        if args.train {
+            ", training-curve.svg, model/"
+        } else {
+            ""
+        },
+        started.elapsed().as_secs_f64()
+    );
+    Ok(Outcome::Done)
+}
+
+/// `(epoch, train loss, dev loss, dev unit error rate)` of every epoch line of a training log.
+fn read_training_log(path: &Path) -> anyhow::Result<Vec<(usize, f64, f64, f64)>> {
+    let text =
+        std::fs::read_to_string(path).with_context(|| format!("reading {}", path.display()))?;
+    let mut epochs = Vec::new();
+    for (number, line) in text.lines().enumerate() {
+        let value: serde_json::Value = serde_json::from_str(line)
+            .with_context(|| format!("{}, line {}: not JSON", path.display(), number + 1))?;
+        if value["event"] == "epoch" {
+            let field = |name: &str| value[name].as_f64().unwrap_or(f64::NAN);
+            epochs.push((
+                value["epoch"].as_u64().unwrap_or(0) as usize,
+                field("train_loss"),
+                field("dev_loss"),
+                field("dev_unit_error_rate"),
+            ));
+        }
+    }
+    Ok(epochs)
+}
+
+fn percent(rate: Option<f64>) -> String {
+    rate.map_or_else(|| "–".into(), |r| format!("{:.1}", 100.0 * r))
+}
+
+fn with_interval(rate: Option<f64>, interval: Option<isogloss_score::Interval>) -> String {
+    match interval {
+        Some(i) => format!(
+            "{} [{:.1}, {:.1}]",
+            percent(rate),
+            100.0 * i.low,
+            100.0 * i.high
+        ),
+        None => percent(rate),
+    }
+}
+
+/// The short table printed at the end: one row per dialect, the greedy WER beside the chosen
+/// system's WER and flexible WER.
+fn render_table(systems: &[System], chosen: &System) -> String {
+    let greedy = &systems[0];
+    let mut text = String::new();
+    let _ = writeln!(
+        text,
+        "Demo test split, dialectal writing: WER and flexible WER in % (95% bootstrap interval)\nsystem: {}\n",
+        chosen.name
+    );
+    let _ = writeln!(
+        text,
+        "{:<14} {:>6} {:>10} {:>20} {:>20}",
+        "dialect", "words", "greedy WER", "WER", "flexible WER"
+    );
+    let mut rows: Vec<(String, &Summary, Option<&Summary>)> = chosen
+        .groups
+        .iter()
+        .map(|(dialect, s)| {
+            let g = greedy
+                .groups
+                .iter()
+                .find(|(d, _)| d == dialect)
+                .map(|(_, s)| s);
+            (dialect.clone(), s, g)
+        })
+        .collect();
+    rows.push(("all".into(), &chosen.overall, Some(&greedy.overall)));
+    for (dialect, summary, greedy) in rows {
+        let _ = writeln!(
+            text,
+            "{:<14} {:>6} {:>10} {:>20} {:>20}",
+            dialect,
+            summary.ref_words,
+            percent(greedy.and_then(|g| g.wer)),
+            with_interval(summary.wer, summary.wer_interval),
+            with_interval(summary.flexible_wer, summary.flexible_wer_interval)
+        );
+    }
+    text
+}
+
+fn render_markdown(
+    systems: &[System],
+    chosen: &System,
+    audio_seconds: &f64,
+    vtt: &Path,
+) -> String {
+    let mut text = String::new();
+    let _ = writeln!(text, "# isogloss demo report\n");
+    let _ = writeln!(
+        text,
+        "Test split of the demo corpus ({:.1} min of audio), dialectal writing. WER and flexible WER (spelling variants of the variant map count as correct) in %, with 95% bootstrap intervals over utterances. Automatic transcripts: review before quoting.\n",
+        audio_seconds / 60.0
+    );
+    let _ = writeln!(text, "## Systems\n");
+    let _ = writeln!(
+        text,
+        "| system | perplexity | OOV % | WER | flexible WER | WER change vs greedy |"
+    );
+    let _ = writeln!(text, "|---|---:|---:|---|---|---:|");
+    for system in systems {
+        let _ = writeln!(
+            text,
+            "| {} | {} | {} | {} | {} | {} |",
+            system.name,
+            system
+                .perplexity
+                .map_or_else(|| "–".into(), |p| format!("{p:.1}")),
+            system
+                .oov_rate
+                .map_or_else(|| "–".into(), |r| format!("{:.1}", 100.0 * r)),
+            with_interval(system.overall.wer, system.overall.wer_interval),
+            with_interval(
+                system.overall.flexible_wer,
+                system.overall.flexible_wer_interval
+            ),
+            system
+                .versus_greedy
+                .map_or_else(|| "–".into(), |d| format!("{:+.1} pts", 100.0 * d)),
+        );
+    }
+    let _ = writeln!(text, "\n## Per dialect: {}\n", chosen.name);
+    let _ = writeln!(
+        text,
+        "| dialect | utterances | words | WER | flexible WER |"
+    );
+    let _ = writeln!(text, "|---|---:|---:|---|---|");
+    for (dialect, s) in chosen
+        .groups
+        .iter()
+        .map(|(d, s)| (d.as_str(), s))
+        .chain(std::iter::once(("all", &chosen.overall)))
+    {
+        let _ = writeln!(
+            text,
+            "| {} | {} | {} | {} | {} |",
+            dialect,
+            s.utterances,
+            s.ref_words,
+            with_interval(s.wer, s.wer_interval),
+            with_interval(s.flexible_wer, s.flexible_wer_interval)
+        );
+    }
+    let _ = writeln!(
+        text,
+        "\nChart: `chart.svg`. The interview transcript: `{}`. Hypotheses: `hyp-*.tsv`; the LMs: `lm/`; the lexicon: `lexicon-grapheme.tsv`.",
+        vtt.file_name()
+            .map(|n| n.to_string_lossy().into_owned())
+            .unwrap_or_default()
+    );
+    text
+}
+
+/// One row per (system, dialect) and one per system overall (`dialect` = `all`).
+fn render_csv(systems: &[System]) -> String {
+    let mut text = String::from(
+        "system,dialect,utterances,ref_words,wer,wer_low,wer_high,flexible_wer,flexible_wer_low,flexible_wer_high\n",
+    );
+    let number = |v: Option<f64>| v.map_or_else(String::new, |v| format!("{v:.6}"));
+    for system in systems {
+        for (dialect, s) in system
+            .groups
+            .iter()
+            .map(|(d, s)| (d.as_str(), s))
+            .chain(std::iter::once(("all", &system.overall)))
+        {
+            let _ = writeln!(
+                text,
+                "\"{}\",{},{},{},{},{},{},{},{},{}",
+                system.name.replace('"', "\"\""),
+                dialect,
+                s.utterances,
+                s.ref_words,
+                number(s.wer),
+                number(s.wer_interval.map(|i| i.low)),
+                number(s.wer_interval.map(|i| i.high)),
+                number(s.flexible_wer),
+                number(s.flexible_wer_interval.map(|i| i.low)),
+                number(s.flexible_wer_interval.map(|i| i.high)),
+            );
+        }
+    }
+    text
+}

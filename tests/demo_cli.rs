@@ -1,0 +1,135 @@
+//! `isogloss demo` end to end, as a new user runs it from the repository root: the shipped model
+//! transcribes the committed test split with LM + lexicon, and the figures stay below regression
+//! thresholds fixed from measured values (see THRESHOLDS). The LMs and the lexicon it builds are
+//! byte-identical to the copies shipped in `models/`.
+
+use std::collections::HashMap;
+use std::path::{Path, PathBuf};
+use std::process::Command;
+
+/// Measured with the shipped model (README, "The shipped demo model"), plus a margin of about
+/// two points for numeric differences between machines; a model or decoder change that loses
+/// more than that fails here.
+const MAX_LM_WER: f64 = 0.27;
+const MAX_LM_FLEXIBLE_WER: f64 = 0.215;
+
+fn repo(path: &str) -> PathBuf {
+    Path::new(env!("CARGO_MANIFEST_DIR"))
+        .join("../..")
+        .join(path)
+}
+
+/// `system -> dialect -> (wer, flexible_wer)` from the demo's results.csv.
+fn read_results(path: &Path) -> HashMap<String, HashMap<String, (f64, f64)>> {
+    let text = std::fs::read_to_string(path).unwrap();
+    let mut lines = text.lines();
+    let header: Vec<&str> = lines.next().unwrap().split(',').collect();
+    assert_eq!(header[0], "system");
+    let mut systems: HashMap<String, HashMap<String, (f64, f64)>> = HashMap::new();
+    for line in lines {
+        // The system name is quoted and holds no comma; the rest are plain fields.
+        let (name, rest) = line[1..].split_once("\",").unwrap();
+        let fields: Vec<&str> = rest.split(',').collect();
+        let wer: f64 = fields[3].parse().unwrap();
+        let flexible: f64 = fields[6].parse().unwrap();
+        systems
+            .entry(name.to_string())
+            .or_default()
+            .insert(fields[0].to_string(), (wer, flexible));
+    }
+    systems
+}
+
+#[test]
+fn demo_runs_from_the_repository_root_and_meets_the_regression_thresholds() {
+    let out = tempfile::tempdir().unwrap();
+    let output = Command::new(env!("CARGO_BIN_EXE_isogloss"))
+        .current_dir(repo(""))
+        .args(["demo", "--out"])
+        .arg(out.path())
+        .output()
+        .unwrap();
+    assert!(
+        output.status.success(),
+        "isogloss demo failed: {}",
+        String::from_utf8_lossy(&output.stderr)
+    );
+    let table = String::from_utf8_lossy(&output.stdout);
+    for dialect in ["fells", "marsh", "vale", "corran", "quays", "larch", "all"] {
+        assert!(table.contains(dialect), "{dialect} missing from:\n{table}");
+    }
+    for file in [
+        "results.md",
+        "results.csv",
+        "chart.svg",
+        "interview1.vtt",
+        "hyp-greedy.tsv",
+        "hyp-indomain.tsv",
+        "hyp-mixed.tsv",
+        "lexicon-grapheme.tsv",
+    ] {
+        assert!(out.path().join(file).exists(), "{file} not written");
+    }
+    let vtt = std::fs::read_to_string(out.path().join("interview1.vtt")).unwrap();
+    assert!(vtt.starts_with("WEBVTT"));
+    assert!(vtt.matches(" --> ").count() >= 10, "too few cues:\n{vtt}");
+    let svg = std::fs::read_to_string(out.path().join("chart.svg")).unwrap();
+    assert!(svg.contains("<svg") && svg.contains("corran"));
+
+    let results = read_results(&out.path().join("results.csv"));
+    let greedy = results["greedy (no LM, no lexicon)"]["all"];
+    let indomain = results["in-domain 3-gram + grapheme lexicon"]["all"];
+    let mixed = results["in-domain + out-of-domain 3-gram + grapheme lexicon"]["all"];
+    for (wer, flexible) in [greedy, indomain, mixed] {
+        assert!(
+            flexible < wer,
+            "flexible WER {flexible} not below WER {wer}"
+        );
+    }
+    assert!(indomain.0 < greedy.0 && mixed.0 < greedy.0);
+    assert!(
+        indomain.0 <= MAX_LM_WER && indomain.1 <= MAX_LM_FLEXIBLE_WER,
+        "in-domain LM: WER {} / flexible {} above the thresholds {MAX_LM_WER} / {MAX_LM_FLEXIBLE_WER}",
+        indomain.0,
+        indomain.1
+    );
+
+    // The shipped resources are what the demo builds.
+    for (built, shipped) in [
+        ("lm/indomain-3gram.arpa", "models/demo-lm/indomain-3gram.arpa"),
+        ("lm/mixed-3gram.arpa", "models/demo-lm/mixed-3gram.arpa"),
+        ("lexicon-grapheme.tsv", "models/demo-lm/lexicon-grapheme.tsv"),
+    ] {
+        assert!(
+            std::fs::read(out.path().join(built)).unwrap() == std::fs::read(repo(shipped)).unwrap(),
+            "{shipped} differs from what the demo builds ({built}); regenerate it (README)"
+        );
+    }
+
+    // A second run reuses the posteriors and cells and gives the same figures.
+    let again = Command::new(env!("CARGO_BIN_EXE_isogloss"))
+        .current_dir(repo(""))
+        .args(["demo", "--out"])
+        .arg(out.path())
+        .output()
+        .unwrap();
+    assert!(again.status.success());
+    assert!(String::from_utf8_lossy(&again.stderr).contains("acoustic model: 0 utterances"));
+    assert_eq!(read_results(&out.path().join("results.csv")), results);
+}
+
+#[test]
+fn demo_outside_the_repository_names_the_missing_file() {
+    let elsewhere = tempfile::tempdir().unwrap();
+    let output = Command::new(env!("CARGO_BIN_EXE_isogloss"))
+        .current_dir(elsewhere.path())
+        .arg("demo")
+        .output()
+        .unwrap();
+    assert_eq!(output.status.code(), Some(1));
+    let stderr = String::from_utf8_lossy(&output.stderr);
+    assert!(
+        stderr.contains("tests/data/demo/train.tsv") && stderr.contains("repository root"),
+        "{stderr}"
+    );
+}
