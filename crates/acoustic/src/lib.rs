@@ -34,6 +34,7 @@
 
 pub mod config;
 pub mod ctc;
+mod fused;
 pub mod greedy;
 pub mod io;
 pub mod model;
