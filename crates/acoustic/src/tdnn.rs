@@ -1,12 +1,14 @@
 //! The time-delay neural network: layers that splice frames at fixed offsets.
 //!
 //! A layer with offsets `o_1 … o_K`, input width `D` and output width `H` computes
-//! `y[t] = b + Σ_k x[s·t + o_k − o_1] · W_k` (`s` is the subsampling factor). Instead of copying
-//! the `K` shifted inputs side by side (a `[frames, K·D]` splice), the layer multiplies the input
-//! once by all `W_k` stacked side by side (`[D, K·H]`, one large matrix product) and then adds the
-//! `K` column blocks of the product at their shifted frames. The product is the same size as the
-//! splice would have been for `H ≈ D`, but the backward pass also stays two large products instead
-//! of a scatter of spliced gradients.
+//! `y[t] = b + Σ_k x[s·t + o_k − o_1] · W_k` (`s` is the subsampling factor), then (hidden layers)
+//! ReLU, layer normalisation and dropout. The weight is stored as the `K` per-offset matrices side
+//! by side (`[D, K·H]`). The spliced input is never copied: for offset `k` the input rows
+//! `s·t + o_k − o_1` are a strided view of the input, so the layer is `K` matrix products
+//! accumulating into one buffer — with subsampling, only for the frames that are kept. Bias,
+//! ReLU, layer normalisation and dropout then run in one pass per frame, and the backward pass is
+//! written by hand; the whole layer is one candle operation (see `fused.rs`), tested against the
+//! same layer written with candle primitives and differentiated by candle.
 //!
 //! Every layer is "valid" in time (no padding inside the network); callers pad each utterance by
 //! [`TdnnConfig::context`] frames (edge frames repeated) so that the output has
