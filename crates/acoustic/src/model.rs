@@ -257,4 +257,32 @@ mod tests {
         let error = AcousticModel::load(dir.path()).err().unwrap();
         assert!(error.to_string().contains("model.toml"), "{error}");
     }
+    /// The shipped demo model gives the same logits through the fused layers as through the
+    /// layers written with candle primitives.
+    #[test]
+    fn the_demo_model_gives_the_same_outputs_through_the_fused_layers() {
+        let dir = Path::new(env!("CARGO_MANIFEST_DIR")).join("../../models/demo");
+        let model = AcousticModel::load(&dir).unwrap();
+        let mut rng = ChaCha8Rng::seed_from_u64(4);
+        let (left, right) = model.description().architecture.context();
+        let dims = model.feature_config().dims();
+        let frames = 137 + left + right;
+        let x: Vec<f32> = (0..2 * frames * dims)
+            .map(|_| rng.random_range(-2.0f32..2.0))
+            .collect();
+        let input = Tensor::from_vec(x, (2, frames, dims), &Device::Cpu).unwrap();
+        let fused = model.network.forward(&input, None).unwrap();
+        let reference = model.network.forward_reference(&input, None).unwrap();
+        let diff: f32 = (fused - reference)
+            .unwrap()
+            .abs()
+            .unwrap()
+            .flatten_all()
+            .unwrap()
+            .max(0)
+            .unwrap()
+            .to_scalar()
+            .unwrap();
+        assert!(diff < 1e-4, "logits differ by {diff}");
+    }
 }

@@ -1,12 +1,14 @@
 //! The time-delay neural network: layers that splice frames at fixed offsets.
 //!
 //! A layer with offsets `o_1 … o_K`, input width `D` and output width `H` computes
-//! `y[t] = b + Σ_k x[s·t + o_k − o_1] · W_k` (`s` is the subsampling factor). Instead of copying
-//! the `K` shifted inputs side by side (a `[frames, K·D]` splice), the layer multiplies the input
-//! once by all `W_k` stacked side by side (`[D, K·H]`, one large matrix product) and then adds the
-//! `K` column blocks of the product at their shifted frames. The product is the same size as the
-//! splice would have been for `H ≈ D`, but the backward pass also stays two large products instead
-//! of a scatter of spliced gradients.
+//! `y[t] = b + Σ_k x[s·t + o_k − o_1] · W_k` (`s` is the subsampling factor), then (hidden layers)
+//! ReLU, layer normalisation and dropout. The weight is stored as the `K` per-offset matrices side
+//! by side (`[D, K·H]`). The spliced input is never copied: for offset `k` the input rows
+//! `s·t + o_k − o_1` are a strided view of the input, so the layer is `K` matrix products
+//! accumulating into one buffer — with subsampling, only for the frames that are kept. Bias,
+//! ReLU, layer normalisation and dropout then run in one pass per frame, and the backward pass is
+//! written by hand; the whole layer is one candle operation (see `fused.rs`), tested against the
+//! same layer written with candle primitives and differentiated by candle.
 //!
 //! Every layer is "valid" in time (no padding inside the network); callers pad each utterance by
 //! [`TdnnConfig::context`] frames (edge frames repeated) so that the output has
@@ -19,9 +21,10 @@ use candle_nn::VarBuilder;
 use rand::Rng;
 
 use crate::config::{Normalization, TdnnConfig};
+use crate::fused::FusedLayer;
+#[cfg(test)]
+use crate::fused::NORM_EPSILON;
 use crate::AcousticError;
-
-const NORM_EPSILON: f64 = 1e-5;
 
 /// One spliced affine layer, optionally followed by ReLU, layer normalisation and dropout.
 ///
@@ -84,7 +87,58 @@ impl TdnnLayer {
     }
 
     /// Runs the layer; `dropout` is `Some((p, rng))` during training.
+    ///
+    /// One fused operation (see the `fused` module): the shifted matrix products, bias, ReLU,
+    /// layer normalisation and dropout, with a hand-written backward pass.
     pub fn forward<R: rand::RngCore + ?Sized>(
+        &self,
+        input: &Tensor,
+        dropout: Option<(f32, &mut R)>,
+    ) -> Result<Tensor, AcousticError> {
+        let (batch, frames, _) = input.dims3()?;
+        let frames_out = self.output_frames(frames);
+        if frames_out == 0 {
+            return Err(AcousticError::Shape(format!(
+                "a layer spanning {} frames got only {frames}",
+                self.span() + 1
+            )));
+        }
+        let params = match &self.norm {
+            Some((gain, shift)) => Tensor::stack(&[&self.bias, gain, shift], 0)?,
+            None => self.bias.unsqueeze(0)?,
+        };
+        let mask = match dropout {
+            Some((p, rng)) if self.hidden && p > 0.0 => {
+                let keep = 1.0 / (1.0 - p);
+                Some(
+                    (0..batch * frames_out * self.output_dims)
+                        .map(|_| if rng.random::<f32>() < p { 0.0 } else { keep })
+                        .collect(),
+                )
+            }
+            _ => None,
+        };
+        let shifts = self
+            .offsets
+            .iter()
+            .map(|&o| (o - self.offsets[0]) as usize)
+            .collect();
+        let op = FusedLayer::new(
+            shifts,
+            self.subsample,
+            self.output_dims,
+            self.hidden,
+            self.norm.is_some(),
+            mask,
+            input.track_op(),
+        );
+        Ok(input.contiguous()?.apply_op3(&self.weight, &params, op)?)
+    }
+
+    /// The layer written with candle primitives (the definition the fused operation is tested
+    /// against).
+    #[cfg(test)]
+    fn forward_reference<R: rand::RngCore + ?Sized>(
         &self,
         input: &Tensor,
         dropout: Option<(f32, &mut R)>,
@@ -139,7 +193,7 @@ impl TdnnLayer {
             let centred = output.broadcast_sub(&output.mean_keepdim(2)?)?;
             let variance = centred.sqr()?.mean_keepdim(2)?;
             output = centred
-                .broadcast_div(&(variance + NORM_EPSILON)?.sqrt()?)?
+                .broadcast_div(&(variance + NORM_EPSILON as f64)?.sqrt()?)?
                 .broadcast_mul(gain)?
                 .broadcast_add(shift)?;
         }
@@ -230,6 +284,25 @@ impl Tdnn {
                 .as_deref_mut()
                 .map(|rng| (self.config.dropout, rng));
             x = layer.forward(&x, dropout)?;
+        }
+        Ok(x)
+    }
+}
+
+impl Tdnn {
+    /// [`Tdnn::forward`] through [`TdnnLayer::forward_reference`] (tests only).
+    #[cfg(test)]
+    pub(crate) fn forward_reference(
+        &self,
+        input: &Tensor,
+        mut dropout_rng: Option<&mut dyn rand::RngCore>,
+    ) -> Result<Tensor, AcousticError> {
+        let mut x = input.clone();
+        for layer in &self.layers {
+            let dropout = dropout_rng
+                .as_deref_mut()
+                .map(|rng| (self.config.dropout, rng));
+            x = layer.forward_reference(&x, dropout)?;
         }
         Ok(x)
     }
@@ -387,5 +460,194 @@ mod tests {
             (1_000_000..2_000_000).contains(&count),
             "{count} parameters"
         );
+    }
+    fn with_norm(mut config: TdnnConfig, dropout: f32) -> TdnnConfig {
+        config.normalization = Normalization::Layer;
+        config.dropout = dropout;
+        config
+    }
+
+    fn max_difference(a: &Tensor, b: &Tensor) -> f32 {
+        (a - b)
+            .unwrap()
+            .abs()
+            .unwrap()
+            .flatten_all()
+            .unwrap()
+            .max(0)
+            .unwrap()
+            .to_scalar::<f32>()
+            .unwrap()
+    }
+
+    /// The fused layers give the outputs and gradients (input, weights, biases, norm gains and
+    /// shifts) of the same layers written with candle primitives and differentiated by candle,
+    /// with and without layer norm and dropout, for frame counts that do and do not line up with
+    /// the subsampling period.
+    #[test]
+    fn fused_layers_match_the_candle_graph_and_its_gradients() {
+        let configs = [
+            with_norm(tiny(), 0.3),
+            with_norm(tiny(), 0.0),
+            tiny(),
+            with_norm(ModelConfig::small().model, 0.1),
+        ];
+        for (c, config) in configs.iter().enumerate() {
+            for frames in [14usize, 15, 16, 31] {
+                let (left, right) = config.context();
+                if frames <= left + right + 2 {
+                    continue;
+                }
+                for input_is_var in [false, true] {
+                    let mut rng = ChaCha8Rng::seed_from_u64(7 + frames as u64);
+                    let dims = 3;
+                    let units = 4;
+                    let vars = initial_parameters(config, dims, units, &mut rng).unwrap();
+                    // Non-trivial biases, gains and shifts.
+                    for (name, var) in &vars {
+                        if var.rank() == 1 {
+                            let values: Vec<f32> = (0..var.elem_count())
+                                .map(|_| rng.random_range(0.5..1.5))
+                                .collect();
+                            let values = if name.ends_with("norm.weight") {
+                                values
+                            } else {
+                                values.iter().map(|v| v - 1.0).collect()
+                            };
+                            var.set(&Tensor::from_vec(values, var.shape(), &Device::Cpu).unwrap())
+                                .unwrap();
+                        }
+                    }
+                    let net = Tdnn::new(var_builder(&vars), config, dims, units).unwrap();
+                    let x: Vec<f32> = (0..2 * frames * dims)
+                        .map(|_| rng.random_range(-1.0..1.0))
+                        .collect();
+                    let input_var = Var::from_vec(x, (2, frames, dims), &Device::Cpu).unwrap();
+                    let input = if input_is_var {
+                        input_var.as_tensor().clone()
+                    } else {
+                        input_var.as_tensor().detach()
+                    };
+                    let mut rng_a = ChaCha8Rng::seed_from_u64(99);
+                    let mut rng_b = ChaCha8Rng::seed_from_u64(99);
+                    let fused = net.forward(&input, Some(&mut rng_a)).unwrap();
+                    let reference = net.forward_reference(&input, Some(&mut rng_b)).unwrap();
+                    assert_eq!(fused.dims(), reference.dims());
+                    let what = format!("config {c}, {frames} frames, input var {input_is_var}");
+                    let diff = max_difference(&fused, &reference);
+                    assert!(diff < 1e-5, "{what}: outputs differ by {diff}");
+                    let weights = Tensor::randn(0f32, 1.0, fused.shape(), &Device::Cpu).unwrap();
+                    let grads_fused = (&fused * &weights)
+                        .unwrap()
+                        .sum_all()
+                        .unwrap()
+                        .backward()
+                        .unwrap();
+                    let grads_reference = (&reference * &weights)
+                        .unwrap()
+                        .sum_all()
+                        .unwrap()
+                        .backward()
+                        .unwrap();
+                    let mut checked = vec![("input".to_string(), input_var.as_tensor().clone())];
+                    checked.extend(vars.iter().map(|(n, v)| (n.clone(), v.as_tensor().clone())));
+                    for (name, tensor) in &checked {
+                        let (a, b) = (grads_fused.get(tensor), grads_reference.get(tensor));
+                        if name == "input" && !input_is_var {
+                            assert!(a.is_none() && b.is_none(), "{what}: input gradient");
+                            continue;
+                        }
+                        let (a, b) = (a.unwrap(), b.unwrap());
+                        let scale = b
+                            .abs()
+                            .unwrap()
+                            .flatten_all()
+                            .unwrap()
+                            .max(0)
+                            .unwrap()
+                            .to_scalar::<f32>()
+                            .unwrap();
+                        let diff = max_difference(a, b);
+                        assert!(
+                            diff <= 1e-4 * scale.max(1.0),
+                            "{what}: gradient of {name} differs by {diff} (largest {scale})"
+                        );
+                    }
+                }
+            }
+        }
+    }
+
+    /// Central finite differences of the fused network (no candle graph involved) agree with its
+    /// hand-written backward pass.
+    #[test]
+    fn fused_gradients_match_finite_differences() {
+        let config = with_norm(tiny(), 0.0);
+        let mut rng = ChaCha8Rng::seed_from_u64(3);
+        let vars = initial_parameters(&config, 3, 4, &mut rng).unwrap();
+        let net = Tdnn::new(var_builder(&vars), &config, 3, 4).unwrap();
+        let x: Vec<f32> = (0..2 * 16 * 3)
+            .map(|_| rng.random_range(-1.0..1.0))
+            .collect();
+        let input = Tensor::from_vec(x, (2, 16, 3), &Device::Cpu).unwrap();
+        let probe = Tensor::randn(
+            0f32,
+            1.0,
+            net.forward(&input, None).unwrap().shape(),
+            &Device::Cpu,
+        )
+        .unwrap();
+        let loss = |net: &Tdnn| -> f64 {
+            let out = net.forward(&input, None).unwrap();
+            let out: Vec<f32> = out.flatten_all().unwrap().to_vec1().unwrap();
+            let probe: Vec<f32> = probe.flatten_all().unwrap().to_vec1().unwrap();
+            out.iter()
+                .zip(&probe)
+                .map(|(a, b)| *a as f64 * *b as f64)
+                .sum()
+        };
+        let grads = (net.forward(&input, None).unwrap() * &probe)
+            .unwrap()
+            .sum_all()
+            .unwrap()
+            .backward()
+            .unwrap();
+        for name in [
+            "layers.0.weight",
+            "layers.1.weight",
+            "layers.0.norm.weight",
+            "layers.1.bias",
+        ] {
+            let var = &vars[name];
+            let original: Vec<f32> = var.as_tensor().flatten_all().unwrap().to_vec1().unwrap();
+            let analytic: Vec<f32> = grads
+                .get(var.as_tensor())
+                .unwrap()
+                .flatten_all()
+                .unwrap()
+                .to_vec1()
+                .unwrap();
+            for index in [0, original.len() / 2, original.len() - 1] {
+                let step = 1e-3f32;
+                let mut values = original.clone();
+                values[index] = original[index] + step;
+                var.set(&Tensor::from_vec(values.clone(), var.shape(), &Device::Cpu).unwrap())
+                    .unwrap();
+                let plus = loss(&net);
+                values[index] = original[index] - step;
+                var.set(&Tensor::from_vec(values, var.shape(), &Device::Cpu).unwrap())
+                    .unwrap();
+                let minus = loss(&net);
+                var.set(&Tensor::from_vec(original.clone(), var.shape(), &Device::Cpu).unwrap())
+                    .unwrap();
+                let numeric = (plus - minus) / (2.0 * step as f64);
+                let tolerance = 2e-2 * numeric.abs().max(analytic[index].abs() as f64).max(0.1);
+                assert!(
+                    (numeric - analytic[index] as f64).abs() < tolerance,
+                    "{name}[{index}]: finite difference {numeric}, backward {}",
+                    analytic[index]
+                );
+            }
+        }
     }
 }

@@ -1,0 +1,606 @@
+//! One TDNN layer as a single candle operation with a hand-written backward pass.
+//!
+//! Written with tensor primitives, a hidden layer is a matrix product followed by about fifteen
+//! element-wise operations (shift-add of the per-offset blocks, bias, ReLU, the steps of layer
+//! normalisation, the dropout mask), each allocating a tensor of the layer's output size, and
+//! twice as many in the backward pass. Here the layer is one [`CustomOp3`] over
+//! `(input, weight, params)`:
+//!
+//! * the splice is never materialised: for offset `k` the rows `s·t + c_k` of the input are a
+//!   strided view (row stride `s·D`), so `z = Σ_k X_k · W_k` is `K` matrix products accumulating
+//!   into one `[rows, H]` buffer (`W_k` is the `k`-th column block of the stored
+//!   `[D, K·H]` weight). With subsampling only the kept frames are computed;
+//! * bias, ReLU, layer normalisation (gain, shift) and the dropout mask run in one pass per frame,
+//!   in parallel over utterances;
+//! * the backward pass runs the same pass in reverse per frame (keeping the post-ReLU values and
+//!   the per-frame mean and inverse deviation from the forward pass), then `2K` matrix products for
+//!   the weight and input gradients. The input gradient is skipped when the input does not need
+//!   one (the features).
+//!
+//! `params` is `[1, H]` (bias) or `[3, H]` (bias, layer-norm gain, layer-norm shift).
+//!
+//! Reductions over frames (bias, gain and shift gradients) are summed per utterance and then over
+//! utterances in order, so results do not depend on the thread count.
+
+use std::sync::Mutex;
+
+use candle_core::{CpuStorage, CustomOp3, Layout, Shape, Storage, Tensor};
+use gemm::{gemm, Parallelism};
+use rayon::prelude::*;
+
+/// Added to the variance before the square root in layer normalisation.
+pub(crate) const NORM_EPSILON: f32 = 1e-5;
+
+/// What the forward pass keeps for the backward pass.
+struct Saved {
+    /// `[batch · frames_out, H]` values after bias and ReLU, before normalisation.
+    activations: Vec<f32>,
+    /// Per output frame: mean and `1 / sqrt(variance + ε)` (layer norm only).
+    stats: Vec<(f32, f32)>,
+}
+
+/// The fused layer operation; see the module documentation.
+pub(crate) struct FusedLayer {
+    /// `o_k − o_1` for each offset.
+    pub shifts: Vec<usize>,
+    /// Subsampling factor `s` (≥ 1).
+    pub subsample: usize,
+    /// Output width `H`.
+    pub output_dims: usize,
+    /// ReLU after the bias.
+    pub relu: bool,
+    /// Layer normalisation after the ReLU (`params` is then `[3, H]`).
+    pub norm: bool,
+    /// `[batch, frames_out, H]` dropout multipliers (0 or `1/(1−p)`), if any.
+    pub mask: Option<Vec<f32>>,
+    /// Whether to compute the input gradient.
+    pub input_grad: bool,
+    saved: Mutex<Option<Saved>>,
+}
+
+/// Where the rows of the `[rows, H]` pre-activation buffer come from.
+#[derive(Debug, Clone, Copy)]
+struct Geometry {
+    batch: usize,
+    frames: usize,
+    dims: usize,
+    frames_out: usize,
+    /// Rows of the buffer per utterance (output frame `t` of utterance `b` is row `b·q + t`).
+    q: usize,
+    /// Row blocks for the matrix products: one block over the whole batch when the frames of
+    /// every utterance line up with the subsampling period, else one per utterance.
+    per_utterance: bool,
+}
+
+impl Geometry {
+    fn rows(&self) -> usize {
+        (self.batch - 1) * self.q + self.frames_out
+    }
+
+    /// `(first input row, first buffer row, rows)` of each block.
+    fn blocks(&self, subsample: usize) -> Vec<(usize, usize, usize)> {
+        if self.per_utterance {
+            (0..self.batch)
+                .map(|b| (b * self.frames, b * self.q, self.frames_out))
+                .collect()
+        } else {
+            debug_assert_eq!(self.q * subsample, self.frames);
+            vec![(0, 0, self.rows())]
+        }
+    }
+}
+
+fn parallelism() -> Parallelism {
+    match rayon::current_num_threads() {
+        0 | 1 => Parallelism::None,
+        n => Parallelism::Rayon(n),
+    }
+}
+
+/// A row-major matrix view: base offset into a slice, row stride and column stride.
+#[derive(Clone, Copy)]
+struct View {
+    offset: usize,
+    row_stride: usize,
+    col_stride: usize,
+}
+
+/// `dst = (accumulate ? dst : 0) + lhs · rhs` for `[m, k] · [k, n]` views.
+///
+/// Checks that every view stays inside its slice, so the unsafe call only reads and writes
+/// inside the given slices.
+#[allow(clippy::too_many_arguments)]
+fn matmul(
+    (m, n, k): (usize, usize, usize),
+    dst: &mut [f32],
+    dst_view: View,
+    accumulate: bool,
+    lhs: &[f32],
+    lhs_view: View,
+    rhs: &[f32],
+    rhs_view: View,
+) -> candle_core::Result<()> {
+    if m == 0 || n == 0 {
+        return Ok(());
+    }
+    let last = |v: View, rows: usize, cols: usize| {
+        v.offset + (rows - 1) * v.row_stride + (cols.max(1) - 1) * v.col_stride
+    };
+    if last(dst_view, m, n) >= dst.len()
+        || (k > 0 && (last(lhs_view, m, k) >= lhs.len() || last(rhs_view, k, n) >= rhs.len()))
+    {
+        candle_core::bail!("fused TDNN layer: a matrix view exceeds its buffer")
+    }
+    if k == 0 {
+        if !accumulate {
+            for i in 0..m {
+                for j in 0..n {
+                    dst[dst_view.offset + i * dst_view.row_stride + j * dst_view.col_stride] = 0.0;
+                }
+            }
+        }
+        return Ok(());
+    }
+    // SAFETY: every element addressed by the three views lies inside its slice (checked above);
+    // `dst` is borrowed mutably and does not alias `lhs` or `rhs`; the destination rows of one
+    // call are distinct (row stride ≥ n · column stride for every caller).
+    unsafe {
+        gemm(
+            m,
+            n,
+            k,
+            dst.as_mut_ptr().add(dst_view.offset),
+            dst_view.col_stride as isize,
+            dst_view.row_stride as isize,
+            accumulate,
+            lhs.as_ptr().add(lhs_view.offset),
+            lhs_view.col_stride as isize,
+            lhs_view.row_stride as isize,
+            rhs.as_ptr().add(rhs_view.offset),
+            rhs_view.col_stride as isize,
+            rhs_view.row_stride as isize,
+            if accumulate { 1.0 } else { 0.0 },
+            1.0,
+            false,
+            false,
+            false,
+            parallelism(),
+        );
+    }
+    Ok(())
+}
+
+fn contiguous_f32<'a>(
+    storage: &'a CpuStorage,
+    layout: &Layout,
+    what: &str,
+) -> candle_core::Result<&'a [f32]> {
+    let CpuStorage::F32(values) = storage else {
+        candle_core::bail!("fused TDNN layer: the {what} must be f32")
+    };
+    match layout.contiguous_offsets() {
+        Some((start, end)) => Ok(&values[start..end]),
+        None => candle_core::bail!("fused TDNN layer: the {what} must be contiguous"),
+    }
+}
+
+/// Runs `f` on the contiguous f32 values of a CPU tensor.
+fn with_values<T>(
+    tensor: &Tensor,
+    what: &str,
+    f: impl FnOnce(&[f32]) -> candle_core::Result<T>,
+) -> candle_core::Result<T> {
+    let (storage, layout) = tensor.storage_and_layout();
+    match &*storage {
+        Storage::Cpu(cpu) => f(contiguous_f32(cpu, layout, what)?),
+        _ => candle_core::bail!("fused TDNN layer: the {what} must be on the CPU"),
+    }
+}
+
+impl FusedLayer {
+    /// A layer operation; see the field documentation.
+    pub fn new(
+        shifts: Vec<usize>,
+        subsample: usize,
+        output_dims: usize,
+        relu: bool,
+        norm: bool,
+        mask: Option<Vec<f32>>,
+        input_grad: bool,
+    ) -> Self {
+        FusedLayer {
+            shifts,
+            subsample,
+            output_dims,
+            relu,
+            norm,
+            mask,
+            input_grad,
+            saved: Mutex::new(None),
+        }
+    }
+
+    fn param_rows(&self) -> usize {
+        if self.norm {
+            3
+        } else {
+            1
+        }
+    }
+
+    fn geometry(
+        &self,
+        input: &Shape,
+        weight: &Shape,
+        params: &Shape,
+    ) -> candle_core::Result<Geometry> {
+        let (batch, frames, dims) = input.dims3()?;
+        let (weight_rows, weight_cols) = weight.dims2()?;
+        let (param_rows, param_cols) = params.dims2()?;
+        let k = self.shifts.len();
+        let h = self.output_dims;
+        let s = self.subsample;
+        if k == 0 || s == 0 || batch == 0 {
+            candle_core::bail!("fused TDNN layer: no offsets, no subsampling or an empty batch")
+        }
+        if weight_rows != dims
+            || weight_cols != k * h
+            || param_rows != self.param_rows()
+            || param_cols != h
+        {
+            candle_core::bail!(
+                "fused TDNN layer: input {batch}×{frames}×{dims}, weight {weight_rows}×{weight_cols}, params {param_rows}×{param_cols} do not fit {k} offsets × {h} outputs"
+            )
+        }
+        let span = self.shifts.iter().copied().max().unwrap_or(0);
+        if frames <= span {
+            candle_core::bail!(
+                "fused TDNN layer: a layer spanning {} frames got only {frames}",
+                span + 1
+            )
+        }
+        let frames_out = (frames - 1 - span) / s + 1;
+        let per_utterance = frames % s != 0;
+        let q = if per_utterance {
+            frames_out
+        } else {
+            frames / s
+        };
+        Ok(Geometry {
+            batch,
+            frames,
+            dims,
+            frames_out,
+            q,
+            per_utterance,
+        })
+    }
+
+    /// `z = Σ_k X_k · W_k` into a `[rows, H]` buffer.
+    fn pre_activation(&self, g: &Geometry, x: &[f32], w: &[f32]) -> candle_core::Result<Vec<f32>> {
+        let h = self.output_dims;
+        let kh = self.shifts.len() * h;
+        let s = self.subsample;
+        let mut z = vec![0f32; g.rows() * h];
+        for (x0, z0, m) in g.blocks(s) {
+            for (k, &shift) in self.shifts.iter().enumerate() {
+                matmul(
+                    (m, h, g.dims),
+                    &mut z,
+                    View {
+                        offset: z0 * h,
+                        row_stride: h,
+                        col_stride: 1,
+                    },
+                    k > 0,
+                    x,
+                    View {
+                        offset: (x0 + shift) * g.dims,
+                        row_stride: s * g.dims,
+                        col_stride: 1,
+                    },
+                    w,
+                    View {
+                        offset: k * h,
+                        row_stride: kh,
+                        col_stride: 1,
+                    },
+                )?;
+            }
+        }
+        Ok(z)
+    }
+}
+
+impl CustomOp3 for FusedLayer {
+    fn name(&self) -> &'static str {
+        "fused-tdnn-layer"
+    }
+
+    fn cpu_fwd(
+        &self,
+        s1: &CpuStorage,
+        l1: &Layout,
+        s2: &CpuStorage,
+        l2: &Layout,
+        s3: &CpuStorage,
+        l3: &Layout,
+    ) -> candle_core::Result<(CpuStorage, Shape)> {
+        let g = self.geometry(l1.shape(), l2.shape(), l3.shape())?;
+        let x = contiguous_f32(s1, l1, "input")?;
+        let w = contiguous_f32(s2, l2, "weight")?;
+        let params = contiguous_f32(s3, l3, "layer parameters")?;
+        let h = self.output_dims;
+        let out_len = g.batch * g.frames_out * h;
+        if let Some(mask) = &self.mask {
+            if mask.len() != out_len {
+                candle_core::bail!(
+                    "fused TDNN layer: dropout mask of {} values for {out_len} outputs",
+                    mask.len()
+                )
+            }
+        }
+        let z = self.pre_activation(&g, x, w)?;
+        let (bias, gain, shift) = (&params[..h], params.get(h..2 * h), params.get(2 * h..3 * h));
+        let keep = self.relu || self.norm;
+        let mut out = vec![0f32; out_len];
+        let mut activations = if keep {
+            vec![0f32; out_len]
+        } else {
+            Vec::new()
+        };
+        let mut stats = if self.norm {
+            vec![(0f32, 0f32); g.batch * g.frames_out]
+        } else {
+            Vec::new()
+        };
+        let per_utt = g.frames_out * h;
+        let frame = |b: usize, t: usize, orow: &mut [f32], act: Option<&mut [f32]>| -> (f32, f32) {
+            let zrow = &z[(b * g.q + t) * h..][..h];
+            for ((o, &zv), &bv) in orow.iter_mut().zip(zrow).zip(bias) {
+                let v = zv + bv;
+                *o = if self.relu { v.max(0.0) } else { v };
+            }
+            if let Some(act) = act {
+                act.copy_from_slice(orow);
+            }
+            let mut stat = (0.0, 0.0);
+            if let (Some(gain), Some(shift)) = (gain, shift) {
+                let mean = orow.iter().sum::<f32>() / h as f32;
+                let variance = orow.iter().map(|v| (v - mean) * (v - mean)).sum::<f32>() / h as f32;
+                let inv = 1.0 / (variance + NORM_EPSILON).sqrt();
+                for ((o, &gn), &sh) in orow.iter_mut().zip(gain).zip(shift) {
+                    *o = (*o - mean) * inv * gn + sh;
+                }
+                stat = (mean, inv);
+            }
+            if let Some(mask) = &self.mask {
+                let base = (b * g.frames_out + t) * h;
+                for (o, &m) in orow.iter_mut().zip(&mask[base..base + h]) {
+                    *o *= m;
+                }
+            }
+            stat
+        };
+        if self.norm {
+            out.par_chunks_mut(per_utt)
+                .zip(activations.par_chunks_mut(per_utt))
+                .zip(stats.par_chunks_mut(g.frames_out))
+                .enumerate()
+                .for_each(|(b, ((out_u, act_u), stats_u))| {
+                    for t in 0..g.frames_out {
+                        stats_u[t] = frame(
+                            b,
+                            t,
+                            &mut out_u[t * h..(t + 1) * h],
+                            Some(&mut act_u[t * h..(t + 1) * h]),
+                        );
+                    }
+                });
+        } else if keep {
+            out.par_chunks_mut(per_utt)
+                .zip(activations.par_chunks_mut(per_utt))
+                .enumerate()
+                .for_each(|(b, (out_u, act_u))| {
+                    for t in 0..g.frames_out {
+                        frame(
+                            b,
+                            t,
+                            &mut out_u[t * h..(t + 1) * h],
+                            Some(&mut act_u[t * h..(t + 1) * h]),
+                        );
+                    }
+                });
+        } else {
+            out.par_chunks_mut(per_utt)
+                .enumerate()
+                .for_each(|(b, out_u)| {
+                    for t in 0..g.frames_out {
+                        frame(b, t, &mut out_u[t * h..(t + 1) * h], None);
+                    }
+                });
+        }
+        drop(z);
+        let mut saved = self
+            .saved
+            .lock()
+            .map_err(|_| candle_core::Error::Msg("fused TDNN layer state poisoned".into()))?;
+        *saved = Some(Saved { activations, stats });
+        Ok((
+            CpuStorage::F32(out),
+            Shape::from((g.batch, g.frames_out, h)),
+        ))
+    }
+
+    fn bwd(
+        &self,
+        input: &Tensor,
+        weight: &Tensor,
+        params: &Tensor,
+        _res: &Tensor,
+        grad_res: &Tensor,
+    ) -> candle_core::Result<(Option<Tensor>, Option<Tensor>, Option<Tensor>)> {
+        let g = self.geometry(input.shape(), weight.shape(), params.shape())?;
+        let h = self.output_dims;
+        let kh = self.shifts.len() * h;
+        let s = self.subsample;
+        let p_rows = self.param_rows();
+        let guard = self
+            .saved
+            .lock()
+            .map_err(|_| candle_core::Error::Msg("fused TDNN layer state poisoned".into()))?;
+        let Some(saved) = guard.as_ref() else {
+            candle_core::bail!("fused TDNN layer: backward pass before the forward pass")
+        };
+        let grad_res = grad_res.contiguous()?;
+        // Per-frame backward of mask, layer norm, ReLU and bias into `gz` (buffer layout), with
+        // per-utterance sums of the bias, gain and shift gradients.
+        let mut gz = vec![0f32; g.rows() * h];
+        let partials: Vec<Vec<f32>> = with_values(&grad_res, "output gradient", |gout| {
+            with_values(params, "layer parameters", |params| {
+                let gain = params.get(h..2 * h);
+                let chunk = g.q * h;
+                Ok(gz
+                    .par_chunks_mut(chunk)
+                    .enumerate()
+                    .map(|(b, gz_u)| {
+                        let mut sums = vec![0f32; p_rows * h];
+                        let mut grow = vec![0f32; h];
+                        for t in 0..g.frames_out {
+                            let o = b * g.frames_out + t;
+                            grow.copy_from_slice(&gout[o * h..(o + 1) * h]);
+                            if let Some(mask) = &self.mask {
+                                for (gv, &m) in grow.iter_mut().zip(&mask[o * h..(o + 1) * h]) {
+                                    *gv *= m;
+                                }
+                            }
+                            let act = if saved.activations.is_empty() {
+                                None
+                            } else {
+                                Some(&saved.activations[o * h..(o + 1) * h])
+                            };
+                            if let (Some(gain), Some(act)) = (gain, act) {
+                                let (mean, inv) = saved.stats[o];
+                                let (gain_sum, rest) = sums[h..].split_at_mut(h);
+                                let shift_sum = &mut rest[..h];
+                                let (mut a, mut c) = (0f32, 0f32);
+                                for i in 0..h {
+                                    let xhat = (act[i] - mean) * inv;
+                                    gain_sum[i] += grow[i] * xhat;
+                                    shift_sum[i] += grow[i];
+                                    let gx = grow[i] * gain[i];
+                                    a += gx;
+                                    c += gx * xhat;
+                                    grow[i] = gx;
+                                }
+                                let (a, c) = (a / h as f32, c / h as f32);
+                                for i in 0..h {
+                                    let xhat = (act[i] - mean) * inv;
+                                    grow[i] = inv * (grow[i] - a - xhat * c);
+                                }
+                            }
+                            if let (true, Some(act)) = (self.relu, act) {
+                                for (gv, &av) in grow.iter_mut().zip(act) {
+                                    if av <= 0.0 {
+                                        *gv = 0.0;
+                                    }
+                                }
+                            }
+                            for (bs, &gv) in sums[..h].iter_mut().zip(&grow) {
+                                *bs += gv;
+                            }
+                            gz_u[t * h..(t + 1) * h].copy_from_slice(&grow);
+                        }
+                        sums
+                    })
+                    .collect())
+            })
+        })?;
+        let mut param_grad = vec![0f32; p_rows * h];
+        for part in &partials {
+            for (p, v) in param_grad.iter_mut().zip(part) {
+                *p += v;
+            }
+        }
+        drop(guard);
+        let (weight_grad, input_grad) = with_values(input, "input", |x| {
+            with_values(weight, "weight", |w| {
+                let mut gw = vec![0f32; g.dims * kh];
+                let mut gx = if self.input_grad {
+                    vec![0f32; g.batch * g.frames * g.dims]
+                } else {
+                    Vec::new()
+                };
+                for (block, (x0, z0, m)) in g.blocks(s).into_iter().enumerate() {
+                    for (k, &shift) in self.shifts.iter().enumerate() {
+                        let x_view = View {
+                            offset: (x0 + shift) * g.dims,
+                            row_stride: s * g.dims,
+                            col_stride: 1,
+                        };
+                        // gW_k += X_kᵀ · gz
+                        matmul(
+                            (g.dims, h, m),
+                            &mut gw,
+                            View {
+                                offset: k * h,
+                                row_stride: kh,
+                                col_stride: 1,
+                            },
+                            block > 0,
+                            x,
+                            View {
+                                offset: x_view.offset,
+                                row_stride: 1,
+                                col_stride: x_view.row_stride,
+                            },
+                            &gz,
+                            View {
+                                offset: z0 * h,
+                                row_stride: h,
+                                col_stride: 1,
+                            },
+                        )?;
+                        if self.input_grad {
+                            // gX_k += gz · W_kᵀ
+                            matmul(
+                                (m, g.dims, h),
+                                &mut gx,
+                                x_view,
+                                true,
+                                &gz,
+                                View {
+                                    offset: z0 * h,
+                                    row_stride: h,
+                                    col_stride: 1,
+                                },
+                                w,
+                                View {
+                                    offset: k * h,
+                                    row_stride: 1,
+                                    col_stride: kh,
+                                },
+                            )?;
+                        }
+                    }
+                }
+                Ok((gw, gx))
+            })
+        })?;
+        let device = input.device();
+        let input_grad = if self.input_grad {
+            Some(Tensor::from_vec(
+                input_grad,
+                (g.batch, g.frames, g.dims),
+                device,
+            )?)
+        } else {
+            None
+        };
+        Ok((
+            input_grad,
+            Some(Tensor::from_vec(weight_grad, (g.dims, kh), device)?),
+            Some(Tensor::from_vec(param_grad, (p_rows, h), device)?),
+        ))
+    }
+}
