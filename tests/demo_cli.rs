@@ -96,9 +96,15 @@ fn demo_runs_from_the_repository_root_and_meets_the_regression_thresholds() {
 
     // The shipped resources are what the demo builds.
     for (built, shipped) in [
-        ("lm/indomain-3gram.arpa", "models/demo-lm/indomain-3gram.arpa"),
+        (
+            "lm/indomain-3gram.arpa",
+            "models/demo-lm/indomain-3gram.arpa",
+        ),
         ("lm/mixed-3gram.arpa", "models/demo-lm/mixed-3gram.arpa"),
-        ("lexicon-grapheme.tsv", "models/demo-lm/lexicon-grapheme.tsv"),
+        (
+            "lexicon-grapheme.tsv",
+            "models/demo-lm/lexicon-grapheme.tsv",
+        ),
     ] {
         assert!(
             std::fs::read(out.path().join(built)).unwrap() == std::fs::read(repo(shipped)).unwrap(),

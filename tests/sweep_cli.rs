@@ -262,3 +262,33 @@ fn cells_equal_separate_transcribe_and_score_runs_and_caches_recompute_what_chan
     let other_model = run_sweep(&config);
     assert_eq!(other_model["acoustic_runs"], 8);
 }
+
+#[test]
+fn the_shipped_demo_sweep_reads_and_pairs_each_model_with_its_lexicon() {
+    let sweep = isogloss_sweep::Sweep::read(&repo("configs/sweep-demo.toml"))
+        .unwrap_or_else(|e| panic!("configs/sweep-demo.toml: {e}"));
+    assert_eq!(sweep.columns, ["dialectal", "normalized"]);
+    assert_eq!(sweep.lms.len(), 16);
+    assert_eq!(sweep.lexicons.len(), 2);
+    // 2 models × 2 writings × 16 LMs × 2 lexicons; the sweep leaves out the 64 pairs whose units
+    // do not fit (grapheme model × phone lexicon and the reverse) when it runs.
+    assert_eq!(sweep.cells().len(), 128);
+    let units = |dir: &str| {
+        isogloss_acoustic::AcousticModel::load(&repo(dir))
+            .unwrap()
+            .units()
+            .to_vec()
+    };
+    let (graphemes, phones) = (units("models/demo"), units("models/demo-phones"));
+    assert!(graphemes.iter().any(|u| u == "a"));
+    // Every phone the shipped rule lexicon uses is a unit of the phone model.
+    let rules = Lexicon::read(&repo("models/demo-lm/lexicon-rules.tsv")).unwrap();
+    for (word, pronunciation) in &rules.entries {
+        for phone in pronunciation {
+            assert!(
+                phones.contains(phone),
+                "{word}: phone {phone} is not a unit of models/demo-phones"
+            );
+        }
+    }
+}

@@ -579,19 +579,20 @@ impl Sweep {
     /// Every cell of the grid, in a fixed order (model, column, LM, lexicon, beam, and — unless
     /// tuned on dev — LM weight and word bonus).
     pub fn cells(&self) -> Vec<Cell> {
-        let (weights, bonuses): (Vec<Option<f32>>, Vec<Option<f32>>) = if self.decoder.tuning != Tuning::None {
-            (vec![None], vec![None])
-        } else {
-            (
-                self.decoder.lm_weights.iter().copied().map(Some).collect(),
-                self.decoder
-                    .word_bonuses
-                    .iter()
-                    .copied()
-                    .map(Some)
-                    .collect(),
-            )
-        };
+        let (weights, bonuses): (Vec<Option<f32>>, Vec<Option<f32>>) =
+            if self.decoder.tuning != Tuning::None {
+                (vec![None], vec![None])
+            } else {
+                (
+                    self.decoder.lm_weights.iter().copied().map(Some).collect(),
+                    self.decoder
+                        .word_bonuses
+                        .iter()
+                        .copied()
+                        .map(Some)
+                        .collect(),
+                )
+            };
         let mut cells = Vec::new();
         for model in 0..self.models.len() {
             for column in 0..self.columns.len() {

@@ -333,6 +333,7 @@ pub fn run(
     // 3. The cells, after leaving out model × lexicon pairs whose units do not fit.
     let mut graphs: HashMap<(usize, usize, usize, usize), SearchGraph> = HashMap::new();
     let mut cells: Vec<Cell> = Vec::new();
+    let mut left_out = std::collections::HashSet::new();
     for cell in sweep.cells() {
         let graph_key = (cell.model, cell.column, cell.lm, cell.lexicon);
         if let std::collections::hash_map::Entry::Vacant(slot) = graphs.entry(graph_key) {
@@ -356,7 +357,8 @@ pub fn run(
                         "model {} × lexicon {} left out: {error}",
                         passes[cell.model].name, sweep.lexicons[cell.lexicon].name
                     );
-                    if !results.skipped.contains(&reason) {
+                    // One note per model × lexicon pair, not one per writing and LM vocabulary.
+                    if left_out.insert((cell.model, cell.lexicon)) {
                         progress(SweepEvent::Note(reason.clone()));
                         results.skipped.push(reason);
                     }
@@ -534,7 +536,9 @@ pub fn tune(
     dev_wer: &mut dyn FnMut(f32, f32) -> Result<f64, SweepError>,
 ) -> Result<(f32, f32, Vec<(f32, f32, f64)>), SweepError> {
     if weights.is_empty() || bonuses.is_empty() {
-        return Err(SweepError::Build("tuning needs at least one LM weight and one word bonus".into()));
+        return Err(SweepError::Build(
+            "tuning needs at least one LM weight and one word bonus".into(),
+        ));
     }
     let mut tried: Vec<(usize, usize, f64)> = Vec::new();
     let mut measure = |i: usize, j: usize, tried: &mut Vec<(usize, usize, f64)>| {
@@ -731,9 +735,14 @@ mod tests {
         let bonuses = [0.0, 1.0, 2.0, 3.0, 4.0];
         // Optimum at the corner (1.8, 0.0), with the two settings interacting.
         let surface = |w: f32, b: f32| f64::from((w - 1.8).powi(2) + (b - 0.5 * w + 0.9).powi(2));
-        let grid = tune(Tuning::Grid, &weights, &bonuses, &mut |w, b| Ok(surface(w, b))).unwrap();
-        let coordinate =
-            tune(Tuning::Coordinate, &weights, &bonuses, &mut |w, b| Ok(surface(w, b))).unwrap();
+        let grid = tune(Tuning::Grid, &weights, &bonuses, &mut |w, b| {
+            Ok(surface(w, b))
+        })
+        .unwrap();
+        let coordinate = tune(Tuning::Coordinate, &weights, &bonuses, &mut |w, b| {
+            Ok(surface(w, b))
+        })
+        .unwrap();
         assert_eq!((grid.0, grid.1), (1.8, 0.0));
         assert_eq!((coordinate.0, coordinate.1), (grid.0, grid.1));
         assert!(coordinate.2.len() < grid.2.len());
@@ -753,6 +762,9 @@ mod tests {
         let result = tune(Tuning::Coordinate, &[1.0], &[1.0], &mut |_, _| {
             Err(SweepError::Build("dev decoding failed".into()))
         });
-        assert!(result.unwrap_err().to_string().contains("dev decoding failed"));
+        assert!(result
+            .unwrap_err()
+            .to_string()
+            .contains("dev decoding failed"));
     }
 }

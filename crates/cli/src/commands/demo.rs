@@ -62,14 +62,14 @@ pub struct DemoArgs {
     /// Report folder (created; earlier results in it are reused where nothing changed).
     #[arg(long, default_value = "demo-report")]
     out: PathBuf,
-    /// Retrain a small model from scratch first (about 10 minutes on two cores) and use it.
+    /// Retrain a small model from scratch first (about 6 minutes on two cores) and use it.
     #[arg(long)]
     train: bool,
     /// Architecture and training settings for --train.
     #[arg(long, default_value = "configs/tdnn-demo.toml")]
     config: PathBuf,
     /// Epochs for --train.
-    #[arg(long, default_value_t = 10)]
+    #[arg(long, default_value_t = 25)]
     epochs: usize,
     /// The long recording transcribed to WebVTT (relative to --data).
     #[arg(long, default_value = "interviews/interview1.ogg")]
@@ -183,7 +183,10 @@ pub fn run(args: DemoArgs) -> anyhow::Result<Outcome> {
     };
 
     // 3–4. LMs, lexicon, posteriors and the LM cells: a two-cell sweep.
-    step(3, "building the language models and transcribing the test split");
+    step(
+        3,
+        "building the language models and transcribing the test split",
+    );
     let lms = vec![
         LmChoice::Recipe {
             name: "in-domain 3-gram".into(),
@@ -392,7 +395,10 @@ pub fn run(args: DemoArgs) -> anyhow::Result<Outcome> {
         .map(|info| info.duration_seconds)
         .unwrap_or(0.0);
     if let Outcome::SomeItemsFailed = super::transcribe::run(transcribe)? {
-        bail!("{}: the interview could not be transcribed", interview.display());
+        bail!(
+            "{}: the interview could not be transcribed",
+            interview.display()
+        );
     }
     eprintln!(
         "  {} ({:.1} min of audio in {:.1} s)",
@@ -530,12 +536,7 @@ fn render_table(systems: &[System], chosen: &System) -> String {
     text
 }
 
-fn render_markdown(
-    systems: &[System],
-    chosen: &System,
-    audio_seconds: &f64,
-    vtt: &Path,
-) -> String {
+fn render_markdown(systems: &[System], chosen: &System, audio_seconds: &f64, vtt: &Path) -> String {
     let mut text = String::new();
     let _ = writeln!(text, "# isogloss demo report\n");
     let _ = writeln!(

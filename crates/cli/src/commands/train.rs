@@ -61,7 +61,7 @@ pub fn run(args: TrainArgs) -> anyhow::Result<Outcome> {
         lexicon: args.lexicon,
     };
     let summary = train_with_progress(&options)
-    .with_context(|| format!("training into {}", args.out.display()))?;
+        .with_context(|| format!("training into {}", args.out.display()))?;
     if !summary.skipped_utterances.is_empty() {
         eprintln!(
             "{} training utterances were skipped: their labels do not fit their frames",
@@ -112,7 +112,10 @@ pub fn train_with_progress(
             None => eprintln!("warning: {message}"),
         },
         PipelineEvent::Training(TrainingEvent::EpochStart { epoch, frames, .. }) => {
-            bar = Some(crate::progress::bar(*frames as u64, &format!("epoch {epoch}")));
+            bar = Some(crate::progress::bar(
+                *frames as u64,
+                &format!("epoch {epoch}"),
+            ));
         }
         PipelineEvent::Training(TrainingEvent::Batch {
             loss,
