@@ -482,9 +482,9 @@ fn flexible_scoring_forgives_the_eye_dialect_spellings() {
 /// lengths the generator measured on the uncompressed audio before encoding. libsndfile
 /// (`scripts/reference/demo_corpus_durations.py`: 922 files, 0 mismatches) and the Ogg granule
 /// positions (`ogg_streams_are_16k_mono_and_as_long_as_stated`) agree with `durations.tsv`
-/// exactly; `isogloss_audio` decodes 26 of the 922 files 4 to 495 samples too long (it does not
-/// trim the last Vorbis block to the final granule position), so the exact check is ignored
-/// until that is fixed and this one guards against lost audio and gross errors meanwhile.
+/// exactly. `isogloss_audio` once decoded 26 of the 922 files 4 to 495 samples too long (the last
+/// Vorbis block was not trimmed to the final granule position); the exact check below guards
+/// that, and this one names lost audio or gross errors plainly.
 #[test]
 fn decoded_audio_is_at_least_as_long_as_stated() {
     for (audio, samples) in read_durations() {
@@ -502,7 +502,6 @@ fn decoded_audio_is_at_least_as_long_as_stated() {
 }
 
 #[test]
-#[ignore = "isogloss_audio does not trim Ogg Vorbis to the final granule position (26 files)"]
 fn decoded_audio_is_exactly_as_long_as_stated() {
     let wrong: Vec<String> = read_durations()
         .into_iter()

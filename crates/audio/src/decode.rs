@@ -7,7 +7,7 @@ use std::io::{BufReader, ErrorKind, Read};
 use std::path::{Path, PathBuf};
 
 use symphonia::core::audio::SampleBuffer;
-use symphonia::core::codecs::{Decoder, DecoderOptions, CODEC_TYPE_NULL};
+use symphonia::core::codecs::{Decoder, DecoderOptions, CODEC_TYPE_NULL, CODEC_TYPE_VORBIS};
 use symphonia::core::errors::Error as SymphoniaError;
 use symphonia::core::formats::{FormatOptions, FormatReader};
 use symphonia::core::io::MediaSourceStream;
@@ -42,6 +42,12 @@ enum Inner {
         decoder: Box<dyn Decoder>,
         track_id: u32,
         buffer: Option<SampleBuffer<f32>>,
+        /// Frames the stream holds by its container, where that count is exact and the decoder
+        /// may deliver more: Ogg Vorbis, whose last page's granule position is the exact length
+        /// while the last decoded block can run past it (the Vorbis I specification, appendix
+        /// A.2, cited from memory: a final granule position below the decoded total trims the
+        /// end of the last packet).
+        exact_length: Option<u64>,
     },
 }
 
@@ -183,6 +189,9 @@ fn open_compressed(path: &Path) -> Result<Source, AudioError> {
             decoder,
             track_id,
             buffer: None,
+            exact_length: params
+                .n_frames
+                .filter(|_| params.codec == CODEC_TYPE_VORBIS),
         },
     })
 }
@@ -275,6 +284,7 @@ impl Source {
                 decoder,
                 track_id,
                 buffer,
+                exact_length,
             } => loop {
                 let packet = match format.next_packet() {
                     Ok(packet) => packet,
@@ -327,6 +337,10 @@ impl Source {
                 buffer.copy_interleaved_ref(decoded);
                 for frame in buffer.samples().chunks_exact(channels) {
                     out.push(frame.iter().sum::<f32>() / channels as f32);
+                }
+                if let Some(length) = *exact_length {
+                    let room = length.saturating_sub(self.frames_read) as usize;
+                    out.truncate(before + room.min(out.len() - before));
                 }
                 if self.channels == 0 {
                     self.channels = channels as u16;
