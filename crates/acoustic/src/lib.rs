@@ -24,11 +24,11 @@
 //! forward and backward, the training step spent most of its time outside the matrix products.
 //!
 //! Training speed (benchmark `train_step`, batch 16 × 600 frames, the `tdnn-small` model, two
-//! threads, on a shared 2-core machine; see `DEVELOPERS.md` for the commands): medians of three
-//! interleaved rounds, 7 664 frames/s with the fused layers, 1 547 frames/s with the layers as
-//! candle primitives, 3 402 frames/s for the same network in PyTorch 2.15 — 2.25× PyTorch
-//! (per-round ratios 2.11–2.25×). The step runs its matrix products at 72 % of the rate candle's
-//! matmul reaches alone on the largest layer's shape (12 % before).
+//! threads; see `DEVELOPERS.md` for the commands and all rounds): the fused layers are about 5×
+//! the layers as candle primitives. Against the same network in PyTorch 2.15 they were 2.25× on a
+//! loaded machine (medians 7 664 vs 3 402 frames/s) but only at parity on a quiet one (0.93–1.06×,
+//! about 11 800 vs 12 800 frames/s), where both steps are bound by matrix products: ours runs them
+//! at 68–85 % of the rate candle's matmul reaches alone on the largest layer's shape (12 % before).
 //!
 //! ```
 //! use isogloss_acoustic::ctc::{ctc_batch, CtcTargets};
