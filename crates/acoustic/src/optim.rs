@@ -46,6 +46,10 @@ struct FusedStep<'a> {
     grad_scale: f32,
     beta1: f32,
     beta2: f32,
+    /// `1 − β1` and `1 − β2`, computed in f64: in f32, 1 − 0.999 loses five digits
+    /// (0.999 rounds to 0.99900001), which would weight new squared gradients 1.3e-5 too little.
+    one_minus_beta1: f32,
+    one_minus_beta2: f32,
     epsilon: f32,
     decay: f32,
     correction1: f32,
@@ -90,8 +94,8 @@ impl InplaceOp2 for FusedStep<'_> {
             .zip(moments.second.iter_mut())
         {
             let g = g * self.grad_scale;
-            *m = self.beta1 * *m + (1.0 - self.beta1) * g;
-            *v = self.beta2 * *v + (1.0 - self.beta2) * g * g;
+            *m = self.beta1 * *m + self.one_minus_beta1 * g;
+            *v = self.beta2 * *v + self.one_minus_beta2 * g * g;
             let update = (*m / self.correction1) / ((*v / self.correction2).sqrt() + self.epsilon);
             *p -= self.learning_rate * (update + self.decay * *p);
         }
@@ -157,6 +161,8 @@ impl AdamW {
                 grad_scale: grad_scale as f32,
                 beta1: self.beta1 as f32,
                 beta2: self.beta2 as f32,
+                one_minus_beta1: (1.0 - self.beta1) as f32,
+                one_minus_beta2: (1.0 - self.beta2) as f32,
                 epsilon: self.epsilon as f32,
                 decay: decay as f32,
                 correction1: (1.0 - self.beta1.powi(t)) as f32,
