@@ -6,7 +6,7 @@ nltk_test.txt. Run with the project's reference venv:
 
     ../venv/bin/python scripts/reference/lm_reference.py
 
-Conventions are aligned with isogloss (DESIGN.md) where nltk lets us, and every difference is
+Conventions are aligned with isogloss (docs/language-models.md) where nltk lets us, and every difference is
 named here and in the Rust test:
   * Sentences are framed by ONE <s> and ONE </s> (nltk's pad_both_ends would add order-1 of
     each); we build the n-grams ourselves with nltk.util.everygrams.
