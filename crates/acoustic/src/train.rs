@@ -346,12 +346,7 @@ impl Trainer {
         if !norm.is_finite() {
             return Ok(None);
         }
-        let clip = self.config.training.clip_norm;
-        let scale = if clip > 0.0 && norm > clip {
-            clip / norm
-        } else {
-            1.0
-        };
+        let scale = AdamW::clip_scale(norm, self.config.training.clip_norm);
         let rate = self.learning_rate(self.optimizer.step + 1);
         self.optimizer
             .update(&self.parameters, &grads, rate, scale)?;
