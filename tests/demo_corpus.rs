@@ -1,5 +1,5 @@
 //! Checks of the committed demo corpus (`tests/data/demo`, written by `scripts/make-demo-corpus`):
-//! the manifests follow the DESIGN.md contract, the two writings are word-aligned, the splits are
+//! the manifests follow docs/formats.md, the two writings are word-aligned, the splits are
 //! speaker-disjoint, every referenced audio file exists, and the audio holds exactly as many
 //! samples as `durations.tsv` and the interview segment times state.
 
@@ -94,7 +94,7 @@ fn read_durations() -> BTreeMap<String, u64> {
         .collect()
 }
 
-/// The transcripts are already in the normal form of the scoring token rules (DESIGN.md: NFC,
+/// The transcripts are already in the normal form of the scoring token rules (docs/scoring.md: NFC,
 /// lower case, punctuation other than apostrophe and hyphen becomes a space, split on white
 /// space): only `a`–`z`, apostrophes and single spaces. So splitting on spaces gives the tokens.
 fn tokens<'a>(text: &'a str, what: &str) -> Vec<&'a str> {
@@ -123,7 +123,7 @@ fn every_row_has_word_aligned_transcripts() {
             let d = tokens(&row.dialectal, &format!("{at}, dialectal"));
             let n = tokens(&row.normalized, &format!("{at}, normalized"));
             assert_eq!(d.len(), n.len(), "{at}: {d:?} vs {n:?}");
-            // The scorer's own tokenizer (the DESIGN.md token rules) sees the same words.
+            // The scorer's own tokenizer (the token rules of docs/scoring.md) sees the same words.
             let rules = TokenRules::default();
             assert_eq!(tokenize(&row.dialectal, &rules), d, "{at}: dialectal");
             assert_eq!(tokenize(&row.normalized, &rules), n, "{at}: normalized");

@@ -16,8 +16,8 @@ Writes two fixtures next to the texts they are computed from:
    Kneser-Ney (three discounts per order) from the independent implementation below, at
    orders 2, 3 and 4.
 
-Conventions are aligned with isogloss (the conventions in the isogloss-lm crate documentation)
-where nltk lets us, and every difference is named here and in the Rust tests:
+Conventions are aligned with isogloss (docs/language-models.md) where nltk lets us, and every
+difference is named here and in the Rust tests:
   * Sentences are framed by ONE <s> and ONE </s> (nltk's pad_both_ends would add order-1 of
     each); we build the n-grams ourselves with nltk.util.everygrams.
   * Lidstone is compared at order 1 only: nltk's higher-order Lidstone adds k with a uniform

@@ -586,14 +586,14 @@ mod tests {
             model: TdnnConfig {
                 layers: vec![
                     LayerConfig {
-                        offsets: vec![-1, 0, 1],
-                        dims: 24,
-                        subsample: 1,
+                        taps: vec![-1, 0, 1],
+                        width: 24,
+                        keep_every: 1,
                     },
                     LayerConfig {
-                        offsets: vec![-1, 0, 1],
-                        dims: 24,
-                        subsample: 3,
+                        taps: vec![-1, 0, 1],
+                        width: 24,
+                        keep_every: 3,
                     },
                 ],
                 normalization: Normalization::Layer,
@@ -613,7 +613,7 @@ mod tests {
     fn units() -> UnitInventory {
         UnitInventory {
             kind: UnitKind::Phones,
-            units: ["<blk>", "a", "b", "c"]
+            units: ["<ctc-blank>", "a", "b", "c"]
                 .iter()
                 .map(|s| s.to_string())
                 .collect(),

@@ -13,7 +13,7 @@
 //!
 //! WAV is read with `hound` (8/16/24/32-bit integer and 32-bit float PCM); compressed formats
 //! with the pure-Rust `symphonia` decoders. Integer samples are scaled by 1/2^(bits−1), so 16-bit
-//! audio is divided by 32768 as the front-end contract says. Resampling uses `rubato`'s
+//! audio is divided by 32768 as `docs/features.md` specifies. Resampling uses `rubato`'s
 //! synchronous FFT resampler: an exact rational ratio with a long windowed-sinc anti-aliasing
 //! filter, fast enough for hours of audio on one core.
 //!

@@ -1,4 +1,4 @@
-//! Throughput of the default front end (MFCC + Δ + ΔΔ, and log-mel fbank) on one core, as a
+//! Throughput of the default front end (MFCC + Δ + ΔΔ, and log-mel) on one core, as a
 //! multiple of real time. A benchmark, not a test: `cargo bench -p isogloss-features`
 //! (`scripts/bench/features_bench.py` runs it beside librosa and reports the ratio).
 //!
@@ -33,7 +33,7 @@ fn main() {
     let audio = repeated_speech(seconds);
     for (name, config) in [
         ("mfcc+delta+delta-delta", FeatureConfig::default()),
-        ("fbank", FeatureConfig::fbank()),
+        ("logmel", FeatureConfig::logmel()),
     ] {
         let extractor = FeatureExtractor::new(&config).unwrap_or_else(|e| fail(&e.to_string()));
         for _ in 0..10 {

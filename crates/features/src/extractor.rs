@@ -6,7 +6,7 @@ use crate::mel::MelFilterbank;
 use crate::spectrum::PowerSpectrum;
 use crate::{FeatureConfig, FeatureError, FeatureKind};
 
-/// Turns 16 kHz mono samples into MFCC or log-mel fbank features, as its [`FeatureConfig`] says.
+/// Turns 16 kHz mono samples into MFCC or log-mel features, as its [`FeatureConfig`] says.
 ///
 /// Everything that does not depend on the signal (window, FFT plan, mel weights, DCT matrix) is
 /// computed once in [`FeatureExtractor::new`]. [`FeatureExtractor::extract`] takes `&self` and
@@ -19,7 +19,7 @@ pub struct FeatureExtractor {
     window: Vec<f32>,
     spectrum: PowerSpectrum,
     mel: MelFilterbank,
-    /// Orthonormal DCT-II rows c0…c(n−1) over the mel bins, row-major; empty for fbank.
+    /// Orthonormal DCT-II rows c0…c(n−1) over the mel bins, row-major; empty for log-mel.
     dct: Vec<f32>,
 }
 
@@ -30,20 +30,20 @@ impl FeatureExtractor {
         let mel = MelFilterbank::new(
             config.sample_rate,
             config.fft_size,
-            config.mel_bins,
-            config.low_hz,
-            config.high_hz,
+            config.mel_filters,
+            config.band_low_hz,
+            config.band_high_hz,
         )?;
         Ok(FeatureExtractor {
             config: config.clone(),
-            preemphasis: config.preemphasis as f32,
+            preemphasis: config.emphasis as f32,
             log_floor: config.log_floor as f32,
-            window: symmetric_hamming(config.frame_length),
+            window: symmetric_hamming(config.window_samples),
             spectrum: PowerSpectrum::new(config.fft_size),
             mel,
             dct: match config.kind {
-                FeatureKind::Mfcc => orthonormal_dct_ii(config.cepstra, config.mel_bins),
-                FeatureKind::Fbank => Vec::new(),
+                FeatureKind::Mfcc => orthonormal_dct_ii(config.cepstra, config.mel_filters),
+                FeatureKind::LogMel => Vec::new(),
             },
         })
     }
@@ -63,7 +63,7 @@ impl FeatureExtractor {
         &self.mel
     }
 
-    /// Features of one utterance, `[frames, dims]` with frames = 1 + ⌊(N − frame_length)/frame_shift⌋
+    /// Features of one utterance, `[frames, dims]` with frames = 1 + ⌊(N − window_samples)/hop_samples⌋
     /// (0 frames when the signal is shorter than one frame). Samples are expected in [−1, 1] at the
     /// configured sample rate; no normalisation is applied (see [`crate::Cmvn`]).
     pub fn extract(&self, samples: &[f32]) -> Array2<f32> {
@@ -96,7 +96,7 @@ impl FeatureExtractor {
                 dims,
                 (order - 1) * static_dims..order * static_dims,
                 order * static_dims,
-                config.delta_window,
+                config.slope_reach,
                 &mut delta,
             );
         }
@@ -122,17 +122,17 @@ impl FeatureExtractor {
     #[inline(always)]
     fn static_features(&self, samples: &[f32], data: &mut [f32]) {
         let config = &self.config;
-        let (dims, length) = (config.dims(), config.frame_length);
+        let (dims, length) = (config.dims(), config.window_samples);
         // Pre-emphasised samples of one batch of frames: computed once per batch (frames overlap
         // 2.5-fold) into a buffer small enough to stay in the L1 cache.
-        let mut emphasised = vec![0.0f32; (BATCH - 1) * config.frame_shift + length];
+        let mut emphasised = vec![0.0f32; (BATCH - 1) * config.hop_samples + length];
         let mut buffers = self.spectrum.buffers();
         let mut power_batch = vec![[0.0f32; BATCH]; config.fft_size / 2 + 1];
-        let mut log_mel_batch = vec![[0.0f32; BATCH]; config.mel_bins];
+        let mut log_mel_batch = vec![[0.0f32; BATCH]; config.mel_filters];
         for (batch, rows) in data.chunks_mut(BATCH * dims).enumerate() {
             let frames_here = rows.len() / dims;
-            let first_sample = batch * BATCH * config.frame_shift;
-            let span = (frames_here - 1) * config.frame_shift + length;
+            let first_sample = batch * BATCH * config.hop_samples;
+            let span = (frames_here - 1) * config.hop_samples + length;
             let x = &samples[first_sample..first_sample + span];
             // y[n] = x[n] − a·x[n−1] over the whole signal, with y[0] = x[0].
             let before = if first_sample == 0 {
@@ -145,7 +145,7 @@ impl FeatureExtractor {
                 *y = now - self.preemphasis * previous;
             }
             for lane in 0..frames_here {
-                let start = lane * config.frame_shift;
+                let start = lane * config.hop_samples;
                 self.spectrum.compute(
                     &emphasised[start..start + length],
                     &self.window,
@@ -163,7 +163,7 @@ impl FeatureExtractor {
                 }
             }
             match config.kind {
-                FeatureKind::Fbank => {
+                FeatureKind::LogMel => {
                     for (lane, row) in rows.chunks_exact_mut(dims).enumerate() {
                         for (value, energies) in row.iter_mut().zip(&log_mel_batch) {
                             *value = energies[lane];
@@ -171,7 +171,7 @@ impl FeatureExtractor {
                     }
                 }
                 FeatureKind::Mfcc => {
-                    for (k, basis) in self.dct.chunks_exact(config.mel_bins).enumerate() {
+                    for (k, basis) in self.dct.chunks_exact(config.mel_filters).enumerate() {
                         let mut cepstrum = [0.0f32; BATCH];
                         for (&weight, energies) in basis.iter().zip(&log_mel_batch) {
                             for (c, &energy) in cepstrum.iter_mut().zip(energies) {
@@ -291,9 +291,9 @@ mod tests {
 
     #[test]
     fn frame_count_is_one_plus_floor_of_n_minus_400_over_160() {
-        let extractor = FeatureExtractor::new(&FeatureConfig::fbank()).unwrap();
+        let extractor = FeatureExtractor::new(&FeatureConfig::logmel()).unwrap();
         for length in [400usize, 559, 560, 1234, 16_000] {
-            // DESIGN.md "Default front end": frames = 1 + ⌊(N − 400)/160⌋.
+            // docs/features.md "The default front end": frames = 1 + ⌊(N − 400)/160⌋.
             let expected = 1 + (length - 400) / 160;
             assert_eq!(extractor.extract(&vec![0.0; length]).nrows(), expected);
         }
@@ -301,15 +301,15 @@ mod tests {
 
     #[test]
     fn silence_hits_the_log_floor() {
-        let extractor = FeatureExtractor::new(&FeatureConfig::fbank()).unwrap();
+        let extractor = FeatureExtractor::new(&FeatureConfig::logmel()).unwrap();
         let features = extractor.extract(&[0.0; 800]);
-        // ln(1e-10), the contract's floor.
+        // ln(1e-10), the default floor.
         assert!(features.iter().all(|&v| (v - (1e-10f32).ln()).abs() < 1e-4));
     }
 
     #[test]
     fn a_pure_tone_peaks_in_the_mel_band_centred_on_it() {
-        let extractor = FeatureExtractor::new(&FeatureConfig::fbank()).unwrap();
+        let extractor = FeatureExtractor::new(&FeatureConfig::logmel()).unwrap();
         let centers = extractor.mel_filterbank().centers_hz().to_vec();
         for band in [5usize, 17, 30] {
             let hz = centers[band];

@@ -2,7 +2,8 @@
 
 use crate::FeatureError;
 
-/// Hertz to mel by O'Shaughnessy's formula, mel = 2595·log10(1 + f/700) (the "HTK" mel scale).
+/// Hertz to mel by the published formula of O'Shaughnessy (1987, *Speech Communication: Human
+/// and Machine*), mel = 2595·log10(1 + f/700).
 pub fn hz_to_mel(hz: f64) -> f64 {
     2595.0 * (1.0 + hz / 700.0).log10()
 }
@@ -65,7 +66,7 @@ impl MelFilterbank {
             }
             let Some(first_bin) = first_bin else {
                 return Err(FeatureError::InvalidConfig {
-                    setting: "mel_bins",
+                    setting: "mel_filters",
                     expected: format!(
                         "few enough that every filter covers an FFT bin ({bin_hz} Hz apart)"
                     ),
@@ -158,6 +159,6 @@ mod tests {
     #[test]
     fn too_many_filters_for_the_fft_is_a_config_error() {
         let error = MelFilterbank::new(16_000, 512, 200, 20.0, 8000.0).unwrap_err();
-        assert!(error.to_string().contains("mel_bins"), "{error}");
+        assert!(error.to_string().contains("mel_filters"), "{error}");
     }
 }

@@ -1,9 +1,9 @@
 //! Bootstrap intervals against an outside reference: `scipy.stats.bootstrap` with the percentile
 //! method, on 150 generated utterances (fixture made by `scripts/reference/bootstrap_reference.py`).
 //!
-//! isogloss and scipy draw different replicates, so the bounds agree only up to Monte-Carlo
+//! isogloss and scipy draw different resamples, so the bounds agree only up to Monte-Carlo
 //! error. The script derives, for each bound, the standard deviation of the difference between
-//! an isogloss interval of `isogloss_resamples` replicates and scipy's of `reference_resamples`
+//! an isogloss interval of `isogloss_resamples` resamples and scipy's of `reference_resamples`
 //! (asymptotic variance of a sample quantile, checked against the measured spread of repeated
 //! scipy runs; the larger of the two), and records 4 standard deviations as the tolerance. The
 //! fixture's contrasts (the 90 % interval, the unpaired difference) show that the tolerances
@@ -42,11 +42,11 @@ fn systems(fixture: &Value) -> (Vec<UtteranceErrors>, Vec<UtteranceErrors>) {
         .unzip()
 }
 
-fn options(fixture: &Value, level: f64) -> BootstrapOptions {
+fn options(fixture: &Value, confidence: f64) -> BootstrapOptions {
     BootstrapOptions {
         resamples: fixture["isogloss_resamples"].as_u64().unwrap() as usize,
         seed: 1,
-        level,
+        confidence,
     }
 }
 
@@ -101,7 +101,7 @@ fn paired_difference_matches_scipy_percentile_bootstrap() {
     assert!(distance(&ours.difference_interval, &expected["unpaired_interval"]) > 3.0);
     let probability = expected["probability_system2_better"].as_f64().unwrap();
     let tolerance = expected["probability_tolerance"].as_f64().unwrap();
-    // Share of scipy's replicates with rate(2) < rate(1), within 4 binomial sd.
+    // Share of scipy's resamples with rate(2) < rate(1), within 4 binomial sd.
     assert!(
         (ours.probability_system2_better - probability).abs() <= tolerance,
         "{} vs scipy {probability} ± {tolerance}",
