@@ -7,7 +7,8 @@
 //!   subsampling; parameters named `layers.{i}.weight` etc.
 //! * [`optim`] — AdamW updating parameters in place; [`train`] — the training loop (bucketed
 //!   batches, warm-up and decay, clipping, early stopping, atomic checkpoints, exact resume);
-//!   [`pipeline`] — manifests to cached features to a model directory, and back to posteriors.
+//!   [`pipeline`] — manifests to cached features to a model directory, and back to posteriors;
+//!   [`log`] — the training log read back and the training curve drawn from it.
 //! * [`model`] — `model.toml` + `model.safetensors`, [`AcousticModel::log_posteriors`] and
 //!   [`greedy_decode`].
 //!
@@ -47,6 +48,7 @@ pub mod ctc;
 mod fused;
 pub mod greedy;
 pub mod io;
+pub mod log;
 pub mod model;
 pub mod optim;
 pub mod pipeline;
@@ -98,6 +100,16 @@ pub enum AcousticError {
         /// The checkpoint file.
         path: PathBuf,
         /// What is wrong with it.
+        problem: String,
+    },
+    /// A line of the training log that cannot be read.
+    #[error("{path}, line {line}: {problem}")]
+    Log {
+        /// The log file.
+        path: PathBuf,
+        /// 1-based line.
+        line: usize,
+        /// What was expected and what was found.
         problem: String,
     },
     /// Input that cannot be used (empty manifest, nothing to resume, …).

@@ -65,7 +65,7 @@ pub fn run(args: SweepArgs) -> anyhow::Result<Outcome> {
     write("results.csv", csv(&results))?;
     let json = serde_json::to_string_pretty(&results)?;
     write("results.json", json.clone())?;
-    chart(&results, &out.join("chart.svg"))?;
+    write("chart.svg", chart(&results))?;
     if args.json {
         println!("{json}");
     } else {
