@@ -428,7 +428,7 @@ impl Shard {
 pub enum FormatArg {
     /// `id<TAB>text`, for `isogloss score`.
     Tsv,
-    /// Words with times and confidences.
+    /// The transcript JSON (docs/formats.md): stretches of speech with timed words.
     Json,
     /// WebVTT subtitles (one file per recording when there are several).
     Vtt,
