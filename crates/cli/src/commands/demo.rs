@@ -35,7 +35,7 @@ use isogloss_sweep::report::{error_rate_bars, training_curve};
 use isogloss_sweep::resources::{build_lexicon, build_lm, lm_words};
 use isogloss_sweep::{run as sweep_run, LexiconChoice, LexiconKind, LmChoice, Sweep, SweepEvent};
 
-use super::decode::{FormatArg, TranscribeArgs};
+use super::transcribe::{FormatArg, TranscribeArgs};
 use crate::Outcome;
 
 /// Decoder settings of the demo: the decoder's defaults, which were tuned on this demo's dev
