@@ -50,7 +50,12 @@ fn image_source_responses_equal_pyroomacoustics_shoebox() {
         let expected = numbers(&room_value["rir"]);
         let ours = image_source_rir(&room, &settings);
         // pyroomacoustics allocates a few samples more than the last tap needs; they are zero.
-        assert!(ours.len() <= expected.len(), "{} > {}", ours.len(), expected.len());
+        assert!(
+            ours.len() <= expected.len(),
+            "{} > {}",
+            ours.len(),
+            expected.len()
+        );
         assert!(expected[ours.len()..].iter().all(|&v| v == 0.0));
         let peak = expected.iter().fold(0.0f64, |m, v| m.max(v.abs()));
         let worst = ours
@@ -92,7 +97,10 @@ fn sabine_absorption_equals_pyroomacoustics_inverse_sabine() {
         let ours = sabine_absorption(rt60, dimensions, 343.0);
         // pyroomacoustics.inverse_sabine, same formula: equal to rounding.
         let expected = case["absorption"].as_f64().unwrap();
-        assert!((ours - expected).abs() < 1e-12, "{dimensions:?}: {ours} vs {expected}");
+        assert!(
+            (ours - expected).abs() < 1e-12,
+            "{dimensions:?}: {ours} vs {expected}"
+        );
     }
 }
 

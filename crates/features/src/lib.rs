@@ -1,5 +1,6 @@
-//! Acoustic front end of isogloss: MFCC and log-mel fbank features, deltas, CMVN and SpecAugment
-//! masks, and the safetensors feature files that cache them.
+//! Acoustic front end of isogloss: MFCC and log-mel fbank features, deltas, CMVN, SpecAugment
+//! masks, vocal-tract length perturbation ([`vtlp`]), and the safetensors feature files that
+//! cache them.
 //!
 //! The default [`FeatureConfig`] is the front end pinned in the project's design (16 kHz,
 //! pre-emphasis 0.97, 25 ms Hamming frames every 10 ms, 512-point power spectrum, 40 HTK mel
@@ -38,6 +39,7 @@ mod io;
 pub mod mel;
 mod specaugment;
 mod spectrum;
+pub mod vtlp;
 
 pub use cmvn::{Cmvn, CmvnStats, SpeakerCmvnStats};
 pub use config::{CmvnMode, FeatureConfig, FeatureKind};
@@ -45,3 +47,4 @@ pub use error::FeatureError;
 pub use extractor::FeatureExtractor;
 pub use io::{read_features, write_features, FEATURES_TENSOR};
 pub use specaugment::{MaskFill, SpecAugment};
+pub use vtlp::{VtlpConfig, VtlpWarp};
