@@ -171,7 +171,7 @@ mod tests {
         // above, the slope is (8000 − 4800)/(8000 − 4363.64) = 3200/3636.36 = 0.88, so
         // W(6000) = 8000 − 0.88·2000 = 6240 (Jaitly & Hinton 2013 eq. 1, worked by hand).
         let up = VtlpWarp::new(1.1, 4800.0, 16_000).unwrap();
-        assert!((up.breakpoint_hz() - 4363.636_363_636_364).abs() < 1e-9);
+        assert!((up.breakpoint_hz() - 4_363.636_363_636_364).abs() < 1e-9);
         assert!((up.apply(1000.0) - 1100.0).abs() < 1e-9);
         assert!((up.apply(6000.0) - 6240.0).abs() < 1e-9);
         // α = 0.9: F_b = 4800, W(4800) = 4320, slope (8000 − 4320)/(8000 − 4800) = 1.15,

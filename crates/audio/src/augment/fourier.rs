@@ -48,10 +48,31 @@ impl std::fmt::Debug for FftPlans {
     }
 }
 
+/// The smallest length ≥ `n` whose only prime factors are 2, 3 and 5, for which `rustfft` has
+/// fast algorithms; at most 1.25 × n for the lengths of utterances, where a power of two can
+/// be nearly 2 × n.
+pub(crate) fn fast_length(n: usize) -> usize {
+    let mut best = n.next_power_of_two();
+    let mut five = 1;
+    while five < best {
+        let mut three = five;
+        while three < best {
+            let mut candidate = three;
+            while candidate < n {
+                candidate *= 2;
+            }
+            best = best.min(candidate);
+            three *= 3;
+        }
+        five *= 5;
+    }
+    best
+}
+
 /// Full linear convolution `x * h` (length `x.len() + h.len() − 1`) by FFT.
 ///
-/// Both real signals travel in one complex FFT of length M (the next power of two that holds the
-/// result), packed as z = x + i·h; their spectra are untangled with X[k] = (Z[k] + Z*[M−k])/2 and
+/// Both real signals travel in one complex FFT of length M (the first [`fast_length`] that holds
+/// the result), packed as z = x + i·h; their spectra are untangled with X[k] = (Z[k] + Z*[M−k])/2 and
 /// H[k] = (Z[k] − Z*[M−k])/(2i), multiplied, and one inverse FFT gives the result. Two FFTs of
 /// length M in all, where the textbook method needs three.
 pub fn convolve(x: &[f32], h: &[f32], plans: &FftPlans) -> Vec<f32> {
@@ -59,7 +80,7 @@ pub fn convolve(x: &[f32], h: &[f32], plans: &FftPlans) -> Vec<f32> {
         return Vec::new();
     }
     let length = x.len() + h.len() - 1;
-    let size = length.next_power_of_two().max(2);
+    let size = fast_length(length.max(2));
     let mut z = vec![Complex::<f32>::default(); size];
     for (slot, &value) in z.iter_mut().zip(x) {
         slot.re = value;
@@ -98,9 +119,27 @@ mod tests {
     }
 
     #[test]
+    fn fast_lengths_are_5_smooth_and_minimal() {
+        let smooth = |mut n: usize| {
+            for p in [2, 3, 5] {
+                while n % p == 0 {
+                    n /= p;
+                }
+            }
+            n == 1
+        };
+        for n in 1..2_000 {
+            let m = fast_length(n);
+            assert!(m >= n && smooth(m), "{n} → {m}");
+            assert!((n..m).all(|k| !smooth(k)), "{n} → {m}");
+        }
+        assert_eq!(fast_length(80_000), 80_000);
+    }
+
+    #[test]
     fn equals_the_direct_sum() {
         let plans = FftPlans::new();
-        for (nx, nh) in [(1, 1), (5, 3), (100, 37), (1000, 513), (64, 64)] {
+        for (nx, nh) in [(1, 1), (5, 3), (100, 37), (1000, 513), (64, 64), (997, 1)] {
             let x: Vec<f32> = (0..nx).map(|i| ((i * i) as f32 * 0.37).sin()).collect();
             let h: Vec<f32> = (0..nh)
                 .map(|i| (i as f32 * 1.3).cos() / (1.0 + i as f32))

@@ -574,7 +574,7 @@ impl Augmenter {
 }
 
 /// A value drawn uniformly in `[low, high]` (`low` itself when the range is a point).
-fn draw<R: Rng + ?Sized>(rng: &mut R, [low, high]: [f64; 2]) -> f64 {
+pub(crate) fn draw<R: Rng + ?Sized>(rng: &mut R, [low, high]: [f64; 2]) -> f64 {
     if high > low {
         rng.random_range(low..=high)
     } else {
@@ -765,6 +765,12 @@ mod tests {
         assert!(applied.gain_db.is_some_and(|db| (-6.0..=6.0).contains(&db)));
         assert_eq!(first.len(), 24_000);
         assert!(first.iter().all(|x| x.is_finite()));
+    }
+
+    #[test]
+    fn an_augmenter_can_be_shared_by_training_threads() {
+        fn shareable<T: Send + Sync>() {}
+        shareable::<Augmenter>();
     }
 
     #[test]

@@ -4,10 +4,11 @@
 use std::borrow::Cow;
 
 use rand::Rng;
+use rand_distr::StandardNormal;
 use rustfft::num_complex::Complex;
 use serde::{Deserialize, Serialize};
 
-use super::fourier::FftPlans;
+use super::fourier::{fast_length, FftPlans};
 
 /// Length of the cross-fade where a looped noise source joins its own start (10 ms at 16 kHz),
 /// or half the source when it is shorter than two of these.
@@ -65,22 +66,14 @@ impl BabbleSource for Vec<Vec<f32>> {
     }
 }
 
-/// One standard normal value by the Box–Muller transform (textbook; `rand` alone has no normal
-/// distribution).
-fn standard_normal<R: Rng + ?Sized>(rng: &mut R) -> f64 {
-    // 1 − U lies in (0, 1], so the logarithm is finite.
-    let radius = (-2.0 * (1.0 - rng.random::<f64>()).ln()).sqrt();
-    let angle = 2.0 * std::f64::consts::PI * rng.random::<f64>();
-    radius * angle.cos()
-}
-
 /// `length` samples of Gaussian noise whose power spectrum falls as 1/f^`exponent` (0 white,
 /// 1 pink, 2 brown), with unit mean power.
 ///
-/// White Gaussian noise of M samples (M the next power of two) is transformed, every bin k
-/// (and its mirror M−k) is scaled by f_k^(−β/2) for f_k ≥ [`COLOURED_NOISE_LOW_HZ`] and set to
-/// zero below, transformed back, and the first `length` samples kept and scaled to unit power.
-/// White noise skips the transforms.
+/// White noise is drawn sample by sample. Coloured noise is drawn in the frequency domain: the
+/// spectrum of white Gaussian noise of M samples (M the first FFT-friendly length ≥ `length`)
+/// has independent complex Gaussian bins X[k], X[M−k] = X*[k]; each bin is drawn so and scaled
+/// by f_k^(−β/2) for f_k ≥ [`COLOURED_NOISE_LOW_HZ`] (zero below), one inverse FFT gives the
+/// noise, and the first `length` samples are kept and scaled to unit power.
 pub fn coloured_noise<R: Rng + ?Sized>(
     length: usize,
     exponent: f64,
@@ -92,21 +85,31 @@ pub fn coloured_noise<R: Rng + ?Sized>(
         return Vec::new();
     }
     let mut noise: Vec<f32> = if exponent == 0.0 {
-        (0..length).map(|_| standard_normal(rng) as f32).collect()
+        (0..length).map(|_| rng.sample(StandardNormal)).collect()
     } else {
-        let size = length.next_power_of_two().max(2);
-        let mut spectrum: Vec<Complex<f32>> = (0..size)
-            .map(|_| Complex::new(standard_normal(rng) as f32, 0.0))
-            .collect();
-        plans.forward(size).process(&mut spectrum);
+        let size = fast_length(length.max(2));
+        let mut spectrum = vec![Complex::<f32>::default(); size];
         let bin_hz = f64::from(sample_rate) / size as f64;
-        for (k, value) in spectrum.iter_mut().enumerate() {
-            let hz = k.min(size - k) as f64 * bin_hz;
-            *value *= if hz < COLOURED_NOISE_LOW_HZ {
+        for k in 1..=size / 2 {
+            let hz = k as f64 * bin_hz;
+            let weight = if hz < COLOURED_NOISE_LOW_HZ {
                 0.0
+            } else if exponent == 1.0 {
+                // Pink and brown without a power function: a third of the generation time.
+                (1.0 / hz.sqrt()) as f32
+            } else if exponent == 2.0 {
+                (1.0 / hz) as f32
             } else {
                 hz.powf(-exponent / 2.0) as f32
             };
+            let (re, im): (f32, f32) = (rng.sample(StandardNormal), rng.sample(StandardNormal));
+            if 2 * k == size {
+                // The Nyquist bin of an even length is real; √2 gives it a complex bin's power.
+                spectrum[k] = Complex::new(weight * re * std::f32::consts::SQRT_2, 0.0);
+            } else {
+                spectrum[k] = Complex::new(weight * re, weight * im);
+                spectrum[size - k] = spectrum[k].conj();
+            }
         }
         plans.inverse(size).process(&mut spectrum);
         spectrum[..length].iter().map(|c| c.re).collect()
