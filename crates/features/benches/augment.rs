@@ -1,6 +1,6 @@
 //! Cost of each augmentation per second of audio, beside the cost of MFCC extraction of the same
 //! audio, so that the price of on-the-fly augmentation in a training loop is known. A benchmark,
-//! not a test: `cargo bench -p isogloss-audio --bench augment`.
+//! not a test: `cargo bench -p isogloss-features --bench augment`.
 //!
 //! Flags after `--`: `--seconds S` utterance length (default 5, the committed espeak-ng sentence
 //! repeated), `--runs R` timed runs per step (default 21, after 3 warm-up runs), `--bank N` room
@@ -9,8 +9,9 @@
 //! Times are the calling thread's CPU time (medians), which on a shared machine is the cost of
 //! the work itself; the bank is built on all rayon threads and is timed by the wall clock.
 
+mod support;
+
 use std::hint::black_box;
-use std::path::Path;
 use std::time::Instant;
 
 use isogloss_audio::augment::{
@@ -22,6 +23,7 @@ use isogloss_features::mel::MelFilterbank;
 use isogloss_features::{FeatureConfig, FeatureExtractor, VtlpWarp};
 use rand::SeedableRng;
 use rand_chacha::ChaCha8Rng;
+use support::{fail, parse, repeated_speech, thread_cpu_seconds};
 
 fn main() {
     let mut seconds = 5.0f64;
@@ -245,38 +247,4 @@ fn median_usize(values: &[usize]) -> usize {
     let mut sorted = values.to_vec();
     sorted.sort_unstable();
     sorted[sorted.len() / 2]
-}
-
-/// The committed 16 kHz test sentence, repeated to `seconds` of audio.
-fn repeated_speech(seconds: f64) -> Vec<f32> {
-    let path =
-        Path::new(env!("CARGO_MANIFEST_DIR")).join("../../tests/fixtures/features/speech.wav");
-    let sentence = isogloss_audio::read_mono_16k(&path).unwrap_or_else(|e| fail(&e.to_string()));
-    let wanted = (seconds * 16_000.0) as usize;
-    sentence.iter().copied().cycle().take(wanted).collect()
-}
-
-/// CPU time consumed by the calling thread, in seconds.
-fn thread_cpu_seconds() -> f64 {
-    let mut now = libc::timespec {
-        tv_sec: 0,
-        tv_nsec: 0,
-    };
-    // SAFETY: clock_gettime writes one timespec through a valid pointer to a local.
-    let status = unsafe { libc::clock_gettime(libc::CLOCK_THREAD_CPUTIME_ID, &mut now) };
-    if status != 0 {
-        fail("the thread CPU clock is not available");
-    }
-    now.tv_sec as f64 + now.tv_nsec as f64 * 1e-9
-}
-
-fn parse<T: std::str::FromStr>(value: Option<String>, flag: &str) -> T {
-    value
-        .and_then(|v| v.parse().ok())
-        .unwrap_or_else(|| fail(&format!("{flag} needs a number")))
-}
-
-fn fail(message: &str) -> ! {
-    eprintln!("augment bench: {message}");
-    std::process::exit(1)
 }
