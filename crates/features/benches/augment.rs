@@ -16,7 +16,7 @@ use std::time::Instant;
 
 use isogloss_audio::augment::{
     babble, band_limit, coloured_noise, mix_at_snr, reverberate, AugmentConfig, Augmenter,
-    BandLimitConfig, GainConfig, NoiseConfig, ReverbConfig, RirBank,
+    ReverbConfig, RirBank,
 };
 use isogloss_audio::volume_perturb;
 use isogloss_features::mel::MelFilterbank;
@@ -161,23 +161,10 @@ fn main() {
     );
 
     let everything = AugmentConfig {
-        noise: NoiseConfig {
-            probability: 1.0,
-            ..NoiseConfig::default()
-        },
-        reverb: ReverbConfig {
-            probability: 1.0,
-            ..reverb.clone()
-        },
-        band_limit: BandLimitConfig {
-            probability: 1.0,
-            ..BandLimitConfig::default()
-        },
-        gain: GainConfig {
-            probability: 1.0,
-            ..GainConfig::default()
-        },
-    };
+        reverb: reverb.clone(),
+        ..AugmentConfig::default()
+    }
+    .every_step();
     for (name, config, draws) in [
         ("whole chain, every step drawn", everything, runs),
         // Most utterances draw little with the default probabilities: a mean over many.

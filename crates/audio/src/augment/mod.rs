@@ -234,6 +234,16 @@ fn check_range(
 }
 
 impl AugmentConfig {
+    /// The same settings with every step's probability set to 1 (for inspecting and timing the
+    /// whole chain).
+    pub fn every_step(mut self) -> AugmentConfig {
+        self.noise.probability = 1.0;
+        self.reverb.probability = 1.0;
+        self.band_limit.probability = 1.0;
+        self.gain.probability = 1.0;
+        self
+    }
+
     /// Checks every setting; errors name the key (`augmentation.noise.snr_db`), what was expected
     /// and what was found. [`Augmenter::new`] calls it.
     pub fn validate(&self) -> Result<(), AudioError> {
@@ -709,27 +719,11 @@ mod tests {
     }
 
     fn always(kinds: Vec<NoiseKind>) -> AugmentConfig {
-        AugmentConfig {
-            noise: NoiseConfig {
-                probability: 1.0,
-                kinds,
-                ..NoiseConfig::default()
-            },
-            reverb: ReverbConfig {
-                probability: 1.0,
-                bank_size: 3,
-                rt60_seconds: [0.2, 0.4],
-                ..ReverbConfig::default()
-            },
-            band_limit: BandLimitConfig {
-                probability: 1.0,
-                ..BandLimitConfig::default()
-            },
-            gain: GainConfig {
-                probability: 1.0,
-                ..GainConfig::default()
-            },
-        }
+        let mut config = AugmentConfig::default().every_step();
+        config.noise.kinds = kinds;
+        config.reverb.bank_size = 3;
+        config.reverb.rt60_seconds = [0.2, 0.4];
+        config
     }
 
     fn utterance(seed: u64) -> Vec<f32> {
