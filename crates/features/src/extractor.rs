@@ -74,10 +74,10 @@ impl FeatureExtractor {
     /// Features of one utterance with vocal-tract length perturbation: the same front end with
     /// the mel filter bank read through `warp` ([`MelFilterbank::warped`]); everything else (FFT
     /// plan, window, DCT) is the extractor's own. The warped bank is built per call: measured at
-    /// 13.5 µs, the cost of extracting about 20 frames (0.2 s of audio), so a cache of banks per
-    /// quantised factor would save too little to be worth its lock (`benches/augment.rs`: 1.07×
-    /// the unwarped extraction on a 5 s utterance). Fails only when the warp empties a filter,
-    /// which [`crate::VtlpConfig::validate`] rules out for the configured range.
+    /// 13.5 µs, the cost of extracting about 20 frames (0.2 s of audio, 4 % of a 5 s utterance;
+    /// `benches/augment.rs`), so a cache of banks per quantised factor would save too little to
+    /// be worth its lock. Fails only when the warp empties a filter, which
+    /// [`crate::VtlpConfig::validate`] rules out for the configured range.
     pub fn extract_warped(
         &self,
         samples: &[f32],
