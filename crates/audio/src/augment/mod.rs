@@ -29,8 +29,12 @@
 //! config.reverb.rt60_seconds = [0.2, 0.3];
 //! let augmenter = Augmenter::new(config)?;
 //! let mut samples: Vec<f32> = (0..16_000).map(|n| (n as f32 * 0.05).sin() * 0.3).collect();
+//! // Other utterances of the training set, for babble.
+//! let others: Vec<Vec<f32>> = (1..5)
+//!     .map(|k| (0..12_000).map(|n| (n as f32 * 0.01 * k as f32).sin() * 0.2).collect())
+//!     .collect();
 //! let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(42);
-//! let applied = augmenter.apply(&mut samples, &mut rng, None)?;
+//! let applied = augmenter.apply(&mut samples, &mut rng, Some(&others))?;
 //! println!("{applied:?}");
 //! # Ok::<(), isogloss_audio::AudioError>(())
 //! ```
