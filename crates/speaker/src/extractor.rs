@@ -158,7 +158,9 @@ impl IvectorExtractor {
         progress: &mut dyn FnMut(&TrainingEvent),
     ) -> Result<(IvectorExtractor, TrainingReport), SpeakerError> {
         config.validate()?;
-        if layout.dims == 0 || !(layout.frame_shift_seconds > 0.0) {
+        if layout.dims == 0
+            || !(layout.frame_shift_seconds > 0.0 && layout.frame_shift_seconds.is_finite())
+        {
             return Err(SpeakerError::Training {
                 problem: format!(
                     "features of {} dimensions every {} s cannot be modelled",

@@ -178,7 +178,10 @@ impl IvectorExtractor {
                 config.output_dimension()
             )));
         }
-        if description.feature_dims == 0 || !(description.frame_shift_seconds > 0.0) {
+        if description.feature_dims == 0
+            || !(description.frame_shift_seconds > 0.0
+                && description.frame_shift_seconds.is_finite())
+        {
             return Err(bad_description(format!(
                 "feature_dims = {} and frame_shift_seconds = {} must be positive",
                 description.feature_dims, description.frame_shift_seconds

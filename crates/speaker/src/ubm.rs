@@ -569,7 +569,11 @@ pub fn train_ubm(
         utterances.to_vec()
     };
     let (mean, variance, _) = global_moments(&pool, dims);
-    if let Some((d, _)) = variance.iter().enumerate().find(|(_, v)| !(**v > 0.0)) {
+    if let Some((d, _)) = variance
+        .iter()
+        .enumerate()
+        .find(|(_, v)| !(**v > 0.0 && v.is_finite()))
+    {
         return Err(SpeakerError::Training {
             problem: format!(
                 "feature dimension {d} has the same value in every training frame; the UBM needs variation in every dimension"
@@ -739,7 +743,7 @@ fn kmeans_init(
             } else {
                 global_variance[d]
             };
-            if !(variances[(k, d)] > 0.0) {
+            if !(variances[(k, d)] > 0.0 && variances[(k, d)].is_finite()) {
                 variances[(k, d)] = global_variance[d];
             }
         }
