@@ -3,7 +3,7 @@
 
 use std::collections::BTreeMap;
 
-use ndarray::{Array1, Array2, ArrayView2, Axis};
+use ndarray::{s, Array1, Array2, ArrayView2, Axis};
 use rayon::prelude::*;
 
 use crate::config::{ExtractionMode, ExtractorConfig};
@@ -232,7 +232,12 @@ impl IvectorExtractor {
 
         let stats: Vec<BaumWelchStats> = views
             .par_iter()
-            .map(|view| ubm.statistics(*view, config.top_gaussians))
+            .map(|view| {
+                ubm.statistics(
+                    view.slice(s![..;config.frame_stride, ..]),
+                    config.top_gaussians,
+                )
+            })
             .collect();
         report_step(
             TrainingStage::Statistics {
@@ -441,15 +446,19 @@ impl IvectorExtractor {
         Ok(())
     }
 
-    /// Baum–Welch statistics of one item's frames under the UBM (with the configured top-N).
-    /// Checks dimension and finiteness; any number of frames is accepted.
+    /// Baum–Welch statistics of one item's frames under the UBM, as configured (frames 0, s, 2s,
+    /// … with s = `frame_stride`; top-N posteriors). Checks dimension and finiteness; any number
+    /// of frames is accepted.
     pub fn statistics(
         &self,
         item: &str,
         features: ArrayView2<f32>,
     ) -> Result<BaumWelchStats, SpeakerError> {
         check_frames(item, features, self.layout.dims, 0)?;
-        Ok(self.ubm.statistics(features, self.config.top_gaussians))
+        Ok(self.ubm.statistics(
+            features.slice(s![..;self.config.frame_stride, ..]),
+            self.config.top_gaussians,
+        ))
     }
 
     /// The raw i-vector (posterior mean, before post-processing) of statistics.
@@ -517,16 +526,18 @@ impl IvectorExtractor {
         utterances: &[Utterance],
     ) -> Result<Array1<f32>, SpeakerError> {
         let mut pooled = BaumWelchStats::zeros(self.ubm.gaussians(), self.ubm.dims());
+        let mut frames = 0;
         for utterance in utterances {
             pooled.add(&self.statistics(utterance.id, utterance.features)?);
+            frames += utterance.features.nrows();
         }
-        if pooled.frames == 0 {
+        if frames == 0 {
             return Err(SpeakerError::SpeakerWithoutFrames {
                 speaker: speaker.to_string(),
                 utterances: utterances.len(),
             });
         }
-        self.check_length(&format!("speaker {speaker}"), pooled.frames)?;
+        self.check_length(&format!("speaker {speaker}"), frames)?;
         Ok(self.ivector_from_statistics(&pooled))
     }
 
@@ -593,23 +604,26 @@ impl IvectorExtractor {
                         self.statistics(u.id, u.features)
                     })
                     .collect();
-                let mut pooled: BTreeMap<&str, (BaumWelchStats, usize)> = BTreeMap::new();
+                // Per speaker: pooled statistics, utterances, frames of the usable utterances.
+                let mut pooled: BTreeMap<&str, (BaumWelchStats, usize, usize)> = BTreeMap::new();
                 for (u, s) in utterances.iter().zip(&stats) {
                     let entry = pooled.entry(u.speaker).or_insert_with(|| {
                         (
                             BaumWelchStats::zeros(self.ubm.gaussians(), self.ubm.dims()),
+                            0,
                             0,
                         )
                     });
                     entry.1 += 1;
                     if let Ok(s) = s {
                         entry.0.add(s);
+                        entry.2 += u.features.nrows();
                     }
                 }
                 // `min_frames` ≥ 1, so a speaker with no frames is refused too.
                 let speaker_error = |speaker: &str| -> SpeakerError {
-                    let (stats, count) = &pooled[speaker];
-                    if stats.frames == 0 {
+                    let (_, count, frames) = &pooled[speaker];
+                    if *frames == 0 {
                         SpeakerError::SpeakerWithoutFrames {
                             speaker: speaker.to_string(),
                             utterances: *count,
@@ -617,15 +631,15 @@ impl IvectorExtractor {
                     } else {
                         SpeakerError::TooFewFrames {
                             item: format!("speaker {speaker}"),
-                            found: stats.frames,
+                            found: *frames,
                             min: self.config.min_frames,
                         }
                     }
                 };
                 let vectors: BTreeMap<&str, Option<Array1<f32>>> = pooled
                     .iter()
-                    .map(|(speaker, (stats, _))| {
-                        let usable = stats.frames >= self.config.min_frames;
+                    .map(|(speaker, (stats, _, frames))| {
+                        let usable = *frames >= self.config.min_frames;
                         (
                             *speaker,
                             usable.then(|| self.ivector_from_statistics(stats)),

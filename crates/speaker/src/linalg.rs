@@ -3,7 +3,7 @@
 //! are R×R with R the i-vector dimension (tens to a few hundred), so plain loops suffice; the
 //! large products go through ndarray's matrix multiplication elsewhere.
 
-use ndarray::{Array1, Array2, ArrayView1, ArrayView2};
+use ndarray::{Array1, Array2, ArrayView1, ArrayView2, ArrayViewMut1};
 
 /// Lower-triangular L with L·Lᵀ = `a`, or `None` when `a` is not (numerically) positive definite.
 pub(crate) fn cholesky(a: ArrayView2<f64>) -> Option<Array2<f64>> {
@@ -96,7 +96,7 @@ pub(crate) fn packed_len(n: usize) -> usize {
 }
 
 /// Writes the lower triangle of symmetric `a` row by row into `out` (`packed_len(n)` values).
-pub(crate) fn pack_lower(a: ArrayView2<f64>, out: &mut [f64]) {
+pub(crate) fn pack_lower(a: ArrayView2<f64>, mut out: ArrayViewMut1<f64>) {
     let mut k = 0;
     for i in 0..a.nrows() {
         for j in 0..=i {
@@ -107,7 +107,7 @@ pub(crate) fn pack_lower(a: ArrayView2<f64>, out: &mut [f64]) {
 }
 
 /// The symmetric n×n matrix whose lower triangle `packed` holds row by row.
-pub(crate) fn unpack_symmetric(packed: &[f64], n: usize) -> Array2<f64> {
+pub(crate) fn unpack_symmetric(packed: ArrayView1<f64>, n: usize) -> Array2<f64> {
     let mut a = Array2::<f64>::zeros((n, n));
     let mut k = 0;
     for i in 0..n {
@@ -210,9 +210,9 @@ mod tests {
             let b = Array1::from_iter((0..n).map(|i| i as f64 - 1.5));
             let x = cholesky_solve(l.view(), b.view());
             assert!((a.dot(&x) - &b).iter().all(|v| v.abs() < 1e-9));
-            let mut packed = vec![0.0; packed_len(n)];
-            pack_lower(a.view(), &mut packed);
-            assert_eq!(unpack_symmetric(&packed, n), a);
+            let mut packed = Array1::zeros(packed_len(n));
+            pack_lower(a.view(), packed.view_mut());
+            assert_eq!(unpack_symmetric(packed.view(), n), a);
         }
     }
 

@@ -1,11 +1,11 @@
 //! Online extraction: a running i-vector over a sliding window, frame-synchronous on a stream.
 //!
-//! The contract, with W = `window_seconds / frame_shift` frames (rounded, at least 1) and
-//! K = `period_frames`: frame t (0-based, counted from the start of the stream) gets the
-//! post-processed i-vector of the frames
+//! The contract, with W = `window_seconds / frame_shift` frames (rounded, at least 1),
+//! K = `period_frames` and s = `frame_stride`: frame t (0-based, counted from the start of the
+//! stream) gets the post-processed i-vector of the statistics of the frames
 //!
 //! ```text
-//! max(0, u − W + 1) ..= u,   where u = K·⌊t/K⌋
+//! { g : max(0, u − W + 1) ≤ g ≤ u and g a multiple of s },   where u = K·⌊t/K⌋
 //! ```
 //!
 //! that is, the vector is recomputed at frames 0, K, 2K, … from the last W frames up to and
@@ -19,10 +19,10 @@
 //! them). The i-vectors of all recomputation points of a block of frames are solved together
 //! (two matrix products and one R×R Cholesky factorisation per point).
 
-use ndarray::{s, Array1, Array2, ArrayView2};
+use ndarray::{Array1, Array2, ArrayView1, ArrayView2, Axis};
 
 use crate::extractor::{check_frames, IvectorExtractor};
-use crate::ubm::BLOCK_FRAMES;
+use crate::ubm::{FramePosteriors, BLOCK_FRAMES};
 use crate::SpeakerError;
 
 /// The state of one stream. Feed frames with [`OnlineIvectors::push`].
@@ -91,10 +91,16 @@ impl<'a> OnlineIvectors<'a> {
         let mut out = Array2::<f32>::zeros((rows, extractor.output_dimension()));
         for start in (0..rows).step_by(BLOCK_FRAMES) {
             let end = (start + BLOCK_FRAMES).min(rows);
-            let (posteriors, x) = extractor.ubm.block_posteriors_and_frames(
-                frames.slice(s![start..end, ..]),
+            // Only frames on the stride grid (stream index a multiple of s) enter the statistics.
+            let stride = extractor.config.frame_stride;
+            let on_grid: Vec<usize> = (start..end)
+                .filter(|&i| (self.frames_seen + i - start) % stride == 0)
+                .collect();
+            let (posteriors, x) = extractor.ubm.frame_posteriors(
+                frames.select(Axis(0), &on_grid).view(),
                 extractor.config.top_gaussians,
             );
+            let mut next_on_grid = 0;
             // (local row, snapshot index) of every recomputation point in this block.
             let mut points: Vec<usize> = Vec::new();
             let mut snapshot_occupancy: Vec<f64> = Vec::new();
@@ -102,14 +108,13 @@ impl<'a> OnlineIvectors<'a> {
             for i in 0..end - start {
                 let frame = self.frames_seen;
                 let slot = frame % self.window;
-                if frame >= self.window {
+                if frame >= self.window && (frame - self.window) % stride == 0 {
                     self.remove_slot(slot, dims);
                 }
-                self.add_frame(
-                    slot,
-                    posteriors.row(i).as_slice().unwrap_or(&[]),
-                    x.row(i).as_slice().unwrap_or(&[]),
-                );
+                if frame % stride == 0 {
+                    self.add_frame(slot, &posteriors, next_on_grid, x.row(next_on_grid));
+                    next_on_grid += 1;
+                }
                 if frame % self.period == 0 {
                     points.push(i);
                     snapshot_occupancy.extend(self.occupancy.iter());
@@ -144,7 +149,15 @@ impl<'a> OnlineIvectors<'a> {
         Ok(out)
     }
 
-    fn add_frame(&mut self, slot: usize, posteriors: &[f64], frame: &[f64]) {
+    /// Adds frame `i` of a block (posteriors and values) to the window's sums and keeps it in
+    /// `slot`.
+    fn add_frame(
+        &mut self,
+        slot: usize,
+        posteriors: &FramePosteriors,
+        i: usize,
+        frame: ArrayView1<f64>,
+    ) {
         let dims = frame.len();
         let kept = self.kept;
         if self.ring_frames.len() < (slot + 1) * dims {
@@ -152,41 +165,30 @@ impl<'a> OnlineIvectors<'a> {
             self.ring_gaussians.resize((slot + 1) * kept, 0);
             self.ring_posteriors.resize((slot + 1) * kept, 0.0);
         }
-        self.ring_frames[slot * dims..(slot + 1) * dims].copy_from_slice(frame);
-        let mut stored = 0;
-        for (c, &gamma) in posteriors.iter().enumerate() {
-            if gamma == 0.0 || stored == kept {
-                continue;
-            }
+        for (kept_value, &v) in self.ring_frames[slot * dims..(slot + 1) * dims]
+            .iter_mut()
+            .zip(&frame)
+        {
+            *kept_value = v;
+        }
+        let mut k = slot * kept;
+        posteriors.for_each(i, |c, gamma| {
             self.occupancy[c] += gamma;
-            let mut row = self.first_order.row_mut(c);
-            for (f, &v) in row.iter_mut().zip(frame) {
-                *f += gamma * v;
-            }
-            self.ring_gaussians[slot * kept + stored] = c;
-            self.ring_posteriors[slot * kept + stored] = gamma;
-            stored += 1;
-        }
-        // Unused entries (posteriors that underflowed to zero) weigh nothing when removed.
-        for k in stored..kept {
-            self.ring_posteriors[slot * kept + k] = 0.0;
-        }
+            self.first_order.row_mut(c).scaled_add(gamma, &frame);
+            self.ring_gaussians[k] = c;
+            self.ring_posteriors[k] = gamma;
+            k += 1;
+        });
     }
 
+    /// Subtracts the frame kept in `slot` from the window's sums.
     fn remove_slot(&mut self, slot: usize, dims: usize) {
         let kept = self.kept;
-        let frame = &self.ring_frames[slot * dims..(slot + 1) * dims];
-        for k in 0..kept {
-            let gamma = self.ring_posteriors[slot * kept + k];
-            if gamma == 0.0 {
-                continue;
-            }
-            let c = self.ring_gaussians[slot * kept + k];
+        let frame = ArrayView1::from(&self.ring_frames[slot * dims..(slot + 1) * dims]);
+        for k in slot * kept..(slot + 1) * kept {
+            let (c, gamma) = (self.ring_gaussians[k], self.ring_posteriors[k]);
             self.occupancy[c] -= gamma;
-            let mut row = self.first_order.row_mut(c);
-            for (f, &v) in row.iter_mut().zip(frame) {
-                *f -= gamma * v;
-            }
+            self.first_order.row_mut(c).scaled_add(-gamma, &frame);
         }
     }
 }

@@ -99,10 +99,7 @@ impl TotalVariability {
             let block = matrix.slice(s![c * dims..(c + 1) * dims, ..]);
             let scaled_block = scaled.slice(s![c * dims..(c + 1) * dims, ..]);
             let product = block.t().dot(&scaled_block);
-            pack_lower(
-                product.view(),
-                quadratic.row_mut(c).as_slice_mut().unwrap_or(&mut []),
-            );
+            pack_lower(product.view(), quadratic.row_mut(c));
         }
         Ok(TotalVariability {
             matrix,
@@ -180,12 +177,12 @@ impl TotalVariability {
                 let end = (start + ITEMS_PER_CHUNK).min(items);
                 // Two products for the whole chunk: N·Q gives the packed data part of every
                 // precision, F̃·Σ⁻¹T every linear term.
-                let precisions = occupancy.slice(s![start..end, ..]).dot(&self.quadratic);
-                let linear = centred.slice(s![start..end, ..]).dot(&self.scaled);
+                let precisions =
+                    product(occupancy.slice(s![start..end, ..]), self.quadratic.view());
+                let linear = product(centred.slice(s![start..end, ..]), self.scaled.view());
                 (0..end - start)
                     .map(|i| {
-                        let mut precision =
-                            unpack_symmetric(precisions.row(i).as_slice().unwrap_or(&[]), rank);
+                        let mut precision = unpack_symmetric(precisions.row(i), rank);
                         precision.diag_mut().iter_mut().for_each(|v| *v += 1.0);
                         posterior_from(precision, linear.row(i), with_covariance)
                     })
@@ -221,17 +218,14 @@ impl TotalVariability {
             means.row_mut(i).assign(&posterior.mean);
             let moment =
                 &posterior.covariance + &outer(posterior.mean.view(), posterior.mean.view());
-            pack_lower(
-                moment.view(),
-                second_moments.row_mut(i).as_slice_mut().unwrap_or(&mut []),
-            );
+            pack_lower(moment.view(), second_moments.row_mut(i));
         }
         let weighted_moments = occupancy.t().dot(&second_moments); // [C, R(R+1)/2]
         let cross = centred.t().dot(&means); // [C·D, R]
         let dims = self.dims;
         let mut matrix = self.matrix.clone();
         for c in 0..self.gaussians {
-            let a = unpack_symmetric(weighted_moments.row(c).as_slice().unwrap_or(&[]), rank);
+            let a = unpack_symmetric(weighted_moments.row(c), rank);
             // A Gaussian that (almost) no frame falls on leaves A_c singular: keep its block.
             let Some(factor) = cholesky(a.view()) else {
                 continue;
@@ -244,11 +238,7 @@ impl TotalVariability {
         }
         if minimum_divergence && items > 0 {
             let average = unpack_symmetric(
-                second_moments
-                    .sum_axis(Axis(0))
-                    .mapv(|v| v / items as f64)
-                    .as_slice()
-                    .unwrap_or(&[]),
+                (second_moments.sum_axis(Axis(0)) / items as f64).view(),
                 rank,
             );
             if let Some(factor) = cholesky(average.view()) {
@@ -257,6 +247,27 @@ impl TotalVariability {
         }
         Ok((TotalVariability::new(matrix, ubm)?, log_likelihood))
     }
+}
+
+/// Fewer rows than this are multiplied row by row (see [`product`]).
+const MIN_ROWS_FOR_PACKING: usize = 4;
+
+/// a·b. A general matrix product copies ("packs") b into a cache-friendly layout first, which for
+/// one or two rows of a costs more than the product itself (b is Q or Σ⁻¹T, up to megabytes): those
+/// are computed as sums of b's rows scaled by a's entries instead.
+fn product(a: ArrayView2<f64>, b: ArrayView2<f64>) -> Array2<f64> {
+    if a.nrows() >= MIN_ROWS_FOR_PACKING {
+        return a.dot(&b);
+    }
+    let mut out = Array2::<f64>::zeros((a.nrows(), b.ncols()));
+    for (mut out_row, a_row) in out.rows_mut().into_iter().zip(a.rows()) {
+        for (&weight, b_row) in a_row.iter().zip(b.rows()) {
+            if weight != 0.0 {
+                out_row.scaled_add(weight, &b_row);
+            }
+        }
+    }
+    out
 }
 
 fn outer(a: ArrayView1<f64>, b: ArrayView1<f64>) -> Array2<f64> {

@@ -14,7 +14,7 @@
 //! precomputed) plus g, in f64: the expansion cancels large terms, and f64 keeps the result
 //! within 1e-9 of the direct sum on normalised features (checked against scikit-learn).
 
-use ndarray::{s, Array1, Array2, ArrayView1, ArrayView2, Axis, Zip};
+use ndarray::{s, Array1, Array2, ArrayView1, ArrayView2, ArrayViewMut1, Axis, Zip};
 use rand::{Rng, SeedableRng};
 use rand_chacha::ChaCha8Rng;
 use rayon::prelude::*;
@@ -42,6 +42,11 @@ pub struct DiagGmm {
     projection: Array2<f64>,
     /// [C]: g_c of the module doc.
     offsets: Array1<f64>,
+    /// `projection` transposed, `[C, 2D]`: one Gaussian's weights contiguous.
+    projection_by_gaussian: Array2<f64>,
+    /// `projection` and `offsets` in f32, for choosing the top Gaussians of a frame.
+    selection: Array2<f32>,
+    selection_offsets: Array1<f32>,
 }
 
 /// Zeroth- and first-order Baum–Welch statistics of some frames (an utterance, a speaker, a
@@ -113,7 +118,7 @@ impl EmAccumulator {
 /// Frames as f64, and the [x, x²] matrix the log-likelihood product takes.
 fn widen(frames: ArrayView2<f32>) -> (Array2<f64>, Array2<f64>) {
     let (n, dims) = frames.dim();
-    let x = frames.mapv(f64::from);
+    let x = to_f64(frames);
     let mut stacked = Array2::<f64>::zeros((n, 2 * dims));
     stacked.slice_mut(s![.., ..dims]).assign(&x);
     Zip::from(stacked.slice_mut(s![.., dims..]))
@@ -122,14 +127,61 @@ fn widen(frames: ArrayView2<f32>) -> (Array2<f64>, Array2<f64>) {
     (x, stacked)
 }
 
-/// Indices of the `top` largest values of `row` (any order), using `scratch` as work space.
-fn top_indices<'a>(row: &[f64], top: usize, scratch: &'a mut Vec<usize>) -> &'a [usize] {
+/// Frames as f64, in standard (row-major) layout whatever the layout of the view.
+fn to_f64(frames: ArrayView2<f32>) -> Array2<f64> {
+    Array2::from_shape_fn(frames.dim(), |(t, d)| f64::from(frames[(t, d)]))
+}
+
+/// The `top` largest values of `row` with their indices (any order), using `scratch` as work
+/// space.
+fn top_entries<'a>(
+    row: ArrayView1<f32>,
+    top: usize,
+    scratch: &'a mut Vec<(f32, usize)>,
+) -> &'a [(f32, usize)] {
     scratch.clear();
-    scratch.extend(0..row.len());
+    scratch.extend(row.iter().copied().zip(0..));
     if top < row.len() {
-        scratch.select_nth_unstable_by(top - 1, |&a, &b| row[b].total_cmp(&row[a]));
+        scratch.select_nth_unstable_by(top - 1, |a, b| b.0.total_cmp(&a.0));
     }
     &scratch[..top.min(row.len())]
+}
+
+/// Posteriors of a block of frames: of every Gaussian, or of each frame's `top` most likely.
+pub(crate) enum FramePosteriors {
+    /// `[frames, C]`.
+    Dense(Array2<f64>),
+    /// Frame i's Gaussians are `gaussians[i·top..(i+1)·top]`, their posteriors `values[…]`.
+    Sparse {
+        /// Gaussians kept per frame.
+        top: usize,
+        /// Indices of the kept Gaussians.
+        gaussians: Vec<usize>,
+        /// Their posteriors (summing to 1 per frame).
+        values: Vec<f64>,
+    },
+}
+
+impl FramePosteriors {
+    /// Calls `f(c, γ)` for every Gaussian c with a posterior γ on frame `i`.
+    pub(crate) fn for_each(&self, i: usize, mut f: impl FnMut(usize, f64)) {
+        match self {
+            FramePosteriors::Dense(matrix) => {
+                for (c, &gamma) in matrix.row(i).iter().enumerate() {
+                    f(c, gamma);
+                }
+            }
+            FramePosteriors::Sparse {
+                top,
+                gaussians,
+                values,
+            } => {
+                for k in i * top..(i + 1) * top {
+                    f(gaussians[k], values[k]);
+                }
+            }
+        }
+    }
 }
 
 impl DiagGmm {
@@ -197,6 +249,11 @@ impl DiagGmm {
             weights,
             means,
             variances,
+            projection_by_gaussian: Array2::from_shape_fn((gaussians, 2 * dims), |(c, k)| {
+                projection[(k, c)]
+            }),
+            selection: projection.mapv(|v| v as f32),
+            selection_offsets: offsets.mapv(|v| v as f32),
             projection,
             offsets,
         })
@@ -246,69 +303,124 @@ impl DiagGmm {
         scores
             .rows_mut()
             .into_iter()
-            .map(|mut row| {
-                posteriors_in_place(row.as_slice_mut().unwrap_or(&mut []), 0, &mut Vec::new())
-            })
+            .map(posteriors_in_place)
             .collect()
     }
 
-    /// Posterior of every Gaussian for every frame, `[frames, C]`. With `top` > 0 only the `top`
-    /// most likely Gaussians of each frame get a posterior (renormalised among them), the others
-    /// get 0.
+    /// Posterior of every Gaussian for every frame, `[frames, C]`. With 0 < `top` < C only the
+    /// `top` most likely Gaussians of each frame get a posterior (renormalised among them), the
+    /// others get 0; see [`DiagGmm::statistics`] for how they are chosen.
     pub fn posteriors(&self, frames: ArrayView2<f32>, top: usize) -> Array2<f64> {
-        let mut scores = self.weighted_log_likelihoods(frames);
-        let mut scratch = Vec::new();
-        for mut row in scores.rows_mut() {
-            let row = row.as_slice_mut().unwrap_or(&mut []);
-            posteriors_in_place(row, top, &mut scratch);
+        let mut out = Array2::<f64>::zeros((frames.nrows(), self.gaussians()));
+        for (start, block) in (0..frames.nrows())
+            .step_by(BLOCK_FRAMES)
+            .zip(blocks(&[frames]))
+        {
+            let (posteriors, _) = self.frame_posteriors(block, top);
+            for i in 0..block.nrows() {
+                posteriors.for_each(i, |c, gamma| out[(start + i, c)] = gamma);
+            }
         }
-        scores
+        out
     }
 
-    /// Posteriors of a block of frames given as the [x, x²] matrix, and the block's summed
+    /// Dense posteriors of a block of frames given as the [x, x²] matrix, and the block's summed
     /// log-likelihood.
-    fn block_posteriors(&self, stacked: ArrayView2<f64>, top: usize) -> (Array2<f64>, f64) {
+    fn dense_posteriors(&self, stacked: ArrayView2<f64>) -> (Array2<f64>, f64) {
         let mut scores = self.weighted_log_likelihoods_stacked(stacked);
-        let mut scratch = Vec::new();
         let mut log_likelihood = 0.0;
-        for mut row in scores.rows_mut() {
-            let row = row.as_slice_mut().unwrap_or(&mut []);
-            log_likelihood += posteriors_in_place(row, top, &mut scratch);
+        for row in scores.rows_mut() {
+            log_likelihood += posteriors_in_place(row);
         }
         (scores, log_likelihood)
     }
 
-    /// Baum–Welch statistics of `frames` (`top` as in [`DiagGmm::posteriors`]). The caller
-    /// guarantees `frames` has D columns.
+    /// Posteriors of a block of frames (all Gaussians, or the `top` of each frame) and the frames
+    /// widened to f64.
+    ///
+    /// With 0 < `top` < C the Gaussians are chosen by an f32 product (half the cost of the f64
+    /// one, and no exponential for the others); only the chosen ones get their log-likelihood in
+    /// f64, from which their posteriors are computed. f32 rounding can only swap Gaussians whose
+    /// log-likelihoods tie to about 1e-5.
+    pub(crate) fn frame_posteriors(
+        &self,
+        frames: ArrayView2<f32>,
+        top: usize,
+    ) -> (FramePosteriors, Array2<f64>) {
+        let (gaussians, dims) = (self.gaussians(), self.dims());
+        if top == 0 || top >= gaussians {
+            let (x, stacked) = widen(frames);
+            let (posteriors, _) = self.dense_posteriors(stacked.view());
+            return (FramePosteriors::Dense(posteriors), x);
+        }
+        let x = to_f64(frames);
+        let mut stacked = Array2::<f32>::zeros((frames.nrows(), 2 * dims));
+        for (mut out, frame) in stacked.rows_mut().into_iter().zip(frames.rows()) {
+            for (d, &v) in frame.iter().enumerate() {
+                out[d] = v;
+                out[dims + d] = v * v;
+            }
+        }
+        let mut approximate = stacked.dot(&self.selection);
+        approximate += &self.selection_offsets;
+        let mut scratch = Vec::with_capacity(gaussians);
+        let mut kept = Vec::with_capacity(frames.nrows() * top);
+        let mut values = Vec::with_capacity(frames.nrows() * top);
+        for (row, frame) in approximate.rows().into_iter().zip(x.rows()) {
+            let first = values.len();
+            for &(_, c) in top_entries(row, top, &mut scratch) {
+                let (linear, quadratic) =
+                    self.projection_by_gaussian.row(c).split_at(Axis(0), dims);
+                let score = Zip::from(&frame)
+                    .and(&linear)
+                    .and(&quadratic)
+                    .fold(self.offsets[c], |score, &v, &a, &b| score + v * (a + v * b));
+                kept.push(c);
+                values.push(score);
+            }
+            posteriors_in_place(ArrayViewMut1::from(&mut values[first..]));
+        }
+        (
+            FramePosteriors::Sparse {
+                top,
+                gaussians: kept,
+                values,
+            },
+            x,
+        )
+    }
+
+    /// Baum–Welch statistics of `frames`. With 0 < `top` < C only each frame's `top` most likely
+    /// Gaussians count (posteriors renormalised among them): the statistics then cost `top` rows
+    /// per frame instead of C, and the exponentials and f64 log-likelihoods of the other Gaussians
+    /// are skipped (see [`DiagGmm::posteriors`]). The caller guarantees `frames` has D columns.
     pub fn statistics(&self, frames: ArrayView2<f32>, top: usize) -> BaumWelchStats {
-        let mut stats = BaumWelchStats::zeros(self.gaussians(), self.dims());
-        let rows = frames.nrows();
-        for start in (0..rows).step_by(BLOCK_FRAMES) {
-            let block = frames.slice(s![start..(start + BLOCK_FRAMES).min(rows), ..]);
-            let (x, stacked) = widen(block);
-            let (posteriors, _) = self.block_posteriors(stacked.view(), top);
-            stats.occupancy += &posteriors.sum_axis(Axis(0));
-            stats.first_order += &posteriors.t().dot(&x);
+        let dims = self.dims();
+        let mut stats = BaumWelchStats::zeros(self.gaussians(), dims);
+        for block in blocks(&[frames]) {
+            let (posteriors, x) = self.frame_posteriors(block, top);
+            match &posteriors {
+                FramePosteriors::Dense(matrix) => {
+                    stats.occupancy += &matrix.sum_axis(Axis(0));
+                    stats.first_order += &matrix.t().dot(&x);
+                }
+                FramePosteriors::Sparse { .. } => {
+                    for (i, frame) in x.rows().into_iter().enumerate() {
+                        posteriors.for_each(i, |c, gamma| {
+                            stats.occupancy[c] += gamma;
+                            stats.first_order.row_mut(c).scaled_add(gamma, &frame);
+                        });
+                    }
+                }
+            }
             stats.frames += block.nrows();
         }
         stats
     }
 
-    /// Posteriors of a block of frames (for the online window, which keeps them), with the frames
-    /// widened to f64.
-    pub(crate) fn block_posteriors_and_frames(
-        &self,
-        frames: ArrayView2<f32>,
-        top: usize,
-    ) -> (Array2<f64>, Array2<f64>) {
-        let (x, stacked) = widen(frames);
-        let (posteriors, _) = self.block_posteriors(stacked.view(), top);
-        (posteriors, x)
-    }
-
     fn accumulate(&self, block: ArrayView2<f32>) -> EmAccumulator {
         let (x, stacked) = widen(block);
-        let (posteriors, log_likelihood) = self.block_posteriors(stacked.view(), 0);
+        let (posteriors, log_likelihood) = self.dense_posteriors(stacked.view());
         let dims = self.dims();
         EmAccumulator {
             occupancy: posteriors.sum_axis(Axis(0)),
@@ -430,31 +542,17 @@ impl DiagGmm {
     }
 }
 
-/// Turns a row of weighted log-likelihoods into posteriors in place (all, or the `top` largest
-/// renormalised, the others 0) and returns the row's log-sum-exp (over all Gaussians).
-fn posteriors_in_place(row: &mut [f64], top: usize, scratch: &mut Vec<usize>) -> f64 {
+/// Turns a row of weighted log-likelihoods into posteriors in place and returns its
+/// log-sum-exp.
+fn posteriors_in_place(mut row: ArrayViewMut1<f64>) -> f64 {
     let max = row.iter().copied().fold(f64::NEG_INFINITY, f64::max);
-    if top == 0 || top >= row.len() {
-        let mut sum = 0.0;
-        for v in row.iter_mut() {
-            *v = (*v - max).exp();
-            sum += *v;
-        }
-        row.iter_mut().for_each(|v| *v /= sum);
-        return max + sum.ln();
+    let mut sum = 0.0;
+    for v in row.iter_mut() {
+        *v = (*v - max).exp();
+        sum += *v;
     }
-    // The full log-sum-exp is still the frame's log-likelihood; only the posteriors are pruned.
-    let total: f64 = row.iter().map(|v| (v - max).exp()).sum();
-    let kept: Vec<(usize, f64)> = top_indices(row, top, scratch)
-        .iter()
-        .map(|&c| (c, (row[c] - max).exp()))
-        .collect();
-    let kept_sum: f64 = kept.iter().map(|(_, p)| p).sum();
-    row.iter_mut().for_each(|v| *v = 0.0);
-    for (c, p) in kept {
-        row[c] = p / kept_sum;
-    }
-    max + total.ln()
+    row.mapv_inplace(|v| v / sum);
+    max + sum.ln()
 }
 
 /// Views of at most [`BLOCK_FRAMES`] frames covering all of `frames`.

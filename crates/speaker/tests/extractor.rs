@@ -202,26 +202,30 @@ fn stream(frames: usize, seed: u64) -> Array2<f32> {
 
 #[test]
 fn online_vectors_follow_their_definition_whatever_the_pieces() {
-    for top_gaussians in [0, 3] {
+    for (top_gaussians, frame_stride) in [(0, 1), (3, 1), (0, 3)] {
         let config = ExtractorConfig {
             top_gaussians,
+            frame_stride,
             ..small_config()
         };
         let extractor = trained(&config);
         assert_eq!(extractor.window_frames(), 50);
         let frames = stream(700, 3);
         let whole = extractor.online_ivectors("stream", frames.view()).unwrap();
-        // The definition: frame t gets the i-vector of frames max(0, u − W + 1) ..= u,
-        // u = K⌊t/K⌋, computed from scratch.
+        // The definition: frame t gets the i-vector of the frames g with
+        // max(0, u − W + 1) ≤ g ≤ u, g a multiple of s, u = K⌊t/K⌋, computed from scratch.
         for t in 0..700usize {
             let u = 7 * (t / 7);
-            let window = frames.slice(s![(u + 1).saturating_sub(50)..=u, ..]);
-            let stats = extractor.statistics("window", window).unwrap();
+            let on_grid: Vec<usize> = ((u + 1).saturating_sub(50)..=u)
+                .filter(|g| g % frame_stride == 0)
+                .collect();
+            let window = frames.select(ndarray::Axis(0), &on_grid);
+            let stats = extractor.ubm().statistics(window.view(), top_gaussians);
             let expected = extractor.ivector_from_statistics(&stats);
             for (a, b) in whole.row(t).iter().zip(&expected) {
                 assert!(
                     (a - b).abs() <= 1e-5 * b.abs().max(1.0),
-                    "top {top_gaussians}, frame {t}: {a} vs {b}"
+                    "top {top_gaussians}, stride {frame_stride}, frame {t}: {a} vs {b}"
                 );
             }
         }
