@@ -56,6 +56,7 @@
 //! let mut config = ExtractorConfig::default();
 //! config.dimension = 2;
 //! config.ubm.gaussians = 4;
+//! config.frame_stride = 1;
 //! let layout = FeatureLayout { dims: 2, frame_shift_seconds: 0.01 };
 //! let (extractor, report) = IvectorExtractor::train(&config, layout, &utterances, &mut |_| {})?;
 //! assert_eq!(report.utterances, 2);

@@ -25,6 +25,9 @@ use crate::extractor::{check_frames, IvectorExtractor};
 use crate::ubm::{FramePosteriors, BLOCK_FRAMES};
 use crate::SpeakerError;
 
+/// Recomputation points solved together at most (see [`OnlineIvectors::push`]).
+const POINTS_PER_CHUNK: usize = 64;
+
 /// The state of one stream. Feed frames with [`OnlineIvectors::push`].
 #[derive(Debug, Clone)]
 pub struct OnlineIvectors<'a> {
@@ -88,44 +91,53 @@ impl<'a> OnlineIvectors<'a> {
         let rows = frames.nrows();
         let gaussians = extractor.ubm.gaussians();
         let means = extractor.ubm.means();
+        let stride = extractor.config.frame_stride;
         let mut out = Array2::<f32>::zeros((rows, extractor.output_dimension()));
-        for start in (0..rows).step_by(BLOCK_FRAMES) {
-            let end = (start + BLOCK_FRAMES).min(rows);
-            // Only frames on the stride grid (stream index a multiple of s) enter the statistics.
-            let stride = extractor.config.frame_stride;
-            let on_grid: Vec<usize> = (start..end)
-                .filter(|&i| (self.frames_seen + i - start) % stride == 0)
-                .collect();
-            let (posteriors, x) = extractor.ubm.frame_posteriors(
-                frames.select(Axis(0), &on_grid).view(),
-                extractor.config.top_gaussians,
-            );
-            let mut next_on_grid = 0;
-            // (local row, snapshot index) of every recomputation point in this block.
+        // Recomputation points are collected over a chunk of frames and solved together, so that
+        // the two products run over many points at once; a chunk holds at most
+        // POINTS_PER_CHUNK of them.
+        let chunk = (POINTS_PER_CHUNK * self.period).max(BLOCK_FRAMES);
+        for chunk_start in (0..rows).step_by(chunk) {
+            let chunk_end = (chunk_start + chunk).min(rows);
+            // (row in the piece) of every recomputation point in this chunk, and its statistics.
             let mut points: Vec<usize> = Vec::new();
             let mut snapshot_occupancy: Vec<f64> = Vec::new();
             let mut snapshot_centred: Vec<f64> = Vec::new();
-            for i in 0..end - start {
-                let frame = self.frames_seen;
-                let slot = frame % self.window;
-                if frame >= self.window && (frame - self.window) % stride == 0 {
-                    self.remove_slot(slot, dims);
-                }
-                if frame % stride == 0 {
-                    self.add_frame(slot, &posteriors, next_on_grid, x.row(next_on_grid));
-                    next_on_grid += 1;
-                }
-                if frame % self.period == 0 {
-                    points.push(i);
-                    snapshot_occupancy.extend(self.occupancy.iter());
-                    for c in 0..gaussians {
-                        let n = self.occupancy[c];
-                        for d in 0..dims {
-                            snapshot_centred.push(self.first_order[(c, d)] - n * means[(c, d)]);
+            for start in (chunk_start..chunk_end).step_by(BLOCK_FRAMES) {
+                let end = (start + BLOCK_FRAMES).min(chunk_end);
+                // Only frames on the stride grid (stream index a multiple of s) enter the
+                // statistics.
+                let first_frame = self.frames_seen;
+                let on_grid: Vec<usize> = (start..end)
+                    .filter(|&i| (first_frame + i - start) % stride == 0)
+                    .collect();
+                let (posteriors, x) = extractor.ubm.frame_posteriors(
+                    frames.select(Axis(0), &on_grid).view(),
+                    extractor.config.top_gaussians,
+                );
+                let mut next_on_grid = 0;
+                for i in start..end {
+                    let frame = self.frames_seen;
+                    let slot = frame % self.window;
+                    if frame >= self.window && (frame - self.window) % stride == 0 {
+                        self.remove_slot(slot, dims);
+                    }
+                    if frame % stride == 0 {
+                        self.add_frame(slot, &posteriors, next_on_grid, x.row(next_on_grid));
+                        next_on_grid += 1;
+                    }
+                    if frame % self.period == 0 {
+                        points.push(i);
+                        snapshot_occupancy.extend(self.occupancy.iter());
+                        for c in 0..gaussians {
+                            let n = self.occupancy[c];
+                            for d in 0..dims {
+                                snapshot_centred.push(self.first_order[(c, d)] - n * means[(c, d)]);
+                            }
                         }
                     }
+                    self.frames_seen += 1;
                 }
-                self.frames_seen += 1;
             }
             let occupancy = Array2::from_shape_vec((points.len(), gaussians), snapshot_occupancy)
                 .map_err(|e| SpeakerError::InvalidModel {
@@ -138,12 +150,12 @@ impl<'a> OnlineIvectors<'a> {
                     })?;
             let vectors = extractor.ivectors_from_stacked(occupancy.view(), centred.view());
             let mut next_point = 0;
-            for i in 0..end - start {
+            for i in chunk_start..chunk_end {
                 if next_point < points.len() && points[next_point] == i {
                     self.current.assign(&vectors.row(next_point));
                     next_point += 1;
                 }
-                out.row_mut(start + i).assign(&self.current);
+                out.row_mut(i).assign(&self.current);
             }
         }
         Ok(out)

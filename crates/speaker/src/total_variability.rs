@@ -249,19 +249,20 @@ impl TotalVariability {
     }
 }
 
-/// Fewer rows than this are multiplied row by row (see [`product`]).
-const MIN_ROWS_FOR_PACKING: usize = 4;
+/// Fewer rows than this are multiplied without packing (see [`product`]).
+const MIN_ROWS_FOR_PACKING: usize = 2;
 
-/// a·b. A general matrix product copies ("packs") b into a cache-friendly layout first, which for
-/// one or two rows of a costs more than the product itself (b is Q or Σ⁻¹T, up to megabytes): those
-/// are computed as sums of b's rows scaled by a's entries instead.
+/// a·b. A general matrix product first copies ("packs") b into a cache-friendly layout, which
+/// for a few rows of a costs more than the product itself (b is Q or Σ⁻¹T, up to megabytes):
+/// then b is read once, row by row, and each of its rows is added, scaled, to every output row
+/// (the few output rows stay in cache).
 fn product(a: ArrayView2<f64>, b: ArrayView2<f64>) -> Array2<f64> {
     if a.nrows() >= MIN_ROWS_FOR_PACKING {
         return a.dot(&b);
     }
     let mut out = Array2::<f64>::zeros((a.nrows(), b.ncols()));
-    for (mut out_row, a_row) in out.rows_mut().into_iter().zip(a.rows()) {
-        for (&weight, b_row) in a_row.iter().zip(b.rows()) {
+    for (b_row, a_column) in b.rows().into_iter().zip(a.columns()) {
+        for (mut out_row, &weight) in out.rows_mut().into_iter().zip(a_column.iter()) {
             if weight != 0.0 {
                 out_row.scaled_add(weight, &b_row);
             }

@@ -8,7 +8,7 @@ use isogloss_speaker::{
     ExtractionMode, ExtractorConfig, FeatureLayout, IvectorExtractor, SpeakerError, TrainingEvent,
     TrainingStage, UbmConfig, UbmStep, Utterance,
 };
-use ndarray::{s, Array1, Array2};
+use ndarray::{s, Array1, Array2, ShapeBuilder};
 use rand::{Rng, SeedableRng};
 use rand_chacha::ChaCha8Rng;
 
@@ -575,5 +575,25 @@ fn saved_extractors_load_identically_and_bad_files_are_named() {
     assert!(
         error.contains("ivector.toml") && error.contains("reading failed"),
         "{error}"
+    );
+}
+
+#[test]
+fn column_major_features_give_the_same_vectors() {
+    let extractor = trained(&ExtractorConfig {
+        top_gaussians: 5,
+        ..small_config()
+    });
+    let frames = stream(300, 8);
+    let column_major =
+        Array2::from_shape_vec((300, DIMS).f(), frames.t().iter().copied().collect()).unwrap();
+    assert_eq!(column_major, frames);
+    assert_eq!(
+        extractor.online_ivectors("f", column_major.view()).unwrap(),
+        extractor.online_ivectors("c", frames.view()).unwrap()
+    );
+    assert_eq!(
+        extractor.extract("f", column_major.view()).unwrap(),
+        extractor.extract("c", frames.view()).unwrap()
     );
 }

@@ -193,6 +193,8 @@ fn statistics_ivectors_and_t_update_equal_the_numpy_closed_forms() {
     let config = ExtractorConfig {
         dimension: 2,
         subtract_mean: false,
+        top_gaussians: 0,
+        frame_stride: 1,
         ubm: UbmConfig {
             gaussians: 3,
             ..UbmConfig::default()
