@@ -160,7 +160,11 @@ fn main() {
         acoustic.push((process_cpu_seconds() - cpu) / test_frames as f64 * 1e6);
         let cpu = process_cpu_seconds();
         for (id, _, features) in &test {
-            std::hint::black_box(extractor.online_ivectors(id, features.view()).expect("online"));
+            std::hint::black_box(
+                extractor
+                    .online_ivectors(id, features.view())
+                    .expect("online"),
+            );
         }
         online.push((process_cpu_seconds() - cpu) / test_frames as f64 * 1e6);
         let cpu = process_cpu_seconds();
