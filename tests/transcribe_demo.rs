@@ -13,10 +13,10 @@ use isogloss_score::{align, tokenize, TokenRules, VariantMap};
 use isogloss_sweep::resources::lm_words;
 
 /// WER and flexible WER of the first interview with the shipped model, LM and lexicon at the
-/// default decoder settings, measured 36.0 % and 32.7 % (272 reference words; the interviewer's
+/// default decoder settings, measured 36.8 % and 33.5 % (272 reference words; the interviewer's
 /// questions are not in the LM's text), plus about two points (DEVELOPERS.md).
-const MAX_INTERVIEW_WER: f64 = 0.38;
-const MAX_INTERVIEW_FLEXIBLE_WER: f64 = 0.35;
+const MAX_INTERVIEW_WER: f64 = 0.39;
+const MAX_INTERVIEW_FLEXIBLE_WER: f64 = 0.355;
 
 fn repo(path: &str) -> PathBuf {
     Path::new(env!("CARGO_MANIFEST_DIR"))
