@@ -112,7 +112,7 @@ fn main() {
         .collect();
     let layout = FeatureLayout {
         dims: model.feature_config().dims(),
-        frame_shift_seconds: model.feature_config().frame_shift_seconds(),
+        frame_shift_seconds: model.feature_config().hop_seconds(),
     };
     println!(
         "training the extractor on {} utterances, {train_frames} frames ({:.1} min): {} Gaussians, dimension {}, top {}, period {} frames, window {} s",

@@ -16,7 +16,7 @@ use crate::SpeakerError;
 /// The features an extractor works on: their dimension and frame shift.
 #[derive(Debug, Clone, Copy, PartialEq)]
 pub struct FeatureLayout {
-    /// Dimensions of a feature frame (39 for MFCC + Δ + ΔΔ, 40 for log-mel fbank).
+    /// Dimensions of a feature frame (39 for MFCC + Δ + ΔΔ, 40 for log-mel).
     pub dims: usize,
     /// Seconds between frames (0.01 for the default front end); turns `window_seconds` into
     /// frames.
