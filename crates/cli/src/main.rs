@@ -34,7 +34,7 @@ enum Command {
     /// Train a TDNN acoustic model with CTC.
     Train(commands::train::TrainArgs),
     /// Transcribe recordings or a manifest: beam search with LM and lexicon, or greedy.
-    Transcribe(commands::decode::TranscribeArgs),
+    Transcribe(commands::transcribe::TranscribeArgs),
     /// Decode and score a grid of LM, lexicon, writing and decoder choices.
     Sweep(commands::sweep::SweepArgs),
     /// Build a spelling-variant map from two word-aligned transcript columns.

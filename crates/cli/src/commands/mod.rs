@@ -1,7 +1,6 @@
 //! One module per command group; each exposes clap `Args` and a `run` returning an `Outcome`.
 
 pub mod corpus;
-pub mod decode;
 pub mod demo;
 pub mod features;
 pub mod lexicon;
