@@ -102,10 +102,10 @@ pub enum AcousticError {
         /// What is wrong with it.
         problem: String,
     },
-    /// A line of the training log that cannot be read.
+    /// A line of an input file (configuration, training log) that cannot be used.
     #[error("{path}, line {line}: {problem}")]
-    Log {
-        /// The log file.
+    Line {
+        /// The file.
         path: PathBuf,
         /// 1-based line.
         line: usize,

@@ -60,7 +60,7 @@ pub fn read_epochs(path: &Path) -> Result<Vec<LoggedEpoch>, AcousticError> {
         if line.trim().is_empty() {
             continue;
         }
-        let at_line = |problem: String| AcousticError::Log {
+        let at_line = |problem: String| AcousticError::Line {
             path: path.to_path_buf(),
             line: index + 1,
             problem,
