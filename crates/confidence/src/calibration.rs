@@ -1,12 +1,14 @@
-//! Temperature scaling of word certainties, the reliability table, expected calibration error
-//! and the reliability chart.
+//! Calibration of word certainties, the reliability table, expected calibration error and the
+//! reliability chart.
 //!
-//! A certainty `c` is mapped to `p = σ(logit(c) / T)`: the log-odds of the certainty divided by
-//! one temperature `T` fitted on dev by maximum likelihood of the words' correctness (Guo et
-//! al. 2017 scale a network's logits the same way; here the certainty's own log-odds play the
-//! logits' part, because the certainty is a geometric mean over units, not one softmax). `T > 1`
-//! softens over-confident certainties, `T < 1` sharpens timid ones; the order of words never
-//! changes.
+//! A certainty `c` is mapped to `p = σ(logit(c) / T + shift)`: the log-odds of the certainty
+//! divided by a temperature `T` and moved by a shift, both fitted on dev by maximum likelihood
+//! of the words' correctness. With the shift fixed at 0 this is temperature scaling (Guo et al.
+//! 2017 scale a network's logits the same way; here the certainty's own log-odds play the
+//! logits' part, because the certainty is a geometric mean over units, not one softmax); with
+//! the shift it is Platt's logistic scaling of the same log-odds. `T > 1` softens over-confident
+//! certainties, `T < 1` sharpens timid ones, a positive shift raises all of them. Either way the
+//! order of words never changes.
 //!
 //! The reliability table cuts [0, 1] into equal-width bins; a value on an inner edge belongs to
 //! the lower bin (the convention of scikit-learn's `calibration_curve`, against which the
@@ -49,110 +51,89 @@ fn softplus(x: f64) -> f64 {
     }
 }
 
-/// A fitted temperature (always finite and positive).
+/// A calibration of word certainties: `p = σ(logit(c) / T + shift)`, with `T` finite and
+/// positive and `shift` finite. [`Calibration::IDENTITY`] leaves certainties as they are.
 #[derive(Debug, Clone, Copy, PartialEq)]
-pub struct Temperature(f64);
+pub struct Calibration {
+    temperature: f64,
+    shift: f64,
+}
 
-/// What a calibration file holds: the temperature, and for the record the words it was fitted
-/// on and the dev ECE before and after.
+/// What a calibration file holds: the temperature and shift, and for the record the words they
+/// were fitted on and the dev ECE before and after.
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 pub struct CalibrationRecord {
-    /// The fitted temperature.
+    /// The fitted temperature `T`.
     pub temperature: f64,
+    /// The fitted shift of the log-odds (0 when only a temperature was fitted).
+    pub shift: f64,
     /// Dev words it was fitted on.
     pub words: usize,
     /// Dev ECE of the raw certainties (10 bins).
     pub dev_ece_before: f64,
-    /// Dev ECE after the temperature (10 bins).
+    /// Dev ECE after the calibration (10 bins).
     pub dev_ece_after: f64,
 }
 
-impl Temperature {
-    /// `T = 1`: certainties used as they are.
-    pub const IDENTITY: Temperature = Temperature(1.0);
+impl Calibration {
+    /// `T = 1`, no shift: certainties used as they are.
+    pub const IDENTITY: Calibration = Calibration {
+        temperature: 1.0,
+        shift: 0.0,
+    };
 
-    /// A temperature from a number; `None` unless finite and positive.
-    pub fn new(value: f64) -> Option<Temperature> {
-        (value.is_finite() && value > 0.0).then_some(Temperature(value))
+    /// A calibration from its two numbers; `None` unless `temperature` is finite and positive
+    /// and `shift` finite.
+    pub fn new(temperature: f64, shift: f64) -> Option<Calibration> {
+        (temperature.is_finite() && temperature > 0.0 && shift.is_finite())
+            .then_some(Calibration { temperature, shift })
     }
 
-    /// The value of `T`.
-    pub fn value(&self) -> f64 {
-        self.0
+    /// The temperature `T`.
+    pub fn temperature(&self) -> f64 {
+        self.temperature
     }
 
-    /// The calibrated confidence `σ(logit(c) / T)` of a certainty `c`.
+    /// The shift added to the scaled log-odds.
+    pub fn shift(&self) -> f64 {
+        self.shift
+    }
+
+    /// Whether this leaves certainties unchanged.
+    pub fn is_identity(&self) -> bool {
+        *self == Calibration::IDENTITY
+    }
+
+    /// `T = 1.02` or `T = 1.02, shift +0.85`.
+    pub fn describe(&self) -> String {
+        if self.shift == 0.0 {
+            format!("T = {:.2}", self.temperature)
+        } else {
+            format!("T = {:.2}, shift {:+.2}", self.temperature, self.shift)
+        }
+    }
+
+    /// The calibrated confidence `σ(logit(c) / T + shift)` of a certainty `c`.
     pub fn apply(&self, certainty: f32) -> f64 {
-        sigmoid(log_odds(certainty) / self.0)
+        sigmoid(log_odds(certainty) / self.temperature + self.shift)
     }
 
-    /// The temperature that maximizes the likelihood of the words' correctness. The negative
-    /// log-likelihood is convex in `1/T` (logistic regression on one feature without
-    /// intercept), so Newton's method with step halving finds the optimum. Fails when the words
-    /// are all right or all wrong, or when higher certainty does not mean more often right
-    /// (the optimum would be `1/T ≤ 0`). Words that certainty separates perfectly drive `1/T`
-    /// up; it stops at 1000.
-    pub fn fit(words: &[WordOutcome]) -> Result<Temperature, ConfidenceError> {
-        let right = words.iter().filter(|w| w.correct).count();
-        if right == 0 || right == words.len() {
-            return Err(ConfidenceError::CannotFit(format!(
-                "expected words both right and wrong, found {right} right of {}",
-                words.len()
-            )));
-        }
-        let points: Vec<(f64, f64)> = words
-            .iter()
-            .map(|w| (log_odds(w.certainty), if w.correct { 1.0 } else { 0.0 }))
-            .collect();
-        let loss = |theta: f64| -> f64 {
-            points
-                .iter()
-                .map(|&(z, y)| softplus(theta * z) - y * theta * z)
-                .sum()
-        };
-        let slope_at_zero: f64 = points.iter().map(|&(z, y)| (0.5 - y) * z).sum();
-        if slope_at_zero >= 0.0 {
-            return Err(ConfidenceError::CannotFit(format!(
-                "higher certainty does not go with more words right ({right} right of {})",
-                words.len()
-            )));
-        }
-        const MAX_THETA: f64 = 1000.0;
-        let mut theta = 1.0f64;
-        let mut current = loss(theta);
-        for _ in 0..100 {
-            let (mut gradient, mut curvature) = (0.0, 0.0);
-            for &(z, y) in &points {
-                let p = sigmoid(theta * z);
-                gradient += (p - y) * z;
-                curvature += p * (1.0 - p) * z * z;
-            }
-            let mut step = if curvature > 1e-300 {
-                gradient / curvature
-            } else {
-                -theta
-            };
-            let mut improved = false;
-            for _ in 0..60 {
-                let next = (theta - step).clamp(1e-9, MAX_THETA);
-                let value = loss(next);
-                if value <= current {
-                    improved = (theta - next).abs() > 1e-13 * theta.max(1.0);
-                    theta = next;
-                    current = value;
-                    break;
-                }
-                step /= 2.0;
-            }
-            if !improved || theta >= MAX_THETA {
-                break;
-            }
-        }
-        Ok(Temperature(1.0 / theta))
+    /// Calibration scaling alone: the `T` (shift 0) that maximizes the likelihood of the
+    /// words' correctness.
+    pub fn fit_temperature(words: &[WordOutcome]) -> Result<Calibration, ConfidenceError> {
+        fit(words, false)
     }
 
-    /// Reads the `temperature` key of a calibration file written by [`Temperature::write`].
-    pub fn read(path: &Path) -> Result<Temperature, ConfidenceError> {
+    /// Calibration and shift together (logistic regression on the log-odds with an intercept,
+    /// Platt's scaling applied to the certainty's log-odds). Needed when the certainty is too
+    /// timid in the middle of its range and too bold at the top, which no single temperature
+    /// can fix.
+    pub fn fit(words: &[WordOutcome]) -> Result<Calibration, ConfidenceError> {
+        fit(words, true)
+    }
+
+    /// Reads a calibration file written by [`Calibration::write`].
+    pub fn read(path: &Path) -> Result<Calibration, ConfidenceError> {
         let problem = |problem: String| ConfidenceError::CalibrationFile {
             path: path.to_path_buf(),
             problem,
@@ -164,10 +145,10 @@ impl Temperature {
                 "not a calibration file of `isogloss calibrate`: {e}"
             ))
         })?;
-        Temperature::new(record.temperature).ok_or_else(|| {
+        Calibration::new(record.temperature, record.shift).ok_or_else(|| {
             problem(format!(
-                "key `temperature`: expected a positive number, found {}",
-                record.temperature
+                "keys `temperature` and `shift`: expected a positive and a finite number, found {} and {}",
+                record.temperature, record.shift
             ))
         })
     }
@@ -175,7 +156,7 @@ impl Temperature {
     /// Writes a calibration file (TOML) holding `record`.
     pub fn write(path: &Path, record: &CalibrationRecord) -> Result<(), ConfidenceError> {
         let text = format!(
-            "# Word-certainty calibration written by `isogloss calibrate`:\n# confidence = sigmoid(logit(certainty) / temperature)\n{}",
+            "# Word-certainty calibration written by `isogloss calibrate`:\n# confidence = sigmoid(logit(certainty) / temperature + shift)\n{}",
             toml::to_string(record).expect("a record of numbers serializes")
         );
         std::fs::write(path, text).map_err(|e| ConfidenceError::CalibrationFile {
@@ -185,11 +166,92 @@ impl Temperature {
     }
 }
 
+/// Maximum likelihood of the words' correctness under `σ(a·logit(c) + b)` (`b` fixed at 0
+/// unless `with_shift`): the negative log-likelihood is convex in `(a, b)` (logistic
+/// regression), so Newton's method with step halving finds the optimum; `T = 1/a`. Fails when
+/// the words are all right or all wrong, or when higher certainty does not mean more often
+/// right (the optimum would have `a ≤ 0`). Words that certainty separates perfectly drive `a`
+/// up; it stops at 1000.
+fn fit(words: &[WordOutcome], with_shift: bool) -> Result<Calibration, ConfidenceError> {
+    let right = words.iter().filter(|w| w.correct).count();
+    if right == 0 || right == words.len() {
+        return Err(ConfidenceError::CannotFit(format!(
+            "expected words both right and wrong, found {right} right of {}",
+            words.len()
+        )));
+    }
+    let points: Vec<(f64, f64)> = words
+        .iter()
+        .map(|w| (log_odds(w.certainty), if w.correct { 1.0 } else { 0.0 }))
+        .collect();
+    let loss = |a: f64, b: f64| -> f64 {
+        points
+            .iter()
+            .map(|&(z, y)| softplus(a * z + b) - y * (a * z + b))
+            .sum()
+    };
+    const MAX_SLOPE: f64 = 1000.0;
+    let (mut a, mut b) = (1.0f64, 0.0f64);
+    let mut current = loss(a, b);
+    for _ in 0..200 {
+        let (mut ga, mut gb, mut haa, mut hab, mut hbb) = (0.0, 0.0, 0.0, 0.0, 0.0);
+        for &(z, y) in &points {
+            let p = sigmoid(a * z + b);
+            let w = p * (1.0 - p);
+            ga += (p - y) * z;
+            gb += p - y;
+            haa += w * z * z;
+            hab += w * z;
+            hbb += w;
+        }
+        // Newton step: solve H·d = g (2 × 2, or 1 × 1 without the shift)
+        let (mut da, mut db) = if with_shift {
+            let det = haa * hbb - hab * hab;
+            if det > 1e-300 {
+                ((hbb * ga - hab * gb) / det, (haa * gb - hab * ga) / det)
+            } else {
+                (ga, gb)
+            }
+        } else if haa > 1e-300 {
+            (ga / haa, 0.0)
+        } else {
+            (ga, 0.0)
+        };
+        let mut moved = false;
+        for _ in 0..60 {
+            let (na, nb) = ((a - da).clamp(-MAX_SLOPE, MAX_SLOPE), b - db);
+            let value = loss(na, nb);
+            if value <= current {
+                moved = (na - a).abs() + (nb - b).abs() > 1e-13 * (1.0 + a.abs() + b.abs());
+                a = na;
+                b = nb;
+                current = value;
+                break;
+            }
+            da /= 2.0;
+            db /= 2.0;
+        }
+        if !moved || a >= MAX_SLOPE {
+            break;
+        }
+    }
+    if a <= 0.0 {
+        return Err(ConfidenceError::CannotFit(format!(
+            "higher certainty does not go with more words right ({right} right of {})",
+            words.len()
+        )));
+    }
+    Ok(Calibration {
+        temperature: 1.0 / a,
+        shift: b,
+    })
+}
+
 /// The mean calibrated confidence of a segment's words: the expected share of them that are
 /// right. `None` for a segment without words.
 pub fn segment_confidence(
     certainties: impl IntoIterator<Item = f32>,
-    temperature: &Temperature,
+    temperature: &Calibration,
 ) -> Option<f64> {
     let (mut sum, mut count) = (0.0, 0usize);
     for c in certainties {
@@ -233,7 +295,7 @@ fn bin_of(p: f64, bins: usize) -> usize {
 }
 
 /// The reliability table of `words` after `temperature`, with `bins` equal-width bins.
-pub fn reliability(words: &[WordOutcome], temperature: &Temperature, bins: usize) -> Reliability {
+pub fn reliability(words: &[WordOutcome], temperature: &Calibration, bins: usize) -> Reliability {
     let bins = bins.max(1);
     let mut sums = vec![(0usize, 0.0f64, 0usize); bins];
     for word in words {
@@ -276,7 +338,7 @@ pub fn reliability(words: &[WordOutcome], temperature: &Temperature, bins: usize
 /// The expected calibration error of `words` after `temperature` over `bins` equal-width bins.
 pub fn expected_calibration_error(
     words: &[WordOutcome],
-    temperature: &Temperature,
+    temperature: &Calibration,
     bins: usize,
 ) -> f64 {
     reliability(words, temperature, bins).ece
@@ -424,7 +486,7 @@ mod tests {
         // confidences 0.25 ×2 (one right), 0.75 ×2 (both right), identity temperature:
         // bin [0.2, 0.3]: |0.5 − 0.25| = 0.25; bin [0.7, 0.8]: |1 − 0.75| = 0.25; ECE 0.25
         let words = outcomes(&[(0.25, true), (0.25, false), (0.75, true), (0.75, true)]);
-        let table = reliability(&words, &Temperature::IDENTITY, 10);
+        let table = reliability(&words, &Calibration::IDENTITY, 10);
         assert!((table.ece - 0.25).abs() < 1e-12);
         assert_eq!(table.bins[2].words, 2);
         assert_eq!(table.bins[7].accuracy, 1.0);
@@ -436,7 +498,7 @@ mod tests {
         let mut words = Vec::new();
         for i in 1..200 {
             let c = i as f32 / 200.0;
-            let p = Temperature(2.0).apply(c);
+            let p = Calibration::new(2.0, 0.0).unwrap().apply(c);
             for k in 0..50 {
                 words.push(WordOutcome {
                     certainty: c,
@@ -444,16 +506,28 @@ mod tests {
                 });
             }
         }
-        let t = Temperature::fit(&words).unwrap();
-        assert!((t.value() - 2.0).abs() < 0.05, "{t:?}");
+        let t = Calibration::fit_temperature(&words).unwrap();
+        assert!((t.temperature() - 2.0).abs() < 0.05, "{t:?}");
+        let both = Calibration::fit(&words).unwrap();
+        assert!(
+            (both.temperature() - 2.0).abs() < 0.05 && both.shift().abs() < 0.05,
+            "{both:?}"
+        );
     }
 
     #[test]
     fn fitting_refuses_what_carries_no_information() {
         let all_right = outcomes(&[(0.9, true), (0.2, true)]);
-        assert!(Temperature::fit(&all_right).is_err());
-        let backwards = outcomes(&[(0.9, false), (0.8, false), (0.2, true), (0.1, true)]);
-        let message = Temperature::fit(&backwards).unwrap_err().to_string();
+        assert!(Calibration::fit(&all_right).is_err());
+        let backwards = outcomes(&[
+            (0.9, false),
+            (0.8, false),
+            (0.7, true),
+            (0.3, false),
+            (0.2, true),
+            (0.1, true),
+        ]);
+        let message = Calibration::fit(&backwards).unwrap_err().to_string();
         assert!(message.contains("does not go with"), "{message}");
     }
 
@@ -463,20 +537,24 @@ mod tests {
         let path = dir.path().join("calibration.toml");
         let record = CalibrationRecord {
             temperature: 1.7,
+            shift: 0.5,
             words: 10,
             dev_ece_before: 0.2,
             dev_ece_after: 0.03,
         };
-        Temperature::write(&path, &record).unwrap();
-        assert_eq!(Temperature::read(&path).unwrap().value(), 1.7);
+        Calibration::write(&path, &record).unwrap();
+        assert_eq!(
+            Calibration::read(&path).unwrap(),
+            Calibration::new(1.7, 0.5).unwrap()
+        );
         std::fs::write(
             &path,
-            "temperature = -1.0\nwords = 1\ndev_ece_before = 0.0\ndev_ece_after = 0.0\n",
+            "temperature = -1.0\nshift = 0.0\nwords = 1\ndev_ece_before = 0.0\ndev_ece_after = 0.0\n",
         )
         .unwrap();
-        let message = Temperature::read(&path).unwrap_err().to_string();
+        let message = Calibration::read(&path).unwrap_err().to_string();
         assert!(
-            message.contains("key `temperature`") && message.contains("-1"),
+            message.contains("keys `temperature` and `shift`") && message.contains("-1"),
             "{message}"
         );
     }
@@ -484,7 +562,7 @@ mod tests {
     #[test]
     fn the_chart_is_svg_with_both_series() {
         let words = outcomes(&[(0.25, true), (0.25, false), (0.75, true)]);
-        let a = reliability(&words, &Temperature::IDENTITY, 10);
+        let a = reliability(&words, &Calibration::IDENTITY, 10);
         let svg = reliability_svg("dev & test", &[("raw", &a), ("calibrated", &a)]);
         assert!(svg.starts_with("<svg") && svg.trim_end().ends_with("</svg>"));
         assert!(svg.contains("dev &amp; test") && svg.contains("calibrated (ECE"));

@@ -9,8 +9,8 @@
 //! - [`outcome`]: which hypothesis words are right, by aligning them with a reference transcript
 //!   (the same aligner and token rules as scoring; a permissible spelling variant counts as
 //!   right when a variant map is given).
-//! - [`calibration`]: a temperature fitted on dev, `p = σ(logit(c) / T)`, the reliability table
-//!   and expected calibration error (ECE), and the reliability chart as SVG.
+//! - [`calibration`]: a temperature and shift fitted on dev, `p = σ(logit(c) / T + shift)`, the
+//!   reliability table and expected calibration error (ECE), and the reliability chart as SVG.
 //! - [`ranking`]: untranscribed segments ranked for human transcription within a budget in
 //!   minutes, by expected word errors, unknown words and the dialects and speakers the training
 //!   manifest has least of.
@@ -18,26 +18,26 @@
 //! # Key design decision
 //!
 //! One number per word flows through everything: the *calibrated* word confidence
-//! ([`Temperature::apply`]). Segment confidence ([`segment_confidence`]) is the mean of the
+//! ([`Calibration::apply`]). Segment confidence ([`segment_confidence`]) is the mean of the
 //! calibrated word confidences, so it reads as "expected share of words right", and a threshold
-//! on it means the same thing on any corpus whose dev split the temperature was fitted on. The
+//! on it means the same thing on any corpus whose dev split the calibration was fitted on. The
 //! ranking and a self-training loop share that plumbing: ranking takes the lowest segments for
-//! people, self-training would keep the highest ones as pseudo-labels. Temperature scaling has
-//! one parameter, so it cannot reorder words: the ranking is the same with or without it, and a
-//! small dev split is enough to fit it.
+//! people, self-training would keep the highest ones as pseudo-labels. The calibration is
+//! monotone (two parameters on the log-odds), so it cannot reorder words: a ranking by word
+//! confidence is the same with or without it, and a small dev split is enough to fit it.
 //!
 //! # Example
 //!
 //! ```
-//! use isogloss_confidence::{expected_calibration_error, Temperature, WordOutcome};
+//! use isogloss_confidence::{expected_calibration_error, Calibration, WordOutcome};
 //!
 //! // over-confident certainties: 0.9 but right only 60 % of the time
 //! let words: Vec<WordOutcome> = (0..100)
 //!     .map(|i| WordOutcome { certainty: 0.9, correct: i % 5 < 3 })
 //!     .collect();
-//! let fitted = Temperature::fit(&words).unwrap();
-//! assert!(fitted.value() > 1.0);
-//! let before = expected_calibration_error(&words, &Temperature::IDENTITY, 10);
+//! let fitted = Calibration::fit_temperature(&words).unwrap();
+//! assert!(fitted.temperature() > 1.0);
+//! let before = expected_calibration_error(&words, &Calibration::IDENTITY, 10);
 //! let after = expected_calibration_error(&words, &fitted, 10);
 //! assert!(after < 0.01 && before > 0.29);
 //! ```
@@ -50,8 +50,8 @@ pub mod outcome;
 pub mod ranking;
 
 pub use calibration::{
-    expected_calibration_error, reliability, reliability_svg, segment_confidence,
-    CalibrationRecord, Reliability, ReliabilityBin, Temperature,
+    expected_calibration_error, reliability, reliability_svg, segment_confidence, Calibration,
+    CalibrationRecord, Reliability, ReliabilityBin,
 };
 pub use outcome::{word_outcomes, WordOutcome};
 pub use ranking::{
@@ -61,8 +61,8 @@ pub use ranking::{
 /// Everything that can go wrong calibrating or ranking; messages name the file or item.
 #[derive(Debug, thiserror::Error)]
 pub enum ConfidenceError {
-    /// A temperature cannot be fitted from these words.
-    #[error("cannot fit a temperature: {0}")]
+    /// No calibration can be fitted from these words.
+    #[error("cannot fit a calibration: {0}")]
     CannotFit(String),
     /// A calibration file cannot be read or written, or holds a bad value.
     #[error("{path}: {problem}")]

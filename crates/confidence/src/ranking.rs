@@ -27,7 +27,7 @@ use isogloss_corpus::Manifest;
 use isogloss_score::{tokenize, TokenRules};
 use serde::Serialize;
 
-use crate::calibration::{segment_confidence, Temperature};
+use crate::calibration::{segment_confidence, Calibration};
 use crate::ConfidenceError;
 
 /// An untranscribed segment with its machine transcript.
@@ -252,7 +252,7 @@ impl Ord for Entry {
 pub fn shortlist(
     candidates: &[Candidate],
     profile: &TrainingProfile,
-    temperature: &Temperature,
+    temperature: &Calibration,
     weights: &RankWeights,
     budget_seconds: f64,
 ) -> Shortlist {
@@ -407,7 +407,7 @@ mod tests {
         let list = shortlist(
             &pool,
             &TrainingProfile::default(),
-            &Temperature::IDENTITY,
+            &Calibration::IDENTITY,
             &RankWeights::default(),
             150.0,
         );
@@ -439,7 +439,7 @@ mod tests {
         let list = shortlist(
             &pool,
             &profile(&[("x", 2), ("z", 0)]),
-            &Temperature::IDENTITY,
+            &Calibration::IDENTITY,
             &weights,
             40.0,
         );
@@ -470,7 +470,7 @@ mod tests {
         let list = shortlist(
             &pool,
             &TrainingProfile::default(),
-            &Temperature::IDENTITY,
+            &Calibration::IDENTITY,
             &RankWeights::default(),
             100.0,
         );
@@ -496,7 +496,7 @@ mod tests {
         let list = shortlist(
             &[known, strange],
             &profile,
-            &Temperature::IDENTITY,
+            &Calibration::IDENTITY,
             &RankWeights::default(),
             10.0,
         );

@@ -50,7 +50,7 @@ use std::collections::HashMap;
 use std::fs;
 use std::path::{Path, PathBuf};
 
-use isogloss_confidence::Temperature;
+use isogloss_confidence::Calibration;
 use isogloss_decoder::output::{TimedSegment, TranscriptDocument};
 
 pub mod audio;
@@ -119,7 +119,7 @@ pub struct ReviewOptions {
     /// Words below this confidence are the ones the "next low-confidence word" key visits.
     pub low_confidence: f64,
     /// Applied to the certainties before colouring (identity: raw certainties).
-    pub temperature: Temperature,
+    pub calibration: Calibration,
 }
 
 impl Default for ReviewOptions {
@@ -128,7 +128,7 @@ impl Default for ReviewOptions {
             column: "text".into(),
             convert: ConvertAudio::Auto,
             low_confidence: 0.7,
-            temperature: Temperature::IDENTITY,
+            calibration: Calibration::IDENTITY,
         }
     }
 }
@@ -374,7 +374,7 @@ fn write_one(
         .stretches
         .iter()
         .flat_map(|s| &s.segment.words)
-        .filter(|w| options.temperature.apply(w.confidence) < options.low_confidence)
+        .filter(|w| options.calibration.apply(w.confidence) < options.low_confidence)
         .count();
     Ok(PageSummary {
         name: recording.name.clone(),

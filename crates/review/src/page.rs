@@ -121,7 +121,7 @@ pub fn render_page(recording: &Recording, audio: &PageAudio, options: &ReviewOpt
             c: s.segment
                 .words
                 .iter()
-                .map(|w| percent(options.temperature.apply(w.confidence)))
+                .map(|w| percent(options.calibration.apply(w.confidence)))
                 .collect(),
         })
         .collect();
@@ -138,12 +138,12 @@ pub fn render_page(recording: &Recording, audio: &PageAudio, options: &ReviewOpt
         low: percent(options.low_confidence),
         stretches,
     };
-    let scale = if options.temperature.value() == 1.0 {
+    let scale = if options.calibration.is_identity() {
         "certainty".to_string()
     } else {
         format!(
-            "confidence (calibrated, T = {:.2})",
-            options.temperature.value()
+            "confidence (calibrated, {})",
+            options.calibration.describe()
         )
     };
     let band = |i: usize| {
@@ -298,7 +298,7 @@ small {{ color: #5b5b5b; }}
 </html>
 "#,
         low = options.low_confidence,
-        scale = if options.temperature.value() == 1.0 {
+        scale = if options.calibration.is_identity() {
             "certainty"
         } else {
             "calibrated confidence"
@@ -367,12 +367,12 @@ mod tests {
     }
 
     #[test]
-    fn times_in_milliseconds_and_certainties_in_percent_after_the_temperature() {
+    fn times_in_milliseconds_and_certainties_in_percent_after_calibration() {
         let words = [("x", 1.2345, 1.5, 0.9f32)];
         let plain = render_page(&recording(&words), &audio(), &ReviewOptions::default());
         assert!(plain.contains(r#""t":[1235,1500],"c":[90]"#), "{plain}");
         let softer = ReviewOptions {
-            temperature: isogloss_confidence::Temperature::new(2.0).unwrap(),
+            calibration: isogloss_confidence::Calibration::new(2.0, 0.0).unwrap(),
             ..ReviewOptions::default()
         };
         let page = render_page(&recording(&words), &audio(), &softer);
