@@ -4,15 +4,18 @@
 //! A one-hour transcript is generated (seeded): stretches of 3–15 words between pauses, about
 //! 2.6 words a second of speech, certainties spread over (0, 1]; the audio beside it is an hour
 //! of silence (16 kHz, 16-bit WAV, as a converted copy would be). Each round starts a fresh
-//! browser, opens the page from `file://`, and reads from the page's own clock: the moment the
-//! script has built every word (`isogloss-ready` mark), the load event, and the first frame
-//! drawn after it (an upper bound: it includes one DevTools round trip).
+//! browser, opens the page from `file://`, and reads from the page's own clock (milliseconds
+//! from the start of navigation): the moment the script has built every word (`isogloss-ready`),
+//! the first frame with the words on screen (`isogloss-shown`: the page is usable), and the
+//! load event (which also waits for the player to read the audio's header).
 //!
 //! ```sh
 //! cargo bench -p isogloss-review --bench open_page -- [ROUNDS]
 //! ```
 
 #[path = "../tests/support/cdp.rs"]
+// shared by the browser test, the benchmark and the screenshot example; each uses a part
+#[allow(dead_code)]
 mod cdp;
 
 use isogloss_decoder::output::{ItemTranscript, TimedSegment, TimedWord, TranscriptDocument};
@@ -148,12 +151,12 @@ fn main() {
     for round in 1..=rounds {
         let mut browser = cdp::Browser::start(&chromium, 1200, 800);
         browser.open(&url);
+        browser.wait_until("performance.getEntriesByName('isogloss-shown').length === 1");
         let times = browser.eval(
-            "new Promise(done => requestAnimationFrame(() => done([\
-               performance.getEntriesByName('isogloss-ready')[0].startTime,\
-               performance.getEntriesByType('navigation')[0].loadEventEnd,\
-               performance.now(),\
-               document.querySelectorAll('span.w[data-k]').length])))",
+            "[performance.getEntriesByName('isogloss-ready')[0].startTime,\
+              performance.getEntriesByType('navigation')[0].loadEventEnd,\
+              performance.getEntriesByName('isogloss-shown')[0].startTime,\
+              document.querySelectorAll('span.w[data-k]').length]",
         );
         let t: Vec<f64> = times
             .as_array()
@@ -163,8 +166,8 @@ fn main() {
             .collect();
         assert_eq!(t[3] as usize, words, "every word is on the page");
         println!(
-            "round {round}: words built {:.0} ms, load event {:.0} ms, first frame after load ≤ {:.0} ms (from navigation start)",
-            t[0], t[1], t[2]
+            "round {round}: words built {:.0} ms, shown {:.0} ms, load event {:.0} ms (from navigation start)",
+            t[0], t[2], t[1]
         );
         ready.push(t[0]);
         load.push(t[1]);
@@ -173,9 +176,9 @@ fn main() {
         assert!(errors.is_empty(), "{errors:?}");
     }
     println!(
-        "median of {rounds}: words built {:.0} ms, load event {:.0} ms, first frame ≤ {:.0} ms",
+        "median of {rounds}: words built {:.0} ms, shown {:.0} ms, load event {:.0} ms",
         median(&mut ready),
-        median(&mut load),
-        median(&mut frame)
+        median(&mut frame),
+        median(&mut load)
     );
 }

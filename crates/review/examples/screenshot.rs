@@ -6,6 +6,8 @@
 //! ```
 
 #[path = "../tests/support/cdp.rs"]
+// shared by the browser test, the benchmark and the screenshot example; each uses a part
+#[allow(dead_code)]
 mod cdp;
 
 fn main() {

@@ -125,7 +125,7 @@
     if (k >= 0) {
       var edited = Object.prototype.hasOwnProperty.call(state.words, k);
       say("Word " + (k + 1) + " of " + words.length + ", " + clock(starts[k]) + "–" + clock(ends[k]) +
-        ", certainty " + (certs[k] / 100).toFixed(2) + (edited ? ', machine wrote "' + words[k] + '"' : ""));
+        ", confidence " + (certs[k] / 100).toFixed(2) + (edited ? ', machine wrote "' + words[k] + '"' : ""));
       if (scroll) reveal(span(k));
     }
   }
@@ -416,4 +416,8 @@
     countEdits() + " corrections kept in this browser.");
   window.isoglossReview = { exportTsv: exportTsv, exportVtt: exportVtt, words: words.length };
   performance.mark("isogloss-ready");
+  // the first frame with the words on screen: the moment the page is usable
+  window.requestAnimationFrame(function () {
+    window.setTimeout(function () { performance.mark("isogloss-shown"); }, 0);
+  });
 })();

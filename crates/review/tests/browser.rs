@@ -9,6 +9,8 @@
 //! Debian's `chromium`).
 
 #[path = "support/cdp.rs"]
+// shared by the browser test, the benchmark and the screenshot example; each uses a part
+#[allow(dead_code)]
 mod cdp;
 
 use std::collections::HashMap;
