@@ -88,6 +88,7 @@ fn every_command_names_the_file_and_says_each_piece_once() {
     let wrong_type = temp("wrong-type.toml", "[model]\nlayers = \"many\"\n");
     let bad_arpa = temp("bad.arpa", "garbage\n");
     let words = temp("words.txt", "wendle valley\n");
+    let not_transcript = temp("other.json", "{\"results\": []}");
     let missing = dir.path().join("missing.tsv");
     let repo = repo();
     let score = repo.join("tests/fixtures/score");
@@ -396,6 +397,43 @@ fn every_command_names_the_file_and_says_each_piece_once() {
             ]),
             "missing.wav".into(),
             2,
+        ),
+        (
+            owned(&["review", path(&not_transcript), "--out", &out("review")]),
+            "other.json".into(),
+            1,
+        ),
+        (
+            owned(&["review", &out("missing.json"), "--out", &out("review")]),
+            "missing.json".into(),
+            1,
+        ),
+        (
+            owned(&[
+                "calibrate",
+                "--transcript",
+                &out("missing.json"),
+                "--reference",
+                path(&reference),
+                "--column",
+                "dialectal",
+                "--out",
+                &out("calibration"),
+            ]),
+            "missing.json".into(),
+            1,
+        ),
+        (
+            owned(&[
+                "shortlist",
+                path(&not_transcript),
+                "--minutes",
+                "5",
+                "--out",
+                &out("chosen.tsv"),
+            ]),
+            "other.json".into(),
+            1,
         ),
         (
             owned(&["sweep", "--config", &out("missing.toml")]),
