@@ -92,7 +92,7 @@ pub struct TranscribeArgs {
 impl TranscribeArgs {
     fn search_options(&self) -> SearchOptions {
         SearchOptions {
-            beam: self.beam.max(1),
+            beam: self.beam,
             lm_weight: self.lm_weight,
             word_bonus: self.word_bonus,
             unit_margin: Some(self.unit_margin),
@@ -103,16 +103,36 @@ impl TranscribeArgs {
     }
 
     fn check(&self) -> anyhow::Result<()> {
-        if !(self.lm_weight.is_finite() && self.word_bonus.is_finite() && self.unit_margin > 0.0) {
-            bail!("--lm-weight and --word-bonus must be numbers and --unit-margin positive");
+        let flag = |error: DecodeError| match error {
+            DecodeError::InvalidSetting {
+                setting,
+                expected,
+                found,
+            } => anyhow::anyhow!(
+                "--{}: expected {expected}, found {found}",
+                match setting {
+                    "max_segment_seconds" => "max-segment".to_string(),
+                    other => other.replace('_', "-"),
+                }
+            ),
+            other => other.into(),
+        };
+        if !(0.0..=1.0).contains(&self.skip_blank_above) {
+            bail!(
+                "--skip-blank-above: expected from 0 to 1, found {}",
+                self.skip_blank_above
+            );
         }
-        if !(0.0..=1.0).contains(&self.skip_blank_above)
-            || self.max_segment.is_nan()
-            || self.max_segment < 1.0
-        {
-            bail!("--skip-blank-above must be in [0, 1] and --max-segment at least 1 second");
-        }
+        self.search_options().validate().map_err(flag)?;
+        self.vad().validate().map_err(flag)?;
         Ok(())
+    }
+
+    fn vad(&self) -> VadConfig {
+        VadConfig {
+            max_segment_seconds: self.max_segment,
+            ..VadConfig::default()
+        }
     }
 }
 
@@ -240,10 +260,11 @@ pub fn batch_items(args: &TranscribeArgs) -> anyhow::Result<Vec<BatchItem>> {
                 if text.is_empty() {
                     return Ok(None);
                 }
+                let limit = isogloss_audio::MAX_TIME_SECONDS;
                 match text.parse::<f64>() {
-                    Ok(v) if v >= 0.0 && v.is_finite() => Ok(Some(v)),
+                    Ok(v) if (0.0..=limit).contains(&v) => Ok(Some(v)),
                     _ => bail!(
-                        "{}, line {}: column {name}: expected seconds, found {text:?}",
+                        "{}, line {}: column {name}: expected seconds from 0 to {limit}, found {text:?}",
                         manifest.display(),
                         record.line
                     ),
@@ -303,10 +324,7 @@ fn run_items<L: LanguageModel>(
     let shift = recognizer.frame_shift_seconds();
     let settings = StreamSettings {
         sample_rate: SAMPLE_RATE,
-        vad: VadConfig {
-            max_segment_seconds: args.max_segment,
-            ..VadConfig::default()
-        },
+        vad: args.vad(),
         batch_segments: 2 * rayon::current_num_threads(),
         frame_shift_seconds: shift,
     };
