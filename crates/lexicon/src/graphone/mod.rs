@@ -959,8 +959,11 @@ mod tests {
         )
         .unwrap();
         let error = G2pModel::read(&path).unwrap_err().to_string();
-        assert!(error.contains("model.g2p"), "{error}");
-        assert!(error.contains("end of the file"), "{error}");
+        assert!(error.contains("model.g2p, line 3"), "{error}");
+        assert!(
+            error.contains("announces 2 graphones, but only 1 lines follow"),
+            "{error}"
+        );
 
         // A damaged n-gram part: the ARPA reader names the line of the whole file.
         let (model, _) =
