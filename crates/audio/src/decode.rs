@@ -393,7 +393,7 @@ impl Source {
         // absurdly large ones overflow the resampler's FFT into infinities.
         if let Some(position) = out[before..]
             .iter()
-            .position(|x| !(x.abs() <= MAX_SAMPLE_MAGNITUDE))
+            .position(|x| !(x.is_finite() && x.abs() <= MAX_SAMPLE_MAGNITUDE))
         {
             let frame = self.frames_read + position as u64;
             let seconds = frame as f64 / f64::from(self.sample_rate);

@@ -1,6 +1,7 @@
 //! Audio input for isogloss: decoding WAV, FLAC, MP3 and Ogg Vorbis, averaging channels to mono,
 //! resampling to 16 kHz, cutting utterance segments out of long recordings, and the waveform
-//! augmentations used in training (speed and volume perturbation).
+//! augmentations used in training (speed and volume perturbation here; noise, reverberation,
+//! band-limiting and gain in [`augment`]).
 //!
 //! # Design
 //!
@@ -36,6 +37,7 @@
 
 use std::path::{Path, PathBuf};
 
+pub mod augment;
 mod container;
 mod decode;
 mod perturb;
@@ -181,6 +183,19 @@ pub enum AudioError {
         /// The value given.
         found: String,
     },
+    /// An augmentation setting out of range, named by its key in the training configuration.
+    #[error("{key}: expected {expected}, found {found}")]
+    InvalidSetting {
+        /// The key, e.g. `augmentation.noise.snr_db`.
+        key: &'static str,
+        /// What a valid value looks like.
+        expected: String,
+        /// The value given.
+        found: String,
+    },
+    /// Babble noise was drawn but the caller supplied no utterances to make it from.
+    #[error("augmentation.noise.kinds lists \"babble\", but no utterances were supplied to make babble from")]
+    NoBabbleSource,
 }
 
 /// What a file holds, as read from its header (or counted by decoding when the header is silent).

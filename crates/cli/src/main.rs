@@ -34,7 +34,7 @@ enum Command {
     /// Train a TDNN acoustic model with CTC.
     Train(commands::train::TrainArgs),
     /// Transcribe recordings or a manifest: beam search with LM and lexicon, or greedy.
-    Transcribe(commands::decode::TranscribeArgs),
+    Transcribe(commands::transcribe::TranscribeArgs),
     /// Decode and score a grid of LM, lexicon, writing and decoder choices.
     Sweep(commands::sweep::SweepArgs),
     /// Build a spelling-variant map from two word-aligned transcript columns.
@@ -43,6 +43,12 @@ enum Command {
     Lm(commands::lm::LmArgs),
     /// Make pronunciation lexicons (rules, trained G2P) and measure their coverage.
     Lexicon(commands::lexicon::LexiconArgs),
+    /// Review pages for a transcript: listen, correct words, label speakers, export TSV/WebVTT.
+    Review(commands::review::ReviewArgs),
+    /// Calibrate word certainties on dev (temperature, shift); ECE and a reliability chart.
+    Calibrate(commands::calibrate::CalibrateArgs),
+    /// Rank untranscribed segments for human transcription within a budget of minutes.
+    Shortlist(commands::shortlist::ShortlistArgs),
 }
 
 /// How a command that did not fail outright ended.
@@ -84,13 +90,54 @@ fn main() -> ExitCode {
         Command::Train(args) => commands::train::run(args),
         Command::Transcribe(args) => commands::transcribe::run(args),
         Command::Sweep(args) => commands::sweep::run(args),
+        Command::Review(args) => commands::review::run(args),
+        Command::Calibrate(args) => commands::calibrate::run(args),
+        Command::Shortlist(args) => commands::shortlist::run(args),
     };
     match result {
         Ok(Outcome::Done) => ExitCode::SUCCESS,
         Ok(Outcome::SomeItemsFailed) => ExitCode::from(2),
         Err(error) => {
-            eprintln!("error: {error:#}");
+            eprintln!("error: {}", describe(&error));
             ExitCode::from(1)
         }
+    }
+}
+
+/// The error and its causes, each said once: library errors put their cause (often the
+/// operating system's message) into their own text and also report it as their source, so a
+/// cause already in the text is not repeated.
+fn describe(error: &anyhow::Error) -> String {
+    let mut text = String::new();
+    for cause in error.chain() {
+        let cause = cause.to_string();
+        if text.contains(&cause) {
+            continue;
+        }
+        if !text.is_empty() {
+            text.push_str(": ");
+        }
+        text.push_str(&cause);
+    }
+    text
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn each_cause_is_said_once() {
+        let os = std::io::Error::new(std::io::ErrorKind::NotFound, "No such file or directory");
+        let error = isogloss_audio::AudioError::Io {
+            path: "int1.wav".into(),
+            source: os,
+        };
+        assert_eq!(
+            describe(&anyhow::Error::from(error)),
+            "int1.wav: cannot read the audio file: No such file or directory"
+        );
+        let context = anyhow::anyhow!("inner reason").context("reading the lexicon");
+        assert_eq!(describe(&context), "reading the lexicon: inner reason");
     }
 }

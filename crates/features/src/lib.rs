@@ -1,5 +1,5 @@
-//! Acoustic front end of isogloss: MFCC and log-mel features, deltas, CMVN and SpecAugment
-//! masks, and the safetensors feature files that cache them.
+//! Acoustic front end of isogloss: MFCC and log-mel features, deltas, CMVN, SpecAugment masks,
+//! vocal-tract length perturbation ([`vtlp`]), and the safetensors feature files that cache them.
 //!
 //! The default [`FeatureConfig`] is the front end specified in `docs/features.md` (16 kHz,
 //! pre-emphasis 0.97, 25 ms Hamming windows every 10 ms, 512-point power spectrum, 40 mel filters
@@ -38,6 +38,7 @@ mod io;
 pub mod mel;
 mod specaugment;
 mod spectrum;
+pub mod vtlp;
 
 pub use cmvn::{Cmvn, CmvnStats, SpeakerCmvnStats};
 pub use config::{
@@ -48,3 +49,4 @@ pub use error::FeatureError;
 pub use extractor::FeatureExtractor;
 pub use io::{read_features, write_features, FEATURES_TENSOR};
 pub use specaugment::{MaskFill, SpecAugment};
+pub use vtlp::{VtlpConfig, VtlpWarp};

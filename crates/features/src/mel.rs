@@ -1,5 +1,6 @@
 //! The mel scale and a sparse triangular mel filterbank.
 
+use crate::vtlp::VtlpWarp;
 use crate::FeatureError;
 
 /// Hertz to mel by the published formula of O'Shaughnessy (1987, *Speech Communication: Human
@@ -39,6 +40,40 @@ impl MelFilterbank {
         low_hz: f64,
         high_hz: f64,
     ) -> Result<Self, FeatureError> {
+        Self::build(sample_rate, fft_size, bins, low_hz, high_hz, |hz| hz)
+    }
+
+    /// The same filters read through the VTLP frequency warp: bin k gets the weight the unwarped
+    /// filter has at W(f_k) (see [`crate::vtlp`]). Equal to [`Self::new`] for α = 1. Fails, naming
+    /// the warp factor, when the warp squeezes a filter between two FFT bins.
+    pub fn warped(
+        sample_rate: u32,
+        fft_size: usize,
+        bins: usize,
+        low_hz: f64,
+        high_hz: f64,
+        warp: &VtlpWarp,
+    ) -> Result<Self, FeatureError> {
+        Self::build(sample_rate, fft_size, bins, low_hz, high_hz, |hz| {
+            warp.apply(hz)
+        })
+        .map_err(|_| FeatureError::InvalidSetting {
+            key: "augmentation.vtlp.warp_factor",
+            expected: format!(
+                "a warp that leaves each of the {bins} mel filters at least one FFT bin"
+            ),
+            found: warp.factor().to_string(),
+        })
+    }
+
+    fn build(
+        sample_rate: u32,
+        fft_size: usize,
+        bins: usize,
+        low_hz: f64,
+        high_hz: f64,
+        warp: impl Fn(f64) -> f64,
+    ) -> Result<Self, FeatureError> {
         let low_mel = hz_to_mel(low_hz);
         let step = (hz_to_mel(high_hz) - low_mel) / (bins + 1) as f64;
         let corners: Vec<f64> = (0..bins + 2)
@@ -53,7 +88,7 @@ impl MelFilterbank {
             let start = weights.len();
             let mut first_bin = None;
             for k in 0..spectrum_bins {
-                let hz = k as f64 * bin_hz;
+                let hz = warp(k as f64 * bin_hz);
                 let weight = ((hz - left) / (center - left))
                     .min((right - hz) / (right - center))
                     .max(0.0);
@@ -88,7 +123,7 @@ impl MelFilterbank {
         self.filters.len()
     }
 
-    /// Peak frequency of each filter in Hz.
+    /// Peak frequency of each unwarped filter in Hz.
     pub fn centers_hz(&self) -> &[f64] {
         &self.centers_hz
     }

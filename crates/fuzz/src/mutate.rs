@@ -306,7 +306,13 @@ mod tests {
             let mut rng = Rng::new(s);
             let mut input = seed.clone();
             for _ in 0..50 {
-                mutate(&mut rng, &mut input, &["\\data\\"], &[seed.clone()], 4096);
+                mutate(
+                    &mut rng,
+                    &mut input,
+                    &["\\data\\"],
+                    std::slice::from_ref(&seed),
+                    4096,
+                );
             }
             input
         };

@@ -12,7 +12,9 @@ use isogloss_acoustic::config::ModelConfig;
 use isogloss_acoustic::train::Trainer;
 use isogloss_acoustic::AcousticModel;
 use isogloss_audio::ChunkReader;
+use isogloss_batch::Journal;
 use isogloss_corpus::Manifest;
+use isogloss_decoder::output::TranscriptDocument;
 use isogloss_features::{read_features, FeatureConfig, FeatureExtractor};
 use isogloss_lexicon::graphone::G2pModel;
 use isogloss_lexicon::rules::RuleSet;
@@ -110,6 +112,32 @@ const ARPA_WORDS: &[&str] = &[
     "-99",
     "\t",
     " ",
+];
+
+const JSON_WORDS: &[&str] = &[
+    "{",
+    "}",
+    "[",
+    "]",
+    "\"",
+    ",",
+    ":",
+    "\n",
+    "null",
+    "1e308",
+    "-0",
+    "\\u0000",
+    "\"fingerprint\"",
+    "\"item\"",
+    "\"id\"",
+    "\"stretches\"",
+    "\"tokens\"",
+    "\"from_s\"",
+    "\"to_s\"",
+    "\"certainty\"",
+    "\"format\"",
+    "\"version\"",
+    "\"items\"",
 ];
 
 const TOML_WORDS: &[&str] = &[
@@ -252,6 +280,31 @@ fn all_targets() -> Vec<Target> {
             run: |input| {
                 Hypotheses::read(input).map_err(|e| e.to_string())?;
                 Reference::read(input, "text", &["id".to_string()])
+                    .map(drop)
+                    .map_err(|e| e.to_string())
+            },
+        },
+        Target {
+            name: "journal",
+            file_name: "out.tsv.journal.jsonl",
+            dictionary: JSON_WORDS,
+            errors_name_the_file: true,
+            prepare: nothing,
+            // What `transcribe --resume` does: the entries of one fingerprint are kept.
+            run: |input| {
+                Journal::open(&input.with_file_name("out.tsv"), "0f3c9a", true)
+                    .map(drop)
+                    .map_err(|e| e.to_string())
+            },
+        },
+        Target {
+            name: "transcript",
+            file_name: "transcript.json",
+            dictionary: JSON_WORDS,
+            errors_name_the_file: true,
+            prepare: nothing,
+            run: |input| {
+                TranscriptDocument::read(input)
                     .map(drop)
                     .map_err(|e| e.to_string())
             },

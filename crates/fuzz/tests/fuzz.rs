@@ -132,6 +132,16 @@ fn hypotheses() {
 }
 
 #[test]
+fn journal() {
+    fuzz("journal")
+}
+
+#[test]
+fn transcript() {
+    fuzz("transcript")
+}
+
+#[test]
 fn feature_config() {
     fuzz("feature-config")
 }
