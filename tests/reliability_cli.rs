@@ -297,3 +297,88 @@ fn transcribe_killed_mid_batch_resumes_without_loss_or_repeats() {
         "only {landed} of {points} kills landed mid-batch"
     );
 }
+
+fn train_command(out: &Path, resume: bool) -> Command {
+    let mini = repo("tests/data/mini/manifest.tsv");
+    let mut command = Command::new(env!("CARGO_BIN_EXE_isogloss"));
+    command
+        .args(["train", "--manifest", text(&mini), "--dev", text(&mini)])
+        .args([
+            "--column",
+            "dialectal",
+            "--out",
+            text(out),
+            "--epochs",
+            "100",
+        ])
+        .args([
+            "--config",
+            text(&repo("crates/fuzz/seeds/model-config/tiny.toml")),
+        ])
+        // Same threads in every run, so that the sums come out the same.
+        .env("RAYON_NUM_THREADS", "2");
+    if resume {
+        command.arg("--resume");
+    }
+    command
+}
+
+/// Issue 16: `train` (a tiny network on the mini corpus, 100 epochs, under a second) killed
+/// with SIGKILL at random times — during feature caching, an epoch or a checkpoint write — then
+/// `--resume`: the checkpoint left behind always loads, and the final weights are byte for byte
+/// those of an uninterrupted run with the same seed and threads. A kill before the first
+/// checkpoint leaves nothing to resume; the rerun then starts afresh. Three kill points by
+/// default; `ISOGLOSS_KILL_POINTS` asks for more.
+#[test]
+fn train_killed_at_random_points_resumes_to_the_same_weights() {
+    let points: usize = std::env::var("ISOGLOSS_KILL_POINTS")
+        .map(|v| v.parse().expect("ISOGLOSS_KILL_POINTS: a whole number"))
+        .unwrap_or(3);
+    let dir = tempfile::tempdir().unwrap();
+    let reference = dir.path().join("reference");
+    let whole = run(&mut train_command(&reference, false));
+    assert!(
+        whole.status.success(),
+        "{}",
+        String::from_utf8_lossy(&whole.stderr)
+    );
+    let started = Instant::now();
+    run(&mut train_command(&dir.path().join("timing"), false));
+    let wall = started.elapsed();
+    let reference = fs::read(reference.join("model.safetensors")).unwrap();
+
+    let mut state = 61;
+    let mut resumed_from_checkpoint = 0;
+    for point in 0..points {
+        let out = dir.path().join(format!("killed{point}"));
+        let delay = wall.mul_f64((next_random(&mut state) % 1000) as f64 / 1000.0 * 0.9);
+        let mut child = train_command(&out, false)
+            .stdout(Stdio::null())
+            .stderr(Stdio::null())
+            .spawn()
+            .unwrap();
+        std::thread::sleep(delay);
+        child.kill().unwrap(); // SIGKILL (an error only if it had already ended)
+        child.wait().unwrap();
+        let has_checkpoint = out.join("checkpoint.safetensors").exists();
+        let rerun = run(&mut train_command(&out, has_checkpoint));
+        let stderr = String::from_utf8_lossy(&rerun.stderr);
+        assert!(rerun.status.success(), "kill point {point}: {stderr}");
+        resumed_from_checkpoint += usize::from(has_checkpoint);
+        println!(
+            "kill point {point}: SIGKILL after {:.0} ms, {}",
+            delay.as_secs_f64() * 1e3,
+            if has_checkpoint {
+                "resumed from its checkpoint"
+            } else {
+                "no checkpoint yet, started afresh"
+            }
+        );
+        assert_eq!(
+            fs::read(out.join("model.safetensors")).unwrap(),
+            reference,
+            "kill point {point}: final weights differ from the uninterrupted run"
+        );
+    }
+    println!("{resumed_from_checkpoint} of {points} runs resumed from a checkpoint");
+}
