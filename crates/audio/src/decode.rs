@@ -56,7 +56,7 @@ enum Inner {
 /// Runs a call into the decoding library, turning a panic inside it (which crafted files can
 /// reach) into [`AudioError::DecoderFailed`] for this file. The decoder that panicked is not
 /// used again: the caller returns the error and the stream ends.
-fn guarded<T>(path: &Path, call: impl FnOnce() -> T) -> Result<T, AudioError> {
+pub(crate) fn guarded<T>(path: &Path, call: impl FnOnce() -> T) -> Result<T, AudioError> {
     catch_unwind(AssertUnwindSafe(call)).map_err(|payload| {
         let detail = payload
             .downcast_ref::<&str>()

@@ -372,6 +372,16 @@ pub fn read_segments(path: &Path, segments: &[Segment]) -> Result<Vec<Vec<f32>>,
     Ok(cuts)
 }
 
+/// Runs one file's audio work so that a panic inside it (a defect, or a decoding library failing
+/// on a crafted file) becomes [`AudioError::DecoderFailed`] for `path` instead of ending a
+/// batch: what `corpus check` and training's feature caching wrap around each file.
+pub fn isolated<T>(
+    path: &Path,
+    work: impl FnOnce() -> Result<T, AudioError>,
+) -> Result<T, AudioError> {
+    decode::guarded(path, work)?
+}
+
 fn too_long(path: &Path) -> AudioError {
     AudioError::TooLong {
         path: path.to_path_buf(),

@@ -188,3 +188,20 @@ fn float_samples_far_beyond_full_scale_are_refused() {
     );
     assert!(error.to_string().contains("loud.wav"));
 }
+
+/// Issue 16: a panic inside one file's audio work is that file's error, naming it and the
+/// panic's message; the caller (a batch) goes on.
+#[test]
+fn a_panic_in_one_files_work_is_that_files_error() {
+    let path = Path::new("interviews/int7.flac");
+    let result: Result<(), AudioError> = isogloss_audio::isolated(path, || {
+        panic!("index out of bounds in a crafted block");
+    });
+    let message = result.unwrap_err().to_string();
+    assert_eq!(
+        message,
+        "interviews/int7.flac: the audio data is damaged: the decoder failed inside (index out of bounds in a crafted block)"
+    );
+    let fine = isogloss_audio::isolated(path, || Ok(3));
+    assert_eq!(fine.unwrap(), 3);
+}

@@ -126,20 +126,9 @@ pub fn check_manifests(
     let mut audio: HashMap<&Path, Result<AudioInfo, String>> = HashMap::new();
     for (done, file) in audio_files.into_iter().enumerate() {
         // A panic while reading one file is that file's problem; the check goes on.
-        let result = std::panic::catch_unwind(|| match audio_check {
+        let result = isogloss_audio::isolated(file, || match audio_check {
             AudioCheck::Decode => isogloss_audio::verify(file),
             AudioCheck::HeaderOnly => isogloss_audio::probe(file),
-        })
-        .unwrap_or_else(|payload| {
-            let detail = payload
-                .downcast_ref::<&str>()
-                .map(|s| s.to_string())
-                .or_else(|| payload.downcast_ref::<String>().cloned())
-                .unwrap_or_else(|| "no message".into());
-            Err(isogloss_audio::AudioError::DecoderFailed {
-                path: file.to_path_buf(),
-                detail,
-            })
         });
         audio.insert(file, result.map_err(|e| e.to_string()));
         progress(done + 1, total);
