@@ -58,6 +58,26 @@ fn one() -> usize {
     1
 }
 
+/// Most hidden layers a network may have.
+pub const MAX_LAYERS: usize = 64;
+/// Largest distance of a tap from the current frame (frames of the layer's input).
+pub const MAX_TAP: i32 = 64;
+/// Widest hidden layer.
+pub const MAX_WIDTH: usize = 16_384;
+/// Largest total subsampling (product of `keep_every` over the layers).
+pub const MAX_SUBSAMPLING: usize = 64;
+/// Most trainable parameters (800 MB of weights; training keeps three copies with the AdamW
+/// moments).
+pub const MAX_PARAMETERS: u64 = 200_000_000;
+/// Largest `epochs` and `patience`.
+pub const MAX_EPOCHS: usize = 100_000;
+/// Largest `batch_frames` (about 2.8 hours of 10 ms frames in one batch).
+pub const MAX_BATCH_FRAMES: usize = 1_000_000;
+/// Largest `warmup_steps`.
+pub const MAX_WARMUP_STEPS: usize = 100_000_000;
+/// Most speed-perturbation factors.
+pub const MAX_SPEED_FACTORS: usize = 16;
+
 /// The network: hidden layers then a final affine layer over the units (blank included).
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 #[serde(deny_unknown_fields)]
@@ -79,6 +99,13 @@ impl TdnnConfig {
                 "the network needs at least one hidden layer, found none".into(),
             ));
         }
+        if self.layers.len() > MAX_LAYERS {
+            return Err(AcousticError::Config(format!(
+                "the network may have at most {MAX_LAYERS} hidden layers, found {}",
+                self.layers.len()
+            )));
+        }
+        let mut subsampling = 1usize;
         for (i, layer) in self.layers.iter().enumerate() {
             let sorted = layer.taps.windows(2).all(|w| w[0] < w[1]);
             if layer.taps.is_empty() || !sorted {
@@ -87,10 +114,22 @@ impl TdnnConfig {
                     layer.taps
                 )));
             }
-            if layer.width == 0 || layer.keep_every == 0 {
+            if let Some(tap) = layer.taps.iter().find(|t| t.abs() > MAX_TAP) {
                 return Err(AcousticError::Config(format!(
-                    "layer {i}: width and keep_every must be at least 1, found width {} keep_every {}",
-                    layer.width, layer.keep_every
+                    "layer {i}: taps must lie within -{MAX_TAP} to {MAX_TAP} frames, found {tap}"
+                )));
+            }
+            if !(1..=MAX_WIDTH).contains(&layer.width) {
+                return Err(AcousticError::Config(format!(
+                    "layer {i}: width must be from 1 to {MAX_WIDTH}, found {}",
+                    layer.width
+                )));
+            }
+            subsampling = subsampling.saturating_mul(layer.keep_every);
+            if layer.keep_every == 0 || subsampling > MAX_SUBSAMPLING {
+                return Err(AcousticError::Config(format!(
+                    "layer {i}: keep_every must be at least 1 and the product over the layers at most {MAX_SUBSAMPLING}, found keep_every {}",
+                    layer.keep_every
                 )));
             }
         }
@@ -103,9 +142,23 @@ impl TdnnConfig {
         Ok(())
     }
 
+    /// Checks that the network for `input_dims` features and `units` outputs has at most
+    /// [`MAX_PARAMETERS`] parameters (call after [`TdnnConfig::validate`]).
+    pub fn check_size(&self, input_dims: usize, units: usize) -> Result<(), AcousticError> {
+        let count = self.parameter_count(input_dims, units) as u64;
+        if count > MAX_PARAMETERS {
+            return Err(AcousticError::Config(format!(
+                "the network would have {count} parameters for {input_dims} input dimensions and {units} units; at most {MAX_PARAMETERS} are supported"
+            )));
+        }
+        Ok(())
+    }
+
     /// Total subsampling factor (product over layers): one output frame per this many input frames.
     pub fn subsampling(&self) -> usize {
-        self.layers.iter().map(|l| l.keep_every).product()
+        self.layers
+            .iter()
+            .fold(1usize, |product, l| product.saturating_mul(l.keep_every))
     }
 
     /// Input frames needed to the left and right of a frame, at the input frame rate.
@@ -114,25 +167,33 @@ impl TdnnConfig {
         for layer in &self.layers {
             let first = *layer.taps.first().unwrap_or(&0);
             let last = *layer.taps.last().unwrap_or(&0);
-            left += (-first).max(0) as usize * rate;
-            right += last.max(0) as usize * rate;
-            rate *= layer.keep_every;
+            left = left.saturating_add((-(first as i64)).max(0) as usize * rate);
+            right = right.saturating_add((last as i64).max(0) as usize * rate);
+            rate = rate.saturating_mul(layer.keep_every);
         }
         (left, right)
     }
 
     /// Number of trainable parameters for `input_dims` features and `units` outputs.
     pub fn parameter_count(&self, input_dims: usize, units: usize) -> usize {
-        let mut count = 0;
+        // Saturating: a description read from a file may ask for more than a usize holds.
+        let mut count = 0usize;
         let mut dims = input_dims;
         for layer in &self.layers {
-            count += layer.taps.len() * dims * layer.width + layer.width;
+            let weights = layer
+                .taps
+                .len()
+                .saturating_mul(dims)
+                .saturating_mul(layer.width);
+            count = count.saturating_add(weights).saturating_add(layer.width);
             if self.normalization == Normalization::Layer {
-                count += 2 * layer.width;
+                count = count.saturating_add(layer.width.saturating_mul(2));
             }
             dims = layer.width;
         }
-        count + dims * units + units
+        count
+            .saturating_add(dims.saturating_mul(units))
+            .saturating_add(units)
     }
 }
 
@@ -180,6 +241,78 @@ impl Default for TrainingConfig {
             volume_range: 1.5,
             spec_augment: true,
         }
+    }
+}
+
+impl TrainingConfig {
+    /// Checks every setting against its range; the message names the key.
+    pub fn validate(&self) -> Result<(), AcousticError> {
+        let invalid = |key: &str, expected: &str, found: String| {
+            Err(AcousticError::Config(format!(
+                "[training] {key} must be {expected}, found {found}"
+            )))
+        };
+        if self.epochs > MAX_EPOCHS {
+            return invalid("epochs", "at most 100000", self.epochs.to_string());
+        }
+        if self.patience > MAX_EPOCHS {
+            return invalid("patience", "at most 100000", self.patience.to_string());
+        }
+        if !(1..=MAX_BATCH_FRAMES).contains(&self.batch_frames) {
+            return invalid(
+                "batch_frames",
+                "from 1 to 1000000",
+                self.batch_frames.to_string(),
+            );
+        }
+        if self.warmup_steps > MAX_WARMUP_STEPS {
+            return invalid(
+                "warmup_steps",
+                "at most 100000000",
+                self.warmup_steps.to_string(),
+            );
+        }
+        if !(self.learning_rate > 0.0 && self.learning_rate <= 1.0) {
+            return invalid(
+                "learning_rate",
+                "above 0 and at most 1",
+                self.learning_rate.to_string(),
+            );
+        }
+        if !(self.weight_decay >= 0.0 && self.weight_decay <= 1.0) {
+            return invalid("weight_decay", "from 0 to 1", self.weight_decay.to_string());
+        }
+        if !(self.clip_norm > 0.0 && self.clip_norm.is_finite()) {
+            return invalid(
+                "clip_norm",
+                "a positive finite number",
+                self.clip_norm.to_string(),
+            );
+        }
+        if self.speed_factors.len() > MAX_SPEED_FACTORS {
+            return invalid(
+                "speed_factors",
+                "a list of at most 16 factors",
+                format!("{} factors", self.speed_factors.len()),
+            );
+        }
+        for &factor in &self.speed_factors {
+            if isogloss_audio::check_speed_factor(f64::from(factor)).is_err() {
+                return invalid(
+                    "speed_factors",
+                    "factors from 0.5 to 2.0",
+                    factor.to_string(),
+                );
+            }
+        }
+        if !(1.0..=100.0).contains(&self.volume_range) {
+            return invalid(
+                "volume_range",
+                "from 1 to 100",
+                self.volume_range.to_string(),
+            );
+        }
+        Ok(())
     }
 }
 
@@ -245,9 +378,16 @@ impl ModelConfig {
     pub fn parse(text: &str) -> Result<ModelConfig, AcousticError> {
         let config: ModelConfig =
             toml::from_str(text).map_err(|e| AcousticError::Config(e.to_string()))?;
-        config.model.validate()?;
-        config.features.validate()?;
+        config.validate()?;
         Ok(config)
+    }
+
+    /// Checks the network, training and front-end settings against their ranges.
+    pub fn validate(&self) -> Result<(), AcousticError> {
+        self.model.validate()?;
+        self.training.validate()?;
+        self.features.validate()?;
+        Ok(())
     }
 
     /// The built-in small configuration (`configs/tdnn-small.toml`).
@@ -255,5 +395,83 @@ impl ModelConfig {
         // The file is the single source of truth; it is embedded so the CLI works from anywhere.
         Self::parse(include_str!("../../../configs/tdnn-small.toml"))
             .unwrap_or_else(|e| panic!("configs/tdnn-small.toml is invalid: {e}"))
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn the_shipped_configs_are_within_the_limits() {
+        for text in [
+            include_str!("../../../configs/tdnn-small.toml"),
+            include_str!("../../../configs/tdnn-medium.toml"),
+            include_str!("../../../configs/tdnn-demo.toml"),
+        ] {
+            let config = ModelConfig::parse(text).unwrap();
+            config
+                .model
+                .check_size(config.features.dims(), 100)
+                .unwrap();
+        }
+    }
+
+    #[test]
+    fn sizes_beyond_their_limits_are_errors_naming_the_key() {
+        let small = include_str!("../../../configs/tdnn-small.toml");
+        for (text, expected) in [
+            (
+                small.replacen("taps = [-2, -1, 0, 1, 2]", "taps = [-2000000000, 0]", 1),
+                "taps must lie within -64 to 64",
+            ),
+            (
+                small.replacen("width = 320 }", "width = 100000 }", 1),
+                "width must be from 1 to 16384",
+            ),
+            (
+                small.replacen("keep_every = 3", "keep_every = 1000", 1),
+                "at most 64",
+            ),
+            (
+                small.replacen("batch_frames = 12000", "batch_frames = 0", 1),
+                "batch_frames",
+            ),
+            (
+                small.replacen(
+                    "speed_factors = [0.9, 1.0, 1.1]",
+                    "speed_factors = [5.0]",
+                    1,
+                ),
+                "factors from 0.5 to 2.0",
+            ),
+            (
+                small.replacen("volume_range = 1.5", "volume_range = 0.5", 1),
+                "volume_range",
+            ),
+            (
+                small.replacen("learning_rate = 0.002", "learning_rate = nan", 1),
+                "learning_rate",
+            ),
+            (
+                small.replacen("epochs = 20", "epochs = 100000000000", 1),
+                "epochs",
+            ),
+        ] {
+            let message = ModelConfig::parse(&text).unwrap_err().to_string();
+            assert!(message.contains(expected), "{expected}: {message}");
+        }
+        let wide = TdnnConfig {
+            layers: vec![LayerConfig {
+                taps: (-64..=64).collect(),
+                width: MAX_WIDTH,
+                keep_every: 1,
+            }],
+            normalization: Normalization::Layer,
+            dropout: 0.0,
+        };
+        wide.validate().unwrap();
+        let message = wide.check_size(1000, 100).unwrap_err().to_string();
+        assert!(message.contains("at most 200000000"), "{message}");
     }
 }

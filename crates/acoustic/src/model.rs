@@ -145,7 +145,20 @@ impl AcousticModel {
                 ),
             });
         }
-        description.units.validate()?;
+        let invalid = |e: AcousticError| AcousticError::Model {
+            path: toml_path.clone(),
+            problem: e.to_string(),
+        };
+        description.units.validate().map_err(invalid)?;
+        description.architecture.validate().map_err(invalid)?;
+        description
+            .features
+            .validate()
+            .map_err(|e| invalid(e.into()))?;
+        description
+            .architecture
+            .check_size(description.features.dims(), description.units.len())
+            .map_err(invalid)?;
         let weights = dir.join("model.safetensors");
         let tensors = candle_core::safetensors::load(&weights, &Device::Cpu).map_err(|e| {
             AcousticError::Model {
@@ -313,6 +326,51 @@ mod tests {
         let error = AcousticModel::load(dir.path()).err().unwrap();
         assert!(error.to_string().contains("model.toml"), "{error}");
     }
+    /// Issue 16: a `model.toml` was used without checking its network description; taps such
+    /// as `[-2000000000, 0]` overflowed the context arithmetic. Every out-of-range size is now
+    /// an error naming `model.toml`, before any weight is read.
+    #[test]
+    fn out_of_range_descriptions_are_errors_naming_model_toml() {
+        let config = ModelConfig::small();
+        let units = UnitInventory::graphemes(["abc de"]);
+        let mut rng = ChaCha8Rng::seed_from_u64(2);
+        let parameters =
+            initial_parameters(&config.model, config.features.dims(), units.len(), &mut rng)
+                .unwrap();
+        let description = ModelDescription {
+            format: MODEL_FORMAT,
+            units,
+            features: config.features.clone(),
+            architecture: config.model.clone(),
+            provenance: Provenance::default(),
+        };
+        let dir = tempfile::tempdir().unwrap();
+        AcousticModel::save(dir.path(), &description, &parameters).unwrap();
+        let good = std::fs::read_to_string(dir.path().join("model.toml")).unwrap();
+        assert!(good.contains("taps = [\n    -2,"), "{good}");
+        for (bad, expected) in [
+            (
+                good.replacen("taps = [\n    -2,", "taps = [\n    -2000000000,", 1),
+                "taps must lie within -64 to 64",
+            ),
+            (
+                good.replacen("width = 320", "width = 99999999", 1),
+                "width must be from 1 to 16384",
+            ),
+            (
+                good.replacen("fft_size = 512", "fft_size = 4000000000000", 1),
+                "fft_size",
+            ),
+        ] {
+            std::fs::write(dir.path().join("model.toml"), &bad).unwrap();
+            let message = AcousticModel::load(dir.path()).err().unwrap().to_string();
+            assert!(
+                message.contains("model.toml") && message.contains(expected),
+                "{message}"
+            );
+        }
+    }
+
     /// The shipped demo model gives the same logits through the fused layers as through the
     /// layers written with candle primitives.
     #[test]

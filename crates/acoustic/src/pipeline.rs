@@ -183,7 +183,11 @@ pub fn manifest_features(
                     .iter()
                     .map(|&i| manifest.utterances[i].segment())
                     .collect();
-                Some(isogloss_audio::read_segments(path, &segments))
+                // A panic while decoding one file is that file's error (its utterances are
+                // skipped with a warning), not the end of training.
+                Some(isogloss_audio::isolated(path, || {
+                    isogloss_audio::read_segments(path, &segments)
+                }))
             };
             for (k, &i) in indices.iter().enumerate() {
                 let utterance = &manifest.utterances[i];

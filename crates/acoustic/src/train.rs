@@ -190,6 +190,8 @@ impl Trainer {
         seed: u64,
     ) -> Result<Self, AcousticError> {
         units.validate()?;
+        config.model.validate()?;
+        config.model.check_size(input_dims, units.len())?;
         let mut rng = epoch_rng(seed, usize::MAX - 1);
         let parameters = initial_parameters(&config.model, input_dims, units.len(), &mut rng)?;
         let network = Tdnn::new(
@@ -537,11 +539,30 @@ impl Trainer {
             .map_err(|_| corrupt("bad adam_step"))?;
         let tensors = safetensors::SafeTensors::deserialize(&bytes)
             .map_err(|e| corrupt(&format!("unreadable tensors ({e})")))?;
-        let mut trainer = Trainer::new(config, units, input_dims, progress.seed)?;
+        config
+            .validate()
+            .map_err(|e| corrupt(&format!("bad config ({e})")))?;
+        // Every parameter is stored in the file: a network larger than the file is a lie, found
+        // before its parameters are allocated.
+        let parameters = config.model.parameter_count(input_dims, units.len()) as u64;
+        if parameters.saturating_mul(4) > bytes.len() as u64 {
+            return Err(corrupt(&format!(
+                "its config describes {parameters} parameters, more than its {} bytes can hold",
+                bytes.len()
+            )));
+        }
+        let mut trainer = Trainer::new(config, units, input_dims, progress.seed)
+            .map_err(|e| corrupt(&e.to_string()))?;
         let read = |name: &str| -> Result<Vec<f32>, AcousticError> {
             let view = tensors
                 .tensor(name)
                 .map_err(|_| corrupt(&format!("tensor `{name}` missing")))?;
+            if view.dtype() != safetensors::Dtype::F32 {
+                return Err(corrupt(&format!(
+                    "tensor `{name}` is {:?}, expected F32",
+                    view.dtype()
+                )));
+            }
             Ok(view
                 .data()
                 .chunks_exact(4)
@@ -555,13 +576,20 @@ impl Trainer {
             }
             var.set(&Tensor::from_vec(values, var.shape(), &Device::Cpu)?)?;
             if tensors.tensor(&format!("adam.first/{name}")).is_ok() {
-                trainer.optimizer.moments.insert(
-                    name.clone(),
-                    Moments {
-                        first: read(&format!("adam.first/{name}"))?,
-                        second: read(&format!("adam.second/{name}"))?,
-                    },
-                );
+                let moments = Moments {
+                    first: read(&format!("adam.first/{name}"))?,
+                    second: read(&format!("adam.second/{name}"))?,
+                };
+                for (kind, values) in [("first", &moments.first), ("second", &moments.second)] {
+                    if values.len() != var.elem_count() {
+                        return Err(corrupt(&format!(
+                            "the optimizer's {kind} moments of `{name}` hold {} values, the parameter has {}",
+                            values.len(),
+                            var.elem_count()
+                        )));
+                    }
+                }
+                trainer.optimizer.moments.insert(name.clone(), moments);
             }
         }
         trainer.optimizer.step = step;
@@ -687,6 +715,57 @@ mod tests {
             progress
         };
         assert_eq!(without_speed(&straight), without_speed(&resumed));
+    }
+
+    /// Issue 16: optimizer moments shorter than their parameter were silently truncated on
+    /// resume. They are now an error naming the checkpoint and the parameter.
+    #[test]
+    fn a_checkpoint_with_short_optimizer_state_is_refused() {
+        let dir = tempfile::tempdir().unwrap();
+        let path = dir.path().join("checkpoint.safetensors");
+        let mut trainer = Trainer::new(tiny_config(), units(), 5, 42).unwrap();
+        trainer
+            .run_epoch(&synthetic(4, 4), &synthetic(2, 5), None, &mut |_| {})
+            .unwrap();
+        trainer.save_checkpoint(&path).unwrap();
+        let bytes = std::fs::read(&path).unwrap();
+        let (_, header) = safetensors::SafeTensors::read_metadata(&bytes).unwrap();
+        let metadata: BTreeMap<String, String> =
+            header.metadata().clone().unwrap().into_iter().collect();
+        let tensors = safetensors::SafeTensors::deserialize(&bytes).unwrap();
+        let mut names: Vec<String> = tensors.names().into_iter().map(str::to_string).collect();
+        names.sort();
+        let shortened = names
+            .iter()
+            .find(|n| n.starts_with("adam.first/"))
+            .unwrap()
+            .clone();
+        let rewritten: Vec<(String, Vec<usize>, Vec<f32>)> = names
+            .iter()
+            .map(|name| {
+                let view = tensors.tensor(name).unwrap();
+                let mut values: Vec<f32> = view
+                    .data()
+                    .chunks_exact(4)
+                    .map(|b| f32::from_le_bytes([b[0], b[1], b[2], b[3]]))
+                    .collect();
+                let mut shape = view.shape().to_vec();
+                if *name == shortened {
+                    values.pop();
+                    shape = vec![values.len()];
+                }
+                (name.clone(), shape, values)
+            })
+            .collect();
+        let bytes = crate::io::serialize_tensors(&rewritten, Some(metadata)).unwrap();
+        std::fs::write(&path, bytes).unwrap();
+        let message = Trainer::load_checkpoint(&path).err().unwrap().to_string();
+        let parameter = shortened.trim_start_matches("adam.first/");
+        assert!(
+            message.contains("checkpoint.safetensors")
+                && message.contains(&format!("first moments of `{parameter}`")),
+            "{message}"
+        );
     }
 
     #[test]

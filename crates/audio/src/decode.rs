@@ -4,6 +4,7 @@
 
 use std::fs::File;
 use std::io::{BufReader, ErrorKind, Read};
+use std::panic::{catch_unwind, AssertUnwindSafe};
 use std::path::{Path, PathBuf};
 
 use symphonia::core::audio::SampleBuffer;
@@ -11,10 +12,11 @@ use symphonia::core::codecs::{Decoder, DecoderOptions, CODEC_TYPE_NULL, CODEC_TY
 use symphonia::core::errors::Error as SymphoniaError;
 use symphonia::core::formats::{FormatOptions, FormatReader};
 use symphonia::core::io::MediaSourceStream;
-use symphonia::core::meta::MetadataOptions;
-use symphonia::core::probe::Hint;
+use symphonia::default::formats::{FlacReader, MpaReader, OggReader, WavReader};
 
-use crate::{AudioError, AudioInfo};
+use crate::container::{self, Container};
+
+use crate::{AudioError, AudioInfo, MAX_SAMPLE_MAGNITUDE, MAX_SAMPLE_RATE, MIN_SAMPLE_RATE};
 
 /// Frames per block when reading WAV (compressed formats give one packet per block).
 const WAV_BLOCK_FRAMES: usize = 4096;
@@ -51,6 +53,37 @@ enum Inner {
     },
 }
 
+/// Runs a call into the decoding library, turning a panic inside it (which crafted files can
+/// reach) into [`AudioError::DecoderFailed`] for this file. The decoder that panicked is not
+/// used again: the caller returns the error and the stream ends.
+pub(crate) fn guarded<T>(path: &Path, call: impl FnOnce() -> T) -> Result<T, AudioError> {
+    catch_unwind(AssertUnwindSafe(call)).map_err(|payload| {
+        let detail = payload
+            .downcast_ref::<&str>()
+            .map(|s| s.to_string())
+            .or_else(|| payload.downcast_ref::<String>().cloned())
+            .unwrap_or_else(|| "no message".into());
+        AudioError::DecoderFailed {
+            path: path.to_path_buf(),
+            detail,
+        }
+    })
+}
+
+/// Checks a sample rate from a file's header against the supported range.
+fn check_rate(path: &Path, rate: u32) -> Result<u32, AudioError> {
+    if (MIN_SAMPLE_RATE..=MAX_SAMPLE_RATE).contains(&rate) {
+        Ok(rate)
+    } else {
+        Err(AudioError::Unsupported {
+            path: path.to_path_buf(),
+            detail: format!(
+                "the header states a sample rate of {rate} Hz; expected {MIN_SAMPLE_RATE} to {MAX_SAMPLE_RATE} Hz"
+            ),
+        })
+    }
+}
+
 /// Opens `path`, choosing the decoder from the file's first bytes (not its name: a text file
 /// called `.wav` must be reported as what it is).
 pub(crate) fn open(path: &Path) -> Result<Source, AudioError> {
@@ -76,7 +109,7 @@ pub(crate) fn open(path: &Path) -> Result<Source, AudioError> {
     open_compressed(path)
 }
 
-fn read_up_to(file: &mut File, buffer: &mut [u8]) -> std::io::Result<usize> {
+pub(crate) fn read_up_to(file: &mut File, buffer: &mut [u8]) -> std::io::Result<usize> {
     let mut filled = 0;
     while filled < buffer.len() {
         match file.read(&mut buffer[filled..])? {
@@ -121,9 +154,10 @@ fn open_wav(path: &Path) -> Result<Source, WavOpen> {
     if !usable || spec.channels == 0 || spec.sample_rate == 0 {
         return Err(WavOpen::TryOther);
     }
+    let sample_rate = check_rate(path, spec.sample_rate).map_err(WavOpen::Failed)?;
     Ok(Source {
         path: path.to_path_buf(),
-        sample_rate: spec.sample_rate,
+        sample_rate,
         channels: spec.channels,
         header_frames: Some(u64::from(reader.duration())),
         frames_read: 0,
@@ -140,23 +174,28 @@ fn open_compressed(path: &Path) -> Result<Source, AudioError> {
         path: path.to_path_buf(),
         source,
     })?;
-    let stream = MediaSourceStream::new(Box::new(file), Default::default());
-    let mut hint = Hint::new();
-    if let Some(extension) = path.extension().and_then(|e| e.to_str()) {
-        hint.with_extension(extension);
-    }
+    let (container, source) = container::open(file, path)?;
+    let stream = MediaSourceStream::new(Box::new(source), Default::default());
     let options = FormatOptions {
         // Trim encoder delay and padding so that lengths match the original recording.
         enable_gapless: true,
         ..Default::default()
     };
-    let probed = symphonia::default::get_probe()
-        .format(&hint, stream, &options, &MetadataOptions::default())
-        .map_err(|error| AudioError::UnknownFormat {
-            path: path.to_path_buf(),
-            detail: error.to_string(),
-        })?;
-    let format = probed.format;
+    let format = guarded(
+        path,
+        || -> symphonia::core::errors::Result<Box<dyn FormatReader>> {
+            Ok(match container {
+                Container::Flac => Box::new(FlacReader::try_new(stream, &options)?),
+                Container::Ogg => Box::new(OggReader::try_new(stream, &options)?),
+                Container::Wav => Box::new(WavReader::try_new(stream, &options)?),
+                Container::Mpeg => Box::new(MpaReader::try_new(stream, &options)?),
+            })
+        },
+    )?
+    .map_err(|error| AudioError::UnknownFormat {
+        path: path.to_path_buf(),
+        detail: format!("read as {}: {error}", container.name()),
+    })?;
     let track = format
         .tracks()
         .iter()
@@ -174,9 +213,11 @@ fn open_compressed(path: &Path) -> Result<Source, AudioError> {
         .sample_rate
         .filter(|&r| r > 0)
         .ok_or_else(|| unsupported("the stream does not state its sample rate".into()))?;
-    let decoder = symphonia::default::get_codecs()
-        .make(&params, &DecoderOptions::default())
-        .map_err(|error| unsupported(error.to_string()))?;
+    let sample_rate = check_rate(path, sample_rate)?;
+    let decoder = guarded(path, || {
+        symphonia::default::get_codecs().make(&params, &DecoderOptions::default())
+    })?
+    .map_err(|error| unsupported(error.to_string()))?;
     let channels = params.channels.map_or(0, |c| c.count() as u16);
     Ok(Source {
         path: path.to_path_buf(),
@@ -286,7 +327,7 @@ impl Source {
                 buffer,
                 exact_length,
             } => loop {
-                let packet = match format.next_packet() {
+                let packet = match guarded(&self.path, || format.next_packet())? {
                     Ok(packet) => packet,
                     Err(SymphoniaError::IoError(error))
                         if error.kind() == ErrorKind::UnexpectedEof =>
@@ -308,7 +349,7 @@ impl Source {
                 if packet.track_id() != *track_id {
                     continue;
                 }
-                let decoded = match decoder.decode(&packet) {
+                let decoded = match guarded(&self.path, || decoder.decode(&packet))? {
                     Ok(decoded) => decoded,
                     // One corrupt packet is skipped, as players do; the rest still decodes.
                     Err(SymphoniaError::DecodeError(_)) => continue,
@@ -334,7 +375,7 @@ impl Source {
                     Some(existing) if existing.capacity() >= needed => existing,
                     _ => buffer.insert(SampleBuffer::new(decoded.capacity() as u64, spec)),
                 };
-                buffer.copy_interleaved_ref(decoded);
+                guarded(&self.path, || buffer.copy_interleaved_ref(decoded))?;
                 for frame in buffer.samples().chunks_exact(channels) {
                     out.push(frame.iter().sum::<f32>() / channels as f32);
                 }
@@ -348,13 +389,28 @@ impl Source {
                 break;
             },
         }
-        // Non-finite samples would poison every later stage (features, CMVN, training).
-        if let Some(position) = out[before..].iter().position(|x| !x.is_finite()) {
+        // Non-finite samples would poison every later stage (features, CMVN, training), and
+        // absurdly large ones overflow the resampler's FFT into infinities.
+        if let Some(position) = out[before..]
+            .iter()
+            .position(|x| !(x.is_finite() && x.abs() <= MAX_SAMPLE_MAGNITUDE))
+        {
             let frame = self.frames_read + position as u64;
-            return Err(AudioError::NotFinite {
-                path: self.path.clone(),
-                frame,
-                seconds: frame as f64 / f64::from(self.sample_rate),
+            let seconds = frame as f64 / f64::from(self.sample_rate);
+            let value = out[before + position];
+            return Err(if value.is_finite() {
+                AudioError::OutOfRange {
+                    path: self.path.clone(),
+                    frame,
+                    seconds,
+                    value,
+                }
+            } else {
+                AudioError::NotFinite {
+                    path: self.path.clone(),
+                    frame,
+                    seconds,
+                }
             });
         }
         self.frames_read += (out.len() - before) as u64;

@@ -38,6 +38,7 @@
 use std::path::{Path, PathBuf};
 
 pub mod augment;
+mod container;
 mod decode;
 mod perturb;
 mod resample;
@@ -48,6 +49,30 @@ pub use stream::ChunkReader;
 
 /// The sample rate every isogloss stage after decoding works at (Hz).
 pub const SAMPLE_RATE: u32 = 16_000;
+
+/// Lowest sample rate a file may state (Hz). Below it, resampling to 16 kHz multiplies the
+/// data by more than 16 (a crafted header at 1 Hz would turn kilobytes into gigabytes); no
+/// speech recording is made that slowly.
+pub const MIN_SAMPLE_RATE: u32 = 1_000;
+
+/// Highest sample rate a file may state (Hz): the highest rate of common recording equipment.
+/// Above it the resampler's filter tables grow with the rate (a header at 2 147 483 647 Hz asked
+/// for about 17 GB).
+pub const MAX_SAMPLE_RATE: u32 = 384_000;
+
+/// Largest magnitude of a decoded sample (full scale is 1). Floating-point files may exceed full
+/// scale, and some tools write floats on the 16-bit integer scale (±32 768), so the limit is
+/// generous; beyond it the resampler's FFT would overflow into infinities.
+pub const MAX_SAMPLE_MAGNITUDE: f32 = 1e6;
+
+/// Longest stretch of audio read into memory in one piece (seconds; 4 hours, 922 MB of 16 kHz
+/// samples): a whole file without `start`/`end`, or one cut. Compressed formats can hold hours
+/// of silence in a few kilobytes, so the header's or the file's size does not bound it. Long
+/// recordings are transcribed as a stream ([`ChunkReader`]), which has no such limit.
+pub const MAX_PIECE_SECONDS: f64 = 4.0 * 3600.0;
+
+/// Largest time (seconds; about 11.6 days) accepted as the start or end of a segment.
+pub const MAX_TIME_SECONDS: f64 = 1e6;
 
 /// How far (seconds) a segment's end may lie past the end of the audio before it is an error:
 /// one 10 ms feature frame, because transcribers round times and encoders pad the last block.
@@ -105,6 +130,18 @@ pub enum AudioError {
         /// The same position in seconds.
         seconds: f64,
     },
+    /// A floating-point sample beyond [`MAX_SAMPLE_MAGNITUDE`].
+    #[error("{path}: sample {frame} (at {seconds:.3} s) is {value}; expected at most {} in magnitude (full scale is 1)", MAX_SAMPLE_MAGNITUDE)]
+    OutOfRange {
+        /// The file.
+        path: PathBuf,
+        /// 0-based frame index at the file's own sample rate.
+        frame: u64,
+        /// The same position in seconds.
+        seconds: f64,
+        /// The sample found.
+        value: f32,
+    },
     /// A requested segment does not fit the file.
     #[error("{path}: segment {index} ({start} s to {end}): {problem}")]
     BadSegment {
@@ -118,6 +155,23 @@ pub enum AudioError {
         end: String,
         /// What is wrong with it.
         problem: String,
+    },
+    /// More audio than [`MAX_PIECE_SECONDS`] asked for in one piece.
+    #[error("{path}: expected at most {limit_seconds} s of audio in one piece, found more (cut long recordings with start and end times, or transcribe them as recordings)")]
+    TooLong {
+        /// The file.
+        path: PathBuf,
+        /// The limit that was reached.
+        limit_seconds: f64,
+    },
+    /// The decoding library failed on this file in a way it does not report as an error (an
+    /// internal panic, caught here): the file is damaged or crafted.
+    #[error("{path}: the audio data is damaged: the decoder failed inside ({detail})")]
+    DecoderFailed {
+        /// The file.
+        path: PathBuf,
+        /// The decoder's own message.
+        detail: String,
     },
     /// A parameter outside its valid range (e.g. a speed factor of zero).
     #[error("invalid {what}: expected {expected}, found {found}")]
@@ -199,7 +253,11 @@ pub fn verify(path: &Path) -> Result<AudioInfo, AudioError> {
 pub fn read_mono_16k(path: &Path) -> Result<Vec<f32>, AudioError> {
     let mut reader = ChunkReader::open(path, 1 << 16)?;
     let mut samples = Vec::new();
+    let limit = seconds_to_samples(MAX_PIECE_SECONDS);
     while let Some(chunk) = reader.next_chunk()? {
+        if (samples.len() + chunk.len()) as u64 > limit {
+            return Err(too_long(path));
+        }
         samples.extend_from_slice(&chunk);
     }
     if samples.is_empty() {
@@ -213,7 +271,8 @@ pub fn read_mono_16k(path: &Path) -> Result<Vec<f32>, AudioError> {
 /// Cuts several segments out of one file in a single decoding pass, as 16 kHz mono. The result
 /// is in the order of `segments` (which may overlap and come in any order); each cut is exactly
 /// the samples `read_mono_16k` would give between `round(start·16000)` and `round(end·16000)`.
-/// Decoding stops after the last sample any segment needs.
+/// Decoding stops after the last sample any segment needs. Times beyond [`MAX_TIME_SECONDS`]
+/// and cuts longer than [`MAX_PIECE_SECONDS`] are errors.
 pub fn read_segments(path: &Path, segments: &[Segment]) -> Result<Vec<Vec<f32>>, AudioError> {
     let bad = |index: usize, segment: &Segment, problem: String| AudioError::BadSegment {
         path: path.to_path_buf(),
@@ -227,11 +286,11 @@ pub fn read_segments(path: &Path, segments: &[Segment]) -> Result<Vec<Vec<f32>>,
     // Sample ranges at 16 kHz; `u64::MAX` stands for "to the end of the file".
     let mut ranges = Vec::with_capacity(segments.len());
     for (index, segment) in segments.iter().enumerate() {
-        if !segment.start.is_finite() || segment.start < 0.0 {
+        if !(segment.start.is_finite() && (0.0..=MAX_TIME_SECONDS).contains(&segment.start)) {
             return Err(bad(
                 index,
                 segment,
-                "expected a start time of 0 s or later".into(),
+                format!("expected a start time from 0 s to {MAX_TIME_SECONDS} s"),
             ));
         }
         let end = match segment.end {
@@ -240,6 +299,20 @@ pub fn read_segments(path: &Path, segments: &[Segment]) -> Result<Vec<Vec<f32>>,
                     index,
                     segment,
                     "expected the end to come after the start".into(),
+                ))
+            }
+            Some(end) if end > MAX_TIME_SECONDS => {
+                return Err(bad(
+                    index,
+                    segment,
+                    format!("expected an end time of at most {MAX_TIME_SECONDS} s"),
+                ))
+            }
+            Some(end) if end - segment.start > MAX_PIECE_SECONDS => {
+                return Err(bad(
+                    index,
+                    segment,
+                    format!("expected a segment of at most {MAX_PIECE_SECONDS} s"),
                 ))
             }
             Some(end) => seconds_to_samples(end),
@@ -253,11 +326,13 @@ pub fn read_segments(path: &Path, segments: &[Segment]) -> Result<Vec<Vec<f32>>,
         .map(|&(start, end)| match end {
             // Open-ended: the length is unknown until the stream ends.
             u64::MAX => Vec::new(),
-            end => Vec::with_capacity(end.saturating_sub(start).min(1 << 24) as usize),
+            // Grown as samples arrive beyond the first 10 s: the file may be shorter.
+            end => Vec::with_capacity(end.saturating_sub(start).min(160_000) as usize),
         })
         .collect();
     let mut reader = ChunkReader::open(path, 1 << 15)?;
     let mut offset = 0u64;
+    let limit = seconds_to_samples(MAX_PIECE_SECONDS);
     while offset < last_needed {
         let Some(chunk) = reader.next_chunk()? else {
             break;
@@ -267,6 +342,9 @@ pub fn read_segments(path: &Path, segments: &[Segment]) -> Result<Vec<Vec<f32>>,
             let from = start.max(offset);
             let to = end.min(chunk_end);
             if from < to {
+                if cut.len() as u64 + (to - from) > limit {
+                    return Err(too_long(path));
+                }
                 cut.extend_from_slice(&chunk[(from - offset) as usize..(to - offset) as usize]);
             }
         }
@@ -292,6 +370,23 @@ pub fn read_segments(path: &Path, segments: &[Segment]) -> Result<Vec<Vec<f32>>,
         }
     }
     Ok(cuts)
+}
+
+/// Runs one file's audio work so that a panic inside it (a defect, or a decoding library failing
+/// on a crafted file) becomes [`AudioError::DecoderFailed`] for `path` instead of ending a
+/// batch: what `corpus check` and training's feature caching wrap around each file.
+pub fn isolated<T>(
+    path: &Path,
+    work: impl FnOnce() -> Result<T, AudioError>,
+) -> Result<T, AudioError> {
+    decode::guarded(path, work)?
+}
+
+fn too_long(path: &Path) -> AudioError {
+    AudioError::TooLong {
+        path: path.to_path_buf(),
+        limit_seconds: MAX_PIECE_SECONDS,
+    }
 }
 
 /// Nearest 16 kHz sample index of a time in seconds.

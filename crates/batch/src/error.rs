@@ -55,4 +55,7 @@ pub enum BatchError {
     /// The acoustic model or the audio reader failed.
     #[error(transparent)]
     Side(SideError),
+    /// The item's processing panicked (a defect, caught so that the batch goes on).
+    #[error("processing failed inside isogloss (a defect; please report it with this file): {0}")]
+    Panic(String),
 }

@@ -1,7 +1,7 @@
 //! The resume journal: an append-only record of finished items next to the output.
 
 use std::collections::HashMap;
-use std::fs::{self, File};
+use std::fs::{self, File, OpenOptions};
 use std::io::{BufRead, BufReader, Write};
 use std::path::{Path, PathBuf};
 
@@ -14,6 +14,14 @@ use crate::BatchError;
 struct JournalLine {
     fingerprint: String,
     item: ItemTranscript,
+}
+
+fn journal_line(fingerprint: &str, item: &ItemTranscript) -> Result<String, BatchError> {
+    serde_json::to_string(&JournalLine {
+        fingerprint: fingerprint.to_string(),
+        item: item.clone(),
+    })
+    .map_err(|e| BatchError::Setting(format!("an item does not serialise: {e}")))
 }
 
 /// `OUT.journal.jsonl`: one JSON line per finished item, flushed to disk as it finishes, each
@@ -77,28 +85,31 @@ impl Journal {
                 }
             }
         }
-        // Rewritten from the kept entries, so that stale and torn lines do not accumulate.
-        let file = File::create(&path).map_err(|e| io(&path, "write", e))?;
-        let mut journal = Journal {
+        // Rewritten from the kept entries, so that stale and torn lines do not accumulate;
+        // atomically, so that a kill during the rewrite leaves the old journal whole.
+        let mut kept: Vec<&ItemTranscript> = done.values().collect();
+        kept.sort_by(|a, b| a.id.cmp(&b.id));
+        let mut text = Vec::new();
+        for item in kept {
+            text.extend(journal_line(fingerprint, item)?.bytes());
+            text.push(b'\n');
+        }
+        isogloss_corpus::tsv::write_atomically(&path, &text)?;
+        let file = OpenOptions::new()
+            .append(true)
+            .open(&path)
+            .map_err(|e| io(&path, "open", e))?;
+        let journal = Journal {
             path,
             file,
             fingerprint: fingerprint.to_string(),
         };
-        let mut kept: Vec<&ItemTranscript> = done.values().collect();
-        kept.sort_by(|a, b| a.id.cmp(&b.id));
-        for item in kept {
-            journal.record(item)?;
-        }
         Ok((journal, done))
     }
 
     /// Appends one finished item and flushes it to disk.
     pub fn record(&mut self, item: &ItemTranscript) -> Result<(), BatchError> {
-        let line = serde_json::to_string(&JournalLine {
-            fingerprint: self.fingerprint.clone(),
-            item: item.clone(),
-        })
-        .map_err(|e| BatchError::Setting(format!("an item does not serialise: {e}")))?;
+        let line = journal_line(&self.fingerprint, item)?;
         writeln!(self.file, "{line}")
             .and_then(|_| self.file.sync_data())
             .map_err(|source| BatchError::Io {

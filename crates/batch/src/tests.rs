@@ -45,8 +45,8 @@ impl Recognizer for FakeRecognizer {
     }
 }
 
-/// Files named `burst*.wav` hold 10 s with loud stretches at 2 s and 6 s; anything else cannot
-/// be read.
+/// Files named `burst*.wav` hold 10 s with loud stretches at 2 s and 6 s; `panic*.wav` make the
+/// reader panic (as a decoding library can on a crafted file); anything else cannot be read.
 struct FakeAudio;
 
 fn bursts() -> Vec<f32> {
@@ -71,6 +71,9 @@ impl AudioSource for FakeAudio {
     }
     fn chunks(&self, path: &Path) -> Result<Chunks<'_>, SideError> {
         let name = path.file_name().unwrap().to_string_lossy();
+        if name.starts_with("panic") {
+            panic!("internal state the reader did not expect");
+        }
         if !name.starts_with("burst") {
             return Err("not an audio file".into());
         }
@@ -160,6 +163,45 @@ fn a_batch_carries_on_past_a_bad_file_and_resume_retries_only_that() {
     settings.search.word_bonus += 1.0;
     let report = transcribe(&settings, &items, &recognizer, &FakeAudio, &mut |_| {}).unwrap();
     assert_eq!(report.resumed, 0);
+}
+
+/// Issue 16: a panic inside one item (here the audio reader's) is that item's error, listed
+/// with its file; the items before and after it are transcribed and written.
+#[test]
+fn a_panicking_item_is_listed_and_the_batch_goes_on() {
+    let dir = tempfile::tempdir().unwrap();
+    let model = dir.path().join("model.toml");
+    fs::write(&model, "fake").unwrap();
+    let names = [
+        "burst1.wav",
+        "panic1.wav",
+        "burst2.wav",
+        "panic2.wav",
+        "burst3.wav",
+    ];
+    let items = recordings(dir.path(), &names);
+    let settings = settings(dir.path(), OutputFormat::Tsv, "out.tsv");
+    let report = transcribe(
+        &settings,
+        &items,
+        &FakeRecognizer(model),
+        &FakeAudio,
+        &mut |_| {},
+    )
+    .unwrap();
+    let failed: Vec<&str> = report.failed.iter().map(|(id, _)| id.as_str()).collect();
+    assert_eq!(failed, ["panic1", "panic2"]);
+    for (id, error) in &report.failed {
+        assert!(
+            error.contains(&format!("{id}.wav: processing failed inside isogloss"))
+                && error.contains("internal state the reader did not expect"),
+            "{error}"
+        );
+    }
+    assert_eq!(
+        fs::read_to_string(&settings.out).unwrap(),
+        "id\ttext\nburst1\ta a\nburst2\ta a\nburst3\ta a\n"
+    );
 }
 
 #[test]

@@ -1,7 +1,9 @@
 //! Transcription of a batch: the lexicon and LM set up once, every item decoded in parallel
 //! (greedy or beam search), timed transcripts journalled and written.
 
+use std::any::Any;
 use std::collections::HashMap;
+use std::panic::{catch_unwind, AssertUnwindSafe};
 use std::path::{Path, PathBuf};
 
 use isogloss_corpus::tsv::Table;
@@ -105,12 +107,15 @@ pub fn batch_items(
                     if text.is_empty() {
                         return Ok(None);
                     }
+                    let limit = isogloss_audio::MAX_TIME_SECONDS;
                     match text.parse::<f64>() {
-                        Ok(v) if v >= 0.0 && v.is_finite() => Ok(Some(v)),
+                        Ok(v) if (0.0..=limit).contains(&v) => Ok(Some(v)),
                         _ => Err(BatchError::Line {
                             path: manifest.clone(),
                             line: record.line,
-                            message: format!("column {name}: expected seconds, found {text:?}"),
+                            message: format!(
+                                "column {name}: expected seconds from 0 to {limit}, found {text:?}"
+                            ),
                         }),
                     }
                 };
@@ -175,6 +180,16 @@ pub fn transcribe(
     audio: &impl AudioSource,
     events: &mut dyn FnMut(Event),
 ) -> Result<BatchReport, BatchError> {
+    settings
+        .search
+        .validate()
+        .map_err(|e| BatchError::Setting(e.to_string()))?;
+    VadConfig {
+        max_segment_seconds: settings.max_segment_seconds,
+        ..VadConfig::default()
+    }
+    .validate()
+    .map_err(|e| BatchError::Setting(e.to_string()))?;
     let units = recognizer.units();
     let graph = match (&settings.lexicon, settings.greedy) {
         (Some(path), false) => {
@@ -248,6 +263,15 @@ pub fn transcribe(
     }?;
     write_output(&settings.out, &report.items, settings.format)?;
     Ok(report)
+}
+
+/// The text a panic was raised with.
+pub(crate) fn panic_message(payload: &(dyn Any + Send)) -> String {
+    payload
+        .downcast_ref::<&str>()
+        .map(|s| s.to_string())
+        .or_else(|| payload.downcast_ref::<String>().cloned())
+        .unwrap_or_else(|| "no message".into())
 }
 
 #[allow(clippy::too_many_arguments)]
@@ -340,7 +364,16 @@ fn run_items<L: LanguageModel>(
         |group| {
             group
                 .par_iter()
-                .map_init(new_decoder, |decoder, item| transcribe_one(item, decoder))
+                .map_init(new_decoder, |decoder, item| {
+                    // A panic is this item's error; the decoder it may have left half-updated
+                    // is replaced.
+                    catch_unwind(AssertUnwindSafe(|| transcribe_one(item, decoder))).unwrap_or_else(
+                        |payload| {
+                            *decoder = new_decoder();
+                            Err(BatchError::Panic(panic_message(payload.as_ref())))
+                        },
+                    )
+                })
                 .collect()
         },
         &mut |progress| events(Event::Progress(progress)),

@@ -125,10 +125,11 @@ pub fn check_manifests(
     let total = audio_files.len();
     let mut audio: HashMap<&Path, Result<AudioInfo, String>> = HashMap::new();
     for (done, file) in audio_files.into_iter().enumerate() {
-        let result = match audio_check {
+        // A panic while reading one file is that file's problem; the check goes on.
+        let result = isogloss_audio::isolated(file, || match audio_check {
             AudioCheck::Decode => isogloss_audio::verify(file),
             AudioCheck::HeaderOnly => isogloss_audio::probe(file),
-        };
+        });
         audio.insert(file, result.map_err(|e| e.to_string()));
         progress(done + 1, total);
     }

@@ -404,10 +404,11 @@ fn parse_seconds(text: &str) -> Result<Option<f64>, String> {
     if text.is_empty() {
         return Ok(None);
     }
+    let limit = isogloss_audio::MAX_TIME_SECONDS;
     match text.parse::<f64>() {
-        Ok(seconds) if seconds.is_finite() && seconds >= 0.0 => Ok(Some(seconds)),
+        Ok(seconds) if (0.0..=limit).contains(&seconds) => Ok(Some(seconds)),
         _ => Err(format!(
-            "expected seconds as a number ≥ 0 such as 12.5 (or empty), found `{text}`"
+            "expected seconds from 0 to {limit} such as 12.5 (or empty), found `{text}`"
         )),
     }
 }
@@ -504,6 +505,28 @@ mod tests {
         assert_eq!(manifest.transcript(1, "normalized").unwrap(), "yes");
         let message = manifest.transcript(0, "phones").unwrap_err().to_string();
         assert!(message.contains("dialectal, normalized"), "{message}");
+    }
+
+    /// Issue 16: an `end` beyond about 1.2e15 s saturated to the "end of file" marker when
+    /// turned into a sample index and was silently read as "to the end of the file".
+    #[test]
+    fn times_beyond_the_limit_are_errors_naming_the_line() {
+        let (_dir, path) = manifest_with(
+            "u1\ta.wav\t0\t1.3e15\tsp\tn\ta\ta\nu2\ta.wav\t2000000\t\tsp\tn\ta\ta\n\
+             u3\ta.wav\t0\t1000000\tsp\tn\ta\ta\n",
+        );
+        let (manifest, problems) = Manifest::read_collecting(&path).unwrap();
+        let messages: Vec<String> = problems.iter().map(|p| p.to_string()).collect();
+        assert_eq!(messages.len(), 2, "{messages:?}");
+        assert!(
+            messages[0].contains("corpus.tsv, line 2")
+                && messages[0].contains("`end` of `u1`")
+                && messages[0].contains("from 0 to 1000000")
+                && messages[0].contains("1.3e15"),
+            "{messages:?}"
+        );
+        assert!(messages[1].contains("line 3") && messages[1].contains("`start` of `u2`"));
+        assert_eq!(manifest.utterances.len(), 1);
     }
 
     #[test]

@@ -2,7 +2,8 @@
 //! split on tab, no quoting, `#` never special, and (for most formats) a header row naming the
 //! columns. Errors name the file and the 1-based line.
 
-use std::fs;
+use std::fs::{self, File};
+use std::io::Write;
 use std::path::{Path, PathBuf};
 
 use crate::CorpusError;
@@ -225,13 +226,35 @@ pub fn write_atomically(path: &Path, bytes: &[u8]) -> Result<(), CorpusError> {
     let mut temporary = path.as_os_str().to_owned();
     temporary.push(".tmp");
     let temporary = PathBuf::from(temporary);
-    fs::write(&temporary, bytes).map_err(io)?;
-    fs::rename(&temporary, path).map_err(io)
+    // Written and flushed to disk in full before it replaces the previous file; on failure
+    // (a full disk) the partial copy is removed and the previous file stays as it was.
+    let written = File::create(&temporary)
+        .and_then(|mut file| file.write_all(bytes).and_then(|_| file.sync_all()))
+        .and_then(|_| fs::rename(&temporary, path));
+    if written.is_err() {
+        let _ = fs::remove_file(&temporary);
+    }
+    written.map_err(io)
 }
 
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    /// A write that fails (here the temporary copy cannot be created, as on a full disk or a
+    /// read-only folder) is an error naming the file, and the previous output stays whole.
+    #[test]
+    fn a_failed_write_leaves_the_previous_file_intact() {
+        let dir = tempfile::tempdir().unwrap();
+        let path = dir.path().join("hyp.tsv");
+        write_atomically(&path, b"id\ttext\nu1\tolder\n").unwrap();
+        fs::create_dir(dir.path().join("hyp.tsv.tmp")).unwrap();
+        let message = write_atomically(&path, b"id\ttext\nu1\tnewer\n")
+            .unwrap_err()
+            .to_string();
+        assert!(message.contains("hyp.tsv"), "{message}");
+        assert_eq!(fs::read(&path).unwrap(), b"id\ttext\nu1\tolder\n");
+    }
 
     fn file_with(text: &[u8]) -> (tempfile::TempDir, PathBuf) {
         let dir = tempfile::tempdir().unwrap();

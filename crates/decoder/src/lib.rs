@@ -55,7 +55,9 @@ mod brute_force;
 pub use graph::{LexiconReport, SearchGraph, WordRule, BOUNDARY_UNIT};
 pub use greedy::GreedyDecoder;
 pub use lm::{BigramModel, LanguageModel, NoLanguageModel};
-pub use search::{PrefixBeamSearch, SearchOptions, DEFAULT_LM_WEIGHT, DEFAULT_WORD_BONUS};
+pub use search::{
+    PrefixBeamSearch, SearchOptions, DEFAULT_LM_WEIGHT, DEFAULT_WORD_BONUS, MAX_BEAM,
+};
 pub use transcript::{DecodedWord, Transcript};
 
 use ndarray::ArrayView2;
@@ -84,6 +86,16 @@ pub enum DecodeError {
     /// The unit inventory cannot support decoding.
     #[error("the model has {0} units; decoding needs the blank and at least one more")]
     TooFewUnits(usize),
+    /// A search or segmentation setting outside its valid range.
+    #[error("`{setting}` must be {expected}, found {found}")]
+    InvalidSetting {
+        /// The setting's name.
+        setting: &'static str,
+        /// The valid range.
+        expected: String,
+        /// The value given.
+        found: String,
+    },
     /// A transcript JSON file cannot be read or is not an isogloss transcript.
     #[error("{path}: {problem}")]
     TranscriptFile {

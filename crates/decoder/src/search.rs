@@ -72,7 +72,47 @@ impl Default for SearchOptions {
     }
 }
 
+/// Widest beam that can be asked for: far beyond where wider beams stop changing the result,
+/// and small enough that an unpruned beam stays in memory.
+pub const MAX_BEAM: usize = 4096;
+
 impl SearchOptions {
+    /// Checks every setting: a beam of 1 to [`MAX_BEAM`], finite weights, positive finite
+    /// margins, `skip_blank_above` within [0, 1]. The error names the setting.
+    pub fn validate(&self) -> Result<(), crate::DecodeError> {
+        let invalid = |setting: &'static str, expected: &str, found: String| {
+            Err(crate::DecodeError::InvalidSetting {
+                setting,
+                expected: expected.to_string(),
+                found,
+            })
+        };
+        if !(1..=MAX_BEAM).contains(&self.beam) {
+            return invalid("beam", "from 1 to 4096", self.beam.to_string());
+        }
+        for (setting, value) in [
+            ("lm_weight", self.lm_weight),
+            ("word_bonus", self.word_bonus),
+            ("unknown_word_score", self.unknown_word_score),
+        ] {
+            if !value.is_finite() {
+                return invalid(setting, "a finite number", value.to_string());
+            }
+        }
+        for (setting, value) in [
+            ("unit_margin", self.unit_margin),
+            ("score_margin", self.score_margin),
+        ] {
+            if let Some(value) = value.filter(|v| !(v.is_finite() && *v > 0.0)) {
+                return invalid(setting, "a positive finite number", value.to_string());
+            }
+        }
+        if let Some(value) = self.skip_blank_above.filter(|v| !(0.0..=1.0).contains(v)) {
+            return invalid("skip_blank_above", "from 0 to 1", value.to_string());
+        }
+        Ok(())
+    }
+
     /// No pruning at all: every hypothesis is kept. Exponential in the number of frames; meant
     /// for checking the search against enumeration on tiny inputs.
     pub fn exact(lm_weight: f32, word_bonus: f32) -> Self {
@@ -791,5 +831,44 @@ impl<L: LanguageModel> Decoder for PrefixBeamSearch<'_, L> {
             score: f32::NEG_INFINITY,
             acoustic_score: f32::NEG_INFINITY,
         }))
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn options_are_checked_against_their_limits() {
+        SearchOptions::default().validate().unwrap();
+        let bad = [
+            SearchOptions {
+                beam: 0,
+                ..SearchOptions::default()
+            },
+            SearchOptions {
+                beam: MAX_BEAM + 1,
+                ..SearchOptions::default()
+            },
+            SearchOptions {
+                lm_weight: f32::NAN,
+                ..SearchOptions::default()
+            },
+            SearchOptions {
+                word_bonus: f32::INFINITY,
+                ..SearchOptions::default()
+            },
+            SearchOptions {
+                unit_margin: Some(0.0),
+                ..SearchOptions::default()
+            },
+            SearchOptions {
+                skip_blank_above: Some(1.5),
+                ..SearchOptions::default()
+            },
+        ];
+        for options in bad {
+            assert!(options.validate().is_err(), "{options:?}");
+        }
     }
 }

@@ -35,6 +35,59 @@ pub struct VadConfig {
     pub max_segment_seconds: f64,
 }
 
+/// Longest segment the segmenter can be asked for (seconds). Segments are held in memory and
+/// decoded whole, so the cap bounds memory; an hour is far beyond any pause-free stretch.
+pub const MAX_SEGMENT_LIMIT_SECONDS: f64 = 3600.0;
+
+impl VadConfig {
+    /// Checks every setting: finite, block length within (0, 1] s, durations within 0 to
+    /// [`MAX_SEGMENT_LIMIT_SECONDS`], `max_segment_seconds` from 1 s to that limit. The error
+    /// names the setting, the range and the value found.
+    pub fn validate(&self) -> Result<(), crate::DecodeError> {
+        let invalid = |setting: &'static str, expected: String, found: f64| {
+            Err(crate::DecodeError::InvalidSetting {
+                setting,
+                expected,
+                found: found.to_string(),
+            })
+        };
+        let limit = MAX_SEGMENT_LIMIT_SECONDS;
+        if !(self.block_seconds > 0.0 && self.block_seconds <= 1.0) {
+            return invalid(
+                "block_seconds",
+                "from above 0 to 1 s".into(),
+                self.block_seconds,
+            );
+        }
+        if !(self.max_segment_seconds >= 1.0 && self.max_segment_seconds <= limit) {
+            return invalid(
+                "max_segment_seconds",
+                format!("from 1 to {limit} s"),
+                self.max_segment_seconds,
+            );
+        }
+        for (setting, value) in [
+            ("floor_window_seconds", self.floor_window_seconds),
+            ("hangover_seconds", self.hangover_seconds),
+            ("padding_seconds", self.padding_seconds),
+            ("min_speech_seconds", self.min_speech_seconds),
+        ] {
+            if !(0.0..=limit).contains(&value) {
+                return invalid(setting, format!("from 0 to {limit} s"), value);
+            }
+        }
+        for (setting, value) in [
+            ("threshold_db", self.threshold_db),
+            ("absolute_min_db", self.absolute_min_db),
+        ] {
+            if !value.is_finite() {
+                return invalid(setting, "a finite number of dB".into(), f64::from(value));
+            }
+        }
+        Ok(())
+    }
+}
+
 impl Default for VadConfig {
     fn default() -> Self {
         VadConfig {
@@ -190,8 +243,10 @@ impl Segmenter {
             None if speech => {
                 let padding: Vec<(Vec<f32>, f32)> = self.padding.drain(..).collect();
                 let start_sample = block_start - (padding.len() * self.block) as u64;
-                let mut samples = Vec::with_capacity(self.max_blocks * self.block);
-                let mut energies = Vec::with_capacity(self.max_blocks);
+                // Room for up to 30 s; a longer segment grows as its blocks arrive.
+                let reserved = self.max_blocks.min(3000);
+                let mut samples = Vec::with_capacity(reserved * self.block);
+                let mut energies = Vec::with_capacity(reserved);
                 for (s, e) in padding {
                     samples.extend_from_slice(&s);
                     energies.push(e);
@@ -341,6 +396,35 @@ mod tests {
         let late: Vec<_> = found.iter().filter(|s| s.0 > 8.0 + 5.5).collect();
         assert_eq!(late.len(), 1, "{found:?}");
         assert!((late[0].0 - 15.85).abs() < 0.05);
+    }
+
+    #[test]
+    fn settings_are_checked_against_their_limits() {
+        // Issue 16: `--max-segment 1e9` reserved a buffer for 1e9 s (an abort) and `inf` panicked.
+        for value in [
+            1e9,
+            f64::INFINITY,
+            f64::NAN,
+            0.5,
+            MAX_SEGMENT_LIMIT_SECONDS + 1.0,
+        ] {
+            let config = VadConfig {
+                max_segment_seconds: value,
+                ..VadConfig::default()
+            };
+            let message = config.validate().unwrap_err().to_string();
+            assert!(
+                message.contains("max_segment_seconds") && message.contains("from 1 to 3600 s"),
+                "{message}"
+            );
+        }
+        VadConfig {
+            max_segment_seconds: MAX_SEGMENT_LIMIT_SECONDS,
+            ..VadConfig::default()
+        }
+        .validate()
+        .unwrap();
+        VadConfig::default().validate().unwrap();
     }
 
     #[test]

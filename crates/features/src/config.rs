@@ -111,6 +111,22 @@ impl Default for FeatureConfig {
     }
 }
 
+/// Largest `fft_size` (and so `window_samples`): 65 536 samples, 4 s at 16 kHz, far beyond any
+/// speech front end; the FFT plan and window are built from it.
+pub const MAX_FFT_SIZE: usize = 1 << 16;
+
+/// Largest `hop_samples`.
+pub const MAX_HOP_SAMPLES: usize = 1 << 16;
+
+/// Largest `mel_filters` (speech front ends use 20 to 128).
+pub const MAX_MEL_FILTERS: usize = 1024;
+
+/// Largest `slope_reach` (frames on each side of a Δ regression; 2 is usual).
+pub const MAX_SLOPE_REACH: usize = 100;
+
+/// Supported `sample_rate` range (Hz), the same as the audio stage's.
+pub const SAMPLE_RATE_RANGE: std::ops::RangeInclusive<u32> = 1_000..=384_000;
+
 /// Feature-setting keys of the previous release and the keys that replace them. The old keys are
 /// still read for one release, with a deprecation warning.
 pub const DEPRECATED_KEYS: [(&str, &str); 8] = [
@@ -240,30 +256,53 @@ impl FeatureConfig {
                 found: found.to_string(),
             }
         }
-        if self.sample_rate == 0 {
-            return Err(invalid("sample_rate", "a positive number of Hz", 0));
+        if !SAMPLE_RATE_RANGE.contains(&self.sample_rate) {
+            return Err(invalid(
+                "sample_rate",
+                format!(
+                    "from {} to {} Hz",
+                    SAMPLE_RATE_RANGE.start(),
+                    SAMPLE_RATE_RANGE.end()
+                ),
+                self.sample_rate,
+            ));
         }
         if !(0.0..1.0).contains(&self.emphasis) {
             return Err(invalid("emphasis", "in [0, 1)", self.emphasis));
         }
-        if self.window_samples == 0 {
-            return Err(invalid("window_samples", "at least 1 sample", 0));
+        if !(1..=MAX_FFT_SIZE).contains(&self.window_samples) {
+            return Err(invalid(
+                "window_samples",
+                format!("from 1 to {MAX_FFT_SIZE} samples"),
+                self.window_samples,
+            ));
         }
-        if self.hop_samples == 0 {
-            return Err(invalid("hop_samples", "at least 1 sample", 0));
+        if !(1..=MAX_HOP_SAMPLES).contains(&self.hop_samples) {
+            return Err(invalid(
+                "hop_samples",
+                format!("from 1 to {MAX_HOP_SAMPLES} samples"),
+                self.hop_samples,
+            ));
         }
-        if self.fft_size < self.window_samples.max(2) || self.fft_size % 2 != 0 {
+        if self.fft_size < self.window_samples.max(2)
+            || self.fft_size % 2 != 0
+            || self.fft_size > MAX_FFT_SIZE
+        {
             return Err(invalid(
                 "fft_size",
                 format!(
-                    "even and at least window_samples ({})",
+                    "even, at least window_samples ({}) and at most {MAX_FFT_SIZE}",
                     self.window_samples.max(2)
                 ),
                 self.fft_size,
             ));
         }
-        if self.mel_filters == 0 {
-            return Err(invalid("mel_filters", "at least 1", 0));
+        if !(1..=MAX_MEL_FILTERS).contains(&self.mel_filters) {
+            return Err(invalid(
+                "mel_filters",
+                format!("from 1 to {MAX_MEL_FILTERS}"),
+                self.mel_filters,
+            ));
         }
         let nyquist = f64::from(self.sample_rate) / 2.0;
         if !(self.band_low_hz >= 0.0 && self.band_low_hz < self.band_high_hz) {
@@ -298,8 +337,12 @@ impl FeatureConfig {
         if order > 2 {
             return Err(invalid("deltas", "0, 1 or 2", order));
         }
-        if order > 0 && self.slope_reach == 0 {
-            return Err(invalid("slope_reach", "at least 1 frame", 0));
+        if order > 0 && !(1..=MAX_SLOPE_REACH).contains(&self.slope_reach) {
+            return Err(invalid(
+                "slope_reach",
+                format!("from 1 to {MAX_SLOPE_REACH} frames"),
+                self.slope_reach,
+            ));
         }
         Ok(())
     }
@@ -409,6 +452,37 @@ mod tests {
                 "{bad}"
             );
         }
+    }
+
+    #[test]
+    fn sizes_beyond_their_limits_are_errors_before_anything_is_built() {
+        // Issue 16: `fft_size = 4000000000000` aborted when the extractor was built.
+        for (bad, key, limit) in [
+            ("fft_size = 4000000000000", "fft_size", "at most 65536"),
+            (
+                "window_samples = 70000\nfft_size = 70000",
+                "window_samples",
+                "to 65536",
+            ),
+            ("hop_samples = 99999999", "hop_samples", "to 65536"),
+            ("mel_filters = 100000", "mel_filters", "to 1024"),
+            ("slope_reach = 5000", "slope_reach", "to 100"),
+            ("sample_rate = 1", "sample_rate", "from 1000 to 384000 Hz"),
+        ] {
+            let message = FeatureConfig::from_toml_str(bad, Path::new("huge.toml"))
+                .unwrap_err()
+                .to_string();
+            assert!(
+                message.contains("huge.toml") && message.contains(key) && message.contains(limit),
+                "{bad}: {message}"
+            );
+        }
+        let largest = FeatureConfig {
+            window_samples: MAX_FFT_SIZE,
+            fft_size: MAX_FFT_SIZE,
+            ..FeatureConfig::default()
+        };
+        crate::FeatureExtractor::new(&largest).unwrap();
     }
 
     #[test]

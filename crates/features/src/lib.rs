@@ -41,7 +41,10 @@ mod spectrum;
 pub mod vtlp;
 
 pub use cmvn::{Cmvn, CmvnStats, SpeakerCmvnStats};
-pub use config::{deprecated_spellings, CmvnMode, FeatureConfig, FeatureKind, DEPRECATED_KEYS};
+pub use config::{
+    deprecated_spellings, CmvnMode, FeatureConfig, FeatureKind, DEPRECATED_KEYS, MAX_FFT_SIZE,
+    MAX_HOP_SAMPLES, MAX_MEL_FILTERS, MAX_SLOPE_REACH, SAMPLE_RATE_RANGE,
+};
 pub use error::FeatureError;
 pub use extractor::FeatureExtractor;
 pub use io::{read_features, write_features, FEATURES_TENSOR};

@@ -15,23 +15,56 @@ use flate2::read::MultiGzDecoder;
 use flate2::write::GzEncoder;
 
 use crate::error::LmError;
-use crate::model::{AddError, ArpaModel, ModelBuilder, MAX_ORDER};
+use crate::model::{AddError, ArpaModel, ModelBuilder, MAX_ENTRIES_PER_ORDER, MAX_ORDER};
 
 /// Opens a file for reading, transparently decompressing gzip (recognised by its magic bytes).
 pub(crate) fn open_text(path: &Path) -> Result<Box<dyn BufRead>, LmError> {
+    Ok(wrap_text(open_text_raw(path)?))
+}
+
+const GZIP_MAGIC: [u8; 2] = [0x1f, 0x8b];
+
+fn open_text_raw(path: &Path) -> Result<BufReader<File>, LmError> {
     let file = File::open(path).map_err(|error| LmError::io(path, "cannot open", error))?;
-    let mut reader = BufReader::with_capacity(1 << 16, file);
-    let magic = reader
+    Ok(BufReader::with_capacity(1 << 16, file))
+}
+
+/// Decompresses gzip (recognised by its magic bytes) or passes the text through.
+fn wrap_text(mut reader: BufReader<File>) -> Box<dyn BufRead> {
+    let compressed = reader
         .fill_buf()
-        .map_err(|error| LmError::io(path, "cannot read", error))?;
-    if magic.starts_with(&[0x1f, 0x8b]) {
-        Ok(Box::new(BufReader::with_capacity(
+        .is_ok_and(|magic| magic.starts_with(&GZIP_MAGIC));
+    if compressed {
+        Box::new(BufReader::with_capacity(
             1 << 16,
             MultiGzDecoder::new(reader),
-        )))
+        ))
     } else {
-        Ok(Box::new(reader))
+        Box::new(reader)
     }
+}
+
+/// Longest line the text readers accept (bytes): far beyond any n-gram or sentence, small
+/// enough that a compressed file of one endless line cannot exhaust memory.
+pub const MAX_LINE_BYTES: usize = 1 << 20;
+
+/// Fewest bytes one n-gram line of an ARPA file takes (`p w` and a line end), so a plain file of
+/// B bytes lists at most B / 4 n-grams: a header count beyond it is an error before anything is
+/// read.
+const MIN_NGRAM_LINE_BYTES: u64 = 4;
+
+/// [`open_text`], and the file's size when it is plain text (not compressed).
+fn open_text_sized(path: &Path) -> Result<(Box<dyn BufRead>, Option<u64>), LmError> {
+    let mut reader = open_text_raw(path)?;
+    let compressed = reader
+        .fill_buf()
+        .map_err(|error| LmError::io(path, "cannot read", error))?
+        .starts_with(&GZIP_MAGIC);
+    let size = std::fs::metadata(path)
+        .map_err(|error| LmError::io(path, "cannot read", error))?
+        .len();
+    let size = (!compressed).then_some(size);
+    Ok((wrap_text(reader), size))
 }
 
 /// Reads lines into a reused buffer, counting them and turning bad UTF-8 into a located error.
@@ -53,14 +86,40 @@ impl<R: BufRead> LineReader<R> {
         }
     }
 
-    /// The next line without its line ending, or `None` at the end of the file.
+    /// The next line without its line ending, or `None` at the end of the file. A line longer
+    /// than [`MAX_LINE_BYTES`] is an error (a decompressed stream has no size to bound it).
     pub(crate) fn next_line(&mut self) -> Result<Option<&str>, LmError> {
         self.bytes.clear();
-        let read = self
-            .reader
-            .read_until(b'\n', &mut self.bytes)
-            .map_err(|error| LmError::io(&self.path, "cannot read", error))?;
-        if read == 0 {
+        let mut ended = false;
+        loop {
+            let available = self
+                .reader
+                .fill_buf()
+                .map_err(|error| LmError::io(&self.path, "cannot read", error))?;
+            if available.is_empty() {
+                break;
+            }
+            let (taken, found) = match available.iter().position(|&b| b == b'\n') {
+                Some(at) => (at + 1, true),
+                None => (available.len(), false),
+            };
+            if self.bytes.len() + taken > MAX_LINE_BYTES {
+                return Err(LmError::Text {
+                    path: self.path.clone(),
+                    line: self.line + 1,
+                    message: format!(
+                        "expected lines of at most {MAX_LINE_BYTES} bytes, found a longer one"
+                    ),
+                });
+            }
+            self.bytes.extend_from_slice(&available[..taken]);
+            self.reader.consume(taken);
+            if found {
+                ended = true;
+                break;
+            }
+        }
+        if self.bytes.is_empty() && !ended {
             return Ok(None);
         }
         self.line += 1;
@@ -104,16 +163,23 @@ impl ArpaModel {
     /// Reads an ARPA file (`.arpa`, or gzip-compressed such as `.arpa.gz`), streaming.
     pub fn read(path: impl AsRef<Path>) -> Result<ArpaModel, LmError> {
         let path = path.as_ref();
-        read_arpa(open_text(path)?, path)
+        let (reader, size) = open_text_sized(path)?;
+        read_arpa(reader, path, size)
     }
 
     /// Reads ARPA text from any reader; `path` is only used in error messages.
     pub fn read_from(reader: impl Read, path: impl AsRef<Path>) -> Result<ArpaModel, LmError> {
-        read_arpa(BufReader::new(reader), path.as_ref())
+        read_arpa(BufReader::new(reader), path.as_ref(), None)
     }
 }
 
-fn read_arpa(reader: impl BufRead, path: &Path) -> Result<ArpaModel, LmError> {
+/// `text_bytes`: the size of the text when known (a plain file), which bounds the counts the
+/// header may announce.
+fn read_arpa(
+    reader: impl BufRead,
+    path: &Path,
+    text_bytes: Option<u64>,
+) -> Result<ArpaModel, LmError> {
     let mut lines = LineReader::new(reader, path);
     // Anything before `\data\` is free-form commentary.
     loop {
@@ -168,13 +234,29 @@ fn read_arpa(reader: impl BufRead, path: &Path) -> Result<ArpaModel, LmError> {
                 format!("expected an n-gram order in 'ngram N=COUNT', found '{line}'"),
             )
         })?;
-        let count: usize = count.trim().parse().map_err(|_| {
+        let count: u64 = count.trim().parse().map_err(|_| {
             arpa_error(
                 path,
                 line_number,
                 format!("expected an n-gram count in 'ngram N=COUNT', found '{line}'"),
             )
         })?;
+        let most = match text_bytes {
+            Some(bytes) => (bytes / MIN_NGRAM_LINE_BYTES).min(MAX_ENTRIES_PER_ORDER as u64),
+            None => MAX_ENTRIES_PER_ORDER as u64,
+        };
+        if count > most {
+            let why = match text_bytes {
+                Some(bytes) => format!("a file of {bytes} bytes holds at most {most}"),
+                None => format!("at most {most} n-grams of one order are supported"),
+            };
+            return Err(arpa_error(
+                path,
+                line_number,
+                format!("the header announces {count} n-grams of order {order}; {why}"),
+            ));
+        }
+        let count = count as usize;
         if order != counts.len() + 1 {
             return Err(arpa_error(
                 path,

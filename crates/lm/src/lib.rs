@@ -46,6 +46,7 @@
 #![deny(missing_docs)]
 
 mod arpa;
+pub use arpa::MAX_LINE_BYTES;
 mod counts;
 mod error;
 mod estimate;

@@ -233,6 +233,9 @@ impl OrderEntries {
     }
 }
 
+/// Most entries of one order reserved in advance by [`ModelBuilder::new`].
+const RESERVED_ENTRIES: usize = 1 << 16;
+
 /// Why an n-gram could not be added (the ARPA reader adds the file and line).
 #[derive(Debug)]
 pub(crate) enum AddError {
@@ -273,8 +276,14 @@ pub(crate) struct ModelBuilder {
 }
 
 impl ModelBuilder {
-    /// A builder for a model of `order` (1..=6) with room for `counts[n-1]` n-grams of order n.
+    /// A builder for a model of `order` (1..=6) expecting `counts[n-1]` n-grams of order n.
+    /// Room is reserved for at most [`RESERVED_ENTRIES`] of each order and grows as n-grams are
+    /// added: the counts may come from a file's header, which can lie.
     pub(crate) fn new(counts: &[usize]) -> Self {
+        let counts: Vec<usize> = counts
+            .iter()
+            .map(|&count| count.min(RESERVED_ENTRIES))
+            .collect();
         let mut tables = Vec::with_capacity(counts.len());
         for (position, &count) in counts.iter().enumerate() {
             // Unigrams are indexed by word directly; their table stays empty.

@@ -248,3 +248,58 @@ fn missing_prefixes_and_suffixes_are_implied_without_changing_probabilities() {
     assert!((f64::from(log10_b) - -0.9).abs() < 1e-6);
     assert!((f64::from(model.sentence_end(&state)) - -0.15).abs() < 1e-6);
 }
+
+/// Issue 16: a header count was used as an allocation size (an abort for `ngram 1=99999999999`,
+/// a capacity-overflow panic for `ngram 2=9999999999999999999`). Now a count beyond what the
+/// file can hold is an error naming the file, the line and the bound, and counts within it
+/// reserve nothing beyond a fixed amount.
+#[test]
+fn header_counts_beyond_the_file_are_errors_not_allocations() {
+    let folder = tempfile::tempdir().unwrap();
+    let path = folder.path().join("huge.arpa");
+    for (header, line) in [
+        ("ngram 1=99999999999\n", 2),
+        ("ngram 1=5\nngram 2=9999999999999999999\n", 3),
+        ("ngram 1=18446744073709551615\n", 2),
+    ] {
+        std::fs::write(
+            &path,
+            format!("\\data\\\n{header}\n\\1-grams:\n-1\ta\n\\end\\\n"),
+        )
+        .unwrap();
+        let message = ArpaModel::read(&path).unwrap_err().to_string();
+        assert!(
+            message.contains(&format!("huge.arpa:{line}:")) && message.contains("holds at most"),
+            "{message}"
+        );
+    }
+    // The same count through a reader of unknown size: bounded by the per-order maximum, and
+    // otherwise found out by the count check at the end of the section, without reserving it.
+    let text = "\\data\\\nngram 1=4000000000\n\n\\1-grams:\n-1\ta\n\\end\\\n";
+    let message = ArpaModel::read_from(text.as_bytes(), "stream.arpa")
+        .unwrap_err()
+        .to_string();
+    assert!(message.contains("at most"), "{message}");
+    let text = "\\data\\\nngram 1=40000000\n\n\\1-grams:\n-1\ta\n\\end\\\n";
+    let message = ArpaModel::read_from(text.as_bytes(), "stream.arpa")
+        .unwrap_err()
+        .to_string();
+    assert!(
+        message.contains("announced 40000000 1-grams, found 1"),
+        "{message}"
+    );
+}
+
+/// A gzip stream can decompress into one endless line; lines are capped.
+#[test]
+fn an_endless_line_is_an_error() {
+    let mut text = b"\\data\\\nngram 1=1\n\n\\1-grams:\n-1\t".to_vec();
+    text.extend(std::iter::repeat_n(b'a', crate::arpa::MAX_LINE_BYTES + 10));
+    let message = ArpaModel::read_from(text.as_slice(), "long.arpa")
+        .unwrap_err()
+        .to_string();
+    assert!(
+        message.contains("long.arpa:5:") && message.contains("longer"),
+        "{message}"
+    );
+}

@@ -33,6 +33,10 @@ impl Default for BootstrapOptions {
     }
 }
 
+/// Most resamples a bootstrap may draw: the percentile bounds stop moving long before, and the
+/// resampled rates are kept in memory (8 MB at this limit).
+pub const MAX_RESAMPLES: usize = 1_000_000;
+
 /// A two-sided percentile interval.
 #[derive(Debug, Clone, Copy, PartialEq, serde::Serialize, serde::Deserialize)]
 pub struct Interval {

@@ -41,7 +41,7 @@ pub mod tokens;
 pub mod variants;
 
 pub use align::{align_by, AlignedPair, Alignment, Edit, ErrorCounts, Match};
-pub use bootstrap::{BootstrapOptions, Interval, PairedBootstrap};
+pub use bootstrap::{BootstrapOptions, Interval, PairedBootstrap, MAX_RESAMPLES};
 pub use input::{Hypotheses, Hypothesis, Reference, ReferenceUtterance};
 pub use report::{
     report, score_system, summarize, Comparison, Confusion, GroupSummary, PairedDifference,

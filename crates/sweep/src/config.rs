@@ -17,6 +17,9 @@ use crate::SweepError;
 /// one LM build builds a dialectal LM for the dialectal column and a normalized one for the other.
 pub const COLUMN_PLACEHOLDER: &str = "{column}";
 
+/// Most cells a sweep may cross (each cell decodes the test set once).
+pub const MAX_CELLS: usize = 100_000;
+
 /// The sweep file as written by the user (TOML).
 #[derive(Debug, Clone, Deserialize)]
 #[serde(deny_unknown_fields)]
@@ -514,10 +517,45 @@ impl Sweep {
                     .into(),
             ));
         }
-        if let Some(beam) = axes.beam.iter().find(|&&b| b == 0) {
+        if let Some(beam) = axes
+            .beam
+            .iter()
+            .find(|&&b| !(1..=isogloss_decoder::MAX_BEAM).contains(&b))
+        {
             return Err(problem(
                 "beam",
-                format!("beam widths must be at least 1, found {beam}"),
+                format!(
+                    "beam widths must be from 1 to {}, found {beam}",
+                    isogloss_decoder::MAX_BEAM
+                ),
+            ));
+        }
+        if let Some(value) = axes
+            .lm_weight
+            .iter()
+            .chain(&axes.word_bonus)
+            .find(|v| !v.is_finite())
+        {
+            return Err(problem(
+                "[decoder]",
+                format!("LM weights and word bonuses must be finite numbers, found {value}"),
+            ));
+        }
+        let cells = [
+            file.models.len(),
+            file.columns.len(),
+            file.lms.len(),
+            file.lexicons.len(),
+            axes.beam.len(),
+            axes.lm_weight.len(),
+            axes.word_bonus.len(),
+        ]
+        .iter()
+        .fold(1usize, |product, &n| product.saturating_mul(n));
+        if cells > MAX_CELLS {
+            return Err(problem(
+                "[decoder]",
+                format!("the grid has {cells} cells (models × columns × LMs × lexicons × beams × LM weights × word bonuses); at most {MAX_CELLS} are supported"),
             ));
         }
         let tuning = match axes.tune.as_str() {
@@ -537,8 +575,15 @@ impl Sweep {
                 "tuning on dev needs a `dev` manifest".into(),
             ));
         }
-        if file.resamples == 0 {
-            return Err(problem("resamples", "resamples must be at least 1".into()));
+        if !(1..=isogloss_score::MAX_RESAMPLES).contains(&file.resamples) {
+            return Err(problem(
+                "resamples",
+                format!(
+                    "resamples must be from 1 to {}, found {}",
+                    isogloss_score::MAX_RESAMPLES,
+                    file.resamples
+                ),
+            ));
         }
         if !(file.confidence > 0.0 && file.confidence < 1.0) {
             return Err(problem(
@@ -832,6 +877,45 @@ lm_weight = [0.5, 1.0, 1.5]
 
     fn error_of(sweep: &str) -> String {
         setup(sweep).1.unwrap_err().to_string()
+    }
+
+    /// Issue 16: `resamples = 1e11` reserved room for 1e11 bootstrap rates (an abort). Counts
+    /// and widths beyond their limits are now errors naming the file and key.
+    #[test]
+    fn counts_beyond_their_limits_are_errors() {
+        for (extra, expected) in [
+            (
+                "resamples = 100000000000",
+                "resamples must be from 1 to 1000000",
+            ),
+            ("resamples = 0", "resamples must be from 1 to 1000000"),
+        ] {
+            let message = error_of(&GOOD.replace("out_dir", &format!("{extra}\nout_dir")));
+            assert!(
+                message.contains("sweep.toml") && message.contains(expected),
+                "{message}"
+            );
+        }
+        let message = error_of(&GOOD.replace("beam = [8, 16]", "beam = [8, 100000]"));
+        assert!(
+            message.contains("beam widths must be from 1 to 4096"),
+            "{message}"
+        );
+        let message = error_of(&GOOD.replace("lm_weight = [0.5, 1.0, 1.5]", "lm_weight = [nan]"));
+        assert!(message.contains("finite"), "{message}");
+        let many: Vec<String> = (0..400).map(|i| format!("{i}.0")).collect();
+        let message = error_of(&GOOD.replace(
+            "lm_weight = [0.5, 1.0, 1.5]",
+            &format!(
+                "lm_weight = [{}]\nword_bonus = [{}]",
+                many.join(", "),
+                many.join(", ")
+            ),
+        ));
+        assert!(
+            message.contains("at most 100000 are supported"),
+            "{message}"
+        );
     }
 
     #[test]

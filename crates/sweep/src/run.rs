@@ -378,139 +378,145 @@ pub fn run(
     let scored: Vec<Result<(CellResult, Option<usize>), SweepError>> = cells
         .par_iter()
         .map(|cell| {
-            let pass = &passes[cell.model];
-            let column = &sweep.columns[cell.column];
-            let (lm, lm_path, perplexity, oov_rate) = &lms[&(cell.column, cell.lm)];
-            let (_, lexicon_key, coverage, type_coverage) =
-                &lexicons[&(cell.column, cell.lm, cell.lexicon)];
-            let graph = &graphs[&(cell.model, cell.column, cell.lm, cell.lexicon)];
-            let mut key = ContentKey::new();
-            key.text("cell v1");
-            key.text(&pass.test.key);
-            key.text(column);
-            key.file(lm_path)?;
-            key.text(lexicon_key);
-            key.file(&sweep.test)?;
-            key.text(&format!(
-                "{} {:?} {:?}",
-                cell.beam, cell.lm_weight, cell.word_bonus
-            ));
-            if let Some(dev) = &sweep.dev {
-                if let (None, Some(dev_pass)) = (cell.lm_weight, &pass.dev) {
-                    key.file(dev)?;
-                    key.text(&dev_pass.key);
-                    key.text(&format!(
-                        "{:?} {:?} {:?}",
-                        sweep.decoder.tuning, sweep.decoder.lm_weights, sweep.decoder.word_bonuses
-                    ));
+            isolated(cell, || {
+                let pass = &passes[cell.model];
+                let column = &sweep.columns[cell.column];
+                let (lm, lm_path, perplexity, oov_rate) = &lms[&(cell.column, cell.lm)];
+                let (_, lexicon_key, coverage, type_coverage) =
+                    &lexicons[&(cell.column, cell.lm, cell.lexicon)];
+                let graph = &graphs[&(cell.model, cell.column, cell.lm, cell.lexicon)];
+                let mut key = ContentKey::new();
+                key.text("cell v1");
+                key.text(&pass.test.key);
+                key.text(column);
+                key.file(lm_path)?;
+                key.text(lexicon_key);
+                key.file(&sweep.test)?;
+                key.text(&format!(
+                    "{} {:?} {:?}",
+                    cell.beam, cell.lm_weight, cell.word_bonus
+                ));
+                if let Some(dev) = &sweep.dev {
+                    if let (None, Some(dev_pass)) = (cell.lm_weight, &pass.dev) {
+                        key.file(dev)?;
+                        key.text(&dev_pass.key);
+                        key.text(&format!(
+                            "{:?} {:?} {:?}",
+                            sweep.decoder.tuning,
+                            sweep.decoder.lm_weights,
+                            sweep.decoder.word_bonuses
+                        ));
+                    }
                 }
-            }
-            let dir = cell_dir.join(key.finish());
-            let hypotheses = dir.join("hyp.tsv");
-            let settings_path = dir.join("settings.json");
-            let cached: Option<(f32, f32, f64)> = std::fs::read_to_string(&settings_path)
-                .ok()
-                .and_then(|text| serde_json::from_str(&text).ok())
-                .filter(|_| hypotheses.exists());
-            let (lm_weight, word_bonus, decode_seconds, was_cached) = match cached {
-                Some((w, b, s)) => (w, b, s, true),
-                None => {
-                    let options_for = |w: f32, b: f32| SearchOptions {
-                        beam: cell.beam,
-                        lm_weight: w,
-                        word_bonus: b,
-                        ..SearchOptions::default()
-                    };
-                    let (w, b) = match (cell.lm_weight, cell.word_bonus) {
-                        (Some(w), Some(b)) => (w, b),
-                        _ => {
-                            let (dev_manifest, dev_pass) = match (&dev, &pass.dev) {
-                                (Some(m), Some(p)) => (m, p),
-                                _ => {
-                                    return Err(SweepError::Build(
-                                        "tuning needs dev posteriors".into(),
-                                    ))
-                                }
-                            };
-                            let dev_hypotheses = dir.join("dev-hyp.tsv");
-                            let mut dev_wer = |w: f32, b: f32| -> Result<f64, SweepError> {
-                                decode_to_file(
-                                    dev_manifest,
-                                    dev_pass,
-                                    graph,
-                                    lm,
-                                    &options_for(w, b),
-                                    &dev_hypotheses,
+                let dir = cell_dir.join(key.finish());
+                let hypotheses = dir.join("hyp.tsv");
+                let settings_path = dir.join("settings.json");
+                let cached: Option<(f32, f32, f64)> = std::fs::read_to_string(&settings_path)
+                    .ok()
+                    .and_then(|text| serde_json::from_str(&text).ok())
+                    .filter(|_| hypotheses.exists());
+                let (lm_weight, word_bonus, decode_seconds, was_cached) = match cached {
+                    Some((w, b, s)) => (w, b, s, true),
+                    None => {
+                        let options_for = |w: f32, b: f32| SearchOptions {
+                            beam: cell.beam,
+                            lm_weight: w,
+                            word_bonus: b,
+                            ..SearchOptions::default()
+                        };
+                        let (w, b) = match (cell.lm_weight, cell.word_bonus) {
+                            (Some(w), Some(b)) => (w, b),
+                            _ => {
+                                let (dev_manifest, dev_pass) = match (&dev, &pass.dev) {
+                                    (Some(m), Some(p)) => (m, p),
+                                    _ => {
+                                        return Err(SweepError::Build(
+                                            "tuning needs dev posteriors".into(),
+                                        ))
+                                    }
+                                };
+                                let dev_hypotheses = dir.join("dev-hyp.tsv");
+                                let mut dev_wer = |w: f32, b: f32| -> Result<f64, SweepError> {
+                                    decode_to_file(
+                                        dev_manifest,
+                                        dev_pass,
+                                        graph,
+                                        lm,
+                                        &options_for(w, b),
+                                        &dev_hypotheses,
+                                    )?;
+                                    word_error_rate(&dev_manifest.path, column, &dev_hypotheses)
+                                };
+                                let (w, b, tried) = tune(
+                                    sweep.decoder.tuning,
+                                    &sweep.decoder.lm_weights,
+                                    &sweep.decoder.word_bonuses,
+                                    &mut dev_wer,
                                 )?;
-                                word_error_rate(&dev_manifest.path, column, &dev_hypotheses)
-                            };
-                            let (w, b, tried) = tune(
-                                sweep.decoder.tuning,
-                                &sweep.decoder.lm_weights,
-                                &sweep.decoder.word_bonuses,
-                                &mut dev_wer,
-                            )?;
-                            let mut trace = String::from("lm_weight\tword_bonus\tdev_wer\n");
-                            for (w, b, wer) in &tried {
-                                trace.push_str(&format!("{w}\t{b}\t{wer:.6}\n"));
-                            }
-                            let trace_path = dir.join("tuning.tsv");
-                            std::fs::write(&trace_path, trace).map_err(|source| {
-                                SweepError::Io {
-                                    path: trace_path.clone(),
-                                    source,
+                                let mut trace = String::from("lm_weight\tword_bonus\tdev_wer\n");
+                                for (w, b, wer) in &tried {
+                                    trace.push_str(&format!("{w}\t{b}\t{wer:.6}\n"));
                                 }
-                            })?;
-                            (w, b)
-                        }
-                    };
-                    let seconds = decode_to_file(
-                        &test,
-                        &pass.test,
-                        graph,
-                        lm,
-                        &options_for(w, b),
-                        &hypotheses,
-                    )?;
-                    let settings = serde_json::to_string(&(w, b, seconds)).unwrap_or_default();
-                    std::fs::write(&settings_path, settings).map_err(|source| SweepError::Io {
-                        path: settings_path.clone(),
-                        source,
-                    })?;
-                    decoded.fetch_add(1, Ordering::Relaxed);
-                    (w, b, seconds, false)
-                }
-            };
-            let result = CellResult {
-                model: pass.name.clone(),
-                column: column.clone(),
-                lm: sweep.lms[cell.lm].name().to_string(),
-                lexicon: sweep.lexicons[cell.lexicon].name.clone(),
-                beam: cell.beam,
-                lm_weight,
-                word_bonus,
-                tuned: cell.lm_weight.is_none(),
-                perplexity: *perplexity,
-                oov_rate: *oov_rate,
-                coverage: *coverage,
-                type_coverage: *type_coverage,
-                overall: empty_summary(),
-                groups: Vec::new(),
-                decode_seconds,
-                search_rtf: decode_seconds / results.audio_seconds.max(1e-9),
-                hypotheses,
-                versus_baseline: None,
-                flexible_versus_baseline: None,
-            };
-            progress(SweepEvent::CellDone {
-                label: result.label(),
-                cached: was_cached,
-            });
-            let is_baseline = cell.model == sweep.baseline.model
-                && cell.column == sweep.baseline.column
-                && cell.lm == sweep.baseline.lm
-                && cell.lexicon == sweep.baseline.lexicon;
-            Ok((result, is_baseline.then_some(0)))
+                                let trace_path = dir.join("tuning.tsv");
+                                std::fs::write(&trace_path, trace).map_err(|source| {
+                                    SweepError::Io {
+                                        path: trace_path.clone(),
+                                        source,
+                                    }
+                                })?;
+                                (w, b)
+                            }
+                        };
+                        let seconds = decode_to_file(
+                            &test,
+                            &pass.test,
+                            graph,
+                            lm,
+                            &options_for(w, b),
+                            &hypotheses,
+                        )?;
+                        let settings = serde_json::to_string(&(w, b, seconds)).unwrap_or_default();
+                        std::fs::write(&settings_path, settings).map_err(|source| {
+                            SweepError::Io {
+                                path: settings_path.clone(),
+                                source,
+                            }
+                        })?;
+                        decoded.fetch_add(1, Ordering::Relaxed);
+                        (w, b, seconds, false)
+                    }
+                };
+                let result = CellResult {
+                    model: pass.name.clone(),
+                    column: column.clone(),
+                    lm: sweep.lms[cell.lm].name().to_string(),
+                    lexicon: sweep.lexicons[cell.lexicon].name.clone(),
+                    beam: cell.beam,
+                    lm_weight,
+                    word_bonus,
+                    tuned: cell.lm_weight.is_none(),
+                    perplexity: *perplexity,
+                    oov_rate: *oov_rate,
+                    coverage: *coverage,
+                    type_coverage: *type_coverage,
+                    overall: empty_summary(),
+                    groups: Vec::new(),
+                    decode_seconds,
+                    search_rtf: decode_seconds / results.audio_seconds.max(1e-9),
+                    hypotheses,
+                    versus_baseline: None,
+                    flexible_versus_baseline: None,
+                };
+                progress(SweepEvent::CellDone {
+                    label: result.label(),
+                    cached: was_cached,
+                });
+                let is_baseline = cell.model == sweep.baseline.model
+                    && cell.column == sweep.baseline.column
+                    && cell.lm == sweep.baseline.lm
+                    && cell.lexicon == sweep.baseline.lexicon;
+                Ok((result, is_baseline.then_some(0)))
+            })
         })
         .collect();
     let mut baseline = None;
@@ -525,6 +531,22 @@ pub fn run(
     results.baseline = baseline;
     score_cells(sweep, &mut results)?;
     Ok(results)
+}
+
+/// Runs one cell's work; a panic inside it (a defect) becomes an error naming the cell, so
+/// that the sweep ends with a message instead of a crash. Cells finished before it are cached
+/// in `OUT/cells/` and not decoded again when the sweep is run anew.
+fn isolated<T>(cell: &Cell, work: impl FnOnce() -> Result<T, SweepError>) -> Result<T, SweepError> {
+    std::panic::catch_unwind(std::panic::AssertUnwindSafe(work)).unwrap_or_else(|payload| {
+        let detail = payload
+            .downcast_ref::<&str>()
+            .map(|s| s.to_string())
+            .or_else(|| payload.downcast_ref::<String>().cloned())
+            .unwrap_or_else(|| "no message".into());
+        Err(SweepError::Build(format!(
+            "cell {cell:?}: processing failed inside isogloss (a defect; please report it): {detail}"
+        )))
+    })
 }
 
 /// What tuning chose: LM weight, word bonus, and every `(weight, bonus, dev WER)` tried in order.

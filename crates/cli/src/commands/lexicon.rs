@@ -207,15 +207,15 @@ fn train(args: TrainArgs) -> anyhow::Result<Outcome> {
 }
 
 fn apply(args: ApplyArgs) -> anyhow::Result<Outcome> {
-    if args.nbest == 0 || args.beam == 0 {
-        bail!("--nbest and --beam: expected at least 1");
-    }
-    let model = G2pModel::read(&args.model)?;
-    let words = words_or_fail(&args.words)?;
     let config = DecodeConfig {
         beam: args.beam,
         nbest: args.nbest,
     };
+    config
+        .validate()
+        .map_err(|e| anyhow::anyhow!("--beam, --nbest: {e}"))?;
+    let model = G2pModel::read(&args.model)?;
+    let words = words_or_fail(&args.words)?;
     let bar = crate::progress::bar(words.len() as u64, "apply-g2p");
     let mut entries = Vec::new();
     let mut scores = Vec::new();

@@ -37,9 +37,10 @@ pub struct ScoreArgs {
     /// Seed of the bootstrap's random generator (same seed, same intervals).
     #[arg(long, default_value_t = BootstrapOptions::default().seed)]
     pub seed: u64,
-    /// Bootstrap resamples.
+    /// Bootstrap resamples (1 to 1000000).
     #[arg(long, default_value_t = BootstrapOptions::default().resamples,
-          value_parser = clap::builder::RangedU64ValueParser::<usize>::new().range(1..))]
+          value_parser = clap::builder::RangedU64ValueParser::<usize>::new()
+              .range(1..=isogloss_score::MAX_RESAMPLES as u64))]
     pub resamples: usize,
     /// Confidence level of the bootstrap intervals, between 0 and 1.
     #[arg(long, default_value_t = BootstrapOptions::default().confidence, value_parser = parse_confidence)]

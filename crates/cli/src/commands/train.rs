@@ -50,6 +50,15 @@ pub fn run(args: TrainArgs) -> anyhow::Result<Outcome> {
         Some(path) => ModelConfig::read(path)?,
         None => ModelConfig::small(),
     };
+    if let Some(epochs) = args
+        .epochs
+        .filter(|&e| e > isogloss_acoustic::config::MAX_EPOCHS)
+    {
+        anyhow::bail!(
+            "--epochs: expected at most {}, found {epochs}",
+            isogloss_acoustic::config::MAX_EPOCHS
+        );
+    }
     let options = TrainOptions {
         train_manifest: args.manifest,
         dev_manifest: args.dev,

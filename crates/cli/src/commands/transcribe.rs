@@ -13,7 +13,8 @@ use isogloss_batch::{
     TranscribeSettings,
 };
 use isogloss_decoder::output::OutputFormat;
-use isogloss_decoder::SearchOptions;
+use isogloss_decoder::segment::VadConfig;
+use isogloss_decoder::{DecodeError, SearchOptions};
 use isogloss_features::{Cmvn, CmvnMode, FeatureExtractor};
 use ndarray::Array2;
 
@@ -79,27 +80,47 @@ pub struct TranscribeArgs {
 impl TranscribeArgs {
     /// Checks the numbers and turns the flags into the engine's settings.
     fn settings(&self) -> anyhow::Result<TranscribeSettings> {
-        if !(self.lm_weight.is_finite() && self.word_bonus.is_finite() && self.unit_margin > 0.0) {
-            bail!("--lm-weight and --word-bonus must be numbers and --unit-margin positive");
+        // Each setting is checked against its limit (docs/limits.md) and named by its flag.
+        let flag = |error: DecodeError| match error {
+            DecodeError::InvalidSetting {
+                setting,
+                expected,
+                found,
+            } => anyhow::anyhow!(
+                "--{}: expected {expected}, found {found}",
+                match setting {
+                    "max_segment_seconds" => "max-segment".to_string(),
+                    other => other.replace('_', "-"),
+                }
+            ),
+            other => other.into(),
+        };
+        if !(0.0..=1.0).contains(&self.skip_blank_above) {
+            bail!(
+                "--skip-blank-above: expected from 0 to 1, found {}",
+                self.skip_blank_above
+            );
         }
-        if !(0.0..=1.0).contains(&self.skip_blank_above)
-            || self.max_segment.is_nan()
-            || self.max_segment < 1.0
-        {
-            bail!("--skip-blank-above must be in [0, 1] and --max-segment at least 1 second");
+        let search = SearchOptions {
+            beam: self.beam,
+            lm_weight: self.lm_weight,
+            word_bonus: self.word_bonus,
+            unit_margin: Some(self.unit_margin),
+            skip_blank_above: (self.skip_blank_above < 1.0).then_some(self.skip_blank_above),
+            lookahead: !self.no_lookahead,
+            ..SearchOptions::default()
+        };
+        search.validate().map_err(flag)?;
+        VadConfig {
+            max_segment_seconds: self.max_segment,
+            ..VadConfig::default()
         }
+        .validate()
+        .map_err(flag)?;
         Ok(TranscribeSettings {
             lm: self.lm.clone(),
             lexicon: self.lexicon.clone(),
-            search: SearchOptions {
-                beam: self.beam.max(1),
-                lm_weight: self.lm_weight,
-                word_bonus: self.word_bonus,
-                unit_margin: Some(self.unit_margin),
-                skip_blank_above: (self.skip_blank_above < 1.0).then_some(self.skip_blank_above),
-                lookahead: !self.no_lookahead,
-                ..SearchOptions::default()
-            },
+            search,
             greedy: self.greedy,
             max_segment_seconds: self.max_segment,
             out: self.out.clone(),

@@ -76,6 +76,26 @@ impl GraphoneLm for GraphoneNgram {
     }
 }
 
+/// Most EM iterations of the alignment (it converges within tens).
+pub const MAX_ITERATIONS: usize = 1000;
+
+/// Widest beam of the pronunciation search, and most pronunciations asked for per word.
+pub const MAX_BEAM: usize = 10_000;
+
+impl DecodeConfig {
+    /// Checks the beam and the n-best count: 1 to [`MAX_BEAM`] each.
+    pub fn validate(&self) -> Result<(), LexiconError> {
+        for (name, value) in [("beam", self.beam), ("nbest", self.nbest)] {
+            if !(1..=MAX_BEAM).contains(&value) {
+                return Err(LexiconError::Parameter(format!(
+                    "expected a {name} from 1 to {MAX_BEAM}, found {value}"
+                )));
+            }
+        }
+        Ok(())
+    }
+}
+
 /// Training settings.
 #[derive(Debug, Clone, Copy, PartialEq)]
 pub struct G2pConfig {
@@ -260,6 +280,12 @@ impl G2pModel {
             return Err(LexiconError::Parameter(format!(
                 "expected a multi-symbol penalty in (0, 1], found {}",
                 config.multi_symbol_penalty
+            )));
+        }
+        if config.iterations > MAX_ITERATIONS {
+            return Err(LexiconError::Parameter(format!(
+                "expected at most {MAX_ITERATIONS} EM iterations, found {}",
+                config.iterations
             )));
         }
         let mut letter_ids = Interner::new();
@@ -516,6 +542,16 @@ impl G2pModel {
             return Err(error(2, format!("expected model format 1, found {format}")));
         }
         let count = field(2, "graphones")?;
+        // Each graphone takes a line of its own: a count beyond the lines left is a lie.
+        let lines_left = lines.len().saturating_sub(3);
+        if count > lines_left {
+            return Err(error(
+                3,
+                format!(
+                    "the header announces {count} graphones, but only {lines_left} lines follow"
+                ),
+            ));
+        }
         let mut graphones = Vec::with_capacity(count);
         for index in 3..3 + count {
             let Some(content) = lines.get(index) else {
@@ -848,6 +884,39 @@ mod tests {
         );
     }
 
+    /// Issue 16: `graphones<TAB>99999999999` was used as an allocation size (an abort), and
+    /// `18446744073709551615` overflowed (a panic). A count beyond the lines that follow is an
+    /// error naming the file and line.
+    #[test]
+    fn a_graphone_count_beyond_the_file_is_an_error() {
+        let dir = tempfile::tempdir().unwrap();
+        let path = dir.path().join("lying.g2p");
+        for count in ["99999999999", "18446744073709551615", "3"] {
+            std::fs::write(
+                &path,
+                format!("isogloss joint-sequence grapheme-to-phoneme model\nformat\t1\ngraphones\t{count}\nc\tK\n"),
+            )
+            .unwrap();
+            let message = G2pModel::read(&path).unwrap_err().to_string();
+            assert!(
+                message.contains("lying.g2p")
+                    && message.contains("line 3")
+                    && message.contains(&format!(
+                        "announces {count} graphones, but only 1 lines follow"
+                    )),
+                "{message}"
+            );
+        }
+    }
+
+    #[test]
+    fn decoding_settings_are_bounded() {
+        for (beam, nbest) in [(0, 1), (1, 0), (MAX_BEAM + 1, 1), (1, usize::MAX)] {
+            assert!(DecodeConfig { beam, nbest }.validate().is_err());
+        }
+        DecodeConfig::default().validate().unwrap();
+    }
+
     #[test]
     fn model_file_round_trips_and_training_is_deterministic() {
         let dir = tempfile::tempdir().unwrap();
@@ -890,8 +959,11 @@ mod tests {
         )
         .unwrap();
         let error = G2pModel::read(&path).unwrap_err().to_string();
-        assert!(error.contains("model.g2p"), "{error}");
-        assert!(error.contains("end of the file"), "{error}");
+        assert!(error.contains("model.g2p, line 3"), "{error}");
+        assert!(
+            error.contains("announces 2 graphones, but only 1 lines follow"),
+            "{error}"
+        );
 
         // A damaged n-gram part: the ARPA reader names the line of the whole file.
         let (model, _) =
