@@ -110,25 +110,40 @@ impl TdnnConfig {
     }
 }
 
+/// How the learning rate moves after the warm-up.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(rename_all = "kebab-case")]
+pub enum Schedule {
+    /// Half a cosine from the peak down to `final_rate × peak` at the last planned update.
+    Cosine,
+    /// `peak · sqrt(warm-up / update)`: never reaches a floor, for open-ended training.
+    InverseSqrt,
+    /// The peak throughout.
+    Constant,
+}
+
 /// Optimisation settings.
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 #[serde(deny_unknown_fields, default)]
 pub struct TrainingConfig {
-    /// Passes over the training data (the `--epochs` flag overrides it).
+    /// Passes over the training data (the `--epochs` flag overrides it; with `--minutes` the
+    /// budget decides).
     pub epochs: usize,
     /// Upper bound on input frames (padding included) per batch.
     pub batch_frames: usize,
     /// Peak AdamW learning rate.
     pub learning_rate: f64,
-    /// Linear warm-up from zero over this many updates.
-    pub warmup_steps: usize,
-    /// After warm-up the rate decays as `peak · sqrt(warmup / step)` (inverse square root).
-    pub decay: bool,
+    /// Shape of the rate after the warm-up.
+    pub schedule: Schedule,
+    /// Share of all planned updates spent warming up linearly from zero.
+    pub warmup_share: f64,
+    /// With the cosine schedule: the rate at the last planned update, as a share of the peak.
+    pub final_rate: f64,
     /// AdamW decoupled weight decay.
     pub weight_decay: f64,
     /// Global gradient norm clip.
     pub clip_norm: f64,
-    /// Stop after this many epochs without a better dev loss.
+    /// Stop after this many epochs without a better dev loss (0: never stop early).
     pub patience: usize,
     /// Speed perturbation factors drawn uniformly per utterance and epoch (1.0 = unchanged);
     /// empty disables it.
@@ -143,17 +158,58 @@ impl Default for TrainingConfig {
     fn default() -> Self {
         TrainingConfig {
             epochs: 20,
-            batch_frames: 12_000,
-            learning_rate: 2e-3,
-            warmup_steps: 200,
-            decay: true,
+            batch_frames: 5_000,
+            learning_rate: 3e-3,
+            schedule: Schedule::Cosine,
+            warmup_share: 0.05,
+            final_rate: 0.02,
             weight_decay: 1e-2,
             clip_norm: 5.0,
-            patience: 4,
+            patience: 0,
             speed_factors: vec![0.9, 1.0, 1.1],
             volume_range: 1.5,
             spec_augment: true,
         }
+    }
+}
+
+impl TrainingConfig {
+    /// Checks the values the training loop relies on, naming the key at fault.
+    pub fn validate(&self) -> Result<(), AcousticError> {
+        let bad = |key: &str, expected: &str, found: String| {
+            Err(AcousticError::Config(format!(
+                "training.{key}: expected {expected}, found {found}"
+            )))
+        };
+        if self.batch_frames == 0 {
+            return bad("batch_frames", "at least 1", "0".into());
+        }
+        if !(self.learning_rate.is_finite() && self.learning_rate > 0.0) {
+            return bad("learning_rate", "a positive number", self.learning_rate.to_string());
+        }
+        if !(0.0..1.0).contains(&self.warmup_share) {
+            return bad("warmup_share", "a share in [0, 1)", self.warmup_share.to_string());
+        }
+        if !(0.0..=1.0).contains(&self.final_rate) {
+            return bad("final_rate", "a share in [0, 1]", self.final_rate.to_string());
+        }
+        for (key, value) in [
+            ("weight_decay", self.weight_decay),
+            ("clip_norm", self.clip_norm),
+        ] {
+            if !(value.is_finite() && value >= 0.0) {
+                return bad(key, "a number ≥ 0", value.to_string());
+            }
+        }
+        if let Some(f) = self.speed_factors.iter().find(|f| {
+            isogloss_audio::check_speed_factor(f64::from(**f)).is_err()
+        }) {
+            return bad("speed_factors", "factors from 0.5 to 2.0", f.to_string());
+        }
+        if !(self.volume_range.is_finite() && self.volume_range >= 1.0) {
+            return bad("volume_range", "a gain ≥ 1", self.volume_range.to_string());
+        }
+        Ok(())
     }
 }
 
@@ -194,6 +250,7 @@ impl ModelConfig {
         let config: ModelConfig =
             toml::from_str(text).map_err(|e| AcousticError::Config(e.to_string()))?;
         config.model.validate()?;
+        config.training.validate()?;
         config.features.validate()?;
         Ok(config)
     }

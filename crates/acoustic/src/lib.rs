@@ -42,8 +42,10 @@
 //! ```
 #![deny(missing_docs)]
 
+pub mod audio_set;
 pub mod config;
 pub mod ctc;
+pub mod data;
 mod fused;
 pub mod greedy;
 pub mod io;

@@ -45,7 +45,7 @@ layers = [
 epochs = 70
 batch_frames = 4000
 learning_rate = 0.003
-warmup_steps = 10
+warmup_share = 0.05
 patience = 0
 speed_factors = []
 volume_range = 1.0
@@ -65,6 +65,7 @@ fn options(
         out: dir.join("model"),
         config: ModelConfig::parse(TINY).unwrap(),
         epochs: None,
+        minutes: None,
         resume: false,
         seed: 7,
         lexicon: None,

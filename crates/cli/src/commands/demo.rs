@@ -162,6 +162,7 @@ pub fn run(args: DemoArgs) -> anyhow::Result<Outcome> {
             out: model_dir.clone(),
             config: ModelConfig::read(&args.config)?,
             epochs: Some(args.epochs),
+            minutes: None,
             resume: model_dir.join("checkpoint.safetensors").exists(),
             seed: SEED,
             lexicon: None,
