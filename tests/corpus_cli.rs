@@ -204,11 +204,11 @@ fn split_is_speaker_disjoint_complete_and_reproducible() {
             "corpus",
             "split",
             manifest.to_str().unwrap(),
-            "--out-dir",
+            "--out",
             out.to_str().unwrap(),
-            "--dev",
+            "--dev-share",
             "0.25",
-            "--test",
+            "--test-share",
             "0.25",
             "--seed",
             seed,
@@ -240,20 +240,20 @@ fn split_is_speaker_disjoint_complete_and_reproducible() {
 }
 
 #[test]
-fn impossible_fractions_are_a_usage_error() {
+fn impossible_shares_are_a_usage_error() {
     let dir = tempfile::tempdir().unwrap();
     let output = isogloss(&[
         "corpus",
         "split",
         "tests/data/mini/manifest.tsv",
-        "--out-dir",
+        "--out",
         dir.path().to_str().unwrap(),
-        "--dev",
+        "--dev-share",
         "0.7",
-        "--test",
+        "--test-share",
         "0.5",
     ]);
     let all = text(&output);
     assert_eq!(output.status.code(), Some(1), "{all}");
-    assert!(all.contains("split fractions"), "{all}");
+    assert!(all.contains("split shares"), "{all}");
 }

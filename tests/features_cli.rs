@@ -19,14 +19,14 @@ fn isogloss_features(args: &[&std::ffi::OsStr]) -> std::process::Output {
 }
 
 #[test]
-fn writes_the_contract_features_of_a_wav_file() {
+fn writes_the_default_features_of_a_wav_file() {
     let dir = tempfile::tempdir().unwrap();
     let wav = repository().join("tests/fixtures/features/speech.wav");
     for (config, reference) in [
         (None, "reference-mfcc.safetensors"),
         (
-            Some("configs/features-fbank.toml"),
-            "reference-fbank.safetensors",
+            Some("configs/features-logmel.toml"),
+            "reference-logmel.safetensors",
         ),
     ] {
         let out = dir.path().join("speech.safetensors");
@@ -68,7 +68,7 @@ fn bad_input_is_a_clear_error_with_exit_code_1() {
     assert!(!out.exists());
 
     let config = dir.path().join("bad.toml");
-    std::fs::write(&config, "kind = \"mfcc\"\nmel_bins = \"forty\"\n").unwrap();
+    std::fs::write(&config, "kind = \"mfcc\"\nmel_filters = \"forty\"\n").unwrap();
     let wav = repository().join("tests/fixtures/features/speech.wav");
     let output = isogloss_features(&[
         wav.as_os_str(),
@@ -83,4 +83,43 @@ fn bad_input_is_a_clear_error_with_exit_code_1() {
         stderr.contains("bad.toml") && stderr.contains("line 2"),
         "{stderr}"
     );
+}
+
+/// A config in the previous release's spellings gives the same features, with one deprecation
+/// warning per old spelling that names the file.
+#[test]
+fn old_config_spellings_still_work_with_a_warning() {
+    let dir = tempfile::tempdir().unwrap();
+    let new = std::fs::read_to_string(repository().join("configs/features-logmel.toml")).unwrap();
+    let mut old = new.replace("kind = \"logmel\"", "kind = \"fbank\"");
+    for (old_key, new_key) in isogloss_features::DEPRECATED_KEYS {
+        old = old.replace(&format!("\n{new_key} "), &format!("\n{old_key} "));
+    }
+    let config = dir.path().join("old.toml");
+    std::fs::write(&config, old).unwrap();
+    let wav = repository().join("tests/fixtures/features/speech.wav");
+    let out = dir.path().join("old.safetensors");
+    let output = isogloss_features(&[
+        wav.as_os_str(),
+        "--out".as_ref(),
+        out.as_os_str(),
+        "--config".as_ref(),
+        config.as_os_str(),
+    ]);
+    let stderr = String::from_utf8_lossy(&output.stderr);
+    assert!(output.status.success(), "{stderr}");
+    let warnings: Vec<&str> = stderr
+        .lines()
+        .filter(|l| l.starts_with("warning:") && l.contains("old.toml") && l.contains("deprecated"))
+        .collect();
+    // 8 renamed keys and kind = "fbank"
+    assert_eq!(warnings.len(), 9, "{stderr}");
+    assert!(
+        stderr.contains("`frame_length` is deprecated; write `window_samples`"),
+        "{stderr}"
+    );
+    let expected =
+        read_features(&repository().join("tests/fixtures/features/reference-logmel.safetensors"))
+            .unwrap();
+    assert_eq!(read_features(&out).unwrap().dim(), expected.dim());
 }

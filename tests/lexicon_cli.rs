@@ -193,7 +193,7 @@ fn g2p_train_apply_and_bad_dictionaries() {
     let output = isogloss(&[
         "lexicon",
         "train-g2p",
-        "--dict",
+        "--lexicon",
         path(&empty),
         "--out",
         path(&model),
@@ -209,7 +209,7 @@ fn g2p_train_apply_and_bad_dictionaries() {
     let output = isogloss(&[
         "lexicon",
         "train-g2p",
-        "--dict",
+        "--lexicon",
         path(&dict),
         "--out",
         path(&model),
@@ -262,5 +262,5 @@ fn g2p_train_apply_and_bad_dictionaries() {
         2
     );
     let scores = std::fs::read_to_string(&scores).unwrap();
-    assert!(scores.starts_with("word\trank\tlog10_probability\tphonemes\n"));
+    assert!(scores.starts_with("word\trank\tlog10_probability\tunits\n"));
 }

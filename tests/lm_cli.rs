@@ -43,13 +43,13 @@ fn build_eval_mix_prune() {
     .unwrap();
 
     for (source, model, smoothing) in [
-        ("harbour.txt", "harbour.arpa", "mkn"),
-        ("farm.txt", "farm.arpa.gz", "wb"),
+        ("harbour.txt", "harbour.arpa", "modified-kneser-ney"),
+        ("farm.txt", "farm.arpa.gz", "witten-bell"),
     ] {
         let output = isogloss(&[
             "lm",
             "build",
-            "--text",
+            "--sentences",
             &path(dir, source),
             "--order",
             "3",
@@ -64,15 +64,15 @@ fn build_eval_mix_prune() {
     let output = isogloss(&[
         "lm",
         "eval",
-        "--lm",
+        "--arpa",
         &path(dir, "harbour.arpa"),
-        "--text",
+        "--sentences",
         &path(dir, "dev.txt"),
         "--json",
     ]);
     assert!(output.status.success(), "{:?}", text(&output));
     let report: serde_json::Value = serde_json::from_slice(&output.stdout).unwrap();
-    // 6 + 4 words and two </s> are predicted (DESIGN.md: every word and </s> counts).
+    // 6 + 4 words and two </s> are predicted (docs/language-models.md: every word and </s> counts).
     assert_eq!(report["tokens"], 12);
     // "dusk" and "milk" are not in the harbour text: 2 of 10 words.
     assert!((report["oov_rate"].as_f64().unwrap() - 0.2).abs() < 1e-12);
@@ -81,11 +81,11 @@ fn build_eval_mix_prune() {
     let output = isogloss(&[
         "lm",
         "eval",
-        "--lm",
+        "--arpa",
         &path(dir, "harbour.arpa"),
-        "--lm",
+        "--arpa",
         &path(dir, "farm.arpa.gz"),
-        "--text",
+        "--sentences",
         &path(dir, "dev.txt"),
     ]);
     let (stdout, _) = text(&output);
@@ -98,11 +98,11 @@ fn build_eval_mix_prune() {
     let output = isogloss(&[
         "lm",
         "mix",
-        "--lm",
+        "--arpa",
         &path(dir, "harbour.arpa"),
-        "--lm",
+        "--arpa",
         &path(dir, "farm.arpa.gz"),
-        "--tune",
+        "--fit-sentences",
         &path(dir, "dev.txt"),
         "--out",
         &path(dir, "mixed.arpa"),
@@ -126,13 +126,13 @@ fn build_eval_mix_prune() {
     let output = isogloss(&[
         "lm",
         "prune",
-        "--lm",
+        "--arpa",
         &path(dir, "mixed.arpa"),
-        "--threshold",
+        "--max-entropy-loss",
         "1e-3",
         "--out",
         &path(dir, "pruned.arpa"),
-        "--text",
+        "--sentences",
         &path(dir, "dev.txt"),
     ]);
     let (stdout, stderr) = text(&output);
@@ -152,7 +152,7 @@ fn bad_input_exits_with_1_and_names_the_problem() {
     let output = isogloss(&[
         "lm",
         "build",
-        "--text",
+        "--sentences",
         &path(dir, "one.txt"),
         "--order",
         "7",
@@ -164,7 +164,7 @@ fn bad_input_exits_with_1_and_names_the_problem() {
     let output = isogloss(&[
         "lm",
         "build",
-        "--text",
+        "--sentences",
         &path(dir, "empty.txt"),
         "--order",
         "3",
@@ -181,9 +181,9 @@ fn bad_input_exits_with_1_and_names_the_problem() {
     let output = isogloss(&[
         "lm",
         "eval",
-        "--lm",
+        "--arpa",
         &path(dir, "bad.arpa"),
-        "--text",
+        "--sentences",
         &path(dir, "one.txt"),
     ]);
     assert_eq!(output.status.code(), Some(1));

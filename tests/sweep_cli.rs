@@ -157,7 +157,7 @@ fn cells_equal_separate_transcribe_and_score_runs_and_caches_recompute_what_chan
         isogloss(&[
             "lm",
             "build",
-            "--text",
+            "--sentences",
             &text(&repo(&format!("tests/data/demo/train.{column}.txt"))),
             "--order",
             order,

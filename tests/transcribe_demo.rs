@@ -63,7 +63,7 @@ fn lm_and_lexicon_decoding_beats_greedy_on_the_test_split() {
     isogloss(&[
         "lm",
         "build",
-        "--text",
+        "--sentences",
         &text(&repo("tests/data/demo/train.dialectal.txt")),
         "--order",
         "3",
@@ -159,11 +159,10 @@ fn collect_times(value: &serde_json::Value, times: &mut Vec<f64>, words: &mut us
     match value {
         serde_json::Value::Object(map) => {
             if let (Some(start), Some(end), Some(_)) = (
-                map.get("start").and_then(|v| v.as_f64()),
-                map.get("end").and_then(|v| v.as_f64()),
-                map.get("word")
-                    .or_else(|| map.get("text"))
-                    .filter(|_| map.contains_key("confidence")),
+                map.get("from_s").and_then(|v| v.as_f64()),
+                map.get("to_s").and_then(|v| v.as_f64()),
+                map.get("spelling")
+                    .filter(|_| map.contains_key("certainty")),
             ) {
                 times.push(start);
                 times.push(end);

@@ -1,8 +1,8 @@
 #!/usr/bin/env python3
-"""Reference MFCC + delta + delta-delta and log-mel fbank values for isogloss-features.
+"""Reference MFCC + delta + delta-delta and log-mel values for isogloss-features.
 
 Computed independently of the Rust code with numpy/scipy and librosa's HTK-formula mel filterbank,
-following the default front end pinned in shared DESIGN.md ("Default front end"):
+following the default front end of docs/features.md:
 
   int16 / 32768 -> pre-emphasis y[0]=x[0], y[n]=x[n]-0.97 x[n-1] -> 400-sample frames every 160
   samples, no padding -> symmetric Hamming -> 512-point FFT power spectrum -> 40 HTK mel triangles
@@ -10,7 +10,7 @@ following the default front end pinned in shared DESIGN.md ("Default front end")
   log floored at 1e-10 -> orthonormal DCT-II (scipy.fft.dct(norm="ortho")) c0..c12 -> deltas by
   regression over +-2 frames, edge frames replicated (librosa.feature.delta(mode="nearest"),
   cross-checked against the regression formula written out in numpy) -> [c, d, dd] = 39 dims.
-  The fbank reference is the same pipeline stopped before the DCT (40 dims, no deltas).
+  The log-mel reference is the same pipeline stopped before the DCT (40 dims, no deltas).
 
 The audio is real speech-like audio synthesised with espeak-ng and resampled to 16 kHz 16-bit mono
 with sox (`--synthesize` regenerates it; by default the committed WAV is used).
@@ -18,7 +18,7 @@ with sox (`--synthesize` regenerates it; by default the committed WAV is used).
 Writes (next to the WAV, under tests/fixtures/features/):
   speech.wav                    the input audio
   reference-mfcc.safetensors    f32 tensor `features` [frames, 39]  (written by the safetensors
-  reference-fbank.safetensors   f32 tensor `features` [frames, 40]   Python package, not by us)
+  reference-logmel.safetensors   f32 tensor `features` [frames, 40]   Python package, not by us)
   reference.json                provenance: library versions, settings, shapes, librosa's HTK mel scale
 
 Run: ../venv/bin/python scripts/reference/features_reference.py [--synthesize]
@@ -103,8 +103,8 @@ def main() -> None:
     mel = librosa.filters.mel(
         sr=SAMPLE_RATE, n_fft=FFT_SIZE, n_mels=MEL_BINS, fmin=LOW_HZ, fmax=HIGH_HZ, htk=True, norm=None, dtype=np.float64
     )
-    fbank = np.log(np.maximum(power @ mel.T, LOG_FLOOR))
-    cepstra = scipy.fft.dct(fbank, type=2, norm="ortho", axis=1)[:, :CEPSTRA]
+    logmel = np.log(np.maximum(power @ mel.T, LOG_FLOOR))
+    cepstra = scipy.fft.dct(logmel, type=2, norm="ortho", axis=1)[:, :CEPSTRA]
 
     delta = librosa_deltas(cepstra, DELTA_WINDOW)
     delta_delta = librosa_deltas(delta, DELTA_WINDOW)
@@ -114,22 +114,23 @@ def main() -> None:
     mfcc = np.concatenate([cepstra, delta, delta_delta], axis=1)
 
     save_file({"features": mfcc.astype(np.float32)}, str(FIXTURES / "reference-mfcc.safetensors"))
-    save_file({"features": fbank.astype(np.float32)}, str(FIXTURES / "reference-fbank.safetensors"))
+    save_file({"features": logmel.astype(np.float32)}, str(FIXTURES / "reference-logmel.safetensors"))
     provenance = {
         "generator": "scripts/reference/features_reference.py",
         "audio": {"file": WAV.name, "samples": int(len(pcm)), "sample_rate": SAMPLE_RATE,
                   "made_with": f"espeak-ng -v en -s 160 '{SENTENCE}' | sox -D -r 16000 -b 16 -c 1"},
         "libraries": {"numpy": np.__version__, "scipy": scipy.__version__, "librosa": librosa.__version__},
-        "settings": {"preemphasis": PREEMPHASIS, "frame_length": FRAME_LENGTH, "frame_shift": FRAME_SHIFT,
-                     "fft_size": FFT_SIZE, "mel_bins": MEL_BINS, "low_hz": LOW_HZ, "high_hz": HIGH_HZ,
-                     "log_floor": LOG_FLOOR, "cepstra": CEPSTRA, "delta_window": DELTA_WINDOW},
+        "settings": {"emphasis": PREEMPHASIS, "window_samples": FRAME_LENGTH, "hop_samples": FRAME_SHIFT,
+                     "fft_size": FFT_SIZE, "mel_filters": MEL_BINS, "band_low_hz": LOW_HZ,
+                     "band_high_hz": HIGH_HZ, "log_floor": LOG_FLOOR, "cepstra": CEPSTRA,
+                     "slope_reach": DELTA_WINDOW},
         "mfcc_shape": list(mfcc.shape),
-        "fbank_shape": list(fbank.shape),
+        "logmel_shape": list(logmel.shape),
         # librosa.hz_to_mel(htk=True) is 2595 log10(1 + f/700) (O'Shaughnessy); 1000 Hz maps to ~1000 mel.
         "hz_to_mel_htk": {str(f): float(librosa.hz_to_mel(f, htk=True)) for f in (20.0, 1000.0, 8000.0)},
     }
     (FIXTURES / "reference.json").write_text(json.dumps(provenance, indent=1) + "\n")
-    print(f"{frames} frames; mfcc {mfcc.shape}, fbank {fbank.shape} -> {FIXTURES}")
+    print(f"{frames} frames; mfcc {mfcc.shape}, logmel {logmel.shape} -> {FIXTURES}")
 
 
 if __name__ == "__main__":

@@ -18,7 +18,7 @@ import soundfile
 root = Path(__file__).resolve().parents[2]
 audio = root / "tests/fixtures/audio/speech.wav"
 samples, rate = soundfile.read(audio, dtype="int16")
-x = samples.astype(np.float64) / 32768.0  # the front-end contract: int16 scaled by 1/32768
+x = samples.astype(np.float64) / 32768.0  # docs/features.md: int16 scaled by 1/32768
 g = gcd(16000, rate)
 y = scipy.signal.resample_poly(x, 16000 // g, rate // g)
 frames = len(y) // 160

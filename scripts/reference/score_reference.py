@@ -4,7 +4,7 @@
 Generates reference/hypothesis pairs of words from the project's invented Wendle Valley scenario
 (eye-dialect spellings and English words with diacritics, with capitals, decomposed accents,
 apostrophes, hyphens and punctuation, so the token rules are exercised too), tokenizes them with
-an independent Python implementation of the DESIGN token rules (NFC via unicodedata, str.lower,
+an independent Python implementation of the token rules of docs/scoring.md (NFC via unicodedata, str.lower,
 Unicode general category P* except apostrophes and hyphens -> space, str.split) and records
 rapidfuzz.distance.Levenshtein.distance over the token lists.
 

@@ -53,7 +53,7 @@ fn main() {
         units: (0..units)
             .map(|u| {
                 if u == 0 {
-                    "<blk>".to_string()
+                    "<ctc-blank>".to_string()
                 } else {
                     format!("u{u}")
                 }
@@ -98,8 +98,8 @@ fn main() {
         .layers
         .iter()
         .map(|l| {
-            let span = (l.offsets[l.offsets.len() - 1] - l.offsets[0]) as usize;
-            (l.offsets.len(), l.dims, l.subsample, span)
+            let span = (l.taps[l.taps.len() - 1] - l.taps[0]) as usize;
+            (l.taps.len(), l.width, l.keep_every, span)
         })
         .collect();
     layers.push((1, units, 1, 0));

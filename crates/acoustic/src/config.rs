@@ -1,6 +1,6 @@
 //! Architecture and training settings, read from TOML (`configs/tdnn-*.toml`).
 
-use isogloss_features::{CmvnMode, FeatureConfig};
+use isogloss_features::{deprecated_spellings, CmvnMode, FeatureConfig};
 use serde::{Deserialize, Serialize};
 
 use crate::AcousticError;
@@ -15,17 +15,43 @@ pub enum Normalization {
     None,
 }
 
-/// One hidden TDNN layer: splice the input at `offsets`, affine, ReLU, normalisation, dropout.
+/// One hidden TDNN layer: the input frames at the `taps` side by side, affine, ReLU,
+/// normalisation, dropout. Written `{ taps = [-1, 0, 1], width = 320, keep_every = 3 }`; the
+/// spellings of the previous release (`offsets`, `dims`, `subsample`) are still read, with a
+/// deprecation warning ([`deprecated_layer_spellings`]).
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 #[serde(deny_unknown_fields)]
 pub struct LayerConfig {
-    /// Frame offsets spliced together, in frames *of this layer's input*; sorted, distinct.
-    pub offsets: Vec<i32>,
+    /// Frame offsets read together, in frames *of this layer's input*; sorted, distinct.
+    #[serde(alias = "offsets")]
+    pub taps: Vec<i32>,
     /// Output width.
-    pub dims: usize,
-    /// Keep every `subsample`-th output frame (1 = no subsampling).
-    #[serde(default = "one")]
-    pub subsample: usize,
+    #[serde(alias = "dims")]
+    pub width: usize,
+    /// Keep every `keep_every`-th output frame (1 = all frames, no subsampling).
+    #[serde(default = "one", alias = "subsample")]
+    pub keep_every: usize,
+}
+
+/// TDNN layer keys of the previous release and the keys that replace them.
+pub const DEPRECATED_LAYER_KEYS: [(&str, &str); 3] = [
+    ("offsets", "taps"),
+    ("dims", "width"),
+    ("subsample", "keep_every"),
+];
+
+/// One deprecation notice per old key in a list of layer tables (`[model].layers` of a training
+/// config, `[[architecture.layers]]` of a `model.toml`); callers print them, naming the file.
+pub fn deprecated_layer_spellings(layers: Option<&toml::Value>) -> Vec<String> {
+    let tables: Vec<&toml::Table> = layers
+        .and_then(toml::Value::as_array)
+        .map(|layers| layers.iter().filter_map(toml::Value::as_table).collect())
+        .unwrap_or_default();
+    DEPRECATED_LAYER_KEYS
+        .iter()
+        .filter(|(old, _)| tables.iter().any(|table| table.contains_key(*old)))
+        .map(|(old, new)| format!("the TDNN layer key `{old}` is deprecated; write `{new}`"))
+        .collect()
 }
 
 fn one() -> usize {
@@ -54,17 +80,17 @@ impl TdnnConfig {
             ));
         }
         for (i, layer) in self.layers.iter().enumerate() {
-            let sorted = layer.offsets.windows(2).all(|w| w[0] < w[1]);
-            if layer.offsets.is_empty() || !sorted {
+            let sorted = layer.taps.windows(2).all(|w| w[0] < w[1]);
+            if layer.taps.is_empty() || !sorted {
                 return Err(AcousticError::Config(format!(
-                    "layer {i}: offsets must be a non-empty increasing list, found {:?}",
-                    layer.offsets
+                    "layer {i}: taps must be a non-empty increasing list, found {:?}",
+                    layer.taps
                 )));
             }
-            if layer.dims == 0 || layer.subsample == 0 {
+            if layer.width == 0 || layer.keep_every == 0 {
                 return Err(AcousticError::Config(format!(
-                    "layer {i}: dims and subsample must be at least 1, found dims {} subsample {}",
-                    layer.dims, layer.subsample
+                    "layer {i}: width and keep_every must be at least 1, found width {} keep_every {}",
+                    layer.width, layer.keep_every
                 )));
             }
         }
@@ -79,18 +105,18 @@ impl TdnnConfig {
 
     /// Total subsampling factor (product over layers): one output frame per this many input frames.
     pub fn subsampling(&self) -> usize {
-        self.layers.iter().map(|l| l.subsample).product()
+        self.layers.iter().map(|l| l.keep_every).product()
     }
 
     /// Input frames needed to the left and right of a frame, at the input frame rate.
     pub fn context(&self) -> (usize, usize) {
         let (mut left, mut right, mut rate) = (0usize, 0usize, 1usize);
         for layer in &self.layers {
-            let first = *layer.offsets.first().unwrap_or(&0);
-            let last = *layer.offsets.last().unwrap_or(&0);
+            let first = *layer.taps.first().unwrap_or(&0);
+            let last = *layer.taps.last().unwrap_or(&0);
             left += (-first).max(0) as usize * rate;
             right += last.max(0) as usize * rate;
-            rate *= layer.subsample;
+            rate *= layer.keep_every;
         }
         (left, right)
     }
@@ -100,11 +126,11 @@ impl TdnnConfig {
         let mut count = 0;
         let mut dims = input_dims;
         for layer in &self.layers {
-            count += layer.offsets.len() * dims * layer.dims + layer.dims;
+            count += layer.taps.len() * dims * layer.width + layer.width;
             if self.normalization == Normalization::Layer {
-                count += 2 * layer.dims;
+                count += 2 * layer.width;
             }
-            dims = layer.dims;
+            dims = layer.width;
         }
         count + dims * units + units
     }
@@ -222,12 +248,12 @@ pub struct ModelConfig {
     /// How to train it.
     #[serde(default)]
     pub training: TrainingConfig,
-    /// The front end; by default the contract MFCC front end with per-speaker CMVN.
+    /// The front end; by default the MFCC front end of `docs/features.md` with per-speaker CMVN.
     #[serde(default = "default_features")]
     pub features: FeatureConfig,
 }
 
-/// The contract front end (MFCC + Δ + ΔΔ) with per-speaker mean and variance normalisation.
+/// The default front end (MFCC + Δ + ΔΔ) with per-speaker mean and variance normalisation.
 pub fn default_features() -> FeatureConfig {
     FeatureConfig {
         cmvn: CmvnMode::Speaker,
@@ -236,13 +262,26 @@ pub fn default_features() -> FeatureConfig {
 }
 
 impl ModelConfig {
-    /// Reads and validates a TOML configuration file.
+    /// Reads and validates a TOML configuration file. Old key spellings are read, with a warning
+    /// on standard error naming the file.
     pub fn read(path: &std::path::Path) -> Result<ModelConfig, AcousticError> {
         let text = std::fs::read_to_string(path).map_err(|source| AcousticError::Io {
             path: path.to_path_buf(),
             source,
         })?;
-        Self::parse(&text).map_err(|e| AcousticError::Config(format!("{}: {e}", path.display())))
+        let config = Self::parse(&text)
+            .map_err(|e| AcousticError::Config(format!("{}: {e}", path.display())))?;
+        if let Ok(table) = text.parse::<toml::Table>() {
+            let model = table.get("model").and_then(toml::Value::as_table);
+            let features = table.get("features").and_then(toml::Value::as_table);
+            let notices = deprecated_layer_spellings(model.and_then(|m| m.get("layers")))
+                .into_iter()
+                .chain(features.map(deprecated_spellings).unwrap_or_default());
+            for notice in notices {
+                eprintln!("warning: {}: {notice}", path.display());
+            }
+        }
+        Ok(config)
     }
 
     /// Parses and validates TOML text.

@@ -13,7 +13,7 @@ use crate::tdnn::{var_builder, Tdnn};
 use crate::units::UnitInventory;
 use crate::AcousticError;
 
-/// Feature settings recorded in (and required by) the model; the features crate's contract type.
+/// Feature settings recorded in (and required by) the model; the features crate's type.
 pub use isogloss_features::FeatureConfig;
 
 /// Version of the `model.toml` layout written by this crate.
@@ -59,6 +59,36 @@ pub struct ModelDescription {
     pub provenance: Provenance,
 }
 
+/// Reads a `model.toml` of the previous release: its keys are read by their old spellings
+/// already (serde aliases); this renames its blank unit and returns one deprecation notice per
+/// old spelling, for the caller to print. Such a model still decodes exactly as before.
+fn upgrade_previous_release(description: &mut ModelDescription, text: &str) -> Vec<String> {
+    let mut notices = Vec::new();
+    if let Ok(table) = text.parse::<toml::Table>() {
+        if let Some(features) = table.get("features").and_then(toml::Value::as_table) {
+            notices.extend(isogloss_features::deprecated_spellings(features));
+        }
+        let architecture = table.get("architecture").and_then(toml::Value::as_table);
+        notices.extend(crate::config::deprecated_layer_spellings(
+            architecture.and_then(|a| a.get("layers")),
+        ));
+    }
+    if let Some(first) = description.units.units.first_mut() {
+        if first.as_str() == crate::units::PREVIOUS_BLANK {
+            *first = crate::units::BLANK.to_string();
+            notices.push(format!(
+                "the blank unit `{}` is deprecated; write `{}`",
+                crate::units::PREVIOUS_BLANK,
+                crate::units::BLANK
+            ));
+        }
+    }
+    if !notices.is_empty() {
+        notices.push("the model reads as before; save it again to update it".into());
+    }
+    notices
+}
+
 /// A trained model ready for inference.
 pub struct AcousticModel {
     description: ModelDescription,
@@ -98,11 +128,14 @@ impl AcousticModel {
             path: toml_path.clone(),
             source,
         })?;
-        let description: ModelDescription =
+        let mut description: ModelDescription =
             toml::from_str(&text).map_err(|e| AcousticError::Model {
                 path: toml_path.clone(),
                 problem: e.to_string(),
             })?;
+        for notice in upgrade_previous_release(&mut description, &text) {
+            eprintln!("warning: {}: {notice}", toml_path.display());
+        }
         if description.format != MODEL_FORMAT {
             return Err(AcousticError::Model {
                 path: toml_path,
@@ -238,8 +271,8 @@ mod tests {
         AcousticModel::save(dir.path(), &description, &parameters).unwrap();
         let model = AcousticModel::load(dir.path()).unwrap();
         assert_eq!(model.description(), &description);
-        assert_eq!(model.units()[0], "<blk>");
-        let in_memory = AcousticModel::from_parameters(description, &parameters).unwrap();
+        assert_eq!(model.units()[0], "<ctc-blank>");
+        let in_memory = AcousticModel::from_parameters(description.clone(), &parameters).unwrap();
         let features = Array2::from_shape_fn((50, 39), |_| rng.random_range(-1.0f32..1.0));
         let posteriors = model.log_posteriors(&features).unwrap();
         assert_eq!(posteriors.dim(), (17, 7));
@@ -253,6 +286,29 @@ mod tests {
             (0, 7)
         );
         assert!(model.log_posteriors(&Array2::zeros((5, 13))).is_err());
+
+        // The same model.toml in the previous release's spellings reads as the same model.
+        let new_text = std::fs::read_to_string(dir.path().join("model.toml")).unwrap();
+        let mut old_text = new_text.replace("\"<ctc-blank>\"", "\"<blk>\"");
+        for (old, new) in isogloss_features::DEPRECATED_KEYS
+            .into_iter()
+            .chain(crate::config::DEPRECATED_LAYER_KEYS)
+        {
+            old_text = old_text.replace(&format!("\n{new} ="), &format!("\n{old} ="));
+        }
+        assert!(old_text.contains("\nframe_length =") && old_text.contains("\noffsets ="));
+        let mut old = toml::from_str(&old_text).unwrap();
+        let notices = upgrade_previous_release(&mut old, &old_text);
+        assert_eq!(old, description);
+        // 8 feature keys, 3 layer keys, the blank, and how to update the file.
+        assert_eq!(notices.len(), 13, "{notices:?}");
+        assert!(notices.iter().any(|n| n.contains("`<blk>`")));
+        assert!(upgrade_previous_release(&mut old, &new_text).is_empty());
+        std::fs::write(dir.path().join("model.toml"), &old_text).unwrap();
+        let reread = AcousticModel::load(dir.path()).unwrap();
+        assert_eq!(reread.description(), &description);
+        assert_eq!(reread.log_posteriors(&features).unwrap(), posteriors);
+
         std::fs::write(dir.path().join("model.toml"), "format = 99").unwrap();
         let error = AcousticModel::load(dir.path()).err().unwrap();
         assert!(error.to_string().contains("model.toml"), "{error}");

@@ -296,7 +296,7 @@ pub fn normalize(
         CmvnMode::Utterance => {
             for (variants, speaker) in features.iter_mut().zip(speakers) {
                 if let Some(first) = variants.first() {
-                    let cmvn = Cmvn::from_features(first, config.normalize_variance, speaker)?;
+                    let cmvn = Cmvn::from_features(first, config.unit_variance, speaker)?;
                     for matrix in variants.iter_mut() {
                         cmvn.apply(matrix, speaker)?;
                     }
@@ -311,7 +311,7 @@ pub fn normalize(
                     stats.accumulate(speaker, first.view())?;
                 }
             }
-            let by_speaker = stats.finish(config.normalize_variance)?;
+            let by_speaker = stats.finish(config.unit_variance)?;
             for (variants, speaker) in features.iter_mut().zip(speakers) {
                 if let Some(cmvn) = by_speaker.get(*speaker) {
                     for matrix in variants.iter_mut() {

@@ -238,12 +238,12 @@ impl Tdnn {
             layers.push(TdnnLayer::new(
                 vb.pp("layers").pp(i),
                 dims,
-                layer.dims,
-                &layer.offsets,
-                layer.subsample,
+                layer.width,
+                &layer.taps,
+                layer.keep_every,
                 Some(config.normalization),
             )?);
-            dims = layer.dims;
+            dims = layer.width;
         }
         layers.push(TdnnLayer::new(
             vb.pp("layers").pp(config.layers.len()),
@@ -321,8 +321,8 @@ pub fn initial_parameters(
     let mut dims = input_dims;
     let mut shapes: Vec<(usize, usize, usize, bool)> = Vec::new();
     for layer in &config.layers {
-        shapes.push((dims, layer.offsets.len(), layer.dims, true));
-        dims = layer.dims;
+        shapes.push((dims, layer.taps.len(), layer.width, true));
+        dims = layer.width;
     }
     shapes.push((dims, 1, units, false));
     for (i, (input, offsets, output, hidden)) in shapes.into_iter().enumerate() {
@@ -373,14 +373,14 @@ mod tests {
         TdnnConfig {
             layers: vec![
                 LayerConfig {
-                    offsets: vec![-1, 0, 2],
-                    dims: 4,
-                    subsample: 1,
+                    taps: vec![-1, 0, 2],
+                    width: 4,
+                    keep_every: 1,
                 },
                 LayerConfig {
-                    offsets: vec![-1, 0, 1],
-                    dims: 5,
-                    subsample: 3,
+                    taps: vec![-1, 0, 1],
+                    width: 5,
+                    keep_every: 3,
                 },
             ],
             normalization: Normalization::None,

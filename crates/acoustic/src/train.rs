@@ -412,12 +412,7 @@ impl Trainer {
         if !norm.is_finite() {
             return Ok(None);
         }
-        let clip = self.config.training.clip_norm;
-        let scale = if clip > 0.0 && norm > clip {
-            clip / norm
-        } else {
-            1.0
-        };
+        let scale = AdamW::clip_scale(norm, self.config.training.clip_norm);
         let rate = self.learning_rate(self.optimizer.step + 1);
         self.optimizer
             .update(&self.parameters, &grads, rate, scale)?;
@@ -698,14 +693,14 @@ mod tests {
             model: TdnnConfig {
                 layers: vec![
                     LayerConfig {
-                        offsets: vec![-1, 0, 1],
-                        dims: 24,
-                        subsample: 1,
+                        taps: vec![-1, 0, 1],
+                        width: 24,
+                        keep_every: 1,
                     },
                     LayerConfig {
-                        offsets: vec![-1, 0, 1],
-                        dims: 24,
-                        subsample: 3,
+                        taps: vec![-1, 0, 1],
+                        width: 24,
+                        keep_every: 3,
                     },
                 ],
                 normalization: Normalization::Layer,
@@ -724,7 +719,7 @@ mod tests {
     fn units() -> UnitInventory {
         UnitInventory {
             kind: UnitKind::Phones,
-            units: ["<blk>", "a", "b", "c"]
+            units: ["<ctc-blank>", "a", "b", "c"]
                 .iter()
                 .map(|s| s.to_string())
                 .collect(),

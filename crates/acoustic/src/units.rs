@@ -11,7 +11,9 @@ use serde::{Deserialize, Serialize};
 use crate::AcousticError;
 
 /// The CTC blank, always unit 0.
-pub const BLANK: &str = "<blk>";
+pub const BLANK: &str = "<ctc-blank>";
+/// The blank's spelling in models of the previous release, read with a deprecation warning.
+pub const PREVIOUS_BLANK: &str = "<blk>";
 /// Between the words of a grapheme sequence.
 pub const WORD_BOUNDARY: &str = "<wb>";
 
@@ -34,7 +36,7 @@ pub struct UnitInventory {
     pub units: Vec<String>,
 }
 
-/// Splits a transcript into words exactly as the scorer does (the DESIGN token rules: NFC, lower
+/// Splits a transcript into words exactly as the scorer does (the token rules of `docs/scoring.md`: NFC, lower
 /// case, punctuation other than apostrophes and hyphens turned into spaces, split on white
 /// space), so that the model learns the words that WER will count.
 pub fn transcript_words(text: &str) -> Vec<String> {
@@ -150,7 +152,7 @@ mod tests {
 
     #[test]
     fn graphemes_follow_the_scoring_token_rules() {
-        // DESIGN.md token rules: NFC, lower case, punctuation except ' and - becomes a space.
+        // docs/scoring.md token rules: NFC, lower case, punctuation except ' and - becomes a space.
         let text = "Ca\u{0301}n't, we-go? Éh!";
         assert_eq!(transcript_words(text), vec!["cán't", "we-go", "éh"]);
         let units = grapheme_sequence("ab  c.");

@@ -413,7 +413,7 @@ mod tests {
             let expected = [0.0, 0.5, -1.0, (full - 1) as f32 / full as f32, -0.25];
             assert_eq!(samples, expected, "{bits}-bit");
         }
-        // The contract example: int16 value 16384 is 16384/32768 = 0.5 exactly.
+        // docs/features.md: int16 value 16384 is 16384/32768 = 0.5 exactly.
     }
 
     #[test]

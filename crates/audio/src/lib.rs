@@ -1,6 +1,7 @@
 //! Audio input for isogloss: decoding WAV, FLAC, MP3 and Ogg Vorbis, averaging channels to mono,
 //! resampling to 16 kHz, cutting utterance segments out of long recordings, and the waveform
-//! augmentations used in training (speed and volume perturbation).
+//! augmentations used in training (speed and volume perturbation here; noise, reverberation,
+//! band-limiting and gain in [`augment`]).
 //!
 //! # Design
 //!
@@ -13,7 +14,7 @@
 //!
 //! WAV is read with `hound` (8/16/24/32-bit integer and 32-bit float PCM); compressed formats
 //! with the pure-Rust `symphonia` decoders. Integer samples are scaled by 1/2^(bits−1), so 16-bit
-//! audio is divided by 32768 as the front-end contract says. Resampling uses `rubato`'s
+//! audio is divided by 32768 as `docs/features.md` specifies. Resampling uses `rubato`'s
 //! synchronous FFT resampler: an exact rational ratio with a long windowed-sinc anti-aliasing
 //! filter, fast enough for hours of audio on one core.
 //!
@@ -36,6 +37,7 @@
 
 use std::path::{Path, PathBuf};
 
+pub mod augment;
 mod decode;
 mod perturb;
 mod resample;
@@ -127,6 +129,19 @@ pub enum AudioError {
         /// The value given.
         found: String,
     },
+    /// An augmentation setting out of range, named by its key in the training configuration.
+    #[error("{key}: expected {expected}, found {found}")]
+    InvalidSetting {
+        /// The key, e.g. `augmentation.noise.snr_db`.
+        key: &'static str,
+        /// What a valid value looks like.
+        expected: String,
+        /// The value given.
+        found: String,
+    },
+    /// Babble noise was drawn but the caller supplied no utterances to make it from.
+    #[error("augmentation.noise.kinds lists \"babble\", but no utterances were supplied to make babble from")]
+    NoBabbleSource,
 }
 
 /// What a file holds, as read from its header (or counted by decoding when the header is silent).

@@ -1,7 +1,7 @@
 //! `isogloss`: the command-line interface. It parses flags, shows progress and wires the library
 //! crates together; no algorithm lives here.
 //!
-//! Exit codes (a contract): 0 success; 1 bad input or usage, with a message naming the file and
+//! Exit codes (`docs/exit-codes.md`): 0 success; 1 bad input or usage, with a message naming the file and
 //! line; 2 a batch finished but some items failed (they are listed on stderr).
 
 mod commands;
@@ -11,9 +11,11 @@ use std::process::ExitCode;
 
 use clap::{Parser, Subcommand};
 
-/// Speech recognition for dialects: train, transcribe, score and ablate on a CPU, offline.
+/// isogloss: speech recognition for dialects, on a CPU and offline. Train a recognizer on a
+/// transcribed corpus, transcribe recordings (word times, WebVTT), and compare language models and
+/// lexicons by WER and flexible WER per dialect, with confidence intervals.
 #[derive(Parser)]
-#[command(name = "isogloss", version, about, long_about = None)]
+#[command(name = "isogloss", version)]
 struct Cli {
     #[command(subcommand)]
     command: Command,
@@ -25,7 +27,7 @@ enum Command {
     Demo(commands::demo::DemoArgs),
     /// Check corpus manifests, or split one into speaker-disjoint train/dev/test.
     Corpus(commands::corpus::CorpusArgs),
-    /// Compute MFCC or log-mel fbank features of one audio file into a safetensors file.
+    /// Compute MFCC or log-mel features of one audio file into a safetensors file.
     Features(commands::features::FeaturesArgs),
     /// Word error rate and flexible WER of hypotheses against a reference manifest.
     Score(commands::score::ScoreArgs),
@@ -59,7 +61,7 @@ fn main() -> ExitCode {
     unsafe {
         libc::signal(libc::SIGPIPE, libc::SIG_DFL);
     }
-    // Usage errors are bad input (exit 1 by our contract); help and version are successes.
+    // Usage errors are bad input (exit 1, `docs/exit-codes.md`); help and version are successes.
     let cli = match Cli::try_parse() {
         Ok(cli) => cli,
         Err(error) => {

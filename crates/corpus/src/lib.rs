@@ -3,7 +3,7 @@
 //!
 //! # Design
 //!
-//! A manifest (`id audio start end speaker dialect` + transcript columns, DESIGN.md) is the one
+//! A manifest (`id audio start end speaker dialect` + transcript columns, `docs/formats.md`) is the one
 //! description of a corpus every later stage reads. Two ways in serve two needs:
 //! [`Manifest::read`] stops at the first structural error (what a trainer wants), while
 //! [`Manifest::read_collecting`] and [`check::check_manifests`] carry on past every bad row

@@ -1,5 +1,5 @@
 //! The corpus manifest: one utterance a row, `id audio start end speaker dialect` and one or more
-//! transcript columns (DESIGN.md).
+//! transcript columns (`docs/formats.md`, "Manifest").
 
 use std::collections::HashMap;
 use std::path::{Component, Path, PathBuf};

@@ -54,8 +54,8 @@ impl SplitConfig {
             Ok(())
         } else {
             Err(CorpusError::InvalidParameter {
-                what: "split fractions",
-                expected: "dev and test each from 0 to below 1, together below 1",
+                what: "split shares",
+                expected: "dev and test shares each from 0 to below 1, together below 1",
                 found: format!("dev {} and test {}", self.dev, self.test),
             })
         }
@@ -386,7 +386,7 @@ mod tests {
             let message = split_by_speaker(&manifest, &durations, &config)
                 .unwrap_err()
                 .to_string();
-            assert!(message.contains("split fractions"), "{message}");
+            assert!(message.contains("split shares"), "{message}");
         }
     }
 }

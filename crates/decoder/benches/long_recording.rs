@@ -35,7 +35,7 @@ fn main() {
         .skip(1)
         .find_map(|a| a.parse().ok())
         .unwrap_or(0.5);
-    let mut units = vec!["<blk>".to_string()];
+    let mut units = vec!["<ctc-blank>".to_string()];
     units.extend("abcdefghijklmnopqrstuvwxyz".chars().map(|c| c.to_string()));
     units.push("<wb>".to_string());
     let graph = SearchGraph::lexicon_free(units.clone()).expect("units");

@@ -35,7 +35,7 @@ const LETTERS: &str = "abcdefghijklmnopqrstuvwxyzäöüß";
 fn main() {
     let mut rng = ChaCha8Rng::seed_from_u64(11);
     let letters: Vec<String> = LETTERS.chars().map(|c| c.to_string()).collect();
-    let mut units = vec!["<blk>".to_string()];
+    let mut units = vec!["<ctc-blank>".to_string()];
     units.extend(letters.iter().cloned());
     units.push("<wb>".to_string());
 
@@ -185,7 +185,7 @@ fn main() {
             &graph,
             &lm,
             SearchOptions {
-                blank_skip: None,
+                skip_blank_above: None,
                 ..defaults.clone()
             },
         ),

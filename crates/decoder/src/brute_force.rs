@@ -206,7 +206,7 @@ mod tests {
     fn random_case(seed: u64, lexicon: bool, boundary: bool, max_frames: usize) -> Case {
         let mut rng = ChaCha8Rng::seed_from_u64(seed);
         let unit_count = rng.random_range(3..=4usize);
-        let mut units = vec!["<blk>".to_string()];
+        let mut units = vec!["<ctc-blank>".to_string()];
         let symbols = unit_count - 1 - boundary as usize;
         for s in ["a", "b", "c"].iter().take(symbols) {
             units.push(s.to_string());
@@ -400,7 +400,7 @@ mod tests {
             let names: Vec<String> = (0..units)
                 .map(|u| {
                     if u == 0 {
-                        "<blk>".into()
+                        "<ctc-blank>".into()
                     } else {
                         format!("u{u}")
                     }

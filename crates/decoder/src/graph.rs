@@ -184,29 +184,29 @@ mod tests {
 
     #[test]
     fn word_rule_follows_lexicon_and_boundary() {
-        let g = SearchGraph::lexicon_free(units(&["<blk>", "a", "<wb>"])).unwrap();
+        let g = SearchGraph::lexicon_free(units(&["<ctc-blank>", "a", "<wb>"])).unwrap();
         assert_eq!(g.word_rule(), WordRule::SpelledAtBoundary);
         assert_eq!(g.boundary(), Some(2));
-        let g = SearchGraph::lexicon_free(units(&["<blk>", "a"])).unwrap();
+        let g = SearchGraph::lexicon_free(units(&["<ctc-blank>", "a"])).unwrap();
         assert_eq!(g.word_rule(), WordRule::EveryUnit);
         let (g, _) =
-            SearchGraph::with_lexicon(units(&["<blk>", "a", "<wb>"]), &[entry("a", &["a"])])
+            SearchGraph::with_lexicon(units(&["<ctc-blank>", "a", "<wb>"]), &[entry("a", &["a"])])
                 .unwrap();
         assert_eq!(g.word_rule(), WordRule::LexiconAtBoundary);
         let (g, _) =
-            SearchGraph::with_lexicon(units(&["<blk>", "a"]), &[entry("a", &["a"])]).unwrap();
+            SearchGraph::with_lexicon(units(&["<ctc-blank>", "a"]), &[entry("a", &["a"])]).unwrap();
         assert_eq!(g.word_rule(), WordRule::LexiconAtWordEnd);
     }
 
     #[test]
     fn entries_with_unknown_units_are_skipped_and_reported() {
         let (g, report) = SearchGraph::with_lexicon(
-            units(&["<blk>", "a", "b"]),
+            units(&["<ctc-blank>", "a", "b"]),
             &[
                 entry("ab", &["a", "b"]),
                 entry("ax", &["a", "x"]),
                 entry("ab", &["b"]),
-                entry("blank", &["<blk>"]),
+                entry("blank", &["<ctc-blank>"]),
             ],
         )
         .unwrap();
@@ -215,7 +215,7 @@ mod tests {
             report.unknown_units,
             vec![
                 ("ax".to_string(), "x".to_string()),
-                ("blank".to_string(), "<blk>".to_string())
+                ("blank".to_string(), "<ctc-blank>".to_string())
             ]
         );
         assert_eq!(g.words(), &["ab".to_string()]);
@@ -223,7 +223,7 @@ mod tests {
             g.unreachable_words(["<s>", "ab", "ax", "</s>", "<unk>"]),
             vec!["ax"]
         );
-        let err = SearchGraph::with_lexicon(units(&["<blk>", "a"]), &[entry("q", &["q"])])
+        let err = SearchGraph::with_lexicon(units(&["<ctc-blank>", "a"]), &[entry("q", &["q"])])
             .unwrap_err()
             .to_string();
         assert!(err.contains("\"q\""), "{err}");
@@ -231,6 +231,6 @@ mod tests {
 
     #[test]
     fn an_inventory_without_units_is_rejected() {
-        assert!(SearchGraph::lexicon_free(units(&["<blk>"])).is_err());
+        assert!(SearchGraph::lexicon_free(units(&["<ctc-blank>"])).is_err());
     }
 }

@@ -101,7 +101,7 @@ mod tests {
 
     #[test]
     fn collapses_repeats_drops_blanks_and_splits_at_the_boundary() {
-        let units: Vec<String> = ["<blk>", "a", "b", "<wb>"]
+        let units: Vec<String> = ["<ctc-blank>", "a", "b", "<wb>"]
             .iter()
             .map(|s| s.to_string())
             .collect();

@@ -24,7 +24,7 @@
 //! use isogloss_decoder::{BigramModel, Decoder, PrefixBeamSearch, SearchGraph, SearchOptions};
 //! use ndarray::Array2;
 //!
-//! let units: Vec<String> = ["<blk>", "a", "b", "<wb>"].iter().map(|s| s.to_string()).collect();
+//! let units: Vec<String> = ["<ctc-blank>", "a", "b", "<wb>"].iter().map(|s| s.to_string()).collect();
 //! let lexicon = vec![("ab".to_string(), vec!["a".to_string(), "b".to_string()])];
 //! let (graph, _report) = SearchGraph::with_lexicon(units, &lexicon).unwrap();
 //! let lm = BigramModel::new(vec!["ab".into()], vec![vec![-0.1], vec![-0.2]], vec![-0.3, -0.4]).unwrap();
@@ -55,7 +55,7 @@ mod brute_force;
 pub use graph::{LexiconReport, SearchGraph, WordRule, BOUNDARY_UNIT};
 pub use greedy::GreedyDecoder;
 pub use lm::{BigramModel, LanguageModel, NoLanguageModel};
-pub use search::{PrefixBeamSearch, SearchOptions};
+pub use search::{PrefixBeamSearch, SearchOptions, DEFAULT_LM_WEIGHT, DEFAULT_WORD_BONUS};
 pub use transcript::{DecodedWord, Transcript};
 
 use ndarray::ArrayView2;

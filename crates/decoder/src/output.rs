@@ -1,5 +1,35 @@
 //! Timed transcripts and the files they are written to: TSV (`id<TAB>text`, what `score`
-//! reads), JSON with word times and confidences, WebVTT cues (W3C WebVTT), and plain text.
+//! reads), the isogloss transcript JSON with word times and certainties, WebVTT cues (W3C
+//! WebVTT), and plain text. `docs/formats.md` shows each with an example.
+//!
+//! The JSON document (`--format json`) is one object:
+//!
+//! ```json
+//! {
+//!   "format": "isogloss-transcript",
+//!   "version": 1,
+//!   "items": [
+//!     {
+//!       "id": "interview1",
+//!       "audio": "interviews/interview1.ogg",
+//!       "stretches": [
+//!         {
+//!           "from_s": 0.52,
+//!           "to_s": 2.87,
+//!           "text": "we went doon tae the river",
+//!           "tokens": [
+//!             { "spelling": "we", "from_s": 0.61, "to_s": 0.74, "certainty": 0.98 }
+//!           ]
+//!         }
+//!       ]
+//!     }
+//!   ]
+//! }
+//! ```
+//!
+//! An *item* is one audio file or one manifest row; a *stretch* is one decoded piece of it (a
+//! manifest row, or a stretch of speech between pauses); a *token* is a recognized word. Times
+//! are seconds from the start of the audio file.
 
 use std::io::{self, Write};
 
@@ -7,29 +37,36 @@ use serde::{Deserialize, Serialize};
 
 use crate::transcript::Transcript;
 
-/// A word with times in seconds from the start of its recording.
+/// A word with times in seconds from the start of its recording (a *token* in the JSON).
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 pub struct TimedWord {
-    /// The word.
+    /// The word as spelled by the lexicon or the units (`spelling`).
+    #[serde(rename = "spelling")]
     pub word: String,
-    /// Start time, seconds.
+    /// Start time, seconds (`from_s`).
+    #[serde(rename = "from_s")]
     pub start: f64,
-    /// End time, seconds (greater than `start`).
+    /// End time, seconds, not before `start` (`to_s`).
+    #[serde(rename = "to_s")]
     pub end: f64,
-    /// Confidence in (0, 1] as defined by [`crate::DecodedWord::confidence`].
+    /// Certainty in (0, 1] as defined by [`crate::DecodedWord::confidence`] (`certainty`).
+    #[serde(rename = "certainty")]
     pub confidence: f32,
 }
 
 /// One decoded stretch of a recording (a manifest row or a voice-activity segment).
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 pub struct TimedSegment {
-    /// Start time, seconds from the start of the recording.
+    /// Start time, seconds from the start of the recording (`from_s`).
+    #[serde(rename = "from_s")]
     pub start: f64,
-    /// End time, seconds.
+    /// End time, seconds (`to_s`).
+    #[serde(rename = "to_s")]
     pub end: f64,
     /// The words joined by spaces.
     pub text: String,
-    /// The words with times inside `[start, end]`, in order.
+    /// The words with times inside `[start, end]`, in order (`tokens`).
+    #[serde(rename = "tokens")]
     pub words: Vec<TimedWord>,
 }
 
@@ -70,8 +107,36 @@ pub struct ItemTranscript {
     pub id: String,
     /// The audio file as given.
     pub audio: String,
-    /// Decoded segments in time order.
+    /// Decoded stretches in time order (`stretches`).
+    #[serde(rename = "stretches")]
     pub segments: Vec<TimedSegment>,
+}
+
+/// The value of `format` in a transcript JSON document.
+pub const TRANSCRIPT_FORMAT: &str = "isogloss-transcript";
+/// The version of the transcript JSON layout this crate writes.
+pub const TRANSCRIPT_VERSION: u32 = 1;
+
+/// The transcript JSON document: a format tag and version, then the items.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct TranscriptDocument {
+    /// Always [`TRANSCRIPT_FORMAT`].
+    pub format: String,
+    /// [`TRANSCRIPT_VERSION`] when written by this crate.
+    pub version: u32,
+    /// The items in the order they were asked for.
+    pub items: Vec<ItemTranscript>,
+}
+
+impl TranscriptDocument {
+    /// A document of the current format and version.
+    pub fn new(items: Vec<ItemTranscript>) -> Self {
+        TranscriptDocument {
+            format: TRANSCRIPT_FORMAT.to_string(),
+            version: TRANSCRIPT_VERSION,
+            items,
+        }
+    }
 }
 
 impl ItemTranscript {
@@ -92,7 +157,7 @@ impl ItemTranscript {
 pub enum OutputFormat {
     /// `id<TAB>text` with a header, the hypotheses format.
     Tsv,
-    /// A JSON array of items with segments and timed words.
+    /// The transcript JSON document ([`TranscriptDocument`]): items, stretches, timed tokens.
     Json,
     /// WebVTT cues.
     Vtt,
@@ -115,7 +180,8 @@ pub fn write_items(
             }
         }
         OutputFormat::Json => {
-            serde_json::to_writer_pretty(&mut *out, items).map_err(io::Error::other)?;
+            let document = TranscriptDocument::new(items.to_vec());
+            serde_json::to_writer_pretty(&mut *out, &document).map_err(io::Error::other)?;
             writeln!(out)?;
         }
         OutputFormat::Txt => {
@@ -453,7 +519,52 @@ mod tests {
         assert_eq!(String::from_utf8(out).unwrap(), "guten tag\nservus\n");
         let mut out = Vec::new();
         write_items(&mut out, std::slice::from_ref(&item), OutputFormat::Json).unwrap();
-        let back: Vec<ItemTranscript> = serde_json::from_slice(&out).unwrap();
-        assert_eq!(back, vec![item]);
+        let back: TranscriptDocument = serde_json::from_slice(&out).unwrap();
+        assert_eq!(back, TranscriptDocument::new(vec![item]));
+    }
+
+    #[test]
+    fn json_uses_the_documented_keys() {
+        let item = ItemTranscript {
+            id: "int-01".into(),
+            audio: "a.wav".into(),
+            segments: vec![TimedSegment {
+                start: 0.5,
+                end: 2.0,
+                text: "guten tag".into(),
+                words: vec![word("guten", 0.6, 0.9), word("tag", 1.0, 1.4)],
+            }],
+        };
+        let mut out = Vec::new();
+        write_items(&mut out, &[item], OutputFormat::Json).unwrap();
+        let value: serde_json::Value = serde_json::from_slice(&out).unwrap();
+        assert_eq!(value["format"], "isogloss-transcript");
+        assert_eq!(value["version"], 1);
+        let stretch = &value["items"][0]["stretches"][0];
+        assert_eq!(
+            (stretch["from_s"].as_f64(), stretch["to_s"].as_f64()),
+            (Some(0.5), Some(2.0))
+        );
+        let token = &stretch["tokens"][1];
+        assert_eq!(token["spelling"], "tag");
+        assert_eq!(
+            (token["from_s"].as_f64(), token["to_s"].as_f64()),
+            (Some(1.0), Some(1.4))
+        );
+        assert!(token["certainty"].is_number());
+    }
+
+    /// The example in `docs/formats.md` is a document this crate reads.
+    #[test]
+    fn the_documented_example_reads() {
+        let docs = include_str!("../../../docs/formats.md");
+        let start = docs
+            .find("```json\n{\n  \"format\": \"isogloss-transcript\"")
+            .expect("docs/formats.md shows a transcript JSON example")
+            + "```json\n".len();
+        let end = start + docs[start..].find("```").unwrap();
+        let document: TranscriptDocument = serde_json::from_str(&docs[start..end]).unwrap();
+        assert_eq!(document.format, TRANSCRIPT_FORMAT);
+        assert!(!document.items[0].segments[0].words.is_empty());
     }
 }

@@ -136,7 +136,8 @@ mod tests {
     fn words_land_on_the_recording_time_line_in_order() {
         let rate = 16_000;
         let graph =
-            SearchGraph::lexicon_free(vec!["<blk>".into(), "a".into(), "<wb>".into()]).unwrap();
+            SearchGraph::lexicon_free(vec!["<ctc-blank>".into(), "a".into(), "<wb>".into()])
+                .unwrap();
         // a loud square wave at 2–2.5 s, 10–10.5 s and 30–30.5 s in 40 s of faint noise
         let bursts = [2.0, 10.0, 30.0];
         let signal: Vec<f32> = (0..40 * rate)

@@ -25,6 +25,14 @@ use crate::lm::LanguageModel;
 use crate::transcript::{spell, timed_words, viterbi_runs, LabelRun, Transcript, WordSpan};
 use crate::{check_posteriors, DecodeError, Decoder};
 
+/// The default LM weight of every command and of the sweep file. It is the pair measured best
+/// on the demo corpus's dev split (coordinate search over LM weights 0.4–1.5 and word bonuses
+/// 0–3 with the demo model, the in-domain trigram and the grapheme lexicon; README), the only
+/// tuning measured so far. Tune it on your own dev set (`isogloss sweep` with `tune`).
+pub const DEFAULT_LM_WEIGHT: f32 = 1.2;
+/// The default word bonus, chosen together with [`DEFAULT_LM_WEIGHT`].
+pub const DEFAULT_WORD_BONUS: f32 = 0.5;
+
 /// Tuning of the prefix beam search. Every pruning option trades accuracy for speed; with
 /// [`SearchOptions::exact`] nothing is pruned.
 #[derive(Debug, Clone, PartialEq)]
@@ -37,12 +45,12 @@ pub struct SearchOptions {
     pub word_bonus: f32,
     /// A frame only extends hypotheses by units whose log posterior is within this margin of
     /// the frame's best non-blank unit; `None` tries every unit.
-    pub unit_prune: Option<f32>,
+    pub unit_margin: Option<f32>,
     /// Hypotheses more than this below the frame's best are dropped; `None` keeps the beam full.
     pub score_margin: Option<f32>,
     /// Frames whose blank posterior is at least this probability only update existing
     /// hypotheses (blank and repeat), without extending any; `None` treats every frame fully.
-    pub blank_skip: Option<f32>,
+    pub skip_blank_above: Option<f32>,
     /// Rank partial words by the best LM look-ahead score in the lexicon trie below them.
     pub lookahead: bool,
     /// `ln P` charged for a word the LM neither knows nor can map to `<unk>`.
@@ -53,11 +61,11 @@ impl Default for SearchOptions {
     fn default() -> Self {
         SearchOptions {
             beam: 16,
-            lm_weight: 0.5,
-            word_bonus: 1.0,
-            unit_prune: Some(8.0),
+            lm_weight: DEFAULT_LM_WEIGHT,
+            word_bonus: DEFAULT_WORD_BONUS,
+            unit_margin: Some(8.0),
             score_margin: Some(20.0),
-            blank_skip: Some(0.999),
+            skip_blank_above: Some(0.999),
             lookahead: true,
             unknown_word_score: -20.0,
         }
@@ -72,9 +80,9 @@ impl SearchOptions {
             beam: usize::MAX,
             lm_weight,
             word_bonus,
-            unit_prune: None,
+            unit_margin: None,
             score_margin: None,
-            blank_skip: None,
+            skip_blank_above: None,
             lookahead: true,
             unknown_word_score: -20.0,
         }
@@ -287,13 +295,13 @@ impl<'a, L: LanguageModel> PrefixBeamSearch<'a, L> {
     ) -> Result<Vec<Transcript>, DecodeError> {
         check_posteriors(self.graph, log_posteriors)?;
         self.reset();
-        let blank_skip = self.options.blank_skip.map(|p| p.ln());
+        let skip_blank_above = self.options.skip_blank_above.map(|p| p.ln());
         for t in 0..log_posteriors.nrows() {
             // Copy the row: the posteriors may be a strided view; the copy reuses one buffer.
             let mut frame = std::mem::take(&mut self.frame);
             frame.clear();
             frame.extend(log_posteriors.row(t).iter().copied());
-            match blank_skip {
+            match skip_blank_above {
                 Some(threshold) if frame[0] >= threshold => self.blank_step(&frame),
                 _ => self.full_step(&frame),
             }
@@ -363,7 +371,7 @@ impl<'a, L: LanguageModel> PrefixBeamSearch<'a, L> {
         self.is_candidate.resize(frame.len(), false);
         let best_unit = frame[1..].iter().copied().fold(f32::NEG_INFINITY, f32::max);
         for (c, &p) in frame.iter().enumerate().skip(1) {
-            if self.options.unit_prune.is_none_or(|m| p >= best_unit - m) {
+            if self.options.unit_margin.is_none_or(|m| p >= best_unit - m) {
                 self.candidates.push(c as u32);
                 self.is_candidate[c] = true;
             }

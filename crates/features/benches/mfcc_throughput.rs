@@ -1,4 +1,4 @@
-//! Throughput of the default front end (MFCC + Δ + ΔΔ, and log-mel fbank) on one core, as a
+//! Throughput of the default front end (MFCC + Δ + ΔΔ, and log-mel) on one core, as a
 //! multiple of real time. A benchmark, not a test: `cargo bench -p isogloss-features`
 //! (`scripts/bench/features_bench.py` runs it beside librosa and reports the ratio).
 //!
@@ -9,11 +9,13 @@
 //! mostly measures how long the scheduler kept us waiting; the thread's CPU time is the cost of the
 //! work itself, which is what "throughput on one core" means.
 
+mod support;
+
 use std::hint::black_box;
-use std::path::Path;
 use std::time::Instant;
 
 use isogloss_features::{FeatureConfig, FeatureExtractor};
+use support::{fail, parse, repeated_speech, thread_cpu_seconds};
 
 fn main() {
     let mut seconds = 60.0f64;
@@ -33,7 +35,7 @@ fn main() {
     let audio = repeated_speech(seconds);
     for (name, config) in [
         ("mfcc+delta+delta-delta", FeatureConfig::default()),
-        ("fbank", FeatureConfig::fbank()),
+        ("logmel", FeatureConfig::logmel()),
     ] {
         let extractor = FeatureExtractor::new(&config).unwrap_or_else(|e| fail(&e.to_string()));
         for _ in 0..10 {
@@ -70,45 +72,4 @@ fn main() {
             );
         }
     }
-}
-
-/// The committed 16 kHz test sentence, repeated to `seconds` of audio.
-fn repeated_speech(seconds: f64) -> Vec<f32> {
-    let path =
-        Path::new(env!("CARGO_MANIFEST_DIR")).join("../../tests/fixtures/features/speech.wav");
-    let mut reader =
-        hound::WavReader::open(&path).unwrap_or_else(|e| fail(&format!("{}: {e}", path.display())));
-    let sentence: Vec<f32> = reader
-        .samples::<i16>()
-        .map(|s| {
-            f32::from(s.unwrap_or_else(|e| fail(&format!("{}: {e}", path.display())))) / 32768.0
-        })
-        .collect();
-    let wanted = (seconds * 16_000.0) as usize;
-    sentence.iter().copied().cycle().take(wanted).collect()
-}
-
-/// CPU time consumed by the calling thread, in seconds.
-fn thread_cpu_seconds() -> f64 {
-    let mut now = libc::timespec {
-        tv_sec: 0,
-        tv_nsec: 0,
-    };
-    // SAFETY: clock_gettime writes one timespec through a valid pointer to a local.
-    let status = unsafe { libc::clock_gettime(libc::CLOCK_THREAD_CPUTIME_ID, &mut now) };
-    if status != 0 {
-        fail("the thread CPU clock is not available");
-    }
-    now.tv_sec as f64 + now.tv_nsec as f64 * 1e-9
-}
-
-fn parse<T: std::str::FromStr>(value: Option<String>, flag: &str) -> T {
-    value
-        .and_then(|v| v.parse().ok())
-        .unwrap_or_else(|| fail(&format!("{flag} needs a number")))
-}
-
-fn fail(message: &str) -> ! {
-    eprintln!("mfcc_throughput: {message}");
-    std::process::exit(1)
 }

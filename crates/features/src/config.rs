@@ -13,19 +13,21 @@ pub enum FeatureKind {
     /// Mel-frequency cepstral coefficients c0…c(n−1) (the DCT of the log-mel energies).
     #[default]
     Mfcc,
-    /// Log-mel filterbank energies: the same pipeline stopped before the DCT.
-    Fbank,
+    /// Log-mel filterbank energies: the same pipeline stopped before the DCT. The old spelling
+    /// `"fbank"` is read for one release, with a deprecation warning.
+    #[serde(rename = "logmel", alias = "fbank")]
+    LogMel,
 }
 
 /// Which mean and variance normalisation the pipeline applies after extraction.
 ///
 /// [`crate::FeatureExtractor::extract`] itself never normalises, so that its output is exactly the
-/// contract front end; consumers (the `features` command, training, decoding) apply this setting
+/// configured front end; consumers (the `features` command, training, decoding) apply this setting
 /// with [`crate::Cmvn`] and [`crate::SpeakerCmvnStats`].
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize, Default)]
 #[serde(rename_all = "lowercase")]
 pub enum CmvnMode {
-    /// No normalisation (the contract's default front end).
+    /// No normalisation (the default front end).
     #[default]
     None,
     /// Statistics from each utterance alone.
@@ -34,47 +36,57 @@ pub enum CmvnMode {
     Speaker,
 }
 
-/// Settings of the acoustic front end. `Default` is the contract front end of DESIGN.md: 16 kHz,
-/// pre-emphasis 0.97, 400-sample frames every 160 samples, symmetric Hamming window, 512-point FFT
-/// power spectrum, 40 HTK-formula mel filters over 20–8000 Hz, natural log floored at 1e-10,
-/// orthonormal DCT-II c0…c12, Δ and ΔΔ by regression over ±2 frames: 39 dimensions.
+/// Settings of the acoustic front end. `Default` is the default front end specified in
+/// `docs/features.md`: 16 kHz, pre-emphasis 0.97, 400-sample frames every 160 samples, symmetric
+/// Hamming window, 512-point FFT power spectrum, 40 mel filters (O'Shaughnessy's mel formula)
+/// over 20–8000 Hz, natural log floored at 1e-10, orthonormal DCT-II c0…c12, Δ and ΔΔ by
+/// regression over ±2 frames: 39 dimensions.
 ///
 /// Missing TOML keys take these defaults; unknown keys are an error, so that a misspelt setting
-/// is not silently ignored.
+/// is not silently ignored. The spellings of the previous release ([`DEPRECATED_KEYS`]) are still
+/// read, with a warning from [`deprecated_spellings`].
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 #[serde(default, deny_unknown_fields)]
 pub struct FeatureConfig {
-    /// `"mfcc"` (default) or `"fbank"`.
+    /// `"mfcc"` (default) or `"logmel"`.
     pub kind: FeatureKind,
     /// Sample rate the samples are at, in Hz (the audio stage delivers 16 000).
     pub sample_rate: u32,
     /// Pre-emphasis coefficient a: y[0] = x[0], y[n] = x[n] − a·x[n−1]; 0 turns it off.
-    pub preemphasis: f64,
-    /// Samples per analysis frame (400 = 25 ms at 16 kHz).
-    pub frame_length: usize,
-    /// Samples between frame starts (160 = 10 ms at 16 kHz).
-    pub frame_shift: usize,
-    /// FFT length; frames are zero-padded to it. Must be even and at least `frame_length`.
+    #[serde(alias = "preemphasis")]
+    pub emphasis: f64,
+    /// Samples per analysis window (400 = 25 ms at 16 kHz).
+    #[serde(alias = "frame_length")]
+    pub window_samples: usize,
+    /// Samples between window starts (160 = 10 ms at 16 kHz).
+    #[serde(alias = "frame_shift")]
+    pub hop_samples: usize,
+    /// FFT length; frames are zero-padded to it. Must be even and at least `window_samples`.
     pub fft_size: usize,
     /// Number of triangular mel filters.
-    pub mel_bins: usize,
+    #[serde(alias = "mel_bins")]
+    pub mel_filters: usize,
     /// Lower edge of the lowest mel filter, in Hz.
-    pub low_hz: f64,
+    #[serde(alias = "low_hz")]
+    pub band_low_hz: f64,
     /// Upper edge of the highest mel filter, in Hz (at most half the sample rate).
-    pub high_hz: f64,
+    #[serde(alias = "high_hz")]
+    pub band_high_hz: f64,
     /// Mel energies below this are raised to it before the natural log.
     pub log_floor: f64,
     /// Cepstral coefficients kept (c0…c(n−1)); used by `kind = "mfcc"` only.
     pub cepstra: usize,
-    /// Δ features use a regression over ±`delta_window` frames.
-    pub delta_window: usize,
-    /// 0: static features only; 1: add Δ; 2: add Δ and ΔΔ. When absent: 2 for MFCC, 0 for fbank
-    /// (fbank feeds models that see a wide context anyway, and 40 stays 40).
+    /// Δ features are the slope of a least-squares line over ±`slope_reach` frames.
+    #[serde(alias = "delta_window")]
+    pub slope_reach: usize,
+    /// 0: static features only; 1: add Δ; 2: add Δ and ΔΔ. When absent: 2 for MFCC, 0 for log-mel
+    /// (log-mel feeds models that see a wide context anyway, and 40 stays 40).
     pub deltas: Option<usize>,
     /// Normalisation applied after extraction (see [`CmvnMode`]).
     pub cmvn: CmvnMode,
     /// Whether CMVN also scales every dimension to unit variance (else it only removes the mean).
-    pub normalize_variance: bool,
+    #[serde(alias = "normalize_variance")]
+    pub unit_variance: bool,
 }
 
 impl Default for FeatureConfig {
@@ -82,33 +94,62 @@ impl Default for FeatureConfig {
         FeatureConfig {
             kind: FeatureKind::Mfcc,
             sample_rate: 16_000,
-            preemphasis: 0.97,
-            frame_length: 400,
-            frame_shift: 160,
+            emphasis: 0.97,
+            window_samples: 400,
+            hop_samples: 160,
             fft_size: 512,
-            mel_bins: 40,
-            low_hz: 20.0,
-            high_hz: 8000.0,
+            mel_filters: 40,
+            band_low_hz: 20.0,
+            band_high_hz: 8000.0,
             log_floor: 1e-10,
             cepstra: 13,
-            delta_window: 2,
+            slope_reach: 2,
             deltas: None,
             cmvn: CmvnMode::None,
-            normalize_variance: true,
+            unit_variance: true,
         }
     }
 }
 
+/// Feature-setting keys of the previous release and the keys that replace them. The old keys are
+/// still read for one release, with a deprecation warning.
+pub const DEPRECATED_KEYS: [(&str, &str); 8] = [
+    ("preemphasis", "emphasis"),
+    ("frame_length", "window_samples"),
+    ("frame_shift", "hop_samples"),
+    ("mel_bins", "mel_filters"),
+    ("low_hz", "band_low_hz"),
+    ("high_hz", "band_high_hz"),
+    ("delta_window", "slope_reach"),
+    ("normalize_variance", "unit_variance"),
+];
+
+/// One deprecation notice per old spelling in a table of feature settings (a feature config file,
+/// or the `[features]` table of a model or training config): the keys of [`DEPRECATED_KEYS`] and
+/// the value `kind = "fbank"`. Callers print them as warnings, naming the file.
+pub fn deprecated_spellings(table: &toml::Table) -> Vec<String> {
+    let mut notices: Vec<String> = DEPRECATED_KEYS
+        .iter()
+        .filter(|(old, _)| table.contains_key(*old))
+        .map(|(old, new)| format!("the feature key `{old}` is deprecated; write `{new}`"))
+        .collect();
+    if table.get("kind").and_then(toml::Value::as_str) == Some("fbank") {
+        notices.push("`kind = \"fbank\"` is deprecated; write `kind = \"logmel\"`".into());
+    }
+    notices
+}
+
 impl FeatureConfig {
-    /// The contract front end with `kind = "fbank"`: 40 log-mel energies, no deltas.
-    pub fn fbank() -> Self {
+    /// The default front end with `kind = "logmel"`: 40 log-mel energies, no deltas.
+    pub fn logmel() -> Self {
         FeatureConfig {
-            kind: FeatureKind::Fbank,
+            kind: FeatureKind::LogMel,
             ..FeatureConfig::default()
         }
     }
 
-    /// Parses and validates a TOML config.
+    /// Parses and validates a TOML config. Old spellings of the keys are read, with a warning on
+    /// standard error naming the file (see [`deprecated_spellings`]).
     pub fn from_toml_str(text: &str, path: &Path) -> Result<Self, FeatureError> {
         let invalid = |message: String| FeatureError::ConfigFile {
             path: path.to_path_buf(),
@@ -116,6 +157,11 @@ impl FeatureConfig {
         };
         let config: FeatureConfig = toml::from_str(text)
             .map_err(|error| invalid(format!("not a valid feature config: {error}")))?;
+        if let Ok(table) = text.parse::<toml::Table>() {
+            for notice in deprecated_spellings(&table) {
+                eprintln!("warning: {}: {notice}", path.display());
+            }
+        }
         config
             .validate()
             .map_err(|error| invalid(error.to_string()))?;
@@ -144,15 +190,15 @@ impl FeatureConfig {
     pub fn delta_order(&self) -> usize {
         self.deltas.unwrap_or(match self.kind {
             FeatureKind::Mfcc => 2,
-            FeatureKind::Fbank => 0,
+            FeatureKind::LogMel => 0,
         })
     }
 
-    /// Dimensions of the static block: cepstra for MFCC, mel bins for fbank.
+    /// Dimensions of the static block: cepstra for MFCC, mel filters for log-mel.
     pub fn static_dims(&self) -> usize {
         match self.kind {
             FeatureKind::Mfcc => self.cepstra,
-            FeatureKind::Fbank => self.mel_bins,
+            FeatureKind::LogMel => self.mel_filters,
         }
     }
 
@@ -161,18 +207,18 @@ impl FeatureConfig {
         self.static_dims() * (1 + self.delta_order())
     }
 
-    /// Frame shift in seconds (10 ms by default).
-    pub fn frame_shift_seconds(&self) -> f64 {
-        self.frame_shift as f64 / f64::from(self.sample_rate)
+    /// Seconds between two frames (10 ms by default).
+    pub fn hop_seconds(&self) -> f64 {
+        self.hop_samples as f64 / f64::from(self.sample_rate)
     }
 
     /// Number of frames a signal of `samples` samples yields: 1 + ⌊(N − L)/S⌋, or 0 when N < L
-    /// (no padding, as the contract front end says).
+    /// (no padding, as `docs/features.md` specifies).
     pub fn frame_count(&self, samples: usize) -> usize {
-        if samples < self.frame_length || self.frame_shift == 0 {
+        if samples < self.window_samples || self.hop_samples == 0 {
             0
         } else {
-            1 + (samples - self.frame_length) / self.frame_shift
+            1 + (samples - self.window_samples) / self.hop_samples
         }
     }
 
@@ -192,41 +238,41 @@ impl FeatureConfig {
         if self.sample_rate == 0 {
             return Err(invalid("sample_rate", "a positive number of Hz", 0));
         }
-        if !(0.0..1.0).contains(&self.preemphasis) {
-            return Err(invalid("preemphasis", "in [0, 1)", self.preemphasis));
+        if !(0.0..1.0).contains(&self.emphasis) {
+            return Err(invalid("emphasis", "in [0, 1)", self.emphasis));
         }
-        if self.frame_length == 0 {
-            return Err(invalid("frame_length", "at least 1 sample", 0));
+        if self.window_samples == 0 {
+            return Err(invalid("window_samples", "at least 1 sample", 0));
         }
-        if self.frame_shift == 0 {
-            return Err(invalid("frame_shift", "at least 1 sample", 0));
+        if self.hop_samples == 0 {
+            return Err(invalid("hop_samples", "at least 1 sample", 0));
         }
-        if self.fft_size < self.frame_length.max(2) || self.fft_size % 2 != 0 {
+        if self.fft_size < self.window_samples.max(2) || self.fft_size % 2 != 0 {
             return Err(invalid(
                 "fft_size",
                 format!(
-                    "even and at least frame_length ({})",
-                    self.frame_length.max(2)
+                    "even and at least window_samples ({})",
+                    self.window_samples.max(2)
                 ),
                 self.fft_size,
             ));
         }
-        if self.mel_bins == 0 {
-            return Err(invalid("mel_bins", "at least 1", 0));
+        if self.mel_filters == 0 {
+            return Err(invalid("mel_filters", "at least 1", 0));
         }
         let nyquist = f64::from(self.sample_rate) / 2.0;
-        if !(self.low_hz >= 0.0 && self.low_hz < self.high_hz) {
+        if !(self.band_low_hz >= 0.0 && self.band_low_hz < self.band_high_hz) {
             return Err(invalid(
-                "low_hz",
-                format!("at least 0 and below high_hz ({})", self.high_hz),
-                self.low_hz,
+                "band_low_hz",
+                format!("at least 0 and below band_high_hz ({})", self.band_high_hz),
+                self.band_low_hz,
             ));
         }
-        if self.high_hz > nyquist {
+        if self.band_high_hz > nyquist {
             return Err(invalid(
-                "high_hz",
+                "band_high_hz",
                 format!("at most half the sample rate ({nyquist})"),
-                self.high_hz,
+                self.band_high_hz,
             ));
         }
         if !(self.log_floor > 0.0 && self.log_floor.is_finite()) {
@@ -236,10 +282,10 @@ impl FeatureConfig {
                 self.log_floor,
             ));
         }
-        if self.kind == FeatureKind::Mfcc && !(1..=self.mel_bins).contains(&self.cepstra) {
+        if self.kind == FeatureKind::Mfcc && !(1..=self.mel_filters).contains(&self.cepstra) {
             return Err(invalid(
                 "cepstra",
-                format!("between 1 and mel_bins ({})", self.mel_bins),
+                format!("between 1 and mel_filters ({})", self.mel_filters),
                 self.cepstra,
             ));
         }
@@ -247,8 +293,8 @@ impl FeatureConfig {
         if order > 2 {
             return Err(invalid("deltas", "0, 1 or 2", order));
         }
-        if order > 0 && self.delta_window == 0 {
-            return Err(invalid("delta_window", "at least 1 frame", 0));
+        if order > 0 && self.slope_reach == 0 {
+            return Err(invalid("slope_reach", "at least 1 frame", 0));
         }
         Ok(())
     }
@@ -259,28 +305,28 @@ mod tests {
     use super::*;
 
     #[test]
-    fn default_is_the_contract_front_end_with_39_dims() {
+    fn default_is_the_documented_front_end_with_39_dims() {
         let config = FeatureConfig::default();
         config.validate().unwrap();
-        // DESIGN.md "Default front end": MFCC c0…c12 + Δ + ΔΔ = 39 dims, 10 ms shift.
+        // docs/features.md "The default front end": MFCC c0…c12 + Δ + ΔΔ = 39 dims, 10 ms hop.
         assert_eq!(config.dims(), 39);
-        assert_eq!(config.frame_shift_seconds(), 0.01);
-        assert_eq!(FeatureConfig::fbank().dims(), 40);
+        assert_eq!(config.hop_seconds(), 0.01);
+        assert_eq!(FeatureConfig::logmel().dims(), 40);
     }
 
     #[test]
-    fn fbank_takes_deltas_only_when_asked() {
+    fn logmel_takes_deltas_only_when_asked() {
         let with_deltas = FeatureConfig {
             deltas: Some(2),
-            ..FeatureConfig::fbank()
+            ..FeatureConfig::logmel()
         };
         assert_eq!(with_deltas.dims(), 120);
     }
 
     #[test]
-    fn frame_count_follows_the_contract_formula() {
+    fn frame_count_follows_the_documented_formula() {
         let config = FeatureConfig::default();
-        // DESIGN.md: frames = 1 + ⌊(N − 400)/160⌋, no padding; fewer than 400 samples give none.
+        // docs/features.md: frames = 1 + ⌊(N − 400)/160⌋, no padding; fewer than 400 samples give none.
         for (samples, frames) in [(0, 0), (399, 0), (400, 1), (559, 1), (560, 2), (16_000, 98)] {
             assert_eq!(config.frame_count(samples), frames, "{samples} samples");
         }
@@ -297,12 +343,12 @@ mod tests {
                 ..FeatureConfig::default()
             }
         );
-        let fbank = FeatureConfig::from_toml_file(&root.join("features-fbank.toml")).unwrap();
+        let logmel = FeatureConfig::from_toml_file(&root.join("features-logmel.toml")).unwrap();
         assert_eq!(
-            fbank,
+            logmel,
             FeatureConfig {
                 deltas: Some(0),
-                ..FeatureConfig::fbank()
+                ..FeatureConfig::logmel()
             }
         );
     }
@@ -310,8 +356,8 @@ mod tests {
     #[test]
     fn toml_round_trips_and_missing_keys_take_defaults() {
         let config =
-            FeatureConfig::from_toml_str("kind = \"fbank\"\n", Path::new("x.toml")).unwrap();
-        assert_eq!(config, FeatureConfig::fbank());
+            FeatureConfig::from_toml_str("kind = \"logmel\"\n", Path::new("x.toml")).unwrap();
+        assert_eq!(config, FeatureConfig::logmel());
         let text = FeatureConfig::default().to_toml_string();
         let back = FeatureConfig::from_toml_str(&text, Path::new("x.toml")).unwrap();
         assert_eq!(back.dims(), 39);
@@ -320,20 +366,22 @@ mod tests {
 
     #[test]
     fn bad_configs_name_the_setting_file_and_line() {
-        let error =
-            FeatureConfig::from_toml_str("mel_bins = 40\nfft_sise = 512\n", Path::new("my.toml"))
-                .unwrap_err()
-                .to_string();
+        let error = FeatureConfig::from_toml_str(
+            "mel_filters = 40\nfft_sise = 512\n",
+            Path::new("my.toml"),
+        )
+        .unwrap_err()
+        .to_string();
         assert!(
             error.contains("my.toml") && error.contains("line 2") && error.contains("fft_sise"),
             "{error}"
         );
-        let error = FeatureConfig::from_toml_str("high_hz = 9000.0", Path::new("my.toml"))
+        let error = FeatureConfig::from_toml_str("band_high_hz = 9000.0", Path::new("my.toml"))
             .unwrap_err()
             .to_string();
         assert!(
             error.contains("my.toml")
-                && error.contains("high_hz")
+                && error.contains("band_high_hz")
                 && error.contains("8000")
                 && error.contains("9000"),
             "{error}"
@@ -345,16 +393,36 @@ mod tests {
         for bad in [
             "fft_size = 256",
             "fft_size = 513",
-            "frame_shift = 0",
+            "hop_samples = 0",
             "deltas = 3",
             "log_floor = 0.0",
-            "preemphasis = 1.5",
-            "low_hz = 8000.0",
+            "emphasis = 1.5",
+            "band_low_hz = 8000.0",
         ] {
             assert!(
                 FeatureConfig::from_toml_str(bad, Path::new("my.toml")).is_err(),
                 "{bad}"
             );
         }
+    }
+
+    #[test]
+    fn old_spellings_are_read_and_named_as_deprecated() {
+        let old = "kind = \"fbank\"\npreemphasis = 0.9\nframe_length = 320\nframe_shift = 80\n\
+                   mel_bins = 24\nlow_hz = 50.0\nhigh_hz = 7000.0\ndelta_window = 3\n\
+                   normalize_variance = false\n";
+        let config = FeatureConfig::from_toml_str(old, Path::new("old.toml")).unwrap();
+        let new = "kind = \"logmel\"\nemphasis = 0.9\nwindow_samples = 320\nhop_samples = 80\n\
+                   mel_filters = 24\nband_low_hz = 50.0\nband_high_hz = 7000.0\nslope_reach = 3\n\
+                   unit_variance = false\n";
+        assert_eq!(
+            config,
+            FeatureConfig::from_toml_str(new, Path::new("new.toml")).unwrap()
+        );
+        let notices = deprecated_spellings(&old.parse().unwrap());
+        assert_eq!(notices.len(), 9, "{notices:?}");
+        assert!(notices[0].contains("`preemphasis`") && notices[0].contains("`emphasis`"));
+        assert!(notices[8].contains("logmel"));
+        assert!(deprecated_spellings(&new.parse().unwrap()).is_empty());
     }
 }

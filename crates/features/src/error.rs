@@ -16,6 +16,16 @@ pub enum FeatureError {
         /// The value that was given.
         found: String,
     },
+    /// An augmentation setting out of range, named by its key in the training configuration.
+    #[error("{key}: expected {expected}, found {found}")]
+    InvalidSetting {
+        /// The key, e.g. `augmentation.vtlp.warp_factor`.
+        key: &'static str,
+        /// What a valid value looks like.
+        expected: String,
+        /// The value that was given.
+        found: String,
+    },
     /// A TOML config file could not be parsed or holds an invalid setting (the parser's message
     /// carries the line and column; a setting out of range is named).
     #[error("{path}: {message}")]

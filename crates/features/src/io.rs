@@ -8,7 +8,7 @@ use safetensors::{Dtype, SafeTensors};
 
 use crate::FeatureError;
 
-/// Name of the one tensor in a feature file (a DESIGN.md contract).
+/// Name of the one tensor in a feature file (`docs/formats.md`, feature files).
 pub const FEATURES_TENSOR: &str = "features";
 
 /// Writes `features` to `path` as safetensors. The file is written next to its final name and then

@@ -1,9 +1,9 @@
-//! Acoustic front end of isogloss: MFCC and log-mel fbank features, deltas, CMVN and SpecAugment
-//! masks, and the safetensors feature files that cache them.
+//! Acoustic front end of isogloss: MFCC and log-mel features, deltas, CMVN, SpecAugment masks,
+//! vocal-tract length perturbation ([`vtlp`]), and the safetensors feature files that cache them.
 //!
-//! The default [`FeatureConfig`] is the front end pinned in the project's design (16 kHz,
-//! pre-emphasis 0.97, 25 ms Hamming frames every 10 ms, 512-point power spectrum, 40 HTK mel
-//! filters over 20–8000 Hz, natural log floored at 1e-10, orthonormal DCT-II c0…c12, Δ and ΔΔ over
+//! The default [`FeatureConfig`] is the front end specified in `docs/features.md` (16 kHz,
+//! pre-emphasis 0.97, 25 ms Hamming windows every 10 ms, 512-point power spectrum, 40 mel filters
+//! on O'Shaughnessy's (1987) mel scale over 20–8000 Hz, natural log floored at 1e-10, orthonormal DCT-II c0…c12, Δ and ΔΔ over
 //! ±2 frames: 39 dimensions). Its values are checked against numpy/scipy/librosa on synthesised
 //! speech (`tests/reference.rs`).
 //!
@@ -38,10 +38,12 @@ mod io;
 pub mod mel;
 mod specaugment;
 mod spectrum;
+pub mod vtlp;
 
 pub use cmvn::{Cmvn, CmvnStats, SpeakerCmvnStats};
-pub use config::{CmvnMode, FeatureConfig, FeatureKind};
+pub use config::{deprecated_spellings, CmvnMode, FeatureConfig, FeatureKind, DEPRECATED_KEYS};
 pub use error::FeatureError;
 pub use extractor::FeatureExtractor;
 pub use io::{read_features, write_features, FEATURES_TENSOR};
 pub use specaugment::{MaskFill, SpecAugment};
+pub use vtlp::{VtlpConfig, VtlpWarp};

@@ -1,8 +1,10 @@
 //! The mel scale and a sparse triangular mel filterbank.
 
+use crate::vtlp::VtlpWarp;
 use crate::FeatureError;
 
-/// Hertz to mel by O'Shaughnessy's formula, mel = 2595·log10(1 + f/700) (the "HTK" mel scale).
+/// Hertz to mel by the published formula of O'Shaughnessy (1987, *Speech Communication: Human
+/// and Machine*), mel = 2595·log10(1 + f/700).
 pub fn hz_to_mel(hz: f64) -> f64 {
     2595.0 * (1.0 + hz / 700.0).log10()
 }
@@ -38,6 +40,40 @@ impl MelFilterbank {
         low_hz: f64,
         high_hz: f64,
     ) -> Result<Self, FeatureError> {
+        Self::build(sample_rate, fft_size, bins, low_hz, high_hz, |hz| hz)
+    }
+
+    /// The same filters read through the VTLP frequency warp: bin k gets the weight the unwarped
+    /// filter has at W(f_k) (see [`crate::vtlp`]). Equal to [`Self::new`] for α = 1. Fails, naming
+    /// the warp factor, when the warp squeezes a filter between two FFT bins.
+    pub fn warped(
+        sample_rate: u32,
+        fft_size: usize,
+        bins: usize,
+        low_hz: f64,
+        high_hz: f64,
+        warp: &VtlpWarp,
+    ) -> Result<Self, FeatureError> {
+        Self::build(sample_rate, fft_size, bins, low_hz, high_hz, |hz| {
+            warp.apply(hz)
+        })
+        .map_err(|_| FeatureError::InvalidSetting {
+            key: "augmentation.vtlp.warp_factor",
+            expected: format!(
+                "a warp that leaves each of the {bins} mel filters at least one FFT bin"
+            ),
+            found: warp.factor().to_string(),
+        })
+    }
+
+    fn build(
+        sample_rate: u32,
+        fft_size: usize,
+        bins: usize,
+        low_hz: f64,
+        high_hz: f64,
+        warp: impl Fn(f64) -> f64,
+    ) -> Result<Self, FeatureError> {
         let low_mel = hz_to_mel(low_hz);
         let step = (hz_to_mel(high_hz) - low_mel) / (bins + 1) as f64;
         let corners: Vec<f64> = (0..bins + 2)
@@ -52,7 +88,7 @@ impl MelFilterbank {
             let start = weights.len();
             let mut first_bin = None;
             for k in 0..spectrum_bins {
-                let hz = k as f64 * bin_hz;
+                let hz = warp(k as f64 * bin_hz);
                 let weight = ((hz - left) / (center - left))
                     .min((right - hz) / (right - center))
                     .max(0.0);
@@ -65,7 +101,7 @@ impl MelFilterbank {
             }
             let Some(first_bin) = first_bin else {
                 return Err(FeatureError::InvalidConfig {
-                    setting: "mel_bins",
+                    setting: "mel_filters",
                     expected: format!(
                         "few enough that every filter covers an FFT bin ({bin_hz} Hz apart)"
                     ),
@@ -87,7 +123,7 @@ impl MelFilterbank {
         self.filters.len()
     }
 
-    /// Peak frequency of each filter in Hz.
+    /// Peak frequency of each unwarped filter in Hz.
     pub fn centers_hz(&self) -> &[f64] {
         &self.centers_hz
     }
@@ -158,6 +194,6 @@ mod tests {
     #[test]
     fn too_many_filters_for_the_fft_is_a_config_error() {
         let error = MelFilterbank::new(16_000, 512, 200, 20.0, 8000.0).unwrap_err();
-        assert!(error.to_string().contains("mel_bins"), "{error}");
+        assert!(error.to_string().contains("mel_filters"), "{error}");
     }
 }

@@ -1,4 +1,4 @@
-//! MFCC + Δ + ΔΔ and log-mel fbank against numpy/scipy/librosa on synthesised speech.
+//! MFCC + Δ + ΔΔ and log-mel against numpy/scipy/librosa on synthesised speech.
 //!
 //! Fixtures: `tests/fixtures/features/` at the repository root, made by
 //! `scripts/reference/features_reference.py` (espeak-ng speech resampled by sox to 16 kHz 16-bit;
@@ -27,7 +27,7 @@ fn speech() -> Vec<f32> {
         (spec.sample_rate, spec.channels, spec.bits_per_sample),
         (16_000, 1, 16)
     );
-    // The contract: int16 scaled by 1/32768.
+    // docs/features.md: int16 scaled by 1/32768.
     reader
         .samples::<i16>()
         .map(|s| f32::from(s.unwrap()) / 32768.0)
@@ -64,7 +64,7 @@ fn mfcc_with_deltas_matches_numpy_scipy_librosa() {
     let ours = FeatureExtractor::new(&FeatureConfig::default())
         .unwrap()
         .extract(&samples);
-    // Frame count: 1 + ⌊(N − 400)/160⌋ (DESIGN.md), as numpy framed it in the reference script.
+    // Frame count: 1 + ⌊(N − 400)/160⌋ (docs/features.md), as numpy framed it in the reference script.
     assert_eq!(ours.dim(), (1 + (samples.len() - 400) / 160, 39));
     let (error, frame, dim) = worst_relative_error(&ours, &reference);
     println!("mfcc: worst relative error {error:.2e} at frame {frame}, dim {dim}");
@@ -76,17 +76,17 @@ fn mfcc_with_deltas_matches_numpy_scipy_librosa() {
 }
 
 #[test]
-fn log_mel_fbank_matches_librosa_htk_filterbank() {
-    let reference = read_features(&fixtures().join("reference-fbank.safetensors")).unwrap();
-    let ours = FeatureExtractor::new(&FeatureConfig::fbank())
+fn log_mel_matches_librosa_mel_filterbank() {
+    let reference = read_features(&fixtures().join("reference-logmel.safetensors")).unwrap();
+    let ours = FeatureExtractor::new(&FeatureConfig::logmel())
         .unwrap()
         .extract(&speech());
     assert_eq!(ours.ncols(), 40);
     let (error, frame, dim) = worst_relative_error(&ours, &reference);
-    println!("fbank: worst relative error {error:.2e} at frame {frame}, dim {dim}");
+    println!("log-mel: worst relative error {error:.2e} at frame {frame}, dim {dim}");
     // Reference: librosa.filters.mel(htk=True, norm=None) on numpy's rfft power, ≤ 1e-3 relative.
     assert!(
         error <= 1e-3,
-        "fbank frame {frame} dim {dim}: relative error {error:.2e}"
+        "log-mel frame {frame} dim {dim}: relative error {error:.2e}"
     );
 }

@@ -68,7 +68,7 @@ pub enum LexiconError {
         message: String,
     },
     /// A dictionary with no usable entries was given for training.
-    #[error("{path}: expected at least one `word<TAB>phonemes` entry to train on, found none")]
+    #[error("{path}: expected at least one `word<TAB>units` entry to train on, found none")]
     EmptyDictionary {
         /// The dictionary file.
         path: PathBuf,

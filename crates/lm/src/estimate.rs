@@ -58,6 +58,43 @@ pub enum Smoothing {
     },
 }
 
+impl Smoothing {
+    /// The names of the methods, as the command line and the sweep file spell them.
+    pub const NAMES: [&'static str; 4] =
+        ["modified-kneser-ney", "kneser-ney", "witten-bell", "add-k"];
+
+    /// The method's name: `modified-kneser-ney`, `kneser-ney`, `witten-bell` or `add-k`.
+    pub fn name(&self) -> &'static str {
+        match self {
+            Smoothing::ModifiedKneserNey => Self::NAMES[0],
+            Smoothing::KneserNey => Self::NAMES[1],
+            Smoothing::WittenBell => Self::NAMES[2],
+            Smoothing::Additive { .. } => Self::NAMES[3],
+        }
+    }
+
+    /// The method of a name from [`Smoothing::NAMES`]; `add-k` takes the pseudo-count `k`.
+    /// `None` for any other name.
+    pub fn from_name(name: &str, k: f64) -> Option<Smoothing> {
+        match name {
+            "modified-kneser-ney" => Some(Smoothing::ModifiedKneserNey),
+            "kneser-ney" => Some(Smoothing::KneserNey),
+            "witten-bell" => Some(Smoothing::WittenBell),
+            "add-k" => Some(Smoothing::Additive { k }),
+            _ => None,
+        }
+    }
+}
+
+impl std::fmt::Display for Smoothing {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        match self {
+            Smoothing::Additive { k } => write!(f, "add-k (k = {k})"),
+            other => f.write_str(other.name()),
+        }
+    }
+}
+
 /// Options of [`estimate_with`].
 #[derive(Clone, Debug, Default)]
 pub struct EstimateOptions {

@@ -1,6 +1,6 @@
 //! Perplexity, out-of-vocabulary rate and token count of a text under a model.
 //!
-//! Conventions (DESIGN.md): every predicted token counts, words and `</s>` alike; `<s>` is context
+//! Conventions (`docs/language-models.md`): every predicted token counts, words and `</s>` alike; `<s>` is context
 //! only; an out-of-vocabulary word is scored as `<unk>`. If the model has no `<unk>`, such words
 //! cannot be scored: they are left out of the perplexity (and out of `tokens`) but still counted
 //! as out-of-vocabulary, and the history continues past them.

@@ -16,7 +16,7 @@
 //! freshly estimated one behave identically. [`merge`] (EM-weighted mixing) and [`prune`]
 //! (Stolcke's relative-entropy pruning) work on that back-off form and recompute back-off weights.
 //!
-//! Conventions (DESIGN.md, a contract): one `<s>` before and one `</s>` after every sentence;
+//! Conventions (`docs/language-models.md`): one `<s>` before and one `</s>` after every sentence;
 //! `<s>` is context only; unigrams interpolate with the uniform distribution over the vocabulary
 //! (training types + `</s>` + `<unk>`); perplexity counts every word and `</s>`, OOVs as `<unk>`.
 //!

@@ -291,3 +291,16 @@ fn fast_state_queries_agree_with_the_double_precision_recursion() {
         assert!((f64::from(model.sentence_end(&state)) - slow).abs() < 1e-5 * slow.abs().max(1.0));
     }
 }
+
+#[test]
+fn smoothing_names_round_trip() {
+    for name in Smoothing::NAMES {
+        let smoothing = Smoothing::from_name(name, 0.5).unwrap();
+        assert_eq!(smoothing.name(), name);
+    }
+    assert_eq!(
+        Smoothing::from_name("add-k", 0.5),
+        Some(Smoothing::Additive { k: 0.5 })
+    );
+    assert_eq!(Smoothing::from_name("mkn", 1.0), None);
+}

@@ -2,7 +2,7 @@
 //! confidence intervals in ASR performance evaluation", ICASSP 2004).
 //!
 //! Utterances, not words, are resampled, because errors within an utterance are correlated
-//! (one misrecognized word drags its neighbours along). Each replicate draws as many utterances
+//! (one misrecognized word drags its neighbours along). Each resample draws as many utterances
 //! as the test set has, with replacement, and computes the corpus-level rate Σ errors / Σ
 //! reference words. The paired variant draws the same utterances for two systems, which is what
 //! makes a small but consistent difference visible. The random generator is ChaCha8 seeded from
@@ -14,21 +14,21 @@ use rand_chacha::ChaCha8Rng;
 /// How the bootstrap is run.
 #[derive(Debug, Clone, Copy, PartialEq, serde::Serialize, serde::Deserialize)]
 pub struct BootstrapOptions {
-    /// Number of bootstrap replicates.
+    /// Number of bootstrap resamples.
     pub resamples: usize,
     /// Seed of the random generator.
     pub seed: u64,
-    /// Coverage of the interval, e.g. 0.95.
-    pub level: f64,
+    /// Confidence level of the interval, e.g. 0.95.
+    pub confidence: f64,
 }
 
 impl Default for BootstrapOptions {
     fn default() -> Self {
-        // 1000 replicates is the figure Bisani & Ney use; 95 % coverage is common practice.
+        // 1000 resamples is the figure Bisani & Ney use; a 95 % confidence level is common practice.
         BootstrapOptions {
             resamples: 1000,
             seed: 1,
-            level: 0.95,
+            confidence: 0.95,
         }
     }
 }
@@ -61,13 +61,13 @@ pub struct UtteranceErrors {
 /// Result of a paired bootstrap of two systems on the same utterances.
 #[derive(Debug, Clone, Copy, PartialEq, serde::Serialize, serde::Deserialize)]
 pub struct PairedBootstrap {
-    /// Share of replicates in which system 2 has the lower error rate (Bisani & Ney's
+    /// Share of resamples in which system 2 has the lower error rate (Bisani & Ney's
     /// "probability of improvement").
     pub probability_system2_better: f64,
     /// Interval of the difference rate(system 2) − rate(system 1); below zero means system 2
     /// makes fewer errors.
     pub difference_interval: Interval,
-    /// Replicates that had reference words (a replicate of only empty references has no rate
+    /// Replicates that had reference words (a resample of only empty references has no rate
     /// and is left out).
     pub valid_resamples: usize,
 }
@@ -86,20 +86,20 @@ fn quantile(sorted: &[f64], q: f64) -> f64 {
     sorted[below] + (sorted[above] - sorted[below]) * fraction
 }
 
-fn percentile_interval(mut values: Vec<f64>, level: f64) -> Option<Interval> {
+fn percentile_interval(mut values: Vec<f64>, confidence: f64) -> Option<Interval> {
     if values.is_empty() {
         return None;
     }
     values.sort_by(f64::total_cmp);
-    let tail = (1.0 - level) / 2.0;
+    let tail = (1.0 - confidence) / 2.0;
     Some(Interval {
         low: quantile(&values, tail),
         high: quantile(&values, 1.0 - tail),
     })
 }
 
-/// Draws the utterance indices of every replicate and hands each replicate to `visit`.
-fn for_each_replicate(count: usize, options: &BootstrapOptions, mut visit: impl FnMut(&[usize])) {
+/// Draws the utterance indices of every resample and hands each resample to `visit`.
+fn for_each_resample(count: usize, options: &BootstrapOptions, mut visit: impl FnMut(&[usize])) {
     if count == 0 {
         return;
     }
@@ -113,21 +113,21 @@ fn for_each_replicate(count: usize, options: &BootstrapOptions, mut visit: impl 
     }
 }
 
-/// Percentile bootstrap interval of the corpus error rate; `None` when no replicate has
+/// Percentile bootstrap interval of the corpus error rate; `None` when no resample has
 /// reference words (e.g. no utterances at all).
 pub fn interval(utterances: &[UtteranceErrors], options: &BootstrapOptions) -> Option<Interval> {
     let mut rates = Vec::with_capacity(options.resamples);
-    for_each_replicate(utterances.len(), options, |indices| {
+    for_each_resample(utterances.len(), options, |indices| {
         let (errors, words) = indices.iter().fold((0, 0), |(e, w), &i| {
             (e + utterances[i].errors, w + utterances[i].ref_words)
         });
         rates.extend(rate(errors, words));
     });
-    percentile_interval(rates, options.level)
+    percentile_interval(rates, options.confidence)
 }
 
 /// Paired bootstrap of two systems scored on the same utterances (same order, same reference
-/// words). `None` when the lists are empty or of different lengths, or no replicate has
+/// words). `None` when the lists are empty or of different lengths, or no resample has
 /// reference words.
 pub fn paired(
     system1: &[UtteranceErrors],
@@ -139,7 +139,7 @@ pub fn paired(
     }
     let mut differences = Vec::with_capacity(options.resamples);
     let mut better = 0usize;
-    for_each_replicate(system1.len(), options, |indices| {
+    for_each_resample(system1.len(), options, |indices| {
         let (mut errors1, mut errors2, mut words) = (0, 0, 0);
         for &i in indices {
             errors1 += system1[i].errors;
@@ -154,7 +154,7 @@ pub fn paired(
         }
     });
     let valid_resamples = differences.len();
-    let difference_interval = percentile_interval(differences, options.level)?;
+    let difference_interval = percentile_interval(differences, options.confidence)?;
     Some(PairedBootstrap {
         probability_system2_better: better as f64 / valid_resamples as f64,
         difference_interval,
@@ -195,19 +195,19 @@ mod tests {
     }
 
     #[test]
-    fn a_wider_level_gives_a_wider_interval() {
+    fn a_higher_confidence_gives_a_wider_interval() {
         let set = test_set(0);
         let narrow = interval(
             &set,
             &BootstrapOptions {
-                level: 0.5,
+                confidence: 0.5,
                 ..Default::default()
             },
         );
         let wide = interval(
             &set,
             &BootstrapOptions {
-                level: 0.99,
+                confidence: 0.99,
                 ..Default::default()
             },
         );

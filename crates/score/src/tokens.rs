@@ -1,10 +1,10 @@
-//! The scoring token rules (a DESIGN contract): NFC, lower case, every Unicode punctuation
+//! The scoring token rules (`docs/scoring.md`): NFC, lower case, every Unicode punctuation
 //! character except apostrophe and hyphen replaced by a space, split on white space.
 
 use unicode_normalization::UnicodeNormalization;
 use unicode_properties::{GeneralCategoryGroup, UnicodeGeneralCategory};
 
-/// Which parts of the token rules apply. `Default` is the contract: everything on.
+/// Which parts of the token rules apply. `Default` is the documented rule set: everything on.
 #[derive(Debug, Clone, Copy, PartialEq, Eq, serde::Serialize, serde::Deserialize)]
 pub struct TokenRules {
     /// Compose to Unicode normalization form C, so that `ï` typed as `i` + combining diaeresis

@@ -15,7 +15,7 @@ use crate::align::Match;
 use crate::tokens::{tokenize, TokenRules};
 use crate::ScoreError;
 
-/// The header a variants file must start with (a DESIGN contract).
+/// The header a variants file must start with (`docs/formats.md`, "Variant map").
 pub const VARIANTS_HEADER: [&str; 2] = ["variant", "normalized"];
 
 /// Which words are permissible spelling variants of which: every word maps to the set of its

@@ -7,12 +7,13 @@
 use std::collections::BTreeSet;
 use std::path::{Path, PathBuf};
 
+use isogloss_lm::Smoothing;
 use serde::Deserialize;
 
 use crate::SweepError;
 
 /// The placeholder in language-model text paths that stands for the transcript column, so that
-/// one recipe builds a dialectal LM for the dialectal column and a normalized one for the other.
+/// one LM build builds a dialectal LM for the dialectal column and a normalized one for the other.
 pub const COLUMN_PLACEHOLDER: &str = "{column}";
 
 /// The sweep file as written by the user (TOML).
@@ -40,9 +41,12 @@ pub struct SweepFile {
     /// Seed of the bootstrap.
     #[serde(default = "default_seed")]
     pub seed: u64,
-    /// Bootstrap replicates.
+    /// Bootstrap resamples.
     #[serde(default = "default_resamples")]
     pub resamples: usize,
+    /// Confidence level of the bootstrap intervals, in (0, 1).
+    #[serde(default = "default_confidence")]
+    pub confidence: f64,
     /// The cell every other cell is compared with.
     #[serde(default)]
     pub baseline: Option<BaselineFile>,
@@ -66,6 +70,9 @@ fn default_seed() -> u64 {
 fn default_resamples() -> usize {
     1000
 }
+fn default_confidence() -> f64 {
+    0.95
+}
 
 /// The baseline cell, by the names of its axis values; unnamed axes take their first value.
 #[derive(Debug, Clone, Default, Deserialize)]
@@ -81,31 +88,34 @@ pub struct BaselineFile {
     pub lexicon: Option<String>,
 }
 
-/// One value of the language-model axis: an ARPA file, or a recipe to build one.
+/// One value of the language-model axis: an ARPA file, or an LM build (how to build one).
 #[derive(Debug, Clone, Deserialize)]
 #[serde(deny_unknown_fields)]
 pub struct LmSpec {
     /// Short name shown in the results.
     pub name: String,
-    /// An existing ARPA file (`.arpa` or `.arpa.gz`); excludes the recipe fields.
+    /// An existing ARPA file (`.arpa` or `.arpa.gz`); excludes the build fields.
     #[serde(default)]
     pub file: Option<PathBuf>,
-    /// Recipe: n-gram order (1–6).
+    /// Build: n-gram order (1–6).
     #[serde(default)]
     pub order: Option<usize>,
-    /// Recipe: smoothing, `mkn`, `kn`, `wb` or `add`.
+    /// Build: smoothing, `modified-kneser-ney` (default), `kneser-ney`, `witten-bell` or `add-k`
+    /// (k = 1). The codes of the previous release (`mkn`, `kn`, `wb`, `add`) are read with a
+    /// deprecation warning.
     #[serde(default)]
     pub smoothing: Option<String>,
-    /// Recipe: in-domain training texts; `{column}` is replaced by the transcript column.
+    /// Build: in-domain training texts; `{column}` is replaced by the transcript column.
     #[serde(default)]
     pub text: Vec<PathBuf>,
-    /// Recipe: out-of-domain text, mixed in with a weight estimated on the dev transcripts
-    /// (or `ood_weight` when given).
-    #[serde(default)]
-    pub ood: Option<PathBuf>,
-    /// Recipe: a fixed out-of-domain mixture weight in (0, 1) instead of estimating it.
-    #[serde(default)]
-    pub ood_weight: Option<f64>,
+    /// Build: out-of-domain text, mixed in with a weight estimated on the dev transcripts
+    /// (or `out_of_domain_weight` when given). Previous spelling: `ood`.
+    #[serde(default, alias = "ood")]
+    pub out_of_domain: Option<PathBuf>,
+    /// Build: a fixed out-of-domain mixture weight in (0, 1) instead of estimating it. Previous
+    /// spelling: `ood_weight`.
+    #[serde(default, alias = "ood_weight")]
+    pub out_of_domain_weight: Option<f64>,
 }
 
 /// One value of the lexicon axis.
@@ -157,10 +167,10 @@ fn default_beam() -> Vec<usize> {
     vec![16]
 }
 fn default_lm_weight() -> Vec<f32> {
-    vec![0.8]
+    vec![isogloss_decoder::DEFAULT_LM_WEIGHT]
 }
 fn default_word_bonus() -> Vec<f32> {
-    vec![1.0]
+    vec![isogloss_decoder::DEFAULT_WORD_BONUS]
 }
 fn default_tune() -> String {
     "none".into()
@@ -187,8 +197,10 @@ pub struct Sweep {
     pub group_by: String,
     /// Bootstrap seed.
     pub seed: u64,
-    /// Bootstrap replicates.
+    /// Bootstrap resamples.
     pub resamples: usize,
+    /// Confidence level of the bootstrap intervals.
+    pub confidence: f64,
     /// Language models.
     pub lms: Vec<LmChoice>,
     /// Lexicons.
@@ -209,20 +221,20 @@ pub enum LmChoice {
         /// The ARPA file.
         path: PathBuf,
     },
-    /// A model built by the sweep.
-    Recipe {
+    /// A model built by the sweep (an LM build).
+    Build {
         /// Name in the results.
         name: String,
         /// N-gram order.
         order: usize,
-        /// Smoothing code (`mkn`, `kn`, `wb`, `add`).
-        smoothing: String,
+        /// Smoothing method.
+        smoothing: Smoothing,
         /// Training texts, `{column}` not yet replaced.
         text: Vec<PathBuf>,
         /// Out-of-domain text.
-        ood: Option<PathBuf>,
+        out_of_domain: Option<PathBuf>,
         /// Fixed out-of-domain weight.
-        ood_weight: Option<f64>,
+        out_of_domain_weight: Option<f64>,
     },
 }
 
@@ -230,7 +242,7 @@ impl LmChoice {
     /// The name shown in results.
     pub fn name(&self) -> &str {
         match self {
-            LmChoice::File { name, .. } | LmChoice::Recipe { name, .. } => name,
+            LmChoice::File { name, .. } | LmChoice::Build { name, .. } => name,
         }
     }
 }
@@ -302,6 +314,9 @@ impl Sweep {
             path: path.to_path_buf(),
             source,
         })?;
+        for notice in deprecated_spellings(&text) {
+            eprintln!("warning: {}: {notice}", path.display());
+        }
         let file: SweepFile = toml::from_str(&text).map_err(|error| {
             let line = error
                 .span()
@@ -395,30 +410,30 @@ impl Sweep {
         let mut lms = Vec::new();
         for spec in &file.lms {
             let needle = format!("\"{}\"", spec.name);
-            let recipe_fields = spec.order.is_some()
+            let build_fields = spec.order.is_some()
                 || spec.smoothing.is_some()
                 || !spec.text.is_empty()
-                || spec.ood.is_some();
-            match (&spec.file, recipe_fields) {
+                || spec.out_of_domain.is_some();
+            match (&spec.file, build_fields) {
                 (Some(written), false) => {
                     let p = resolve(written);
                     must_exist(&needle, "language model", &p)?;
                     lms.push(LmChoice::File { name: spec.name.clone(), path: p });
                 }
                 (Some(_), true) => {
-                    return Err(problem(&needle, format!("LM `{}` gives both `file` and recipe fields (order, smoothing, text, ood); give one or the other", spec.name)))
+                    return Err(problem(&needle, format!("LM `{}` gives both `file` and build fields (order, smoothing, text, out_of_domain); give one or the other", spec.name)))
                 }
                 (None, _) => {
-                    let order = spec.order.ok_or_else(|| problem(&needle, format!("LM `{}` needs either `file` or a recipe with `order`", spec.name)))?;
+                    let order = spec.order.ok_or_else(|| problem(&needle, format!("LM `{}` needs either `file` or a build with `order`", spec.name)))?;
                     if !(1..=6).contains(&order) {
                         return Err(problem(&needle, format!("LM `{}`: order must be 1 to 6, found {order}", spec.name)));
                     }
-                    let smoothing = spec.smoothing.clone().unwrap_or_else(|| "mkn".into());
-                    if !["mkn", "kn", "wb", "add"].contains(&smoothing.as_str()) {
-                        return Err(problem(&needle, format!("LM `{}`: smoothing must be mkn, kn, wb or add, found `{smoothing}`", spec.name)));
-                    }
+                    let written = spec.smoothing.as_deref().unwrap_or(Smoothing::NAMES[0]);
+                    let name = previous_smoothing_code(written).unwrap_or(written);
+                    // add-one is the usual pseudo-count of additive smoothing (common practice).
+                    let smoothing = Smoothing::from_name(name, 1.0).ok_or_else(|| problem(&needle, format!("LM `{}`: smoothing must be {}, found `{written}`", spec.name, Smoothing::NAMES.join(", "))))?;
                     if spec.text.is_empty() {
-                        return Err(problem(&needle, format!("LM `{}`: a recipe needs at least one `text`", spec.name)));
+                        return Err(problem(&needle, format!("LM `{}`: a build needs at least one `text`", spec.name)));
                     }
                     let text: Vec<PathBuf> = spec.text.iter().map(|t| resolve(t)).collect();
                     for t in &text {
@@ -427,19 +442,19 @@ impl Sweep {
                             must_exist(&needle, &format!("LM `{}` training text", spec.name), &concrete)?;
                         }
                     }
-                    let ood = spec.ood.as_deref().map(resolve);
-                    if let Some(ood) = &ood {
-                        must_exist(&needle, &format!("LM `{}` out-of-domain text", spec.name), ood)?;
-                        if spec.ood_weight.is_none() && dev.is_none() {
-                            return Err(problem(&needle, format!("LM `{}` mixes in out-of-domain text: give `ood_weight` or a `dev` manifest to estimate it on", spec.name)));
+                    let out_of_domain = spec.out_of_domain.as_deref().map(resolve);
+                    if let Some(path) = &out_of_domain {
+                        must_exist(&needle, &format!("LM `{}` out-of-domain text", spec.name), path)?;
+                        if spec.out_of_domain_weight.is_none() && dev.is_none() {
+                            return Err(problem(&needle, format!("LM `{}` mixes in out-of-domain text: give `out_of_domain_weight` or a `dev` manifest to estimate it on", spec.name)));
                         }
                     }
-                    if let Some(weight) = spec.ood_weight {
+                    if let Some(weight) = spec.out_of_domain_weight {
                         if !(weight > 0.0 && weight < 1.0) {
-                            return Err(problem(&needle, format!("LM `{}`: ood_weight must lie strictly between 0 and 1, found {weight}", spec.name)));
+                            return Err(problem(&needle, format!("LM `{}`: out_of_domain_weight must lie strictly between 0 and 1, found {weight}", spec.name)));
                         }
                     }
-                    lms.push(LmChoice::Recipe { name: spec.name.clone(), order, smoothing, text, ood, ood_weight: spec.ood_weight });
+                    lms.push(LmChoice::Build { name: spec.name.clone(), order, smoothing, text, out_of_domain, out_of_domain_weight: spec.out_of_domain_weight });
                 }
             }
         }
@@ -524,6 +539,15 @@ impl Sweep {
         if file.resamples == 0 {
             return Err(problem("resamples", "resamples must be at least 1".into()));
         }
+        if !(file.confidence > 0.0 && file.confidence < 1.0) {
+            return Err(problem(
+                "confidence",
+                format!(
+                    "confidence must lie strictly between 0 and 1 (e.g. 0.95), found {}",
+                    file.confidence
+                ),
+            ));
+        }
 
         let baseline_file = file.baseline.clone().unwrap_or_default();
         let find = |wanted: &Option<String>,
@@ -564,6 +588,7 @@ impl Sweep {
             group_by: file.group_by,
             seed: file.seed,
             resamples: file.resamples,
+            confidence: file.confidence,
             lms,
             lexicons,
             decoder: DecoderGrid {
@@ -641,6 +666,52 @@ pub struct Cell {
     pub word_bonus: Option<f32>,
 }
 
+/// The smoothing codes of the previous release and the names that replace them.
+const PREVIOUS_SMOOTHING_CODES: [(&str, &str); 4] = [
+    ("mkn", "modified-kneser-ney"),
+    ("kn", "kneser-ney"),
+    ("wb", "witten-bell"),
+    ("add", "add-k"),
+];
+
+fn previous_smoothing_code(code: &str) -> Option<&'static str> {
+    PREVIOUS_SMOOTHING_CODES
+        .iter()
+        .find(|(old, _)| *old == code)
+        .map(|(_, new)| *new)
+}
+
+/// One deprecation notice per spelling of the previous release in a sweep file (`ood`,
+/// `ood_weight`, smoothing codes), naming the LM; callers print them as warnings.
+pub fn deprecated_spellings(text: &str) -> Vec<String> {
+    let Ok(table) = text.parse::<toml::Table>() else {
+        return Vec::new();
+    };
+    let lms = table.get("lm").and_then(toml::Value::as_array);
+    let mut notices = Vec::new();
+    for lm in lms.into_iter().flatten().filter_map(toml::Value::as_table) {
+        let name = lm.get("name").and_then(toml::Value::as_str).unwrap_or("?");
+        for (old, new) in [
+            ("ood", "out_of_domain"),
+            ("ood_weight", "out_of_domain_weight"),
+        ] {
+            if lm.contains_key(old) {
+                notices.push(format!(
+                    "LM `{name}`: the key `{old}` is deprecated; write `{new}`"
+                ));
+            }
+        }
+        let code = lm.get("smoothing").and_then(toml::Value::as_str);
+        if let Some(new) = code.and_then(previous_smoothing_code) {
+            notices.push(format!(
+                "LM `{name}`: smoothing `{}` is deprecated; write `{new}`",
+                code.unwrap_or_default()
+            ));
+        }
+    }
+    notices
+}
+
 /// A model's short name: its directory's last component.
 pub fn model_name(dir: &Path) -> String {
     dir.file_name()
@@ -701,14 +772,14 @@ baseline = { lm = "three", lexicon = "letters" }
 [[lm]]
 name = "two"
 order = 2
-smoothing = "wb"
+smoothing = "witten-bell"
 text = ["train.{column}.txt"]
 
 [[lm]]
 name = "three"
 order = 3
 text = ["train.{column}.txt"]
-ood = "ood.txt"
+out_of_domain = "ood.txt"
 
 [[lexicon]]
 name = "rules"
@@ -736,8 +807,8 @@ lm_weight = [0.5, 1.0, 1.5]
         assert_eq!(
             with_column(
                 match &sweep.lms[0] {
-                    LmChoice::Recipe { text, .. } => &text[0],
-                    LmChoice::File { .. } => unreachable!("the first LM is a recipe"),
+                    LmChoice::Build { text, .. } => &text[0],
+                    LmChoice::File { .. } => unreachable!("the first LM is a build"),
                 },
                 "normalized"
             ),
@@ -770,8 +841,10 @@ lm_weight = [0.5, 1.0, 1.5]
             "{message}"
         );
         assert!(message.contains("line 23"), "{message}"); // the entry's `name` line
-        let message =
-            error_of(&GOOD.replace("train.{column}.txt\"]\nood", "train.{column}.text\"]\nood"));
+        let message = error_of(&GOOD.replace(
+            "train.{column}.txt\"]\nout_of_domain",
+            "train.{column}.text\"]\nout_of_domain",
+        ));
         assert!(message.contains("train.dialectal.text"), "{message}");
     }
 
@@ -792,10 +865,10 @@ lm_weight = [0.5, 1.0, 1.5]
     fn bad_values_are_explained() {
         assert!(error_of(&GOOD.replace("order = 2", "order = 7"))
             .contains("order must be 1 to 6, found 7"));
-        assert!(
-            error_of(&GOOD.replace("smoothing = \"wb\"", "smoothing = \"good-turing\""))
-                .contains("found `good-turing`")
-        );
+        assert!(error_of(
+            &GOOD.replace("smoothing = \"witten-bell\"", "smoothing = \"good-turing\"")
+        )
+        .contains("found `good-turing`"));
         assert!(error_of(&GOOD.replace("lm = \"three\"", "lm = \"four\""))
             .contains("baseline names LM `four`"));
         assert!(
@@ -812,9 +885,49 @@ lm_weight = [0.5, 1.0, 1.5]
     #[test]
     fn out_of_domain_mixing_needs_dev_or_a_weight() {
         let no_dev = GOOD.replace("dev = \"dev.tsv\"\n", "");
-        assert!(error_of(&no_dev).contains("give `ood_weight` or a `dev` manifest"));
-        let (_dir, sweep) =
-            setup(&no_dev.replace("ood = \"ood.txt\"", "ood = \"ood.txt\"\nood_weight = 0.2"));
+        assert!(error_of(&no_dev).contains("give `out_of_domain_weight` or a `dev` manifest"));
+        let (_dir, sweep) = setup(&no_dev.replace(
+            "out_of_domain = \"ood.txt\"",
+            "out_of_domain = \"ood.txt\"\nout_of_domain_weight = 0.2",
+        ));
         assert!(sweep.is_ok());
+    }
+
+    #[test]
+    fn spellings_of_the_previous_release_are_read_and_named_as_deprecated() {
+        let old = GOOD
+            .replace("smoothing = \"witten-bell\"", "smoothing = \"wb\"")
+            .replace(
+                "out_of_domain = \"ood.txt\"",
+                "ood = \"ood.txt\"\nood_weight = 0.3",
+            );
+        let (_dir, sweep) = setup(&old);
+        let sweep = sweep.unwrap();
+        assert!(matches!(
+            &sweep.lms[0],
+            LmChoice::Build {
+                smoothing: Smoothing::WittenBell,
+                ..
+            }
+        ));
+        assert!(matches!(
+            &sweep.lms[1],
+            LmChoice::Build { smoothing: Smoothing::ModifiedKneserNey, out_of_domain: Some(_), out_of_domain_weight: Some(w), .. } if *w == 0.3
+        ));
+        let notices = deprecated_spellings(&old);
+        assert_eq!(notices.len(), 3, "{notices:?}");
+        assert!(notices[0].contains("LM `two`") && notices[0].contains("`wb`"));
+        assert!(notices[1].contains("`ood`") && notices[2].contains("`ood_weight`"));
+        assert!(deprecated_spellings(GOOD).is_empty());
+    }
+
+    #[test]
+    fn the_confidence_level_is_checked() {
+        let (_dir, sweep) = setup(&GOOD.replace("out_dir", "confidence = 0.9\nout_dir"));
+        assert_eq!(sweep.unwrap().confidence, 0.9);
+        assert!(
+            error_of(&GOOD.replace("out_dir", "confidence = 95.0\nout_dir"))
+                .contains("confidence must lie strictly between 0 and 1")
+        );
     }
 }

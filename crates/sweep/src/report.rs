@@ -27,11 +27,17 @@ fn versus(cell: &CellResult) -> String {
     match &cell.versus_baseline {
         None => "baseline".to_string(),
         Some(d) => format!(
-            "{:+.1} pts, P(better) {:.2}",
+            "{:+.1} points, P(better) {:.2}",
             100.0 * d.difference,
             d.bootstrap.probability_system2_better
         ),
     }
+}
+
+/// A confidence level as a percentage without needless decimals (0.95 → "95", 0.975 → "97.5").
+fn level_percent(level: f64) -> String {
+    let text = format!("{:.1}", 100.0 * level);
+    text.trim_end_matches(".0").to_string()
 }
 
 /// The results as a Markdown document: one row per cell, then per-group figures.
@@ -47,7 +53,7 @@ pub fn markdown(results: &SweepResults) -> String {
         results.cells_decoded,
         results.cells.len()
     );
-    let _ = writeln!(text, "WER and flexible WER in %, 95% bootstrap interval in brackets; the last column compares plain WER with the baseline cell (paired bootstrap: the probability that the cell is better).\n");
+    let _ = writeln!(text, "WER and flexible WER in %, {}% bootstrap interval in brackets; the last column compares plain WER with the baseline cell (paired bootstrap: the probability that the cell is better).\n", level_percent(results.confidence));
     let _ = writeln!(text, "| model | column | LM | lexicon | beam | LM weight | word bonus | perplexity | OOV % | coverage % | WER | flexible WER | search RTF | against baseline |");
     let _ = writeln!(
         text,

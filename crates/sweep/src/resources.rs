@@ -6,8 +6,8 @@ use std::path::{Path, PathBuf};
 use isogloss_lexicon::rules::RuleSet;
 use isogloss_lexicon::Lexicon;
 use isogloss_lm::{
-    estimate, estimate_weights, merge, ArpaModel, NgramCounts, Smoothing, SENTENCE_END,
-    SENTENCE_START, UNKNOWN_WORD,
+    estimate, estimate_weights, merge, ArpaModel, NgramCounts, SENTENCE_END, SENTENCE_START,
+    UNKNOWN_WORD,
 };
 use sha2::{Digest, Sha256};
 
@@ -56,20 +56,10 @@ pub struct BuiltLm {
     pub path: PathBuf,
     /// The model.
     pub model: ArpaModel,
-    /// The out-of-domain mixture weight, when the recipe mixes.
-    pub ood_weight: Option<f64>,
+    /// The out-of-domain mixture weight, when the LM build mixes.
+    pub out_of_domain_weight: Option<f64>,
     /// Estimation warnings to show the user.
     pub warnings: Vec<String>,
-}
-
-fn smoothing_of(code: &str) -> Smoothing {
-    match code {
-        "kn" => Smoothing::KneserNey,
-        "wb" => Smoothing::WittenBell,
-        // add-one is the usual default of additive smoothing when no k is given (common practice)
-        "add" => Smoothing::Additive { k: 1.0 },
-        _ => Smoothing::ModifiedKneserNey,
-    }
 }
 
 fn lm_error(error: isogloss_lm::LmError) -> SweepError {
@@ -85,34 +75,43 @@ pub fn build_lm(
     dev_sentences: Option<&[Vec<String>]>,
     cache: &Path,
 ) -> Result<BuiltLm, SweepError> {
-    let (name, order, smoothing, text, ood, ood_weight) = match choice {
+    let (name, order, smoothing, text, out_of_domain, out_of_domain_weight) = match choice {
         LmChoice::File { path, .. } => {
             let model = ArpaModel::read(path).map_err(lm_error)?;
             return Ok(BuiltLm {
                 path: path.clone(),
                 model,
-                ood_weight: None,
+                out_of_domain_weight: None,
                 warnings: Vec::new(),
             });
         }
-        LmChoice::Recipe {
+        LmChoice::Build {
             name,
             order,
             smoothing,
             text,
-            ood,
-            ood_weight,
-        } => (name, *order, smoothing, text, ood, ood_weight),
+            out_of_domain,
+            out_of_domain_weight,
+        } => (
+            name,
+            *order,
+            *smoothing,
+            text,
+            out_of_domain,
+            out_of_domain_weight,
+        ),
     };
     let texts: Vec<PathBuf> = text.iter().map(|t| with_column(t, column)).collect();
     let mut key = ContentKey::new();
-    key.text(&format!("lm v1 {order} {smoothing} {ood_weight:?}"));
+    key.text(&format!(
+        "lm v1 {order} {smoothing} {out_of_domain_weight:?}"
+    ));
     for t in &texts {
         key.file(t)?;
     }
-    if let Some(ood) = ood {
-        key.file(ood)?;
-        if ood_weight.is_none() {
+    if let Some(out_of_domain) = out_of_domain {
+        key.file(out_of_domain)?;
+        if out_of_domain_weight.is_none() {
             for sentence in dev_sentences.unwrap_or_default() {
                 key.text(&sentence.join(" "));
             }
@@ -122,13 +121,13 @@ pub fn build_lm(
     let weight_path = path.with_extension("weight");
     if path.exists() {
         let model = ArpaModel::read(&path).map_err(lm_error)?;
-        let ood_weight = std::fs::read_to_string(&weight_path)
+        let out_of_domain_weight = std::fs::read_to_string(&weight_path)
             .ok()
             .and_then(|w| w.trim().parse().ok());
         return Ok(BuiltLm {
             path,
             model,
-            ood_weight,
+            out_of_domain_weight,
             warnings: Vec::new(),
         });
     }
@@ -136,21 +135,20 @@ pub fn build_lm(
         path: cache.to_path_buf(),
         source,
     })?;
-    let smoothing = smoothing_of(smoothing);
     let options = isogloss_lm::CountOptions::default();
     let counts = NgramCounts::from_text_files(&texts, order, &options).map_err(lm_error)?;
     let in_domain = estimate(&counts, smoothing).map_err(lm_error)?;
     let mut warnings = in_domain.warnings;
-    let (model, weight) = match ood {
+    let (model, weight) = match out_of_domain {
         None => (in_domain.model, None),
-        Some(ood) => {
-            let counts = NgramCounts::from_text_files(std::slice::from_ref(ood), order, &options)
+        Some(text) => {
+            let counts = NgramCounts::from_text_files(std::slice::from_ref(text), order, &options)
                 .map_err(lm_error)?;
-            let out_of_domain = estimate(&counts, smoothing).map_err(lm_error)?;
-            warnings.extend(out_of_domain.warnings);
-            let models = [in_domain.model, out_of_domain.model];
+            let out_of_domain_lm = estimate(&counts, smoothing).map_err(lm_error)?;
+            warnings.extend(out_of_domain_lm.warnings);
+            let models = [in_domain.model, out_of_domain_lm.model];
             let tuning: Vec<Vec<String>> = dev_sentences.map(<[_]>::to_vec).unwrap_or_default();
-            let weights = match ood_weight {
+            let weights = match out_of_domain_weight {
                 Some(w) => vec![1.0 - w, *w],
                 None => {
                     estimate_weights(&models, &tuning)
@@ -178,7 +176,7 @@ pub fn build_lm(
     Ok(BuiltLm {
         path,
         model,
-        ood_weight: weight,
+        out_of_domain_weight: weight,
         warnings,
     })
 }
@@ -248,6 +246,7 @@ pub fn build_lexicon(choice: &LexiconChoice, words: &[String]) -> Result<BuiltLe
 #[cfg(test)]
 mod tests {
     use super::*;
+    use isogloss_lm::Smoothing;
 
     fn demo(file: &str) -> PathBuf {
         Path::new(env!("CARGO_MANIFEST_DIR"))
@@ -256,28 +255,28 @@ mod tests {
     }
 
     #[test]
-    fn a_recipe_is_built_once_then_read_from_the_cache() {
+    fn an_lm_build_is_built_once_then_read_from_the_cache() {
         let cache = tempfile::tempdir().unwrap();
-        let recipe = LmChoice::Recipe {
+        let build = LmChoice::Build {
             name: "mixed".into(),
             order: 2,
-            smoothing: "mkn".into(),
+            smoothing: Smoothing::ModifiedKneserNey,
             text: vec![demo("train.{column}.txt")],
-            ood: Some(demo("ood.txt")),
-            ood_weight: None,
+            out_of_domain: Some(demo("ood.txt")),
+            out_of_domain_weight: None,
         };
         let dev = isogloss_lm::read_sentences(&demo("dev.normalized.txt")).unwrap();
-        let first = build_lm(&recipe, "normalized", Some(&dev), cache.path()).unwrap();
-        let weight = first.ood_weight.unwrap();
+        let first = build_lm(&build, "normalized", Some(&dev), cache.path()).unwrap();
+        let weight = first.out_of_domain_weight.unwrap();
         // EM keeps both components when each explains some dev words the other explains worse.
         assert!(weight > 0.0 && weight < 1.0, "{weight}");
-        let second = build_lm(&recipe, "normalized", Some(&dev), cache.path()).unwrap();
+        let second = build_lm(&build, "normalized", Some(&dev), cache.path()).unwrap();
         assert_eq!(first.path, second.path);
-        assert_eq!(second.ood_weight, Some(weight));
+        assert_eq!(second.out_of_domain_weight, Some(weight));
         assert_eq!(first.model.ngram_counts(), second.model.ngram_counts());
         // The other writing is another model, in another cache file.
         let dev = isogloss_lm::read_sentences(&demo("dev.dialectal.txt")).unwrap();
-        let dialectal = build_lm(&recipe, "dialectal", Some(&dev), cache.path()).unwrap();
+        let dialectal = build_lm(&build, "dialectal", Some(&dev), cache.path()).unwrap();
         assert_ne!(dialectal.path, first.path);
         assert!(dialectal.model.word_index("nowt").is_some());
         assert!(first.model.word_index("nowt").is_none());

@@ -95,7 +95,7 @@ impl CellResult {
     /// A one-line label of the cell's axis values.
     pub fn label(&self) -> String {
         format!(
-            "{} {} lm={} lex={} beam={} w={} b={}",
+            "{} {} lm={} lexicon={} beam={} lm-weight={} word-bonus={}",
             self.model,
             self.column,
             self.lm,
@@ -124,6 +124,8 @@ pub struct SweepResults {
     pub audio_seconds: f64,
     /// Combinations left out, with the reason.
     pub skipped: Vec<String>,
+    /// Confidence level of the bootstrap intervals.
+    pub confidence: f64,
 }
 
 /// A lexicon ready for one (column, LM, lexicon) combination: its entries, its content key,
@@ -232,6 +234,7 @@ pub fn run(
         cells_decoded: 0,
         audio_seconds: audio_seconds(&test),
         skipped: Vec::new(),
+        confidence: sweep.confidence,
     };
 
     // 1. One acoustic pass per model (and dev set when tuning), through the posterior cache.
@@ -524,6 +527,9 @@ pub fn run(
     Ok(results)
 }
 
+/// What tuning chose: LM weight, word bonus, and every `(weight, bonus, dev WER)` tried in order.
+pub type TuningOutcome = (f32, f32, Vec<(f32, f32, f64)>);
+
 /// Chooses LM weight and word bonus from the lists by the dev WER `dev_wer(w, b)`, returning the
 /// choice and every pair tried with its dev WER, in the order tried. Ties keep the pair found
 /// first. `Grid` tries every pair; `Coordinate` starts from the middle of both lists and
@@ -534,7 +540,7 @@ pub fn tune(
     weights: &[f32],
     bonuses: &[f32],
     dev_wer: &mut dyn FnMut(f32, f32) -> Result<f64, SweepError>,
-) -> Result<(f32, f32, Vec<(f32, f32, f64)>), SweepError> {
+) -> Result<TuningOutcome, SweepError> {
     if weights.is_empty() || bonuses.is_empty() {
         return Err(SweepError::Build(
             "tuning needs at least one LM weight and one word bonus".into(),
@@ -606,7 +612,7 @@ fn score_cells(sweep: &Sweep, results: &mut SweepResults) -> Result<(), SweepErr
         bootstrap: BootstrapOptions {
             resamples: sweep.resamples,
             seed: sweep.seed,
-            ..BootstrapOptions::default()
+            confidence: sweep.confidence,
         },
         ..ScoreOptions::default()
     };

@@ -22,8 +22,8 @@ enum CorpusCommand {
     /// Validate manifests: columns, ids, audio, times, transcripts; report hours, speakers and
     /// vocabulary per dialect and speakers shared between manifests. Exit 1 on errors.
     Check(CheckArgs),
-    /// Write speaker-disjoint, dialect-stratified train/dev/test manifests (fractions of
-    /// audio duration).
+    /// Write speaker-disjoint, dialect-stratified train/dev/test manifests (shares of audio
+    /// duration).
     Split(SplitArgs),
 }
 
@@ -49,15 +49,15 @@ struct SplitArgs {
     manifest: PathBuf,
     /// Folder for train.tsv, dev.tsv and test.tsv.
     #[arg(long, value_name = "DIR")]
-    out_dir: PathBuf,
+    out: PathBuf,
     /// Share of each dialect's audio duration for the development set.
-    #[arg(long, default_value_t = 0.1)]
-    dev: f64,
+    #[arg(long, value_name = "SHARE", default_value_t = 0.1)]
+    dev_share: f64,
     /// Share of each dialect's audio duration for the test set.
-    #[arg(long, default_value_t = 0.1)]
-    test: f64,
+    #[arg(long, value_name = "SHARE", default_value_t = 0.1)]
+    test_share: f64,
     /// Seed of the speaker shuffle (same seed, same split).
-    #[arg(long, default_value_t = 0)]
+    #[arg(long, default_value_t = 1)]
     seed: u64,
     /// Print the part figures as JSON on stdout.
     #[arg(long)]
@@ -184,8 +184,8 @@ fn print_report(report: &CheckReport) {
 
 fn split(args: SplitArgs) -> anyhow::Result<Outcome> {
     let config = SplitConfig {
-        dev: args.dev,
-        test: args.test,
+        dev: args.dev_share,
+        test: args.test_share,
         seed: args.seed,
     };
     config.validate()?;
@@ -197,7 +197,7 @@ fn split(args: SplitArgs) -> anyhow::Result<Outcome> {
     })?;
     let durations = utterance_durations(&manifest)?;
     let split = split_by_speaker(&manifest, &durations, &config)?;
-    let written = split.write(&manifest, &args.out_dir)?;
+    let written = split.write(&manifest, &args.out)?;
     let summary = split.summarize(&manifest, &durations);
     if args.json {
         println!("{}", serde_json::to_string_pretty(&summary)?);
@@ -220,10 +220,13 @@ fn split(args: SplitArgs) -> anyhow::Result<Outcome> {
             path.display()
         );
     }
-    for (part, asked) in [(&summary[1], args.dev), (&summary[2], args.test)] {
+    for (part, asked) in [
+        (&summary[1], args.dev_share),
+        (&summary[2], args.test_share),
+    ] {
         if part.utterances == 0 && asked > 0.0 {
             eprintln!(
-                "warning: the {} set is empty: too few speakers per dialect for the fractions asked",
+                "warning: the {} set is empty: too few speakers per dialect for the shares asked",
                 part.part
             );
         }

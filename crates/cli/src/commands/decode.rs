@@ -16,6 +16,8 @@ use std::time::Instant;
 
 use anyhow::{bail, Context};
 use isogloss_corpus::tsv::{write_atomically, Table};
+#[cfg(test)]
+use isogloss_decoder::output::TranscriptDocument;
 use isogloss_decoder::output::{write_items, ItemTranscript, OutputFormat, TimedSegment};
 use isogloss_decoder::pipeline::{transcribe_stream, StreamSettings};
 use isogloss_decoder::segment::VadConfig;
@@ -56,18 +58,20 @@ pub struct TranscribeArgs {
     /// Hypotheses kept per frame.
     #[arg(long, default_value_t = 16)]
     pub beam: usize,
-    /// Weight of the LM's natural-log probabilities.
-    #[arg(long, default_value_t = 0.5)]
+    /// Weight of the LM's natural-log probabilities (default: the pair tuned on the demo's dev
+    /// split; tune your own with `isogloss sweep`).
+    #[arg(long, default_value_t = isogloss_decoder::DEFAULT_LM_WEIGHT)]
     pub lm_weight: f32,
-    /// Score added per word.
-    #[arg(long, default_value_t = 1.0)]
+    /// Score added per word (default tuned together with --lm-weight).
+    #[arg(long, default_value_t = isogloss_decoder::DEFAULT_WORD_BONUS)]
     pub word_bonus: f32,
-    /// Only units within this many nats of a frame's best unit extend hypotheses.
+    /// Only units whose log posterior is within this many nats of the frame's best unit extend
+    /// hypotheses.
     #[arg(long, default_value_t = 8.0)]
-    pub unit_prune: f32,
+    pub unit_margin: f32,
     /// Frames whose blank probability reaches this are not searched for new units (1 = never skip).
     #[arg(long, default_value_t = 0.999)]
-    pub blank_skip: f32,
+    pub skip_blank_above: f32,
     /// Do not rank partial words by their best LM unigram below them in the lexicon.
     #[arg(long)]
     pub no_lookahead: bool,
@@ -91,22 +95,22 @@ impl TranscribeArgs {
             beam: self.beam.max(1),
             lm_weight: self.lm_weight,
             word_bonus: self.word_bonus,
-            unit_prune: Some(self.unit_prune),
-            blank_skip: (self.blank_skip < 1.0).then_some(self.blank_skip),
+            unit_margin: Some(self.unit_margin),
+            skip_blank_above: (self.skip_blank_above < 1.0).then_some(self.skip_blank_above),
             lookahead: !self.no_lookahead,
             ..SearchOptions::default()
         }
     }
 
     fn check(&self) -> anyhow::Result<()> {
-        if !(self.lm_weight.is_finite() && self.word_bonus.is_finite() && self.unit_prune > 0.0) {
-            bail!("--lm-weight and --word-bonus must be numbers and --unit-prune positive");
+        if !(self.lm_weight.is_finite() && self.word_bonus.is_finite() && self.unit_margin > 0.0) {
+            bail!("--lm-weight and --word-bonus must be numbers and --unit-margin positive");
         }
-        if !(0.0..=1.0).contains(&self.blank_skip)
+        if !(0.0..=1.0).contains(&self.skip_blank_above)
             || self.max_segment.is_nan()
             || self.max_segment < 1.0
         {
-            bail!("--blank-skip must be in [0, 1] and --max-segment at least 1 second");
+            bail!("--skip-blank-above must be in [0, 1] and --max-segment at least 1 second");
         }
         Ok(())
     }
@@ -784,7 +788,7 @@ mod tests {
 
     impl Recognizer for FakeRecognizer {
         fn units(&self) -> Vec<String> {
-            ["<blk>", "a", "b", "<wb>"]
+            ["<ctc-blank>", "a", "b", "<wb>"]
                 .iter()
                 .map(|s| s.to_string())
                 .collect()
@@ -864,8 +868,8 @@ mod tests {
             beam: 8,
             lm_weight: 0.5,
             word_bonus: 1.0,
-            unit_prune: 8.0,
-            blank_skip: 0.999,
+            unit_margin: 8.0,
+            skip_blank_above: 0.999,
             no_lookahead: false,
             greedy: false,
             max_segment: 30.0,
@@ -888,8 +892,10 @@ mod tests {
         );
         let outcome = transcribe_with(&a, &recognizer, &FakeAudio).unwrap();
         assert!(matches!(outcome, Outcome::SomeItemsFailed));
-        let items: Vec<ItemTranscript> =
-            serde_json::from_str(&fs::read_to_string(&a.out).unwrap()).unwrap();
+        let items =
+            serde_json::from_str::<TranscriptDocument>(&fs::read_to_string(&a.out).unwrap())
+                .unwrap()
+                .items;
         let ids: Vec<&str> = items.iter().map(|i| i.id.as_str()).collect();
         assert_eq!(ids, vec!["burst1", "burst2"]);
         for item in &items {

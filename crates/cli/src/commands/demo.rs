@@ -24,6 +24,7 @@ use isogloss_corpus::check::{check_manifests, AudioCheck};
 use isogloss_corpus::tsv::write_atomically;
 use isogloss_corpus::Manifest;
 use isogloss_decoder::{Decoder, GreedyDecoder, SearchGraph};
+use isogloss_lm::Smoothing;
 use isogloss_score::{
     report, score_system, BootstrapOptions, Hypotheses, Reference, ScoreOptions, Summary,
     VariantMap,
@@ -37,20 +38,20 @@ use isogloss_sweep::{run as sweep_run, LexiconChoice, LexiconKind, LmChoice, Swe
 use super::decode::{FormatArg, TranscribeArgs};
 use crate::Outcome;
 
-/// Decoder settings of the demo: LM weight and word bonus chosen on the demo dev split for the
-/// shipped model with the in-domain LM, by `isogloss sweep` with `tune = "coordinate"` over
-/// weights 0.4–1.5 and bonuses 0–3 (the README's "shipped demo model" section).
+/// Decoder settings of the demo: the decoder's defaults, which were tuned on this demo's dev
+/// split (see [`isogloss_decoder::DEFAULT_LM_WEIGHT`]).
 const BEAM: usize = 16;
-const LM_WEIGHT: f32 = 1.2;
-const WORD_BONUS: f32 = 0.5;
-/// Bootstrap replicates and seed of the intervals.
+const LM_WEIGHT: f32 = isogloss_decoder::DEFAULT_LM_WEIGHT;
+const WORD_BONUS: f32 = isogloss_decoder::DEFAULT_WORD_BONUS;
+/// Bootstrap resamples and seed of the intervals.
 const RESAMPLES: usize = 1000;
 const SEED: u64 = 1;
 
 /// Run the whole job on the shipped demo data and model: check, build LMs, transcribe, score.
 #[derive(Args)]
 pub struct DemoArgs {
-    /// The demo corpus folder (train/dev/test manifests, their texts, ood.txt, interviews).
+    /// The demo corpus folder (train/dev/test manifests, their texts, the out-of-domain text
+    /// ood.txt, interviews).
     #[arg(long, default_value = "tests/data/demo")]
     data: PathBuf,
     /// The model directory to transcribe with (ignored with --train).
@@ -62,7 +63,7 @@ pub struct DemoArgs {
     /// Report folder (created; earlier results in it are reused where nothing changed).
     #[arg(long, default_value = "demo-report")]
     out: PathBuf,
-    /// Retrain a small model from scratch first (about 6 minutes on two cores) and use it.
+    /// Retrain a small model from scratch first (about 7.5 minutes on two cores) and use it.
     #[arg(long)]
     train: bool,
     /// Architecture and training settings for --train.
@@ -84,7 +85,7 @@ struct System {
     perplexity: Option<f64>,
     oov_rate: Option<f64>,
     /// Out-of-domain mixture weight of the LM, when it mixes.
-    ood_weight: Option<f64>,
+    out_of_domain_weight: Option<f64>,
     versus_greedy: Option<f64>,
 }
 
@@ -189,21 +190,21 @@ pub fn run(args: DemoArgs) -> anyhow::Result<Outcome> {
         "building the language models and transcribing the test split",
     );
     let lms = vec![
-        LmChoice::Recipe {
+        LmChoice::Build {
             name: "in-domain 3-gram".into(),
             order: 3,
-            smoothing: "mkn".into(),
+            smoothing: Smoothing::ModifiedKneserNey,
             text: vec![data.join("train.{column}.txt")],
-            ood: None,
-            ood_weight: None,
+            out_of_domain: None,
+            out_of_domain_weight: None,
         },
-        LmChoice::Recipe {
+        LmChoice::Build {
             name: "in-domain + out-of-domain 3-gram".into(),
             order: 3,
-            smoothing: "mkn".into(),
+            smoothing: Smoothing::ModifiedKneserNey,
             text: vec![data.join("train.{column}.txt")],
-            ood: Some(data.join("ood.txt")),
-            ood_weight: None,
+            out_of_domain: Some(data.join("ood.txt")),
+            out_of_domain_weight: None,
         },
     ];
     let lexicon_choice = LexiconChoice {
@@ -221,6 +222,7 @@ pub fn run(args: DemoArgs) -> anyhow::Result<Outcome> {
         group_by: "dialect".into(),
         seed: SEED,
         resamples: RESAMPLES,
+        confidence: BootstrapOptions::default().confidence,
         lms: lms.clone(),
         lexicons: vec![lexicon_choice.clone()],
         decoder: DecoderGrid {
@@ -262,7 +264,7 @@ pub fn run(args: DemoArgs) -> anyhow::Result<Outcome> {
     let lm_dir = out.join("lm");
     std::fs::create_dir_all(&lm_dir).with_context(|| format!("creating {}", lm_dir.display()))?;
     let mut lm_files = Vec::new();
-    let mut ood_weights = Vec::new();
+    let mut out_of_domain_weights = Vec::new();
     for (choice, file) in lms.iter().zip(["indomain-3gram.arpa", "mixed-3gram.arpa"]) {
         let built = build_lm(
             choice,
@@ -273,10 +275,10 @@ pub fn run(args: DemoArgs) -> anyhow::Result<Outcome> {
         let target = lm_dir.join(file);
         std::fs::copy(&built.path, &target)
             .with_context(|| format!("copying {} to {}", built.path.display(), target.display()))?;
-        if let Some(weight) = built.ood_weight {
+        if let Some(weight) = built.out_of_domain_weight {
             eprintln!("  {}: out-of-domain weight {weight:.3} (EM on dev)", file);
         }
-        ood_weights.push(built.ood_weight);
+        out_of_domain_weights.push(built.out_of_domain_weight);
         lm_files.push((target, built.model));
     }
     let lexicon = build_lexicon(&lexicon_choice, &lm_words(&lm_files[0].1))?;
@@ -332,7 +334,7 @@ pub fn run(args: DemoArgs) -> anyhow::Result<Outcome> {
             .collect(),
         perplexity: None,
         oov_rate: None,
-        ood_weight: None,
+        out_of_domain_weight: None,
         versus_greedy: None,
     }];
     let greedy_wer = systems[0].overall.wer;
@@ -343,7 +345,7 @@ pub fn run(args: DemoArgs) -> anyhow::Result<Outcome> {
             groups: cell.groups.clone(),
             perplexity: Some(cell.perplexity),
             oov_rate: Some(cell.oov_rate),
-            ood_weight: ood_weights.get(index).copied().flatten(),
+            out_of_domain_weight: out_of_domain_weights.get(index).copied().flatten(),
             versus_greedy: cell.overall.wer.zip(greedy_wer).map(|(a, b)| a - b),
         });
     }
@@ -383,8 +385,8 @@ pub fn run(args: DemoArgs) -> anyhow::Result<Outcome> {
         beam: BEAM,
         lm_weight: LM_WEIGHT,
         word_bonus: WORD_BONUS,
-        unit_prune: 8.0,
-        blank_skip: 0.999,
+        unit_margin: 8.0,
+        skip_blank_above: 0.999,
         no_lookahead: false,
         greedy: false,
         max_segment: 30.0,
@@ -557,7 +559,7 @@ fn render_markdown(systems: &[System], chosen: &System, audio_seconds: &f64, vtt
             "| {} | {} | {} | {} | {} | {} | {} |",
             system.name,
             system
-                .ood_weight
+                .out_of_domain_weight
                 .map_or_else(|| "–".into(), |w| format!("{w:.3}")),
             system
                 .perplexity
@@ -572,7 +574,7 @@ fn render_markdown(systems: &[System], chosen: &System, audio_seconds: &f64, vtt
             ),
             system
                 .versus_greedy
-                .map_or_else(|| "–".into(), |d| format!("{:+.1} pts", 100.0 * d)),
+                .map_or_else(|| "–".into(), |d| format!("{:+.1} points", 100.0 * d)),
         );
     }
     let _ = writeln!(

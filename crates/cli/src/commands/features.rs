@@ -1,5 +1,5 @@
 //! `isogloss features`: one audio file in, one safetensors feature file (`features` [frames, dims])
-//! out, with the front end of a TOML config (the contract default without `--config`). The
+//! out, with the front end of a TOML config (the default front end of `docs/features.md` without `--config`). The
 //! algorithms live in `isogloss_features`; decoding and resampling in `isogloss_audio`.
 
 use std::path::PathBuf;
@@ -21,7 +21,7 @@ pub struct FeaturesArgs {
     /// Output feature file (safetensors, one f32 tensor `features` [frames, dims]).
     #[arg(long, value_name = "OUT.safetensors")]
     pub out: PathBuf,
-    /// Front-end settings (TOML, e.g. configs/features-fbank.toml); default: MFCC + Δ + ΔΔ.
+    /// Front-end settings (TOML, e.g. configs/features-logmel.toml); default: MFCC + Δ + ΔΔ.
     #[arg(long, value_name = "FILE")]
     pub config: Option<PathBuf>,
 }
@@ -52,7 +52,7 @@ pub fn run(args: FeaturesArgs) -> anyhow::Result<Outcome> {
             args.audio.display(),
             samples.len(),
             samples.len() as f64 / f64::from(config.sample_rate),
-            config.frame_length
+            config.window_samples
         );
     }
     let item = args.audio.display().to_string();
@@ -60,7 +60,7 @@ pub fn run(args: FeaturesArgs) -> anyhow::Result<Outcome> {
         CmvnMode::None => {}
         // One file is one utterance of one speaker, so both modes use the file's statistics.
         CmvnMode::Utterance | CmvnMode::Speaker => {
-            Cmvn::from_features(&features, config.normalize_variance, &item)?
+            Cmvn::from_features(&features, config.unit_variance, &item)?
                 .apply(&mut features, &item)?
         }
     }
@@ -72,7 +72,7 @@ pub fn run(args: FeaturesArgs) -> anyhow::Result<Outcome> {
         features.ncols(),
         match config.kind {
             FeatureKind::Mfcc => "MFCC",
-            FeatureKind::Fbank => "log-mel fbank",
+            FeatureKind::LogMel => "log-mel",
         },
         samples.len() as f64 / f64::from(config.sample_rate),
         args.out.display()

@@ -40,16 +40,16 @@ struct RulesArgs {
     /// The rule file (TOML; see `configs/rules-demo-dialectal.toml`).
     #[arg(long)]
     rules: PathBuf,
-    /// The lexicon to write (`word<TAB>phonemes`).
+    /// The lexicon to write (`word<TAB>units`).
     #[arg(long)]
     out: PathBuf,
 }
 
 #[derive(Args)]
 struct TrainArgs {
-    /// The pronunciation dictionary to learn from (lexicon TSV).
+    /// The lexicon to learn from (`word<TAB>units`, e.g. a pronunciation dictionary).
     #[arg(long)]
-    dict: PathBuf,
+    lexicon: PathBuf,
     /// The model file to write.
     #[arg(long)]
     out: PathBuf,
@@ -59,9 +59,10 @@ struct TrainArgs {
     /// EM iterations of the letter–phoneme alignment.
     #[arg(long, default_value_t = G2pConfig::default().iterations)]
     iterations: usize,
-    /// Alignment weight per graphone side holding two symbols, in (0, 1].
+    /// Factor in (0, 1] on the alignment probability for each graphone side that holds two
+    /// letters or two units (smaller favours one-to-one alignments).
     #[arg(long, default_value_t = G2pConfig::default().multi_symbol_penalty)]
-    penalty: f64,
+    two_symbol_weight: f64,
     /// Hold out this share of the words, train on the rest and report error rates on them.
     #[arg(long)]
     held_out: Option<f64>,
@@ -87,7 +88,7 @@ struct ApplyArgs {
     /// Hypotheses kept per letter in the beam search.
     #[arg(long, default_value_t = DecodeConfig::default().beam)]
     beam: usize,
-    /// Also write `word<TAB>rank<TAB>log10 probability<TAB>phonemes` (with a header) here.
+    /// Also write `word<TAB>rank<TAB>log10 probability<TAB>units` (with a header) here.
     #[arg(long)]
     scores: Option<PathBuf>,
 }
@@ -152,14 +153,14 @@ fn rules(args: RulesArgs) -> anyhow::Result<Outcome> {
 }
 
 fn train(args: TrainArgs) -> anyhow::Result<Outcome> {
-    let dictionary = Lexicon::read(&args.dict)?;
+    let dictionary = Lexicon::read(&args.lexicon)?;
     if dictionary.entries.is_empty() {
-        return Err(LexiconError::EmptyDictionary { path: args.dict }.into());
+        return Err(LexiconError::EmptyDictionary { path: args.lexicon }.into());
     }
     let config = G2pConfig {
         order: args.order,
         iterations: args.iterations,
-        multi_symbol_penalty: args.penalty,
+        multi_symbol_penalty: args.two_symbol_weight,
         ..G2pConfig::default()
     };
     let (training, held_out) = match args.held_out {
@@ -173,7 +174,7 @@ fn train(args: TrainArgs) -> anyhow::Result<Outcome> {
         bar.set_message(progress.message.clone());
         bar.println(&progress.message);
     })
-    .with_context(|| format!("training on {}", args.dict.display()))?;
+    .with_context(|| format!("training on {}", args.lexicon.display()))?;
     bar.finish_and_clear();
     model.write(&args.out)?;
     eprintln!(
@@ -197,7 +198,7 @@ fn train(args: TrainArgs) -> anyhow::Result<Outcome> {
     eprintln!(
         "{} entries of {} were skipped (a word without letters cannot be aligned):",
         skipped.len(),
-        args.dict.display()
+        args.lexicon.display()
     );
     for word in &skipped {
         eprintln!("  {word}");
@@ -241,7 +242,7 @@ fn apply(args: ApplyArgs) -> anyhow::Result<Outcome> {
     if let Some(path) = &args.scores {
         write_table(
             path,
-            &["word", "rank", "log10_probability", "phonemes"],
+            &["word", "rank", "log10_probability", "units"],
             &scores,
         )?;
     }

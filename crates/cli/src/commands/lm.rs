@@ -36,35 +36,35 @@ enum LmCommand {
 #[derive(Clone, Copy, ValueEnum)]
 enum SmoothingName {
     /// Interpolated modified Kneser-Ney (D1, D2, D3+ per order).
-    Mkn,
+    ModifiedKneserNey,
     /// Interpolated Kneser-Ney (one discount per order).
-    Kn,
+    KneserNey,
     /// Interpolated Witten-Bell.
-    Wb,
-    /// Additive smoothing (see --add-k).
-    Add,
+    WittenBell,
+    /// Additive smoothing, interpolated with the lower order (see --add-k).
+    AddK,
 }
 
 #[derive(Args)]
 struct BuildArgs {
-    /// Training text: one sentence a line (repeat for several files; .gz is read too).
-    #[arg(long = "text", required = true)]
-    texts: Vec<PathBuf>,
+    /// Training sentences, one a line (repeat for several files; .gz is read too).
+    #[arg(long = "sentences", value_name = "FILE", required = true)]
+    sentence_files: Vec<PathBuf>,
     /// N-gram order, 1 to 6.
     #[arg(long)]
     order: usize,
     /// Smoothing method.
-    #[arg(long, value_enum, default_value = "mkn")]
+    #[arg(long, value_enum, default_value = "modified-kneser-ney")]
     smoothing: SmoothingName,
-    /// The pseudo-count k of additive smoothing.
+    /// The pseudo-count k of add-k smoothing.
     #[arg(long, default_value_t = 1.0)]
     add_k: f64,
     /// Closed vocabulary (one word a line); other words become <unk>.
-    #[arg(long)]
-    vocab: Option<PathBuf>,
+    #[arg(long, value_name = "FILE")]
+    word_list: Option<PathBuf>,
     /// Minimum count per order, comma-separated, unigrams first (e.g. 1,1,2,2).
-    #[arg(long)]
-    cutoffs: Option<String>,
+    #[arg(long, value_name = "COUNTS")]
+    min_counts: Option<String>,
     /// Output ARPA file (.gz compresses).
     #[arg(long)]
     out: PathBuf,
@@ -73,11 +73,11 @@ struct BuildArgs {
 #[derive(Args)]
 struct EvalArgs {
     /// ARPA model(s); several print a comparison table.
-    #[arg(long = "lm", required = true)]
+    #[arg(long = "arpa", value_name = "FILE", required = true)]
     models: Vec<PathBuf>,
-    /// Text to score, one sentence a line.
-    #[arg(long)]
-    text: PathBuf,
+    /// Sentences to score, one a line.
+    #[arg(long, value_name = "FILE")]
+    sentences: PathBuf,
     /// Print JSON on stdout.
     #[arg(long)]
     json: bool,
@@ -85,12 +85,12 @@ struct EvalArgs {
 
 #[derive(Args)]
 struct MixArgs {
-    /// Component models (at least two).
-    #[arg(long = "lm", required = true, num_args = 1)]
+    /// Component ARPA models (at least two).
+    #[arg(long = "arpa", value_name = "FILE", required = true, num_args = 1)]
     models: Vec<PathBuf>,
-    /// Tuning text the weights are fitted to.
-    #[arg(long)]
-    tune: PathBuf,
+    /// Held-out sentences (one a line) the mixture weights are fitted to by EM.
+    #[arg(long, value_name = "FILE")]
+    fit_sentences: PathBuf,
     /// Output ARPA file.
     #[arg(long)]
     out: PathBuf,
@@ -101,18 +101,19 @@ struct MixArgs {
 
 #[derive(Args)]
 struct PruneArgs {
-    /// The model to prune.
-    #[arg(long = "lm")]
+    /// The ARPA model to prune.
+    #[arg(long = "arpa", value_name = "FILE")]
     model: PathBuf,
-    /// Relative-entropy threshold (nats); larger prunes more (e.g. 1e-8 … 1e-6).
-    #[arg(long)]
-    threshold: f64,
+    /// Largest increase of relative entropy (nats) that removing one n-gram may cause; larger
+    /// prunes more (e.g. 1e-8 … 1e-6).
+    #[arg(long, value_name = "NATS")]
+    max_entropy_loss: f64,
     /// Output ARPA file.
     #[arg(long)]
     out: PathBuf,
-    /// Text for the perplexity before and after.
-    #[arg(long)]
-    text: Option<PathBuf>,
+    /// Sentences for the perplexity before and after.
+    #[arg(long, value_name = "FILE")]
+    sentences: Option<PathBuf>,
     /// Print JSON on stdout.
     #[arg(long)]
     json: bool,
@@ -128,11 +129,11 @@ pub fn run(args: LmArgs) -> anyhow::Result<Outcome> {
     }
 }
 
-fn parse_cutoffs(text: &str) -> anyhow::Result<Vec<u32>> {
+fn parse_min_counts(text: &str) -> anyhow::Result<Vec<u32>> {
     text.split(',')
         .map(|field| {
             field.trim().parse::<u32>().with_context(|| {
-                format!("--cutoffs: expected whole numbers separated by commas, found '{field}'")
+                format!("--min-counts: expected whole numbers separated by commas, found '{field}'")
             })
         })
         .collect()
@@ -161,28 +162,31 @@ fn counts_text(counts: &[usize]) -> String {
 
 fn build(args: BuildArgs) -> anyhow::Result<Outcome> {
     let smoothing = match args.smoothing {
-        SmoothingName::Mkn => Smoothing::ModifiedKneserNey,
-        SmoothingName::Kn => Smoothing::KneserNey,
-        SmoothingName::Wb => Smoothing::WittenBell,
-        SmoothingName::Add => Smoothing::Additive { k: args.add_k },
+        SmoothingName::ModifiedKneserNey => Smoothing::ModifiedKneserNey,
+        SmoothingName::KneserNey => Smoothing::KneserNey,
+        SmoothingName::WittenBell => Smoothing::WittenBell,
+        SmoothingName::AddK => Smoothing::Additive { k: args.add_k },
     };
     let cutoffs = args
-        .cutoffs
+        .min_counts
         .as_deref()
-        .map(parse_cutoffs)
+        .map(parse_min_counts)
         .transpose()?
         .unwrap_or_default();
     if cutoffs.len() > args.order {
         bail!(
-            "--cutoffs: expected at most {} values (one per order), found {}",
+            "--min-counts: expected at most {} values (one per order), found {}",
             args.order,
             cutoffs.len()
         );
     }
-    let vocabulary = args.vocab.as_deref().map(read_vocabulary).transpose()?;
+    let vocabulary = args.word_list.as_deref().map(read_vocabulary).transpose()?;
     let started = Instant::now();
-    let counts =
-        NgramCounts::from_text_files(&args.texts, args.order, &CountOptions { vocabulary })?;
+    let counts = NgramCounts::from_text_files(
+        &args.sentence_files,
+        args.order,
+        &CountOptions { vocabulary },
+    )?;
     eprintln!(
         "counted {} sentences, {} tokens in {:.1} s",
         counts.sentences(),
@@ -233,7 +237,7 @@ fn report(score: &Perplexity) -> serde_json::Value {
 }
 
 fn eval(args: EvalArgs) -> anyhow::Result<Outcome> {
-    let sentences = read_sentences(&args.text)?;
+    let sentences = read_sentences(&args.sentences)?;
     let mut rows = Vec::new();
     for path in &args.models {
         let model = read_model(path)?;
@@ -247,7 +251,7 @@ fn eval(args: EvalArgs) -> anyhow::Result<Outcome> {
                 .iter()
                 .map(|(path, score)| {
                     let mut row = report(score);
-                    row["lm"] = json!(path.display().to_string());
+                    row["arpa"] = json!(path.display().to_string());
                     row
                 })
                 .collect::<Vec<_>>())
@@ -280,7 +284,7 @@ fn eval(args: EvalArgs) -> anyhow::Result<Outcome> {
 fn mix(args: MixArgs) -> anyhow::Result<Outcome> {
     if args.models.len() < 2 {
         bail!(
-            "lm mix: expected at least two --lm models, found {}",
+            "lm mix: expected at least two --arpa models, found {}",
             args.models.len()
         );
     }
@@ -289,7 +293,7 @@ fn mix(args: MixArgs) -> anyhow::Result<Outcome> {
         .iter()
         .map(read_model)
         .collect::<anyhow::Result<Vec<_>>>()?;
-    let tuning = read_sentences(&args.tune)?;
+    let tuning = read_sentences(&args.fit_sentences)?;
     let estimated = estimate_weights(&models, &tuning)?;
     let merged = merge(&models, &estimated.weights, &tuning)?;
     merged.write_arpa(&args.out)?;
@@ -304,7 +308,7 @@ fn mix(args: MixArgs) -> anyhow::Result<Outcome> {
             .iter()
             .zip(&estimated.weights)
             .zip(&components)
-            .map(|((path, weight), score)| json!({"lm": path.display().to_string(), "weight": weight, "perplexity": score.perplexity()}))
+            .map(|((path, weight), score)| json!({"arpa": path.display().to_string(), "weight": weight, "perplexity": score.perplexity()}))
             .collect();
         println!(
             "{}",
@@ -339,9 +343,9 @@ fn mix(args: MixArgs) -> anyhow::Result<Outcome> {
 
 fn prune_command(args: PruneArgs) -> anyhow::Result<Outcome> {
     let model = read_model(&args.model)?;
-    let pruned = prune(&model, args.threshold)?;
+    let pruned = prune(&model, args.max_entropy_loss)?;
     pruned.write_arpa(&args.out)?;
-    let text = args.text.as_deref().map(read_sentences).transpose()?;
+    let text = args.sentences.as_deref().map(read_sentences).transpose()?;
     let before_score = text
         .as_ref()
         .map(|text| evaluate_sentences(&model, text.iter().cloned()));

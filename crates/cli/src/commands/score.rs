@@ -41,12 +41,12 @@ pub struct ScoreArgs {
     #[arg(long, default_value_t = BootstrapOptions::default().resamples,
           value_parser = clap::builder::RangedU64ValueParser::<usize>::new().range(1..))]
     pub resamples: usize,
-    /// Coverage of the bootstrap intervals, between 0 and 1.
-    #[arg(long, default_value_t = BootstrapOptions::default().level, value_parser = parse_level)]
-    pub level: f64,
-    /// Number of confusions listed.
+    /// Confidence level of the bootstrap intervals, between 0 and 1.
+    #[arg(long, default_value_t = BootstrapOptions::default().confidence, value_parser = parse_confidence)]
+    pub confidence: f64,
+    /// Number of most frequent confusions listed.
     #[arg(long, default_value_t = ScoreOptions::default().top_confusions)]
-    pub top: usize,
+    pub top_confusions: usize,
     /// Keep upper case (no case folding).
     #[arg(long)]
     pub keep_case: bool,
@@ -75,9 +75,9 @@ pub fn run(args: ScoreArgs) -> anyhow::Result<Outcome> {
         bootstrap: BootstrapOptions {
             resamples: args.resamples,
             seed: args.seed,
-            level: args.level,
+            confidence: args.confidence,
         },
-        top_confusions: args.top,
+        top_confusions: args.top_confusions,
     };
     let reference = Reference::read(&args.reference, &args.column, &args.by)?;
     let variants = args
@@ -122,11 +122,11 @@ pub fn run(args: ScoreArgs) -> anyhow::Result<Outcome> {
     Ok(Outcome::Done)
 }
 
-fn parse_level(text: &str) -> Result<f64, String> {
+fn parse_confidence(text: &str) -> Result<f64, String> {
     match text.parse::<f64>() {
-        Ok(level) if level > 0.0 && level < 1.0 => Ok(level),
+        Ok(confidence) if confidence > 0.0 && confidence < 1.0 => Ok(confidence),
         _ => Err(format!(
-            "expected a coverage between 0 and 1 (e.g. 0.95), found `{text}`"
+            "expected a confidence level between 0 and 1 (e.g. 0.95), found `{text}`"
         )),
     }
 }
@@ -197,7 +197,7 @@ fn summary_rows(out: &mut String, summary: &Summary) {
 /// The report as Markdown, in isogloss's own layout.
 pub fn render_markdown(report: &ScoreReport) -> String {
     // "95", "99.5": one decimal at most, none when it is zero.
-    let level = format!("{:.1}", 100.0 * report.options.bootstrap.level)
+    let level = format!("{:.1}", 100.0 * report.options.bootstrap.confidence)
         .trim_end_matches(".0")
         .to_string();
     let mut out = String::new();
@@ -299,7 +299,7 @@ pub fn render_markdown(report: &ScoreReport) -> String {
         );
         let _ = writeln!(
             out,
-            "| rate | system 1 | system 2 | difference (2 − 1) | {level} % interval of the difference | share of resamples where 2 is better |"
+            "| rate | system 1 | system 2 | difference (2 − 1), percentage points | {level} % interval of the difference, percentage points | share of resamples where 2 is better |"
         );
         let _ = writeln!(out, "|---|---:|---:|---:|---|---:|");
         let rows = [
@@ -322,8 +322,12 @@ pub fn render_markdown(report: &ScoreReport) -> String {
             }
             let (difference_text, interval, probability) = match difference {
                 Some(d) => (
-                    format!("{:+.2} points", 100.0 * d.difference),
-                    interval_text(Some(d.bootstrap.difference_interval)),
+                    format!("{:+.2}", 100.0 * d.difference),
+                    format!(
+                        "{:+.2} – {:+.2}",
+                        100.0 * d.bootstrap.difference_interval.low,
+                        100.0 * d.bootstrap.difference_interval.high
+                    ),
                     format!("{:.1} %", 100.0 * d.bootstrap.probability_system2_better),
                 ),
                 None => ("n/a".into(), "n/a".into(), "n/a".into()),

@@ -42,7 +42,8 @@ pub struct TrainArgs {
     /// Seed for initialisation, data order, augmentation and dropout.
     #[arg(long, default_value_t = 1)]
     seed: u64,
-    /// Phone units from this lexicon (word<TAB>units) instead of graphemes.
+    /// Train on phones: each word's units from this lexicon (`word<TAB>units`), instead of
+    /// graphemes.
     #[arg(long)]
     lexicon: Option<PathBuf>,
 }
@@ -118,9 +119,7 @@ pub fn run(args: TrainArgs) -> anyhow::Result<Outcome> {
 
 /// Runs a training with progress bars and one line per epoch on stderr (shared by `train` and
 /// `demo --train`).
-pub fn train_with_progress(
-    options: &TrainOptions,
-) -> Result<pipeline::TrainSummary, isogloss_acoustic::AcousticError> {
+pub fn train_with_progress(options: &TrainOptions) -> anyhow::Result<pipeline::TrainSummary> {
     let mut bar: Option<ProgressBar> = None;
     pipeline::train(options, &mut |event| match event {
         PipelineEvent::Features { split, done, total } => {
@@ -172,4 +171,5 @@ pub fn train_with_progress(
             );
         }
     })
+    .map_err(anyhow::Error::from)
 }

@@ -38,7 +38,7 @@ impl Recognizer for ModelRecognizer {
         // per-speaker statistics sees a slightly different normalization here, because the
         // speakers of an arbitrary recording are unknown; the demo model trains per utterance.
         if config.cmvn != CmvnMode::None {
-            let cmvn = Cmvn::from_features(&features, config.normalize_variance, "segment")?;
+            let cmvn = Cmvn::from_features(&features, config.unit_variance, "segment")?;
             cmvn.apply(&mut features, "segment")?;
         }
         Ok(self.model.log_posteriors(&features)?)
