@@ -325,7 +325,7 @@ impl AudioSet {
             utterances,
             extractor: FeatureExtractor::new(features)?,
             cmvn: features.cmvn,
-            unit_variance: features.normalize_variance,
+            unit_variance: features.unit_variance,
             speaker_cmvn,
             perturbation,
         })

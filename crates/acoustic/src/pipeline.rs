@@ -529,7 +529,7 @@ fn prepare_training_set(
         for (u, matrix) in utterances.iter().zip(&clean) {
             stats.accumulate(&u.speaker, matrix.view())?;
         }
-        speaker_cmvn = stats.finish(config.features.normalize_variance)?;
+        speaker_cmvn = stats.finish(config.features.unit_variance)?;
     }
     let training = &config.training;
     let perturbation = Perturbation {
