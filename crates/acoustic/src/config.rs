@@ -5,20 +5,26 @@ use serde::{Deserialize, Serialize};
 
 use crate::AcousticError;
 
-/// How hidden activations are normalised.
+/// How hidden activations are normalised (`normalization = "batch" | "layer" | "none"`).
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
 #[serde(rename_all = "lowercase")]
 pub enum Normalization {
-    /// Per frame over the hidden units (independent of batch composition and padding).
+    /// Affine, batch normalisation, ReLU: each unit normalised over the batch's valid frames in
+    /// training and with running estimates of its mean and variance in inference. The layer has
+    /// no bias (the batch mean would cancel it).
+    Batch,
+    /// Affine, ReLU, layer normalisation: per frame over the hidden units (independent of batch
+    /// composition and padding).
     Layer,
-    /// No normalisation.
+    /// Affine, ReLU.
     None,
 }
 
-/// One hidden TDNN layer: the input frames at the `taps` side by side, affine, ReLU,
-/// normalisation, dropout. Written `{ taps = [-1, 0, 1], width = 320, keep_every = 3 }`; the
-/// spellings of the previous release (`offsets`, `dims`, `subsample`) are still read, with a
-/// deprecation warning ([`deprecated_layer_spellings`]).
+/// One hidden TDNN layer: the input frames at the `taps` side by side, affine, ReLU and
+/// normalisation (in the order [`Normalization`] says), dropout. Written
+/// `{ taps = [-1, 0, 1], width = 320, keep_every = 3 }`; the spellings of the previous release
+/// (`offsets`, `dims`, `subsample`) are still read, with a deprecation warning
+/// ([`deprecated_layer_spellings`]).
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 #[serde(deny_unknown_fields)]
 pub struct LayerConfig {
@@ -64,7 +70,7 @@ fn one() -> usize {
 pub struct TdnnConfig {
     /// Hidden layers in order.
     pub layers: Vec<LayerConfig>,
-    /// Normalisation after each hidden ReLU.
+    /// Normalisation of the hidden layers (batch norm before the ReLU, layer norm after it).
     pub normalization: Normalization,
     /// Dropout probability on hidden activations during training.
     #[serde(default)]
@@ -121,15 +127,19 @@ impl TdnnConfig {
         (left, right)
     }
 
-    /// Number of trainable parameters for `input_dims` features and `units` outputs.
+    /// Number of trainable parameters for `input_dims` features and `units` outputs (the
+    /// running statistics of batch normalisation are not trained and not counted).
     pub fn parameter_count(&self, input_dims: usize, units: usize) -> usize {
         let mut count = 0;
         let mut dims = input_dims;
         for layer in &self.layers {
-            count += layer.taps.len() * dims * layer.width + layer.width;
-            if self.normalization == Normalization::Layer {
-                count += 2 * layer.width;
-            }
+            count += layer.taps.len() * dims * layer.width;
+            count += layer.width
+                * match self.normalization {
+                    Normalization::Batch => 2,
+                    Normalization::Layer => 3,
+                    Normalization::None => 1,
+                };
             dims = layer.width;
         }
         count + dims * units + units

@@ -97,23 +97,25 @@ pub struct AcousticModel {
 
 impl AcousticModel {
     /// Writes `model.toml` and `model.safetensors` into `dir` (created if needed), atomically.
+    /// `tensors` are the parameters and, with batch normalisation, the running statistics
+    /// ([`crate::train::Trainer::model_tensors`]).
     pub fn save(
         dir: &Path,
         description: &ModelDescription,
-        parameters: &BTreeMap<String, Var>,
+        tensors: &BTreeMap<String, Var>,
     ) -> Result<(), AcousticError> {
         std::fs::create_dir_all(dir).map_err(|source| AcousticError::Io {
             path: dir.to_path_buf(),
             source,
         })?;
-        let mut tensors = Vec::with_capacity(parameters.len());
-        for (name, var) in parameters {
+        let mut named = Vec::with_capacity(tensors.len());
+        for (name, var) in tensors {
             let values: Vec<f32> = var.as_tensor().flatten_all()?.to_vec1()?;
-            tensors.push((name.clone(), var.dims().to_vec(), values));
+            named.push((name.clone(), var.dims().to_vec(), values));
         }
         write_atomically(
             &dir.join("model.safetensors"),
-            &serialize_tensors(&tensors, None)?,
+            &serialize_tensors(&named, None)?,
         )?;
         let text = toml::to_string_pretty(description).map_err(|e| {
             AcousticError::Config(format!("model description does not serialise: {e}"))
@@ -171,13 +173,13 @@ impl AcousticModel {
         })
     }
 
-    /// A model from in-memory parameters (used right after training).
+    /// A model from in-memory tensors (as [`AcousticModel::save`] takes them).
     pub fn from_parameters(
         description: ModelDescription,
-        parameters: &BTreeMap<String, Var>,
+        tensors: &BTreeMap<String, Var>,
     ) -> Result<AcousticModel, AcousticError> {
         let network = Tdnn::new(
-            var_builder(parameters),
+            var_builder(tensors),
             &description.architecture,
             description.features.dims(),
             description.units.len(),
@@ -234,7 +236,7 @@ impl AcousticModel {
             padded.extend(features.row(source).iter());
         }
         let input = Tensor::from_vec(padded, (1, frames + left + right, dims), &Device::Cpu)?;
-        let logits = self.network.forward(&input, None)?.squeeze(0)?;
+        let logits = self.network.forward(&input)?.squeeze(0)?;
         let log_probs = candle_nn::ops::log_softmax(&logits, 1)?;
         let out_frames = log_probs.dim(0)?;
         let values: Vec<f32> = log_probs.flatten_all()?.to_vec1()?;
@@ -327,7 +329,7 @@ mod tests {
             .map(|_| rng.random_range(-2.0f32..2.0))
             .collect();
         let input = Tensor::from_vec(x, (2, frames, dims), &Device::Cpu).unwrap();
-        let fused = model.network.forward(&input, None).unwrap();
+        let fused = model.network.forward(&input).unwrap();
         let reference = model.network.forward_reference(&input, None).unwrap();
         let diff: f32 = (fused - reference)
             .unwrap()

@@ -728,7 +728,7 @@ pub fn train(
                     written_by: format!("isogloss-acoustic {}", env!("CARGO_PKG_VERSION")),
                 },
             };
-            AcousticModel::save(&options.out, &description, trainer.parameters())?;
+            AcousticModel::save(&options.out, &description, &trainer.model_tensors())?;
             summary.best = Some(record.clone());
         }
         let mut line = serde_json::to_value(&record)

@@ -34,7 +34,7 @@ pub use crate::data::{Augment, PreparedUtterance};
 use crate::data::{utterance_rng, TrainingData};
 use crate::ctc::{min_frames_for, CtcLoss, CtcTargets};
 use crate::optim::{AdamW, Moments};
-use crate::tdnn::{initial_parameters, var_builder, Tdnn};
+use crate::tdnn::{initial_parameters, initial_statistics, var_builder, Tdnn};
 use crate::units::UnitInventory;
 use crate::{greedy_path, AcousticError};
 
@@ -141,6 +141,8 @@ pub struct Trainer {
     units: UnitInventory,
     input_dims: usize,
     parameters: BTreeMap<String, Var>,
+    /// Running statistics of batch normalisation: saved with the parameters, not trained.
+    statistics: BTreeMap<String, Var>,
     network: Tdnn,
     optimizer: AdamW,
     progress: TrainingProgress,
@@ -211,8 +213,9 @@ impl Trainer {
         units.validate()?;
         let mut rng = epoch_rng(seed, usize::MAX - 1);
         let parameters = initial_parameters(&config.model, input_dims, units.len(), &mut rng)?;
+        let statistics = initial_statistics(&config.model)?;
         let network = Tdnn::new(
-            var_builder(&parameters),
+            var_builder(&model_tensors(&parameters, &statistics)),
             &config.model,
             input_dims,
             units.len(),
@@ -223,6 +226,7 @@ impl Trainer {
             units,
             input_dims,
             parameters,
+            statistics,
             network,
             optimizer,
             progress: TrainingProgress {
@@ -238,9 +242,20 @@ impl Trainer {
         &self.network
     }
 
-    /// Parameters by name.
+    /// Trained parameters by name.
     pub fn parameters(&self) -> &BTreeMap<String, Var> {
         &self.parameters
+    }
+
+    /// Running statistics of batch normalisation by name (empty for other networks).
+    pub fn running_statistics(&self) -> &BTreeMap<String, Var> {
+        &self.statistics
+    }
+
+    /// Everything a model directory holds: the parameters and the running statistics (sharing
+    /// their storage), for [`crate::AcousticModel::save`].
+    pub fn model_tensors(&self) -> BTreeMap<String, Var> {
+        model_tensors(&self.parameters, &self.statistics)
     }
 
     /// Counters and history.
@@ -394,7 +409,8 @@ impl Trainer {
         rng: &mut dyn RngCore,
     ) -> Result<Option<(f64, usize)>, AcousticError> {
         let (input, output_frames) = self.batch_input(features)?;
-        let logits = self.network.forward(&input, Some(rng))?;
+        let frames: Vec<usize> = features.iter().map(|f| f.nrows()).collect();
+        let (logits, batch_statistics) = self.network.forward_train(&input, &frames, rng)?;
         let total_frames: usize = output_frames.iter().sum();
         let targets = CtcTargets {
             frame_lengths: output_frames,
@@ -416,6 +432,7 @@ impl Trainer {
         let rate = self.learning_rate(self.optimizer.step + 1);
         self.optimizer
             .update(&self.parameters, &grads, rate, scale)?;
+        self.network.update_running_statistics(&batch_statistics)?;
         Ok(Some((value, total_frames)))
     }
 
@@ -428,7 +445,7 @@ impl Trainer {
         for batch in batches {
             let features: Vec<&Array2<f32>> = batch.iter().map(|&i| &dev[i].variants[0]).collect();
             let (input, output_frames) = self.batch_input(&features)?;
-            let logits = self.network.forward(&input, None)?;
+            let logits = self.network.forward(&input)?;
             let targets = CtcTargets {
                 frame_lengths: output_frames.clone(),
                 labels: batch.iter().map(|&i| dev[i].labels.clone()).collect(),
@@ -583,6 +600,10 @@ impl Trainer {
             let values: Vec<f32> = var.as_tensor().flatten_all()?.to_vec1()?;
             tensors.push((format!("param/{name}"), var.dims().to_vec(), values));
         }
+        for (name, var) in &self.statistics {
+            let values: Vec<f32> = var.as_tensor().flatten_all()?.to_vec1()?;
+            tensors.push((format!("statistic/{name}"), var.dims().to_vec(), values));
+        }
         for (name, moments) in &self.optimizer.moments {
             let n = moments.first.len();
             tensors.push((format!("adam.first/{name}"), vec![n], moments.first.clone()));
@@ -670,10 +691,29 @@ impl Trainer {
                 );
             }
         }
+        for (name, var) in &trainer.statistics {
+            let values = read(&format!("statistic/{name}"))?;
+            if values.len() != var.elem_count() {
+                return Err(corrupt(&format!("statistic `{name}` has the wrong size")));
+            }
+            var.set(&Tensor::from_vec(values, var.shape(), &Device::Cpu)?)?;
+        }
         trainer.optimizer.step = step;
         trainer.progress = progress;
         Ok(trainer)
     }
+}
+
+/// The parameters and running statistics in one map (the vars share their storage).
+fn model_tensors(
+    parameters: &BTreeMap<String, Var>,
+    statistics: &BTreeMap<String, Var>,
+) -> BTreeMap<String, Var> {
+    parameters
+        .iter()
+        .chain(statistics)
+        .map(|(name, var)| (name.clone(), var.clone()))
+        .collect()
 }
 
 /// Where the training files live inside a model directory.
@@ -689,6 +729,10 @@ mod tests {
     use crate::units::UnitKind;
 
     fn tiny_config() -> ModelConfig {
+        config_with(Normalization::Layer)
+    }
+
+    fn config_with(normalization: Normalization) -> ModelConfig {
         ModelConfig {
             model: TdnnConfig {
                 layers: vec![
@@ -703,7 +747,7 @@ mod tests {
                         keep_every: 3,
                     },
                 ],
-                normalization: Normalization::Layer,
+                normalization,
                 dropout: 0.1,
             },
             training: TrainingConfig {
@@ -764,32 +808,63 @@ mod tests {
         }
     }
 
-    fn weights(trainer: &Trainer) -> Vec<Vec<f32>> {
+    /// Every parameter and running statistic, by name.
+    fn weights(trainer: &Trainer) -> Vec<(String, Vec<f32>)> {
         trainer
-            .parameters()
-            .values()
-            .map(|v| v.as_tensor().flatten_all().unwrap().to_vec1().unwrap())
+            .model_tensors()
+            .iter()
+            .map(|(name, v)| {
+                let values = v.as_tensor().flatten_all().unwrap().to_vec1().unwrap();
+                (name.clone(), values)
+            })
             .collect()
     }
 
     #[test]
     fn resuming_from_a_checkpoint_gives_identical_weights() {
+        for normalization in [Normalization::Layer, Normalization::Batch] {
+            resume_gives_identical_weights(config_with(normalization));
+        }
+    }
+
+    fn resume_gives_identical_weights(config: ModelConfig) {
         let train = synthetic(12, 1);
         let dev = synthetic(3, 2);
-        let mut straight = Trainer::new(tiny_config(), units(), 5, 42).unwrap();
+        let mut straight = Trainer::new(config.clone(), units(), 5, 42).unwrap();
         for _ in 0..2 {
             straight.run_epoch(&set(&train), &dev, &mut |_| {}).unwrap();
         }
         let dir = tempfile::tempdir().unwrap();
         let path = checkpoint_path(dir.path());
-        let mut first = Trainer::new(tiny_config(), units(), 5, 42).unwrap();
+        let mut first = Trainer::new(config.clone(), units(), 5, 42).unwrap();
         first.run_epoch(&set(&train), &dev, &mut |_| {}).unwrap();
         first.save_checkpoint(&path).unwrap();
+        let after_one = weights(&first);
         drop(first);
         let mut resumed = Trainer::load_checkpoint(&path).unwrap();
         assert_eq!(resumed.progress().epochs_done, 1);
+        assert_eq!(
+            weights(&resumed),
+            after_one,
+            "the checkpoint restores everything"
+        );
         resumed.run_epoch(&set(&train), &dev, &mut |_| {}).unwrap();
         assert_eq!(weights(&straight), weights(&resumed));
+        if config.model.normalization == Normalization::Batch {
+            // The running statistics moved, have no optimizer state and are not parameters.
+            let fresh = Trainer::new(config, units(), 5, 42).unwrap();
+            assert_eq!(resumed.running_statistics().len(), 4);
+            for (name, var) in resumed.running_statistics() {
+                let now: Vec<f32> = var.as_tensor().to_vec1().unwrap();
+                let before: Vec<f32> = fresh.running_statistics()[name]
+                    .as_tensor()
+                    .to_vec1()
+                    .unwrap();
+                assert_ne!(now, before, "{name} was updated");
+                assert!(!resumed.parameters().contains_key(name));
+                assert!(!resumed.optimizer.moments.contains_key(name));
+            }
+        }
         // Everything but the wall-clock speed must agree.
         let without_speed = |trainer: &Trainer| {
             let mut progress = trainer.progress().clone();
@@ -823,43 +898,112 @@ mod tests {
 
     #[test]
     fn a_batch_with_non_finite_loss_is_skipped_and_reported() {
-        let mut config = tiny_config();
-        config.training.batch_frames = 10_000; // one batch
-        let mut trainer = Trainer::new(config, units(), 5, 1).unwrap();
-        let mut train = synthetic(4, 4);
-        train[2].variants[0][[3, 1]] = f32::NAN;
-        let before = weights(&trainer);
-        let mut skipped = Vec::new();
-        let record = trainer
-            .run_epoch(&set(&train), &synthetic(2, 5), &mut |event| {
-                if let TrainingEvent::BatchSkipped { utterances, .. } = event {
-                    skipped.extend(utterances.clone());
-                }
-            })
-            .unwrap();
-        assert_eq!(record.skipped_batches, 1);
-        assert!(skipped.contains(&"utt2".to_string()));
-        assert_eq!(before, weights(&trainer), "no update from a skipped batch");
+        for normalization in [Normalization::Layer, Normalization::Batch] {
+            let mut config = config_with(normalization);
+            config.training.batch_frames = 10_000; // one batch
+            let mut trainer = Trainer::new(config, units(), 5, 1).unwrap();
+            let mut train = synthetic(4, 4);
+            train[2].variants[0][[3, 1]] = f32::NAN;
+            let before = weights(&trainer);
+            let mut skipped = Vec::new();
+            let record = trainer
+                .run_epoch(&set(&train), &synthetic(2, 5), &mut |event| {
+                    if let TrainingEvent::BatchSkipped { utterances, .. } = event {
+                        skipped.extend(utterances.clone());
+                    }
+                })
+                .unwrap();
+            assert_eq!(record.skipped_batches, 1);
+            assert!(skipped.contains(&"utt2".to_string()));
+            assert_eq!(
+                before,
+                weights(&trainer),
+                "no update from a skipped batch, running statistics included"
+            );
+        }
     }
 
     #[test]
     fn learns_synthetic_bursts_to_zero_error() {
-        let mut config = tiny_config();
-        config.training.epochs = 60;
-        config.training.patience = 0;
-        config.model.dropout = 0.0;
-        let train = synthetic(16, 6);
-        let mut trainer = Trainer::new(config, units(), 5, 3).unwrap();
-        let mut last = None;
-        while !trainer.finished() {
-            last = Some(
-                trainer
-                    .run_epoch(&set(&train), &train, &mut |_| {})
-                    .unwrap(),
+        for normalization in [Normalization::Layer, Normalization::Batch] {
+            let mut config = config_with(normalization);
+            config.training.epochs = 60;
+            config.training.patience = 0;
+            config.model.dropout = 0.0;
+            let train = synthetic(16, 6);
+            let mut trainer = Trainer::new(config, units(), 5, 3).unwrap();
+            let mut last = None;
+            while !trainer.finished() {
+                last = Some(
+                    trainer
+                        .run_epoch(&set(&train), &train, &mut |_| {})
+                        .unwrap(),
+                );
+            }
+            // The dev pass is inference: with batch norm, the running statistics.
+            let last = last.unwrap();
+            assert!(
+                last.dev_unit_error_rate < 0.05,
+                "{normalization:?}: {last:?}"
             );
         }
-        let last = last.unwrap();
-        assert!(last.dev_unit_error_rate < 0.05, "{last:?}");
+    }
+
+    /// A batch-normalised model after training: saved, loaded and run on features, it gives the
+    /// posteriors of the in-memory network (running statistics included, by their names).
+    #[test]
+    fn a_trained_model_with_batch_norm_saves_loads_and_infers_alike() {
+        use crate::model::{ModelDescription, Provenance, MODEL_FORMAT};
+        let config = config_with(Normalization::Batch);
+        let train = synthetic(12, 1);
+        let mut trainer = Trainer::new(config.clone(), units(), 5, 7).unwrap();
+        trainer
+            .run_epoch(&set(&train), &train, &mut |_| {})
+            .unwrap();
+        let mut features = config.features.clone();
+        features.cepstra = 5;
+        features.deltas = Some(0);
+        assert_eq!(features.dims(), 5);
+        let description = ModelDescription {
+            format: MODEL_FORMAT,
+            units: units(),
+            features,
+            architecture: config.model.clone(),
+            provenance: Provenance::default(),
+        };
+        let dir = tempfile::tempdir().unwrap();
+        crate::AcousticModel::save(dir.path(), &description, &trainer.model_tensors()).unwrap();
+        let stored =
+            candle_core::safetensors::load(dir.path().join("model.safetensors"), &Device::Cpu)
+                .unwrap();
+        for (name, var) in trainer.running_statistics() {
+            let expected: Vec<f32> = var.as_tensor().to_vec1().unwrap();
+            assert_eq!(stored[name].to_vec1::<f32>().unwrap(), expected, "{name}");
+        }
+        assert!(stored.contains_key("layers.1.norm.running_var"));
+        assert!(
+            !stored.contains_key("layers.0.bias"),
+            "no bias before batch norm"
+        );
+        let loaded = crate::AcousticModel::load(dir.path()).unwrap();
+        let in_memory =
+            crate::AcousticModel::from_parameters(description, &trainer.model_tensors()).unwrap();
+        for utterance in synthetic(4, 9) {
+            let matrix = &utterance.variants[0];
+            let posteriors = loaded.log_posteriors(matrix).unwrap();
+            assert_eq!(posteriors, in_memory.log_posteriors(matrix).unwrap());
+            // And the trainer's own network, as the dev pass runs it.
+            let (input, _) = trainer.batch_input(&[matrix]).unwrap();
+            let logits = trainer
+                .network()
+                .forward(&input)
+                .unwrap()
+                .squeeze(0)
+                .unwrap();
+            let direct = candle_nn::ops::log_softmax(&logits, 1).unwrap();
+            let direct: Vec<f32> = direct.flatten_all().unwrap().to_vec1().unwrap();
+            assert_eq!(posteriors.iter().copied().collect::<Vec<f32>>(), direct);
+        }
     }
 
     #[test]
