@@ -475,9 +475,10 @@ impl FusedLayer {
                 for t in 0..g.frames_out {
                     let zrow = &z[(b * g.q + t) * h..][..h];
                     let orow = &mut out_u[t * h..(t + 1) * h];
-                    for j in 0..h {
-                        let u = normalised(zrow[j], mean[j], inverse[j]) * gain[j] + shift[j];
-                        orow[j] = if self.relu { u.max(0.0) } else { u };
+                    let units = zrow.iter().zip(mean).zip(inverse).zip(gain).zip(shift);
+                    for (o, ((((&zv, &m), &inv), &gn), &sh)) in orow.iter_mut().zip(units) {
+                        let u = normalised(zv, m, inv) * gn + sh;
+                        *o = if self.relu { u.max(0.0) } else { u };
                     }
                     if let Some(mask) = &self.mask {
                         let base = (b * g.frames_out + t) * h;
@@ -589,28 +590,34 @@ impl FusedLayer {
         let (gain, shift) = (&params[..h], &params[h..2 * h]);
         let mean = &statistics.mean;
         let chunk = g.q * h;
-        // Through the mask and the ReLU into `gz`, with per-utterance sums of g and g·x̂.
-        let partials: Vec<(Vec<f64>, Vec<f64>)> = gz
+        // Through the mask and the ReLU into `gz`, with per-utterance sums of g and g·x̂ (in f32
+        // per utterance, so that the loops vectorise; over utterances in f64).
+        let partials: Vec<(Vec<f32>, Vec<f32>)> = gz
             .par_chunks_mut(chunk)
             .enumerate()
             .map(|(b, gz_u)| {
-                let (mut sum, mut dot) = (vec![0f64; h], vec![0f64; h]);
+                let (mut sum, mut dot) = (vec![0f32; h], vec![0f32; h]);
                 for t in 0..g.frames_out {
                     let o = (b * g.frames_out + t) * h;
                     let zrow = &z[(b * g.q + t) * h..][..h];
                     let grow = &mut gz_u[t * h..(t + 1) * h];
-                    for j in 0..h {
-                        let mut gv = gout[o + j];
-                        if let Some(mask) = &self.mask {
-                            gv *= mask[o + j];
+                    grow.copy_from_slice(&gout[o..o + h]);
+                    if let Some(mask) = &self.mask {
+                        for (gv, &m) in grow.iter_mut().zip(&mask[o..o + h]) {
+                            *gv *= m;
                         }
-                        let xhat = normalised(zrow[j], mean[j], inverse[j]);
-                        if self.relu && xhat * gain[j] + shift[j] <= 0.0 {
-                            gv = 0.0;
+                    }
+                    let units = zrow.iter().zip(mean).zip(inverse).zip(gain).zip(shift);
+                    let sums = sum.iter_mut().zip(dot.iter_mut());
+                    for ((gv, ((((&zv, &m), &inv), &gn), &sh)), (s, d)) in
+                        grow.iter_mut().zip(units).zip(sums)
+                    {
+                        let xhat = normalised(zv, m, inv);
+                        if self.relu && xhat * gn + sh <= 0.0 {
+                            *gv = 0.0;
                         }
-                        sum[j] += f64::from(gv);
-                        dot[j] += f64::from(gv) * f64::from(xhat);
-                        grow[j] = gv;
+                        *s += *gv;
+                        *d += *gv * xhat;
                     }
                 }
                 (sum, dot)
@@ -619,8 +626,8 @@ impl FusedLayer {
         let (mut sum, mut dot) = (vec![0f64; h], vec![0f64; h]);
         for (part_sum, part_dot) in &partials {
             for j in 0..h {
-                sum[j] += part_sum[j];
-                dot[j] += part_dot[j];
+                sum[j] += f64::from(part_sum[j]);
+                dot[j] += f64::from(part_dot[j]);
             }
         }
         let n = statistics.frames as f64;
@@ -631,15 +638,19 @@ impl FusedLayer {
             for t in 0..g.frames_out {
                 let zrow = &z[(b * g.q + t) * h..][..h];
                 let grow = &mut gz_u[t * h..(t + 1) * h];
-                let counted = t < valid[b];
-                for j in 0..h {
-                    let scale = gain[j] * inverse[j];
-                    grow[j] = if counted {
-                        let xhat = normalised(zrow[j], mean[j], inverse[j]);
-                        scale * (grow[j] - mean_g[j] - xhat * mean_gx[j])
-                    } else {
-                        scale * grow[j]
-                    };
+                let scales = gain.iter().zip(inverse);
+                if t < valid[b] {
+                    let units = zrow.iter().zip(mean).zip(mean_g.iter().zip(&mean_gx));
+                    for ((gv, (&gn, &inv)), ((&zv, &m), (&mg, &mgx))) in
+                        grow.iter_mut().zip(scales).zip(units)
+                    {
+                        let xhat = normalised(zv, m, inv);
+                        *gv = gn * inv * (*gv - mg - xhat * mgx);
+                    }
+                } else {
+                    for (gv, (&gn, &inv)) in grow.iter_mut().zip(scales) {
+                        *gv *= gn * inv;
+                    }
                 }
             }
         });
@@ -653,8 +664,8 @@ fn normalised(z: f32, mean: f32, inverse: f32) -> f32 {
     (z - mean) * inverse
 }
 
-/// Mean and biased variance of every unit of `z` over the valid frames (the first `valid[b]`
-/// output frames of utterance `b`): sums per utterance in f64, then over utterances in order.
+/// Mean and biased variance (two passes) of every unit of `z` over the valid frames (the first
+/// `valid[b]` output frames of utterance `b`): sums per utterance, then over utterances in order.
 fn unit_statistics(
     g: &Geometry,
     z: &[f32],
@@ -674,23 +685,23 @@ fn unit_statistics(
             "fused TDNN layer: batch normalisation over a batch without valid frames"
         )
     }
-    let total = |centre: Option<&[f64]>| -> Vec<f64> {
-        let parts: Vec<Vec<f64>> = (0..g.batch)
+    // Sums per utterance in f32 (the loops vectorise), over utterances in f64.
+    let total = |centre: Option<&[f32]>| -> Vec<f64> {
+        let parts: Vec<Vec<f32>> = (0..g.batch)
             .into_par_iter()
             .map(|b| {
-                let mut sums = vec![0f64; h];
+                let mut sums = vec![0f32; h];
                 for t in 0..valid[b] {
                     let row = &z[(b * g.q + t) * h..][..h];
                     match centre {
                         None => {
                             for (s, &v) in sums.iter_mut().zip(row) {
-                                *s += f64::from(v);
+                                *s += v;
                             }
                         }
                         Some(mean) => {
                             for ((s, &v), &m) in sums.iter_mut().zip(row).zip(mean) {
-                                let d = f64::from(v) - m;
-                                *s += d * d;
+                                *s += (v - m) * (v - m);
                             }
                         }
                     }
@@ -701,17 +712,17 @@ fn unit_statistics(
         let mut sums = vec![0f64; h];
         for part in parts {
             for (s, p) in sums.iter_mut().zip(part) {
-                *s += p;
+                *s += f64::from(p);
             }
         }
         sums
     };
     let n = frames as f64;
-    let mean: Vec<f64> = total(None).into_iter().map(|s| s / n).collect();
-    let variance: Vec<f64> = total(Some(&mean)).into_iter().map(|s| s / n).collect();
+    let mean: Vec<f32> = total(None).iter().map(|&s| (s / n) as f32).collect();
+    let variance: Vec<f32> = total(Some(&mean)).iter().map(|&s| (s / n) as f32).collect();
     Ok(UnitStatistics {
-        mean: mean.iter().map(|&m| m as f32).collect(),
-        variance: variance.iter().map(|&v| v as f32).collect(),
+        mean,
+        variance,
         frames,
     })
 }
