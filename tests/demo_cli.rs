@@ -20,23 +20,35 @@ fn repo(path: &str) -> PathBuf {
         .join(path)
 }
 
-/// `system -> dialect -> (wer, flexible_wer)` from the demo's results.csv.
+/// `system -> dialect -> (wer, flexible_wer)` from the demo's results.csv, its columns found by
+/// their header names.
 fn read_results(path: &Path) -> HashMap<String, HashMap<String, (f64, f64)>> {
     let text = std::fs::read_to_string(path).unwrap();
     let mut lines = text.lines();
     let header: Vec<&str> = lines.next().unwrap().split(',').collect();
-    assert_eq!(header[0], "system");
+    let column = |name: &str| {
+        header
+            .iter()
+            .position(|h| *h == name)
+            .unwrap_or_else(|| panic!("results.csv has no `{name}` column: {header:?}"))
+    };
+    let (system, dialect) = (column("system"), column("dialect"));
+    let (wer, flexible) = (column("wer"), column("flexible_wer"));
+    assert_eq!(system, 0, "the quoted system name comes first");
     let mut systems: HashMap<String, HashMap<String, (f64, f64)>> = HashMap::new();
     for line in lines {
-        // The system name is quoted and holds no comma; the rest are plain fields.
+        // The system name is quoted and holds no comma; the other fields are plain.
         let (name, rest) = line[1..].split_once("\",").unwrap();
-        let fields: Vec<&str> = rest.split(',').collect();
-        let wer: f64 = fields[3].parse().unwrap();
-        let flexible: f64 = fields[6].parse().unwrap();
-        systems
-            .entry(name.to_string())
-            .or_default()
-            .insert(fields[0].to_string(), (wer, flexible));
+        let mut fields: Vec<&str> = vec![name];
+        fields.extend(rest.split(','));
+        assert_eq!(fields.len(), header.len(), "{line}");
+        systems.entry(name.to_string()).or_default().insert(
+            fields[dialect].to_string(),
+            (
+                fields[wer].parse().unwrap(),
+                fields[flexible].parse().unwrap(),
+            ),
+        );
     }
     systems
 }

@@ -35,11 +35,11 @@ const TINY: &str = r#"
 normalization = "layer"
 dropout = 0.0
 layers = [
-  { offsets = [-2, -1, 0, 1, 2], dims = 192 },
-  { offsets = [-1, 0, 1], dims = 192 },
-  { offsets = [-1, 0, 1], dims = 192, subsample = 3 },
-  { offsets = [-1, 0, 1], dims = 192 },
-  { offsets = [0], dims = 192 },
+  { taps = [-2, -1, 0, 1, 2], width = 192 },
+  { taps = [-1, 0, 1], width = 192 },
+  { taps = [-1, 0, 1], width = 192, keep_every = 3 },
+  { taps = [-1, 0, 1], width = 192 },
+  { taps = [0], width = 192 },
 ]
 [training]
 epochs = 70

@@ -34,7 +34,7 @@ enum Command {
     /// Train a TDNN acoustic model with CTC.
     Train(commands::train::TrainArgs),
     /// Transcribe recordings or a manifest: beam search with LM and lexicon, or greedy.
-    Transcribe(commands::decode::TranscribeArgs),
+    Transcribe(commands::transcribe::TranscribeArgs),
     /// Decode and score a grid of LM, lexicon, writing and decoder choices.
     Sweep(commands::sweep::SweepArgs),
     /// Build a spelling-variant map from two word-aligned transcript columns.
@@ -43,6 +43,12 @@ enum Command {
     Lm(commands::lm::LmArgs),
     /// Make pronunciation lexicons (rules, trained G2P) and measure their coverage.
     Lexicon(commands::lexicon::LexiconArgs),
+    /// Review pages for a transcript: listen, correct words, label speakers, export TSV/WebVTT.
+    Review(commands::review::ReviewArgs),
+    /// Calibrate word certainties on dev (temperature, shift); ECE and a reliability chart.
+    Calibrate(commands::calibrate::CalibrateArgs),
+    /// Rank untranscribed segments for human transcription within a budget of minutes.
+    Shortlist(commands::shortlist::ShortlistArgs),
 }
 
 /// How a command that did not fail outright ended.
@@ -84,6 +90,9 @@ fn main() -> ExitCode {
         Command::Train(args) => commands::train::run(args),
         Command::Transcribe(args) => commands::transcribe::run(args),
         Command::Sweep(args) => commands::sweep::run(args),
+        Command::Review(args) => commands::review::run(args),
+        Command::Calibrate(args) => commands::calibrate::run(args),
+        Command::Shortlist(args) => commands::shortlist::run(args),
     };
     match result {
         Ok(Outcome::Done) => ExitCode::SUCCESS,

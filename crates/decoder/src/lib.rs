@@ -84,6 +84,14 @@ pub enum DecodeError {
     /// The unit inventory cannot support decoding.
     #[error("the model has {0} units; decoding needs the blank and at least one more")]
     TooFewUnits(usize),
+    /// A transcript JSON file cannot be read or is not an isogloss transcript.
+    #[error("{path}: {problem}")]
+    TranscriptFile {
+        /// The file.
+        path: std::path::PathBuf,
+        /// Where in the file (line, item, stretch, token) and what was expected and found.
+        problem: String,
+    },
     /// No lexicon entry could be spelled with the model's units.
     #[error("none of the {entries} lexicon entries can be spelled with the model's units (e.g. {example})")]
     UnusableLexicon {

@@ -32,10 +32,12 @@
 //! are seconds from the start of the audio file.
 
 use std::io::{self, Write};
+use std::path::Path;
 
 use serde::{Deserialize, Serialize};
 
 use crate::transcript::Transcript;
+use crate::DecodeError;
 
 /// A word with times in seconds from the start of its recording (a *token* in the JSON).
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
@@ -136,6 +138,96 @@ impl TranscriptDocument {
             version: TRANSCRIPT_VERSION,
             items,
         }
+    }
+
+    /// Reads a transcript JSON file and checks it ([`TranscriptDocument::parse`]).
+    pub fn read(path: &Path) -> Result<TranscriptDocument, DecodeError> {
+        let text = std::fs::read_to_string(path).map_err(|error| DecodeError::TranscriptFile {
+            path: path.to_path_buf(),
+            problem: format!("cannot read the transcript: {error}"),
+        })?;
+        TranscriptDocument::parse(&text).map_err(|problem| DecodeError::TranscriptFile {
+            path: path.to_path_buf(),
+            problem,
+        })
+    }
+
+    /// Parses a transcript JSON document. Other JSON (no `"format": "isogloss-transcript"`), a
+    /// newer version, and times or certainties that cannot be right (`to_s` before `from_s`, a
+    /// token outside its stretch, a certainty outside [0, 1]) are refused with a message that
+    /// says where (line, or item, stretch and token) and what was expected and found.
+    pub fn parse(text: &str) -> Result<TranscriptDocument, String> {
+        let value: serde_json::Value = serde_json::from_str(text)
+            .map_err(|e| format!("not JSON: line {}, column {}: {e}", e.line(), e.column()))?;
+        let format = value.get("format");
+        if format.and_then(|f| f.as_str()) != Some(TRANSCRIPT_FORMAT) {
+            let found = match format {
+                Some(f) => f.to_string(),
+                None if value.is_object() => "no \"format\" key".to_string(),
+                None => "JSON that is not an object".to_string(),
+            };
+            return Err(format!(
+                "not an isogloss transcript: expected \"format\": \"{TRANSCRIPT_FORMAT}\" (written by `isogloss transcribe --format json`), found {found}"
+            ));
+        }
+        match value.get("version").and_then(|v| v.as_u64()) {
+            Some(v) if v <= TRANSCRIPT_VERSION as u64 => {}
+            found => {
+                return Err(format!(
+                    "expected transcript \"version\" {TRANSCRIPT_VERSION} or lower, found {}",
+                    found.map_or("none".to_string(), |v| v.to_string())
+                ))
+            }
+        }
+        let document: TranscriptDocument = serde_json::from_str(text).map_err(|e| {
+            format!(
+                "line {}, column {}: not the transcript layout of docs/formats.md: {e}",
+                e.line(),
+                e.column()
+            )
+        })?;
+        for item in &document.items {
+            for (s, stretch) in item.segments.iter().enumerate() {
+                let here = format!("item `{}`, stretch {}", item.id, s + 1);
+                if !(stretch.start.is_finite() && stretch.end.is_finite())
+                    || stretch.start < 0.0
+                    || stretch.end < stretch.start
+                {
+                    return Err(format!(
+                        "{here}: expected 0 ≤ from_s ≤ to_s, found from_s {} and to_s {}",
+                        stretch.start, stretch.end
+                    ));
+                }
+                for (t, token) in stretch.words.iter().enumerate() {
+                    let here = format!("{here}, token {} (`{}`)", t + 1, token.word);
+                    if !(token.start.is_finite() && token.end.is_finite())
+                        || token.end < token.start
+                        || token.start < stretch.start
+                        || token.end > stretch.end
+                    {
+                        return Err(format!(
+                            "{here}: expected from_s ≤ to_s inside the stretch [{}, {}], found {} to {}",
+                            stretch.start, stretch.end, token.start, token.end
+                        ));
+                    }
+                    if !(0.0..=1.0).contains(&token.confidence) {
+                        return Err(format!(
+                            "{here}: expected a certainty in [0, 1], found {}",
+                            token.confidence
+                        ));
+                    }
+                }
+            }
+        }
+        Ok(document)
+    }
+
+    /// The latest time (seconds) any stretch or token of `item` reaches.
+    pub fn last_time(item: &ItemTranscript) -> f64 {
+        item.segments
+            .iter()
+            .map(|s| s.words.iter().map(|w| w.end).fold(s.end, f64::max))
+            .fold(0.0, f64::max)
     }
 }
 
@@ -554,6 +646,33 @@ mod tests {
         assert!(token["certainty"].is_number());
     }
 
+    #[test]
+    fn other_json_and_impossible_times_are_refused_with_their_place() {
+        let not_json = TranscriptDocument::parse("{\n  \"items\": [,]\n}").unwrap_err();
+        assert!(
+            not_json.starts_with("not JSON: line 2, column"),
+            "{not_json}"
+        );
+        let other = TranscriptDocument::parse(r#"{"segments": []}"#).unwrap_err();
+        assert!(
+            other.contains("not an isogloss transcript") && other.contains("no \"format\" key"),
+            "{other}"
+        );
+        let newer = TranscriptDocument::parse(
+            r#"{"format": "isogloss-transcript", "version": 9, "items": []}"#,
+        )
+        .unwrap_err();
+        assert!(newer.contains("found 9"), "{newer}");
+        let outside = r#"{"format": "isogloss-transcript", "version": 1, "items": [{"id": "a",
+            "audio": "a.wav", "stretches": [{"from_s": 1.0, "to_s": 2.0, "text": "x",
+            "tokens": [{"spelling": "x", "from_s": 1.5, "to_s": 2.5, "certainty": 0.5}]}]}]}"#;
+        let outside = TranscriptDocument::parse(outside).unwrap_err();
+        assert!(
+            outside.starts_with("item `a`, stretch 1, token 1 (`x`)") && outside.contains("2.5"),
+            "{outside}"
+        );
+    }
+
     /// The example in `docs/formats.md` is a document this crate reads.
     #[test]
     fn the_documented_example_reads() {
@@ -563,7 +682,7 @@ mod tests {
             .expect("docs/formats.md shows a transcript JSON example")
             + "```json\n".len();
         let end = start + docs[start..].find("```").unwrap();
-        let document: TranscriptDocument = serde_json::from_str(&docs[start..end]).unwrap();
+        let document = TranscriptDocument::parse(&docs[start..end]).unwrap();
         assert_eq!(document.format, TRANSCRIPT_FORMAT);
         assert!(!document.items[0].segments[0].words.is_empty());
     }

@@ -68,8 +68,8 @@ impl CmvnStats {
         self.frames
     }
 
-    /// Mean (and, if `normalize_variance`, inverse standard deviation) of what was accumulated.
-    pub fn finish(&self, normalize_variance: bool, item: &str) -> Result<Cmvn, FeatureError> {
+    /// Mean (and, if `unit_variance`, inverse standard deviation) of what was accumulated.
+    pub fn finish(&self, unit_variance: bool, item: &str) -> Result<Cmvn, FeatureError> {
         if self.frames == 0 {
             return Err(FeatureError::NoFrames {
                 item: item.to_string(),
@@ -84,7 +84,7 @@ impl CmvnStats {
             mean.push(average as f32);
             // A dimension that never varies (e.g. floored silence) is left unscaled rather than
             // blowing its rounding noise up to unit variance.
-            scale.push(if normalize_variance && variance > 1e-10 {
+            scale.push(if unit_variance && variance > 1e-10 {
                 (1.0 / variance.sqrt()) as f32
             } else {
                 1.0
@@ -98,12 +98,12 @@ impl Cmvn {
     /// Statistics of one utterance (per-utterance CMVN).
     pub fn from_features(
         features: &Array2<f32>,
-        normalize_variance: bool,
+        unit_variance: bool,
         item: &str,
     ) -> Result<Self, FeatureError> {
         let mut stats = CmvnStats::new(features.ncols());
         stats.accumulate(features.view(), item)?;
-        stats.finish(normalize_variance, item)
+        stats.finish(unit_variance, item)
     }
 
     /// Per-dimension means that are subtracted.
@@ -165,11 +165,11 @@ impl SpeakerCmvnStats {
     }
 
     /// The normalisation of every speaker seen, by speaker name.
-    pub fn finish(&self, normalize_variance: bool) -> Result<BTreeMap<String, Cmvn>, FeatureError> {
+    pub fn finish(&self, unit_variance: bool) -> Result<BTreeMap<String, Cmvn>, FeatureError> {
         self.by_speaker
             .iter()
             .map(|(speaker, stats)| {
-                let cmvn = stats.finish(normalize_variance, &format!("speaker {speaker}"))?;
+                let cmvn = stats.finish(unit_variance, &format!("speaker {speaker}"))?;
                 Ok((speaker.clone(), cmvn))
             })
             .collect()

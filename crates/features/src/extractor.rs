@@ -15,7 +15,7 @@ use crate::{FeatureConfig, FeatureError, FeatureKind};
 /// by several threads.
 pub struct FeatureExtractor {
     config: FeatureConfig,
-    preemphasis: f32,
+    emphasis: f32,
     log_floor: f32,
     window: Vec<f32>,
     spectrum: PowerSpectrum,
@@ -37,7 +37,7 @@ impl FeatureExtractor {
         )?;
         Ok(FeatureExtractor {
             config: config.clone(),
-            preemphasis: config.emphasis as f32,
+            emphasis: config.emphasis as f32,
             log_floor: config.log_floor as f32,
             window: symmetric_hamming(config.window_samples),
             spectrum: PowerSpectrum::new(config.fft_size),
@@ -169,9 +169,9 @@ impl FeatureExtractor {
             } else {
                 samples[first_sample - 1]
             };
-            emphasised[0] = x[0] - self.preemphasis * before;
+            emphasised[0] = x[0] - self.emphasis * before;
             for ((y, &now), &previous) in emphasised[1..span].iter_mut().zip(&x[1..]).zip(x) {
-                *y = now - self.preemphasis * previous;
+                *y = now - self.emphasis * previous;
             }
             for lane in 0..frames_here {
                 let start = lane * config.hop_samples;

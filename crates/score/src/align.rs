@@ -5,10 +5,11 @@
 //! items are equal, permissible variants of each other, or different. Plain WER treats variants
 //! as different; flexible WER lets a variant substitution cost 0. Because the variant cost is
 //! never above the plain cost, the flexible distance can never exceed the plain one.
+//!
+//! This module knows nothing of spelling variants: [`crate::variants`] builds on it (its
+//! [`crate::variants::align`] aligns words with a variant map), never the other way round.
 
 use std::ops::{Add, AddAssign};
-
-use crate::variants::VariantMap;
 
 /// How two aligned items compare.
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
@@ -213,12 +214,6 @@ pub fn align_by<T>(
     }
     steps.reverse();
     Alignment { steps }
-}
-
-/// Aligns two token sequences; words that `variants` declares permissible variants of each
-/// other cost 0. Pass an empty map for plain WER.
-pub fn align(reference: &[String], hypothesis: &[String], variants: &VariantMap) -> Alignment {
-    align_by(reference, hypothesis, |r, h| variants.compare(r, h))
 }
 
 #[cfg(test)]

@@ -39,7 +39,7 @@ pub mod report;
 pub mod tokens;
 pub mod variants;
 
-pub use align::{align, align_by, AlignedPair, Alignment, Edit, ErrorCounts, Match};
+pub use align::{align_by, AlignedPair, Alignment, Edit, ErrorCounts, Match};
 pub use bootstrap::{BootstrapOptions, Interval, PairedBootstrap};
 pub use input::{Hypotheses, Hypothesis, Reference, ReferenceUtterance};
 pub use report::{
@@ -47,7 +47,7 @@ pub use report::{
     ScoreOptions, ScoreReport, ScoredSystem, Summary, UtteranceScore,
 };
 pub use tokens::{normalize_word, tokenize, TokenRules};
-pub use variants::{SkippedPair, TranscriptPair, VariantMap, VariantTable};
+pub use variants::{align, SkippedPair, TranscriptPair, VariantMap, VariantTable};
 
 /// Everything that can go wrong reading or scoring.
 #[derive(Debug, thiserror::Error)]

@@ -7,10 +7,11 @@
 use std::collections::{BTreeMap, HashMap};
 use std::path::PathBuf;
 
-use crate::align::{align, Edit, ErrorCounts};
+use crate::align::{Edit, ErrorCounts};
 use crate::bootstrap::{self, BootstrapOptions, Interval, PairedBootstrap, UtteranceErrors};
 use crate::input::{Hypotheses, Reference};
 use crate::tokens::{tokenize, TokenRules};
+use crate::variants::align;
 use crate::variants::VariantMap;
 use crate::ScoreError;
 

@@ -11,12 +11,18 @@ use std::path::Path;
 
 use isogloss_corpus::tsv::{write_table, Table};
 
-use crate::align::Match;
+use crate::align::{align_by, Alignment, Match};
 use crate::tokens::{tokenize, TokenRules};
 use crate::ScoreError;
 
 /// The header a variants file must start with (`docs/formats.md`, "Variant map").
 pub const VARIANTS_HEADER: [&str; 2] = ["variant", "normalized"];
+
+/// Aligns two token sequences; words that `variants` declares permissible variants of each
+/// other cost 0. Pass an empty map for plain WER.
+pub fn align(reference: &[String], hypothesis: &[String], variants: &VariantMap) -> Alignment {
+    align_by(reference, hypothesis, |r, h| variants.compare(r, h))
+}
 
 /// Which words are permissible spelling variants of which: every word maps to the set of its
 /// normalized forms.

@@ -1,4 +1,5 @@
-//! The sweep file: which models, test and dev sets, and which axes to cross.
+//! The sweep file: which models, test and dev sets, and which axes to cross (every key with its
+//! default: `docs/formats.md`, "Sweep file").
 //!
 //! Everything is checked here, before any work starts: every named file exists, every axis has
 //! at least one value, names are unique, the baseline names values that exist. Inner code then

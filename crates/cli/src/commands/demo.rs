@@ -35,7 +35,7 @@ use isogloss_sweep::report::{error_rate_bars, training_curve};
 use isogloss_sweep::resources::{build_lexicon, build_lm, lm_words};
 use isogloss_sweep::{run as sweep_run, LexiconChoice, LexiconKind, LmChoice, Sweep, SweepEvent};
 
-use super::decode::{FormatArg, TranscribeArgs};
+use super::transcribe::{FormatArg, TranscribeArgs};
 use crate::Outcome;
 
 /// Decoder settings of the demo: the decoder's defaults, which were tuned on this demo's dev
@@ -63,7 +63,8 @@ pub struct DemoArgs {
     /// Report folder (created; earlier results in it are reused where nothing changed).
     #[arg(long, default_value = "demo-report")]
     out: PathBuf,
-    /// Retrain a small model from scratch first (about 7.5 minutes on two cores) and use it.
+    /// Retrain a small model from scratch first and use it (measured 7.5 minutes on two cores
+    /// when the train split held 33 minutes of speech; it now holds 50, see the README).
     #[arg(long)]
     train: bool,
     /// Architecture and training settings for --train.

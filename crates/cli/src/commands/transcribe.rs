@@ -1,16 +1,137 @@
-//! `isogloss transcribe`: the acoustic model and the audio reader behind the batch transcription
-//! flow of [`super::decode`] (beam search with LM and lexicon, or greedy; tsv, json, WebVTT, txt;
-//! `--resume`, `--shard`).
+//! `isogloss transcribe`: flags, the acoustic model and audio reader behind them, and the
+//! report on stderr. The batch engine (sharding, resume journal, parallel decoding, atomic
+//! output, carrying on past failed items) is `isogloss_batch`.
 
 use std::path::{Path, PathBuf};
 
+use anyhow::bail;
+use indicatif::ProgressBar;
 use isogloss_acoustic::AcousticModel;
 use isogloss_audio::{ChunkReader, Segment};
+use isogloss_batch::{
+    batch_items, transcribe, AudioSource, Chunks, Event, ItemSource, Recognizer, Shard, SideError,
+    TranscribeSettings,
+};
+use isogloss_decoder::output::OutputFormat;
+use isogloss_decoder::SearchOptions;
 use isogloss_features::{Cmvn, CmvnMode, FeatureExtractor};
 use ndarray::Array2;
 
-use super::decode::{transcribe_with, AudioSource, Recognizer, TranscribeArgs};
 use crate::Outcome;
+
+/// Flags of `isogloss transcribe`.
+#[derive(Debug, Clone, clap::Args)]
+pub struct TranscribeArgs {
+    /// Model directory (model.safetensors + model.toml).
+    #[arg(long)]
+    pub model: PathBuf,
+    /// ARPA language model (.arpa or .arpa.gz).
+    #[arg(long)]
+    pub lm: Option<PathBuf>,
+    /// Lexicon (word<TAB>units); without one, words are spelled from the units.
+    #[arg(long)]
+    pub lexicon: Option<PathBuf>,
+    /// Manifest whose rows (segments) to transcribe.
+    #[arg(long, conflicts_with = "audio", required_unless_present = "audio")]
+    pub manifest: Option<PathBuf>,
+    /// Audio files, each segmented by voice activity.
+    pub audio: Vec<PathBuf>,
+    /// Output file (for WebVTT and several recordings: a directory, one ID.vtt per recording).
+    #[arg(long)]
+    pub out: PathBuf,
+    /// Output format.
+    #[arg(long, value_enum, default_value = "tsv")]
+    pub format: FormatArg,
+    /// Hypotheses kept per frame.
+    #[arg(long, default_value_t = 16)]
+    pub beam: usize,
+    /// Weight of the LM's natural-log probabilities (default: the pair tuned on the demo's dev
+    /// split; tune your own with `isogloss sweep`).
+    #[arg(long, default_value_t = isogloss_decoder::DEFAULT_LM_WEIGHT)]
+    pub lm_weight: f32,
+    /// Score added per word (default tuned together with --lm-weight).
+    #[arg(long, default_value_t = isogloss_decoder::DEFAULT_WORD_BONUS)]
+    pub word_bonus: f32,
+    /// Only units whose log posterior is within this many nats of the frame's best unit extend
+    /// hypotheses.
+    #[arg(long, default_value_t = 8.0)]
+    pub unit_margin: f32,
+    /// Frames whose blank probability reaches this are not searched for new units (1 = never skip).
+    #[arg(long, default_value_t = 0.999)]
+    pub skip_blank_above: f32,
+    /// Do not rank partial words by their best LM unigram below them in the lexicon.
+    #[arg(long)]
+    pub no_lookahead: bool,
+    /// Best-path decoding: no beam, lexicon or LM.
+    #[arg(long)]
+    pub greedy: bool,
+    /// Longest voice-activity segment, seconds.
+    #[arg(long, default_value_t = 30.0)]
+    pub max_segment: f64,
+    /// Skip items already transcribed into OUT's journal with the same model and settings.
+    #[arg(long)]
+    pub resume: bool,
+    /// Take only share K of N (1 ≤ K ≤ N), by a hash of the item id.
+    #[arg(long)]
+    pub shard: Option<Shard>,
+}
+
+impl TranscribeArgs {
+    /// Checks the numbers and turns the flags into the engine's settings.
+    fn settings(&self) -> anyhow::Result<TranscribeSettings> {
+        if !(self.lm_weight.is_finite() && self.word_bonus.is_finite() && self.unit_margin > 0.0) {
+            bail!("--lm-weight and --word-bonus must be numbers and --unit-margin positive");
+        }
+        if !(0.0..=1.0).contains(&self.skip_blank_above)
+            || self.max_segment.is_nan()
+            || self.max_segment < 1.0
+        {
+            bail!("--skip-blank-above must be in [0, 1] and --max-segment at least 1 second");
+        }
+        Ok(TranscribeSettings {
+            lm: self.lm.clone(),
+            lexicon: self.lexicon.clone(),
+            search: SearchOptions {
+                beam: self.beam.max(1),
+                lm_weight: self.lm_weight,
+                word_bonus: self.word_bonus,
+                unit_margin: Some(self.unit_margin),
+                skip_blank_above: (self.skip_blank_above < 1.0).then_some(self.skip_blank_above),
+                lookahead: !self.no_lookahead,
+                ..SearchOptions::default()
+            },
+            greedy: self.greedy,
+            max_segment_seconds: self.max_segment,
+            out: self.out.clone(),
+            format: self.format.into(),
+            resume: self.resume,
+        })
+    }
+}
+
+/// `--format`.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, clap::ValueEnum)]
+pub enum FormatArg {
+    /// `id<TAB>text`, for `isogloss score`.
+    Tsv,
+    /// The transcript JSON (docs/formats.md): stretches of speech with timed words.
+    Json,
+    /// WebVTT subtitles (one file per recording when there are several).
+    Vtt,
+    /// Plain text, one line per segment.
+    Txt,
+}
+
+impl From<FormatArg> for OutputFormat {
+    fn from(format: FormatArg) -> Self {
+        match format {
+            FormatArg::Tsv => OutputFormat::Tsv,
+            FormatArg::Json => OutputFormat::Json,
+            FormatArg::Vtt => OutputFormat::Vtt,
+            FormatArg::Txt => OutputFormat::Txt,
+        }
+    }
+}
 
 /// A trained model with its own front end.
 struct ModelRecognizer {
@@ -28,7 +149,7 @@ impl Recognizer for ModelRecognizer {
         self.model.frame_shift_seconds()
     }
 
-    fn log_posteriors(&self, samples: &[f32]) -> anyhow::Result<Array2<f32>> {
+    fn log_posteriors(&self, samples: &[f32]) -> Result<Array2<f32>, SideError> {
         let mut features = self.extractor.extract(samples);
         if features.nrows() == 0 {
             return Ok(Array2::zeros((0, self.model.units().len())));
@@ -56,15 +177,12 @@ impl Recognizer for ModelRecognizer {
 struct FileAudio;
 
 impl AudioSource for FileAudio {
-    fn read_cut(&self, path: &Path, start: f64, end: Option<f64>) -> anyhow::Result<Vec<f32>> {
+    fn read_cut(&self, path: &Path, start: f64, end: Option<f64>) -> Result<Vec<f32>, SideError> {
         let mut cuts = isogloss_audio::read_segments(path, &[Segment { start, end }])?;
         Ok(cuts.pop().unwrap_or_default())
     }
 
-    fn chunks(
-        &self,
-        path: &Path,
-    ) -> anyhow::Result<Box<dyn Iterator<Item = anyhow::Result<Vec<f32>>> + '_>> {
+    fn chunks(&self, path: &Path) -> Result<Chunks<'_>, SideError> {
         // Ten seconds at 16 kHz per chunk: memory stays flat however long the recording.
         let reader = ChunkReader::open(path, 160_000)?;
         Ok(Box::new(reader.map(|chunk| chunk.map_err(Into::into))))
@@ -73,6 +191,12 @@ impl AudioSource for FileAudio {
 
 /// Runs `isogloss transcribe`.
 pub fn run(args: TranscribeArgs) -> anyhow::Result<Outcome> {
+    let settings = args.settings()?;
+    let source = match &args.manifest {
+        Some(manifest) => ItemSource::Manifest(manifest.clone()),
+        None => ItemSource::Recordings(args.audio.clone()),
+    };
+    let items = batch_items(&source, args.shard)?;
     let model = AcousticModel::load(&args.model)?;
     let extractor = FeatureExtractor::new(model.feature_config())?;
     let recognizer = ModelRecognizer {
@@ -80,5 +204,44 @@ pub fn run(args: TranscribeArgs) -> anyhow::Result<Outcome> {
         extractor,
         dir: args.model.clone(),
     };
-    transcribe_with(&args, &recognizer, &FileAudio)
+    let mut bar: Option<ProgressBar> = None;
+    let mut events = |event: Event| match event {
+        Event::Warning(message) => eprintln!("warning: {message}"),
+        Event::Progress(progress) => {
+            let bar = bar
+                .get_or_insert_with(|| crate::progress::bar(progress.total as u64, "transcribe"));
+            bar.set_position(progress.done as u64);
+            if progress.audio_seconds > 0.0 {
+                bar.set_message(format!(
+                    "RTF {:.3}",
+                    progress.wall_seconds / progress.audio_seconds
+                ));
+            }
+        }
+    };
+    let report = transcribe(&settings, &items, &recognizer, &FileAudio, &mut events)?;
+    if let Some(bar) = bar {
+        bar.finish_and_clear();
+    }
+    eprintln!(
+        "transcribed {} items ({} resumed) into {}; {:.1} s of audio in {:.1} s (RTF {:.3})",
+        report.items.len(),
+        report.resumed,
+        args.out.display(),
+        report.audio_seconds,
+        report.wall_seconds,
+        if report.audio_seconds > 0.0 {
+            report.wall_seconds / report.audio_seconds
+        } else {
+            0.0
+        }
+    );
+    if report.failed.is_empty() {
+        return Ok(Outcome::Done);
+    }
+    eprintln!("{} items failed:", report.failed.len());
+    for (id, error) in &report.failed {
+        eprintln!("  {id}: {error}");
+    }
+    Ok(Outcome::SomeItemsFailed)
 }

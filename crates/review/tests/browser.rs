@@ -1,0 +1,233 @@
+//! The review page in a real browser (headless Chromium over the DevTools protocol): it loads
+//! from `file://` without console errors, a click on a word puts the player at the word's
+//! start, a correction and a stretch label survive a reload, the export is the corrected
+//! transcript, the keyboard reaches the next low-certainty word, and audio the browser cannot
+//! play falls back to the converted copy with a notice.
+//!
+//! Chromium is required: without it the test fails and says how to get it, unless
+//! `ISOGLOSS_SKIP_BROWSER_TESTS=1` is set (for a local run without a browser; CI installs
+//! Debian's `chromium`).
+
+#[path = "support/cdp.rs"]
+// shared by the browser test, the benchmark and the screenshot example; each uses a part
+#[allow(dead_code)]
+mod cdp;
+
+use std::collections::HashMap;
+use std::path::{Path, PathBuf};
+
+use isogloss_decoder::output::{ItemTranscript, TimedSegment, TimedWord, TranscriptDocument};
+use isogloss_review::{recordings, write_review, ConvertAudio, ReviewOptions};
+
+fn chromium_or_skip() -> Option<PathBuf> {
+    match cdp::find_chromium() {
+        Some(path) => Some(path),
+        None if std::env::var_os("ISOGLOSS_SKIP_BROWSER_TESTS").is_some() => {
+            eprintln!("ISOGLOSS_SKIP_BROWSER_TESTS is set and no Chromium was found: the review page browser test is skipped");
+            None
+        }
+        None => panic!(
+            "the review page browser test needs headless Chromium: install Debian's `chromium` package \
+             (`apt-get install chromium`; .ci/run does), or point ISOGLOSS_CHROMIUM at a Chromium binary; \
+             set ISOGLOSS_SKIP_BROWSER_TESTS=1 to skip this test on a machine without one"
+        ),
+    }
+}
+
+/// Eight seconds of a quiet 220 Hz tone, 16 kHz 16-bit mono.
+fn write_wav(path: &Path) {
+    let spec = hound::WavSpec {
+        channels: 1,
+        sample_rate: 16_000,
+        bits_per_sample: 16,
+        sample_format: hound::SampleFormat::Int,
+    };
+    let mut writer = hound::WavWriter::create(path, spec).unwrap();
+    for n in 0..8 * 16_000 {
+        let x = (2.0 * std::f64::consts::PI * 220.0 * n as f64 / 16_000.0).sin() * 3000.0;
+        writer.write_sample(x as i16).unwrap();
+    }
+    writer.finalize().unwrap();
+}
+
+fn word(text: &str, start: f64, end: f64, certainty: f32) -> TimedWord {
+    TimedWord {
+        word: text.into(),
+        start,
+        end,
+        confidence: certainty,
+    }
+}
+
+fn transcript(audio: &str) -> TranscriptDocument {
+    let stretch = |start: f64, end: f64, words: Vec<TimedWord>| TimedSegment {
+        start,
+        end,
+        text: words
+            .iter()
+            .map(|w| w.word.clone())
+            .collect::<Vec<_>>()
+            .join(" "),
+        words,
+    };
+    TranscriptDocument::new(vec![ItemTranscript {
+        id: "talk".into(),
+        audio: audio.into(),
+        segments: vec![
+            stretch(
+                0.5,
+                3.0,
+                vec![
+                    word("we", 0.61, 0.74, 0.98),
+                    word("went", 0.77, 1.02, 0.91),
+                    word("doon", 1.25, 1.6, 0.42),
+                    word("tae", 1.7, 1.9, 0.95),
+                ],
+            ),
+            stretch(
+                4.0,
+                6.5,
+                vec![
+                    word("the", 4.2, 4.4, 0.97),
+                    word("river", 4.5, 5.0, 0.55),
+                    word("<&>", 5.2, 5.6, 0.8),
+                ],
+            ),
+        ],
+    }])
+}
+
+fn file_url(path: &Path) -> String {
+    format!("file://{}", path.canonicalize().unwrap().display())
+}
+
+#[test]
+fn the_review_page_works_in_headless_chromium() {
+    let Some(chromium) = chromium_or_skip() else {
+        return;
+    };
+    let dir = tempfile::tempdir().unwrap();
+    let audio = dir.path().join("talk.wav");
+    write_wav(&audio);
+    let document = transcript("recordings/talk.wav");
+    let labels: HashMap<String, (String, String)> =
+        [("talk".to_string(), (String::new(), "fells".to_string()))].into();
+    let recs = recordings(&document, |_| audio.clone(), &labels);
+    let out = dir.path().join("review");
+    let options = ReviewOptions {
+        column: "dialectal".into(),
+        convert: ConvertAudio::Always,
+        ..ReviewOptions::default()
+    };
+    let report = write_review(&out, &recs, &options).unwrap();
+    assert!(report.failed.is_empty());
+
+    let mut browser = cdp::Browser::start(&chromium, 1100, 800);
+    browser.open(&file_url(&out.join("talk.html")));
+    browser.wait_until("typeof window.isoglossReview === 'object'");
+    browser.wait_until("document.getElementById('player').readyState >= 1");
+    assert_eq!(browser.eval("isoglossReview.words"), 7);
+    assert_eq!(
+        browser.eval("document.querySelectorAll('span.w[data-k]').length"),
+        7
+    );
+    assert!(browser
+        .eval("document.getElementById('player').src")
+        .as_str()
+        .unwrap()
+        .ends_with("/review/audio/talk.wav"));
+    assert_eq!(
+        browser.eval("document.getElementById('audio-notice').hidden"),
+        true
+    );
+
+    // a click on "doon" plays from its start, 1.25 s; read back at once, it may have played on
+    // a little (read-back follows the HTML media element's "official playback position")
+    browser.click("span[data-k=\"2\"]", 1);
+    let at = browser
+        .eval("(() => { const a = document.getElementById('player'); a.pause(); return a.currentTime; })()")
+        .as_f64()
+        .unwrap();
+    assert!(
+        (1.25..1.25 + 0.3).contains(&at),
+        "currentTime {at} after clicking a word at 1.25 s"
+    );
+
+    // correct "doon" to "down", label the second stretch's speaker
+    browser.click("span[data-k=\"2\"]", 2);
+    browser.wait_until("document.activeElement && document.activeElement.className === 'edit'");
+    browser.type_text("down");
+    browser.press("Enter", "Enter", 13);
+    assert_eq!(
+        browser.eval("document.querySelector('span[data-k=\"2\"]').textContent"),
+        "down"
+    );
+    browser.click("input.lab[data-s=\"1\"][data-f=\"speaker\"]", 1);
+    browser.type_text("Mrs Hale");
+    browser.press("Escape", "Escape", 27);
+
+    // everything survives a reload
+    browser.reload();
+    browser.wait_until("typeof window.isoglossReview === 'object'");
+    assert_eq!(
+        browser.eval("document.querySelector('span[data-k=\"2\"]').textContent"),
+        "down"
+    );
+    assert_eq!(
+        browser.eval("document.querySelector('span[data-k=\"2\"]').classList.contains('ed')"),
+        true
+    );
+    assert_eq!(
+        browser.eval("document.querySelector('input.lab[data-s=\"1\"][data-f=\"speaker\"]').value"),
+        "Mrs Hale"
+    );
+
+    // the export is the corrected transcript, as manifest rows
+    let expected = "id\taudio\tstart\tend\tspeaker\tdialect\tdialectal\n\
+                    talk-001\trecordings/talk.wav\t0.500\t3.000\t\tfells\twe went down tae\n\
+                    talk-002\trecordings/talk.wav\t4.000\t6.500\tMrs Hale\tfells\tthe river <&>\n";
+    assert_eq!(browser.eval("isoglossReview.exportTsv()"), expected);
+    let vtt = browser.eval("isoglossReview.exportVtt()");
+    assert_eq!(
+        vtt,
+        "WEBVTT\n\n1\n00:00:00.500 --> 00:00:03.000\nwe went down tae\n\n\
+         2\n00:00:04.000 --> 00:00:06.500\n<v Mrs Hale>the river &lt;&amp;&gt;\n\n"
+    );
+
+    // keyboard: from "we", `n` goes to the next word below 0.70 ("down", 0.42), then "river"
+    browser.click("span[data-k=\"0\"]", 1);
+    browser.press("n", "KeyN", 78);
+    assert_eq!(
+        browser.eval("document.querySelector('span.sel').dataset.k"),
+        "2"
+    );
+    browser.press("n", "KeyN", 78);
+    assert_eq!(
+        browser.eval("document.querySelector('span.sel').dataset.k"),
+        "5"
+    );
+    browser.eval("document.getElementById('player').pause()");
+
+    let errors = browser.errors();
+    assert!(errors.is_empty(), "console errors: {errors:#?}");
+
+    // audio the browser cannot play: the page says so and plays the converted copy
+    std::fs::remove_file(out.join("audio/talk.wav")).unwrap();
+    std::fs::write(
+        out.join("audio/talk.wav"),
+        b"RIFF\x10\0\0\0WAVEnot really audio",
+    )
+    .unwrap();
+    browser.reload();
+    browser.wait_until("!document.getElementById('audio-notice').hidden");
+    browser.wait_until("document.getElementById('player').src.endsWith('/audio/talk-16k.wav')");
+    browser.wait_until("document.getElementById('player').readyState >= 1");
+    let notice = browser.eval("document.getElementById('audio-notice').textContent");
+    assert!(
+        notice
+            .as_str()
+            .unwrap()
+            .contains("cannot play recordings/talk.wav"),
+        "{notice}"
+    );
+}

@@ -1,0 +1,206 @@
+//! Online extraction: a running i-vector over a sliding window, frame-synchronous on a stream.
+//!
+//! The contract, with W = `window_seconds / frame_shift` frames (rounded, at least 1),
+//! K = `period_frames` and s = `frame_stride`: frame t (0-based, counted from the start of the
+//! stream) gets the post-processed i-vector of the statistics of the frames
+//!
+//! ```text
+//! { g : max(0, u − W + 1) ≤ g ≤ u and g a multiple of s },   where u = K·⌊t/K⌋
+//! ```
+//!
+//! that is, the vector is recomputed at frames 0, K, 2K, … from the last W frames up to and
+//! including that frame, and held until the next recomputation. Frame t's vector depends only on
+//! frames up to t, so a stream can be fed in pieces of any size and gives the same vectors as
+//! the whole recording at once; at the start of a stream the window is short and the vector
+//! close to the prior mean (zero before post-processing).
+//!
+//! The window's statistics are running sums in f64: a frame's posteriors and values are added
+//! when it arrives and subtracted when it leaves the window (they are kept for that, W frames of
+//! them). The i-vectors of all recomputation points of a block of frames are solved together
+//! (two matrix products and one R×R Cholesky factorisation per point).
+
+use ndarray::{Array1, Array2, ArrayView1, ArrayView2, Axis};
+
+use crate::extractor::{check_frames, IvectorExtractor};
+use crate::ubm::{FramePosteriors, BLOCK_FRAMES};
+use crate::SpeakerError;
+
+/// Recomputation points solved together at most (see [`OnlineIvectors::push`]).
+const POINTS_PER_CHUNK: usize = 64;
+
+/// The state of one stream. Feed frames with [`OnlineIvectors::push`].
+#[derive(Debug, Clone)]
+pub struct OnlineIvectors<'a> {
+    extractor: &'a IvectorExtractor,
+    item: String,
+    window: usize,
+    period: usize,
+    /// Posterior entries kept per frame: `top_gaussians`, or all Gaussians.
+    kept: usize,
+    frames_seen: usize,
+    occupancy: Array1<f64>,
+    first_order: Array2<f64>,
+    /// Gaussian index and posterior of the kept entries of the frames in the window, by slot
+    /// (frame t lives in slot t mod W).
+    ring_gaussians: Vec<usize>,
+    ring_posteriors: Vec<f64>,
+    /// The frames in the window, by slot, in f64.
+    ring_frames: Vec<f64>,
+    current: Array1<f32>,
+}
+
+impl<'a> OnlineIvectors<'a> {
+    /// A new stream with an empty window; `item` names it in errors.
+    pub fn new(extractor: &'a IvectorExtractor, item: &str) -> Self {
+        let (gaussians, dims) = (extractor.ubm.gaussians(), extractor.ubm.dims());
+        let top = extractor.config.top_gaussians;
+        OnlineIvectors {
+            extractor,
+            item: item.to_string(),
+            window: extractor.window_frames(),
+            period: extractor.config.period_frames,
+            kept: if top == 0 { gaussians } else { top },
+            frames_seen: 0,
+            occupancy: Array1::zeros(gaussians),
+            first_order: Array2::zeros((gaussians, dims)),
+            ring_gaussians: Vec::new(),
+            ring_posteriors: Vec::new(),
+            ring_frames: Vec::new(),
+            current: Array1::zeros(extractor.output_dimension()),
+        }
+    }
+
+    /// Frames pushed so far.
+    pub fn frames_seen(&self) -> usize {
+        self.frames_seen
+    }
+
+    /// The vector of the last frame pushed (zeros before any frame).
+    pub fn current(&self) -> &Array1<f32> {
+        &self.current
+    }
+
+    /// Takes the next frames of the stream (`[frames, dims]`, any number) and returns the vector
+    /// of each, `[frames, output dimension]`, as the module doc defines it. On a bad frame
+    /// (wrong dimension, non-finite value) nothing of this call is taken and the error names the
+    /// frame's index in the stream.
+    pub fn push(&mut self, frames: ArrayView2<f32>) -> Result<Array2<f32>, SpeakerError> {
+        let extractor = self.extractor;
+        let dims = extractor.ubm.dims();
+        check_frames(&self.item, frames, dims, self.frames_seen)?;
+        let rows = frames.nrows();
+        let gaussians = extractor.ubm.gaussians();
+        let means = extractor.ubm.means();
+        let stride = extractor.config.frame_stride;
+        let mut out = Array2::<f32>::zeros((rows, extractor.output_dimension()));
+        // Recomputation points are collected over a chunk of frames and solved together, so that
+        // the two products run over many points at once; a chunk holds at most
+        // POINTS_PER_CHUNK of them.
+        let chunk = (POINTS_PER_CHUNK * self.period).max(BLOCK_FRAMES);
+        for chunk_start in (0..rows).step_by(chunk) {
+            let chunk_end = (chunk_start + chunk).min(rows);
+            // (row in the piece) of every recomputation point in this chunk, and its statistics.
+            let mut points: Vec<usize> = Vec::new();
+            let mut snapshot_occupancy: Vec<f64> = Vec::new();
+            let mut snapshot_centred: Vec<f64> = Vec::new();
+            for start in (chunk_start..chunk_end).step_by(BLOCK_FRAMES) {
+                let end = (start + BLOCK_FRAMES).min(chunk_end);
+                // Only frames on the stride grid (stream index a multiple of s) enter the
+                // statistics.
+                let first_frame = self.frames_seen;
+                let on_grid: Vec<usize> = (start..end)
+                    .filter(|&i| (first_frame + i - start) % stride == 0)
+                    .collect();
+                let (posteriors, x) = extractor.ubm.frame_posteriors(
+                    frames.select(Axis(0), &on_grid).view(),
+                    extractor.config.top_gaussians,
+                );
+                let mut next_on_grid = 0;
+                for i in start..end {
+                    let frame = self.frames_seen;
+                    let slot = frame % self.window;
+                    if frame >= self.window && (frame - self.window) % stride == 0 {
+                        self.remove_slot(slot, dims);
+                    }
+                    if frame % stride == 0 {
+                        self.add_frame(slot, &posteriors, next_on_grid, x.row(next_on_grid));
+                        next_on_grid += 1;
+                    }
+                    if frame % self.period == 0 {
+                        points.push(i);
+                        snapshot_occupancy.extend(self.occupancy.iter());
+                        for c in 0..gaussians {
+                            let n = self.occupancy[c];
+                            for d in 0..dims {
+                                snapshot_centred.push(self.first_order[(c, d)] - n * means[(c, d)]);
+                            }
+                        }
+                    }
+                    self.frames_seen += 1;
+                }
+            }
+            let occupancy = Array2::from_shape_vec((points.len(), gaussians), snapshot_occupancy)
+                .map_err(|e| SpeakerError::InvalidModel {
+                problem: e.to_string(),
+            })?;
+            let centred =
+                Array2::from_shape_vec((points.len(), gaussians * dims), snapshot_centred)
+                    .map_err(|e| SpeakerError::InvalidModel {
+                        problem: e.to_string(),
+                    })?;
+            let vectors = extractor.ivectors_from_stacked(occupancy.view(), centred.view());
+            let mut next_point = 0;
+            for i in chunk_start..chunk_end {
+                if next_point < points.len() && points[next_point] == i {
+                    self.current.assign(&vectors.row(next_point));
+                    next_point += 1;
+                }
+                out.row_mut(i).assign(&self.current);
+            }
+        }
+        Ok(out)
+    }
+
+    /// Adds frame `i` of a block (posteriors and values) to the window's sums and keeps it in
+    /// `slot`.
+    fn add_frame(
+        &mut self,
+        slot: usize,
+        posteriors: &FramePosteriors,
+        i: usize,
+        frame: ArrayView1<f64>,
+    ) {
+        let dims = frame.len();
+        let kept = self.kept;
+        if self.ring_frames.len() < (slot + 1) * dims {
+            self.ring_frames.resize((slot + 1) * dims, 0.0);
+            self.ring_gaussians.resize((slot + 1) * kept, 0);
+            self.ring_posteriors.resize((slot + 1) * kept, 0.0);
+        }
+        for (kept_value, &v) in self.ring_frames[slot * dims..(slot + 1) * dims]
+            .iter_mut()
+            .zip(&frame)
+        {
+            *kept_value = v;
+        }
+        let mut k = slot * kept;
+        posteriors.for_each(i, |c, gamma| {
+            self.occupancy[c] += gamma;
+            self.first_order.row_mut(c).scaled_add(gamma, &frame);
+            self.ring_gaussians[k] = c;
+            self.ring_posteriors[k] = gamma;
+            k += 1;
+        });
+    }
+
+    /// Subtracts the frame kept in `slot` from the window's sums.
+    fn remove_slot(&mut self, slot: usize, dims: usize) {
+        let kept = self.kept;
+        let frame = ArrayView1::from(&self.ring_frames[slot * dims..(slot + 1) * dims]);
+        for k in slot * kept..(slot + 1) * kept {
+            let (c, gamma) = (self.ring_gaussians[k], self.ring_posteriors[k]);
+            self.occupancy[c] -= gamma;
+            self.first_order.row_mut(c).scaled_add(-gamma, &frame);
+        }
+    }
+}
