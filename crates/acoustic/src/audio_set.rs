@@ -19,8 +19,9 @@ use std::io::{BufWriter, Read, Seek, SeekFrom, Write};
 use std::path::{Path, PathBuf};
 use std::sync::Mutex;
 
+use isogloss_audio::augment::{Augmenter, BabbleSource};
 use isogloss_corpus::Manifest;
-use isogloss_features::{Cmvn, CmvnMode, FeatureConfig, FeatureExtractor, SpecAugment};
+use isogloss_features::{Cmvn, CmvnMode, FeatureConfig, FeatureExtractor, SpecAugment, VtlpConfig};
 use ndarray::Array2;
 use rand::Rng;
 use rand_chacha::ChaCha8Rng;
@@ -279,10 +280,12 @@ fn decode_file(
 pub struct Perturbation {
     /// Speed factors drawn uniformly (1.0 = unchanged).
     pub speed_factors: Vec<f32>,
-    /// Gain drawn uniformly in `[1/g, g]`; 1.0 disables it.
-    pub volume_range: f32,
+    /// Room, noise, band and gain steps, if any can be drawn.
+    pub waveform: Option<Augmenter>,
+    /// Vocal-tract length perturbation of the mel filters.
+    pub vtlp: VtlpConfig,
     /// SpecAugment masks after normalisation, with the number of Δ blocks.
-    pub spec_augment: Option<(SpecAugment, usize)>,
+    pub masks: Option<(SpecAugment, usize)>,
 }
 
 /// One training utterance of an [`AudioSet`].
@@ -346,6 +349,22 @@ impl AudioSet {
     }
 }
 
+/// Babble talkers are the other training utterances (read from the PCM cache when drawn).
+impl BabbleSource for AudioSet {
+    fn utterance_count(&self) -> usize {
+        self.utterances.len()
+    }
+
+    fn utterance(&self, index: usize) -> Option<std::borrow::Cow<'_, [f32]>> {
+        let row = self.utterances.get(index)?.row;
+        self.store
+            .samples(row)
+            .ok()
+            .flatten()
+            .map(std::borrow::Cow::Owned)
+    }
+}
+
 impl TrainingData for AudioSet {
     fn len(&self) -> usize {
         self.utterances.len()
@@ -395,13 +414,28 @@ impl TrainingData for AudioSet {
         } else {
             clean
         };
-        if perturbation.volume_range > 1.0 {
-            let g = perturbation.volume_range;
-            isogloss_audio::volume_perturb(&mut samples, rng.random_range(1.0 / g..g));
+        if let Some(augmenter) = &perturbation.waveform {
+            // A failed step (no babble talker could be read) leaves the utterance as it is.
+            let _ = augmenter.apply(&mut samples, rng, Some(self as &dyn BabbleSource));
         }
-        let mut matrix = self.extractor.extract(&samples);
+        let warp = perturbation
+            .vtlp
+            .draw(rng)
+            .and_then(|factor| {
+                perturbation
+                    .vtlp
+                    .warp(factor, self.extractor.config().sample_rate)
+                    .ok()
+            });
+        let mut matrix = match warp {
+            Some(warp) => self
+                .extractor
+                .extract_warped(&samples, &warp)
+                .unwrap_or_else(|_| self.extractor.extract(&samples)),
+            None => self.extractor.extract(&samples),
+        };
         self.normalise(&mut matrix, utterance);
-        if let Some((spec, blocks)) = &perturbation.spec_augment {
+        if let Some((spec, blocks)) = &perturbation.masks {
             spec.apply_blocks(&mut matrix, *blocks, rng);
         }
         matrix

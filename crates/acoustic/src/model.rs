@@ -42,6 +42,12 @@ pub struct Provenance {
     pub seed: u64,
     /// Program that wrote the model.
     pub written_by: String,
+    /// Optimizer updates done when these weights were saved.
+    #[serde(default)]
+    pub updates: u64,
+    /// The wall-clock budget of the run in minutes (`--minutes`), if it had one.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub minutes: Option<f64>,
 }
 
 /// `model.toml`: everything decoding needs besides the weights.
@@ -57,6 +63,12 @@ pub struct ModelDescription {
     pub architecture: TdnnConfig,
     /// Where the model came from.
     pub provenance: Provenance,
+    /// How it was trained (absent in models of the previous release).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub training: Option<crate::config::TrainingConfig>,
+    /// How its training utterances were perturbed (absent in models of the previous release).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub augmentation: Option<crate::config::Augmentation>,
 }
 
 /// Reads a `model.toml` of the previous release: its keys are read by their old spellings
@@ -256,7 +268,10 @@ mod tests {
 
     #[test]
     fn a_saved_model_loads_and_gives_normalised_posteriors() {
-        let config = ModelConfig::small();
+        // Layer normalisation: fresh parameters carry no running statistics (the batch-norm
+        // round trip is tested in train.rs with a trained model).
+        let mut config = ModelConfig::small();
+        config.model.normalization = crate::config::Normalization::Layer;
         let units = UnitInventory::graphemes(["abc de"]);
         let mut rng = ChaCha8Rng::seed_from_u64(2);
         let parameters =
@@ -268,6 +283,8 @@ mod tests {
             features: config.features.clone(),
             architecture: config.model.clone(),
             provenance: Provenance::default(),
+            training: Some(config.training.clone()),
+            augmentation: Some(config.augmentation.clone()),
         };
         let dir = tempfile::tempdir().unwrap();
         AcousticModel::save(dir.path(), &description, &parameters).unwrap();

@@ -14,12 +14,10 @@ use std::path::{Path, PathBuf};
 use isogloss_corpus::Manifest;
 use isogloss_features::{
     read_features, write_features, Cmvn, CmvnMode, FeatureConfig, FeatureExtractor,
-    SpeakerCmvnStats, SpecAugment,
+    SpeakerCmvnStats,
 };
 use isogloss_lexicon::Lexicon;
 use ndarray::Array2;
-use rand::{Rng, SeedableRng};
-use rand_chacha::ChaCha8Rng;
 use rayon::prelude::*;
 use sha2::{Digest, Sha256};
 
@@ -166,15 +164,12 @@ fn unit_names(
     }
 }
 
-/// Feature matrices (before normalisation) for every utterance of a manifest, one per speed
-/// factor (`factors[0]` should be 1.0), cached under `cache` when given. Utterances whose audio
-/// fails are returned as errors; the others are unaffected.
+/// Feature matrices (before normalisation) of every utterance of a manifest, unperturbed, cached
+/// under `cache` when given. Utterances whose audio fails are returned as errors; the others are
+/// unaffected. Each result is a one-element list, the shape [`normalize`] takes.
 pub fn manifest_features(
     manifest: &Manifest,
     config: &FeatureConfig,
-    factors: &[f32],
-    volume_range: f32,
-    seed: u64,
     cache: Option<&Path>,
     on_file_done: &(dyn Fn(usize, usize) + Sync),
 ) -> Result<Vec<UtteranceFeatures>, AcousticError> {
@@ -199,12 +194,10 @@ pub fn manifest_features(
     let per_file: Vec<Vec<(usize, UtteranceFeatures)>> = files
         .par_iter()
         .map(|(path, indices)| {
-            let cached =
-                |i: usize, v: usize| cache.map(|dir| dir.join(format!("{i}-{v}.safetensors")));
-            let mut results = Vec::with_capacity(indices.len());
+            let cached = |i: usize| cache.map(|dir| dir.join(format!("{i}.safetensors")));
             let all_cached = indices
                 .iter()
-                .all(|&i| (0..factors.len()).all(|v| cached(i, v).is_some_and(|p| p.exists())));
+                .all(|&i| cached(i).is_some_and(|p| p.exists()));
             let audio = if all_cached {
                 None
             } else {
@@ -214,62 +207,37 @@ pub fn manifest_features(
                     .collect();
                 Some(isogloss_audio::read_segments(path, &segments))
             };
-            for (k, &i) in indices.iter().enumerate() {
-                let utterance = &manifest.utterances[i];
-                let item = format!(
-                    "{}:{} ({})",
-                    manifest.path.display(),
-                    utterance.line,
-                    utterance.id
-                );
-                let mut variants = Vec::with_capacity(factors.len());
-                let mut failure = None;
-                for (v, &factor) in factors.iter().enumerate() {
-                    if let Some(path) = cached(i, v).filter(|p| p.exists()) {
-                        match read_features(&path) {
-                            Ok(matrix) => {
-                                variants.push(matrix);
-                                continue;
-                            }
-                            Err(e) => {
-                                failure = Some(format!("{item}: cached features unreadable: {e}"));
-                                break;
-                            }
+            let results = indices
+                .iter()
+                .enumerate()
+                .map(|(k, &i)| {
+                    let utterance = &manifest.utterances[i];
+                    let item = format!(
+                        "{}:{} ({})",
+                        manifest.path.display(),
+                        utterance.line,
+                        utterance.id
+                    );
+                    let result = (|| {
+                        if let Some(path) = cached(i).filter(|p| p.exists()) {
+                            return read_features(&path)
+                                .map_err(|e| format!("{item}: cached features unreadable: {e}"));
                         }
-                    }
-                    let samples = match &audio {
-                        Some(Ok(segments)) => &segments[k],
-                        Some(Err(e)) => {
-                            failure = Some(format!("{item}: {e}"));
-                            break;
+                        let samples = match &audio {
+                            Some(Ok(segments)) => &segments[k],
+                            Some(Err(e)) => return Err(format!("{item}: {e}")),
+                            None => return Err(format!("{item}: cache incomplete")),
+                        };
+                        let matrix = extractor.extract(samples);
+                        if let Some(path) = cached(i) {
+                            write_features(&path, &matrix)
+                                .map_err(|e| format!("{item}: cannot cache features: {e}"))?;
                         }
-                        None => {
-                            failure = Some(format!("{item}: cache incomplete"));
-                            break;
-                        }
-                    };
-                    let mut samples = if v == 0 {
-                        samples.clone()
-                    } else {
-                        isogloss_audio::speed_perturb(samples, factor as f64)
-                    };
-                    if v > 0 && volume_range > 1.0 {
-                        let mut rng =
-                            ChaCha8Rng::seed_from_u64(seed ^ ((i as u64) << 8) ^ (v as u64));
-                        let gain = rng.random_range(1.0 / volume_range..volume_range);
-                        isogloss_audio::volume_perturb(&mut samples, gain);
-                    }
-                    let matrix = extractor.extract(&samples);
-                    if let Some(path) = cached(i, v) {
-                        if let Err(e) = write_features(&path, &matrix) {
-                            failure = Some(format!("{item}: cannot cache features: {e}"));
-                            break;
-                        }
-                    }
-                    variants.push(matrix);
-                }
-                results.push((i, failure.map_or(Ok(variants), Err)));
-            }
+                        Ok(matrix)
+                    })();
+                    (i, result.map(|matrix| vec![matrix]))
+                })
+                .collect();
             let finished = done.fetch_add(1, std::sync::atomic::Ordering::Relaxed) + 1;
             on_file_done(finished, total);
             results
@@ -399,9 +367,6 @@ fn prepare_split(
     let mut features = manifest_features(
         manifest,
         &config.features,
-        &[1.0],
-        1.0,
-        0,
         Some(cache),
         &|done, total| {
             if let Ok(mut p) = progress.lock() {
@@ -531,13 +496,21 @@ fn prepare_training_set(
         }
         speaker_cmvn = stats.finish(config.features.unit_variance)?;
     }
-    let training = &config.training;
+    let augmentation = &config.augmentation;
+    let masks = &augmentation.masks;
     let perturbation = Perturbation {
-        speed_factors: training.speed_factors.clone(),
-        volume_range: training.volume_range,
-        spec_augment: training
-            .spec_augment
-            .then(|| (SpecAugment::default(), config.features.delta_order() + 1)),
+        speed_factors: augmentation.speed_factors.clone(),
+        waveform: if augmentation.has_waveform_steps() {
+            Some(
+                isogloss_audio::augment::Augmenter::new(augmentation.waveform())
+                    .map_err(|e| AcousticError::Config(e.to_string()))?,
+            )
+        } else {
+            None
+        },
+        vtlp: augmentation.vtlp.clone(),
+        masks: (masks.time_masks > 0 || masks.frequency_masks > 0)
+            .then(|| (masks.clone(), config.features.delta_order() + 1)),
     };
     let set = AudioSet::new(store, utterances, &config.features, speaker_cmvn, perturbation)?;
     Ok(TrainingSet {
@@ -726,7 +699,11 @@ pub fn train(
                     skipped_utterances: training_set.skipped.len(),
                     seed,
                     written_by: format!("isogloss-acoustic {}", env!("CARGO_PKG_VERSION")),
+                    updates: trainer.updates(),
+                    minutes: options.minutes,
                 },
+                training: Some(config.training.clone()),
+                augmentation: Some(config.augmentation.clone()),
             };
             AcousticModel::save(&options.out, &description, &trainer.model_tensors())?;
             summary.best = Some(record.clone());
@@ -758,7 +735,7 @@ pub fn manifest_posteriors(
     on_file_done: &(dyn Fn(usize, usize) + Sync),
 ) -> Result<Vec<Result<Array2<f32>, String>>, AcousticError> {
     let config = model.feature_config();
-    let raw = manifest_features(manifest, config, &[1.0], 1.0, 0, None, on_file_done)?;
+    let raw = manifest_features(manifest, config, None, on_file_done)?;
     let mut ok_indices = Vec::new();
     let mut features = Vec::new();
     let mut results: Vec<Result<Array2<f32>, String>> = Vec::with_capacity(raw.len());

@@ -757,6 +757,7 @@ mod tests {
                 ..TrainingConfig::default()
             },
             features: crate::config::default_features(),
+            augmentation: crate::config::Augmentation::none(),
         }
     }
 
@@ -970,6 +971,8 @@ mod tests {
             features,
             architecture: config.model.clone(),
             provenance: Provenance::default(),
+            training: None,
+            augmentation: None,
         };
         let dir = tempfile::tempdir().unwrap();
         crate::AcousticModel::save(dir.path(), &description, &trainer.model_tensors()).unwrap();

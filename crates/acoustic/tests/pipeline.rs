@@ -47,9 +47,14 @@ batch_frames = 4000
 learning_rate = 0.003
 warmup_share = 0.05
 patience = 0
+[augmentation]
 speed_factors = []
-volume_range = 1.0
-spec_augment = false
+vtlp = { probability = 0.0 }
+reverb = { probability = 0.0 }
+noise = { probability = 0.0 }
+band_limit = { probability = 0.0 }
+gain = { probability = 0.0 }
+masks = { time_masks = 0, frequency_masks = 0 }
 "#;
 
 fn options(
