@@ -7,6 +7,9 @@ use std::collections::HashMap;
 use std::path::{Path, PathBuf};
 use std::process::Command;
 
+#[path = "../crates/chart/tests/support/geometry.rs"]
+mod geometry;
+
 /// Measured with the shipped model and the in-domain LM (README, "The shipped demo model"):
 /// WER 15.3 %, flexible WER 10.0 % (15.7 % / 9.4 % before the Festival speakers' sentences joined
 /// the LM text); plus a margin of about two points for numeric differences
@@ -86,8 +89,10 @@ fn demo_runs_from_the_repository_root_and_meets_the_regression_thresholds() {
     let vtt = std::fs::read_to_string(out.path().join("interview1.vtt")).unwrap();
     assert!(vtt.starts_with("WEBVTT"));
     assert!(vtt.matches(" --> ").count() >= 10, "too few cues:\n{vtt}");
-    let svg = std::fs::read_to_string(out.path().join("chart.svg")).unwrap();
-    assert!(svg.contains("<svg") && svg.contains("corran"));
+    check_chart(
+        &std::fs::read_to_string(out.path().join("chart.svg")).unwrap(),
+        &std::fs::read_to_string(out.path().join("results.csv")).unwrap(),
+    );
 
     let results = read_results(&out.path().join("results.csv"));
     let greedy = results["greedy (no LM, no lexicon)"]["all"];
@@ -135,6 +140,66 @@ fn demo_runs_from_the_repository_root_and_meets_the_regression_thresholds() {
     assert!(again.status.success());
     assert!(String::from_utf8_lossy(&again.stderr).contains("acoustic model: 0 utterances"));
     assert_eq!(read_results(&out.path().join("results.csv")), results);
+}
+
+/// The chart's rows read back from its geometry are the charted system's per-dialect rates
+/// and intervals of results.csv, in %, one row per dialect and one for all, none empty.
+fn check_chart(svg: &str, csv: &str) {
+    let title = geometry::elements(svg)
+        .into_iter()
+        .find(|e| e.class() == "title")
+        .unwrap()
+        .text;
+    let system = title
+        .split_once("per dialect: ")
+        .expect("the title names the system")
+        .1;
+    let figures: HashMap<&str, Vec<f64>> = csv
+        .lines()
+        .skip(1)
+        .filter_map(|line| line.strip_prefix(&format!("\"{system}\",")))
+        .map(|rest| {
+            let fields: Vec<&str> = rest.split(',').collect();
+            (
+                fields[0],
+                fields[3..9]
+                    .iter()
+                    .map(|f| 100.0 * f.parse::<f64>().unwrap())
+                    .collect(),
+            )
+        })
+        .collect();
+    let rows = geometry::bar_rows(svg);
+    assert_eq!(rows.len(), 7, "six dialects and all: {rows:?}");
+    assert!(
+        svg.contains("95 % bootstrap interval over utterances"),
+        "the legend says what the whiskers are"
+    );
+    for row in rows {
+        let key = if row.label == "all dialects" {
+            "all"
+        } else {
+            row.label.as_str()
+        };
+        let f = &figures[key];
+        assert_eq!(row.bars.len(), 2, "{}: WER and flexible WER", row.label);
+        for (bar, (value, low, high)) in row
+            .bars
+            .iter()
+            .zip([(f[0], f[1], f[2]), (f[3], f[4], f[5])])
+        {
+            let (drawn_low, drawn_high) = bar.interval.expect("every bar has its whisker");
+            // results.csv has six decimals of the rate; the SVG two of a pixel (about 0.01 %).
+            for (drawn, expected) in [(bar.value, value), (drawn_low, low), (drawn_high, high)] {
+                assert!(
+                    (drawn - expected).abs() < 0.01,
+                    "{} {}: drawn {drawn}, results.csv {expected}",
+                    row.label,
+                    bar.series
+                );
+            }
+        }
+    }
 }
 
 #[test]

@@ -7,6 +7,9 @@
 use std::path::PathBuf;
 use std::process::{Command, Output};
 
+#[path = "../crates/chart/tests/support/geometry.rs"]
+mod geometry;
+
 fn fixture(name: &str) -> PathBuf {
     PathBuf::from(env!("CARGO_MANIFEST_DIR"))
         .join("../../tests/fixtures/score")
@@ -194,6 +197,87 @@ fn markdown_by_default_and_csv_on_request() {
         lines[1]
     );
     assert!(lines[2].starts_with("dialect,fells,3,14,"), "{}", lines[2]);
+}
+
+#[test]
+fn chart_shows_every_rate_with_its_interval_per_dialect_and_speaker() {
+    let dir = tempfile::tempdir().unwrap();
+    let chart = dir.path().join("chart.svg");
+    let variants = fixture("variants.tsv");
+    let second = fixture("hyp_b.tsv");
+    let report = json_of(&score(&[
+        "--variants",
+        variants.to_str().unwrap(),
+        "--by",
+        "dialect,speaker",
+        "--compare",
+        second.to_str().unwrap(),
+        "--confidence",
+        "0.9",
+        "--json",
+        "--chart",
+        chart.to_str().unwrap(),
+    ]));
+    let svg = std::fs::read_to_string(&chart).unwrap();
+    // The configured level, not a fixed one.
+    assert!(
+        svg.contains(">90 % bootstrap interval over utterances</text>"),
+        "{svg}"
+    );
+    assert!(!svg.contains("95 %"));
+    for heading in ["Overall", "By dialect: hyp_a.tsv", "By speaker: hyp_a.tsv"] {
+        assert!(svg.contains(&format!(">{heading}</text>")), "{heading}");
+    }
+    // Rows top to bottom: both systems overall, then the groups in report order.
+    let mut expected = vec![
+        ("all: hyp_a.tsv".to_string(), &report, None),
+        (
+            "all: hyp_b.tsv".to_string(),
+            &report["comparison"],
+            Some(&report["comparison"]),
+        ),
+    ];
+    for group in report["groups"].as_array().unwrap() {
+        expected.push((group["value"].as_str().unwrap().to_string(), group, None));
+    }
+    let rows = geometry::bar_rows(&svg);
+    assert_eq!(rows.len(), expected.len(), "{rows:?}");
+    for (row, (label, summary, comparison)) in rows.iter().zip(&expected) {
+        assert_eq!(&row.label, label);
+        assert_eq!(row.bars.len(), 2, "{label}");
+        let figures = [
+            ("wer", "wer_interval", "wer_difference"),
+            (
+                "flexible_wer",
+                "flexible_wer_interval",
+                "flexible_wer_difference",
+            ),
+        ];
+        for (bar, (rate, interval, difference)) in row.bars.iter().zip(figures) {
+            let percent = |v: &serde_json::Value| 100.0 * v.as_f64().unwrap();
+            let (low, high) = bar.interval.expect("every bar has its whisker");
+            for (drawn, figure) in [
+                (bar.value, percent(&summary[rate])),
+                (low, percent(&summary[interval]["low"])),
+                (high, percent(&summary[interval]["high"])),
+            ] {
+                assert!(
+                    (drawn - figure).abs() < 0.01,
+                    "{label} {rate}: drawn {drawn}, report {figure}"
+                );
+            }
+            let mark = comparison.and_then(|c| {
+                let d = &c[difference]["difference_interval"];
+                let (low, high) = (d["low"].as_f64()?, d["high"].as_f64()?);
+                (high < 0.0)
+                    .then(|| "lower".to_string())
+                    .or((low > 0.0).then(|| "higher".to_string()))
+            });
+            assert_eq!(bar.mark, mark, "{label} {rate}");
+        }
+    }
+    // System 2 errs far less (1/27 against 12/27): its plain WER is marked lower.
+    assert_eq!(rows[1].bars[0].mark.as_deref(), Some("lower"));
 }
 
 fn assert_fails(output: &Output, expected: &[&str]) {

@@ -6,6 +6,9 @@
 use std::path::{Path, PathBuf};
 use std::process::{Command, Output};
 
+#[path = "../crates/chart/tests/support/geometry.rs"]
+mod geometry;
+
 use isogloss_lexicon::Lexicon;
 use isogloss_lm::ArpaModel;
 use isogloss_sweep::resources::lm_words;
@@ -123,6 +126,76 @@ fn hypotheses(path: &Path) -> Vec<String> {
         .collect()
 }
 
+/// The sweep chart read back from its geometry: one row per cell in grid order, named by the
+/// axes that vary (writing as the heading, LM in the row, the baseline said), each bar at the
+/// cell's rate with its whisker at the interval of results.json, in %, and a triangle exactly
+/// where the paired difference to the baseline has an interval that excludes 0.
+fn check_chart(svg: &str, cells: &[serde_json::Value]) {
+    let rows = geometry::bar_rows(svg);
+    assert_eq!(rows.len(), cells.len(), "one row per cell: {rows:?}");
+    for heading in ["dialectal", "normalized"] {
+        let line = format!("font-weight=\"bold\">{heading}</text>");
+        assert!(
+            svg.lines()
+                .any(|l| l.contains("class=\"heading\"") && l.ends_with(&line)),
+            "heading {heading}"
+        );
+    }
+    assert!(svg.contains(
+        "Every cell: model demo, letters lexicon, beam 16, LM weight 0.8, word bonus 1.5."
+    ));
+    for (row, cell) in rows.iter().zip(cells) {
+        let mut label = cell["lm"].as_str().unwrap().to_string();
+        if cell["column"] == "dialectal" && cell["lm"] == "two" {
+            label.push_str(" (baseline)");
+        }
+        assert_eq!(row.label, label);
+        let series = [
+            ("WER", "wer", "wer_interval", "versus_baseline"),
+            (
+                "flexible WER",
+                "flexible_wer",
+                "flexible_wer_interval",
+                "flexible_versus_baseline",
+            ),
+        ];
+        let expected: Vec<_> = series
+            .iter()
+            .filter(|(_, rate, _, _)| cell["overall"][rate].is_number())
+            .collect();
+        assert_eq!(row.bars.len(), expected.len(), "{label}: {row:?}");
+        for (bar, (name, rate, interval, versus)) in row.bars.iter().zip(expected) {
+            assert_eq!(bar.series, *name);
+            let percent = |v: &serde_json::Value| 100.0 * v.as_f64().unwrap();
+            let interval = &cell["overall"][interval];
+            let (low, high) = bar.interval.expect("a whisker on every bar");
+            for (drawn, figure) in [
+                (bar.value, percent(&cell["overall"][rate])),
+                (low, percent(&interval["low"])),
+                (high, percent(&interval["high"])),
+            ] {
+                assert!(
+                    (drawn - figure).abs() < 0.01,
+                    "{label} {name}: drawn {drawn}, results.json {figure}"
+                );
+            }
+            let mark = cell[versus]["difference_interval"]
+                .as_object()
+                .and_then(|d| {
+                    let (low, high) = (d["low"].as_f64().unwrap(), d["high"].as_f64().unwrap());
+                    if high < 0.0 {
+                        Some("lower".to_string())
+                    } else if low > 0.0 {
+                        Some("higher".to_string())
+                    } else {
+                        None
+                    }
+                });
+            assert_eq!(bar.mark, mark, "{label} {name}");
+        }
+    }
+}
+
 #[test]
 fn cells_equal_separate_transcribe_and_score_runs_and_caches_recompute_what_changed() {
     let dir = tempfile::tempdir().unwrap();
@@ -148,6 +221,10 @@ fn cells_equal_separate_transcribe_and_score_runs_and_caches_recompute_what_chan
     assert_eq!(cells.len(), 4);
     assert_eq!(results["acoustic_runs"], 8);
     assert_eq!(results["cells_decoded"], 4);
+    check_chart(
+        &std::fs::read_to_string(dir.join("out/chart.svg")).unwrap(),
+        cells,
+    );
 
     for cell in cells {
         let column = cell["column"].as_str().unwrap();

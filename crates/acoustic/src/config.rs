@@ -403,8 +403,21 @@ impl ModelConfig {
             path: path.to_path_buf(),
             source,
         })?;
-        let config = Self::parse(&text)
-            .map_err(|e| AcousticError::Config(format!("{}: {e}", path.display())))?;
+        // A syntax or type error is named by its line; a value out of range by the file.
+        if let Err(error) = toml::from_str::<ModelConfig>(&text) {
+            let line = error
+                .span()
+                .map_or(1, |span| text[..span.start].matches('\n').count() + 1);
+            return Err(AcousticError::Line {
+                path: path.to_path_buf(),
+                line,
+                problem: error.message().trim().to_string(),
+            });
+        }
+        let config = Self::parse(&text).map_err(|e| AcousticError::Input {
+            path: path.to_path_buf(),
+            problem: e.to_string(),
+        })?;
         if let Ok(table) = text.parse::<toml::Table>() {
             let model = table.get("model").and_then(toml::Value::as_table);
             let features = table.get("features").and_then(toml::Value::as_table);

@@ -8,7 +8,8 @@
 //!   utterance's valid frames, and keeps running statistics for inference beside the parameters.
 //! * [`optim`] — AdamW updating parameters in place; [`train`] — the training loop (bucketed
 //!   batches, warm-up and decay, clipping, early stopping, atomic checkpoints, exact resume);
-//!   [`pipeline`] — manifests to cached features to a model directory, and back to posteriors.
+//!   [`pipeline`] — manifests to cached features to a model directory, and back to posteriors;
+//!   [`log`] — the training log read back and the training curve drawn from it.
 //! * [`model`] — `model.toml` + `model.safetensors`, [`AcousticModel::log_posteriors`] and
 //!   [`greedy_decode`].
 //!
@@ -50,6 +51,7 @@ pub mod data;
 mod fused;
 pub mod greedy;
 pub mod io;
+pub mod log;
 pub mod model;
 pub mod optim;
 pub mod pipeline;
@@ -101,6 +103,16 @@ pub enum AcousticError {
         /// The checkpoint file.
         path: PathBuf,
         /// What is wrong with it.
+        problem: String,
+    },
+    /// A line of an input file (configuration, training log) that cannot be used.
+    #[error("{path}, line {line}: {problem}")]
+    Line {
+        /// The file.
+        path: PathBuf,
+        /// 1-based line.
+        line: usize,
+        /// What was expected and what was found.
         problem: String,
     },
     /// Input that cannot be used (empty manifest, nothing to resume, …).

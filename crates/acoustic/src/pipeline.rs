@@ -520,8 +520,9 @@ fn prepare_training_set(
     })
 }
 
-/// Trains (or resumes training) a model as `options` says, writing the model directory, a
-/// checkpoint after every epoch and `training.jsonl`.
+/// Trains (or resumes training) a model as `options` says, writing the model directory, and
+/// after every epoch a checkpoint, a line of `training.jsonl` and the training curve
+/// `training-curve.svg` drawn from it.
 pub fn train(
     options: &TrainOptions,
     on_event: &mut dyn FnMut(&PipelineEvent),
@@ -712,6 +713,24 @@ pub fn train(
             .map_err(|e| AcousticError::Config(format!("epoch record does not serialise: {e}")))?;
         line["event"] = "epoch".into();
         append_log(&log_path, &line)?;
+        // The curve is a view of the log: failing to draw it costs the user a picture, not the
+        // run.
+        let curve = crate::log::read_epochs(&log_path).and_then(|epochs| {
+            let path = options.out.join(crate::log::CURVE_FILE);
+            let name = options.out.file_name().map_or_else(
+                || options.out.display().to_string(),
+                |n| n.to_string_lossy().into_owned(),
+            );
+            crate::io::write_atomically(
+                &path,
+                crate::log::training_curve(&name, &epochs).as_bytes(),
+            )
+        });
+        if let Err(e) = curve {
+            on_event(&PipelineEvent::Warning(format!(
+                "training curve not drawn: {e}"
+            )));
+        }
     }
     summary.epochs_done = trainer.progress().epochs_done;
     summary.stopped_early =

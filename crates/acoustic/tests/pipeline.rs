@@ -2,7 +2,11 @@
 
 use std::path::{Path, PathBuf};
 
+#[path = "../../chart/tests/support/geometry.rs"]
+mod geometry;
+
 use isogloss_acoustic::config::ModelConfig;
+use isogloss_acoustic::log::{read_epochs, CURVE_FILE};
 use isogloss_acoustic::pipeline::{manifest_posteriors, train, TrainOptions};
 use isogloss_acoustic::{greedy_decode, AcousticError, AcousticModel};
 use isogloss_corpus::Manifest;
@@ -114,6 +118,38 @@ fn overfits_a_handful_of_demo_utterances() {
         correct >= 3,
         "{correct} of 4 transcripts reproduced exactly"
     );
+
+    // The training curve in the model directory shows every logged epoch at its figures and
+    // marks the epoch the model directory holds.
+    let epochs = read_epochs(&dir.path().join("model/training.jsonl")).unwrap();
+    assert_eq!(epochs.len(), summary.epochs_done);
+    let svg = std::fs::read_to_string(dir.path().join("model").join(CURVE_FILE)).unwrap();
+    let points = geometry::curve_points(&svg);
+    for (series, value) in [
+        (
+            "train loss",
+            (|e| e.train_loss) as fn(&isogloss_acoustic::log::LoggedEpoch) -> f64,
+        ),
+        ("dev loss", |e| e.dev_loss),
+        ("dev unit error rate", |e| 100.0 * e.dev_unit_error_rate),
+    ] {
+        assert_eq!(points[series].len(), epochs.len(), "{series}");
+        for ((x, y), epoch) in points[series].iter().zip(&epochs) {
+            assert!(
+                (x - epoch.epoch as f64).abs() < 0.01,
+                "{series}: epoch {} at {x}",
+                epoch.epoch
+            );
+            // Coordinates are written to 0.01 px; an axis of 300 px spans at most 100 (%).
+            assert!(
+                (y - value(epoch)).abs() < 0.005,
+                "{series}, epoch {}: {} drawn at {y}",
+                epoch.epoch,
+                value(epoch)
+            );
+        }
+    }
+    assert!(svg.contains(&format!(">kept: epoch {}</text>", best.epoch)));
 }
 
 #[test]

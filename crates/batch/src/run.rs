@@ -79,10 +79,19 @@ pub fn run_batch(
                     done.insert(item.id.clone(), transcript);
                     audio_seconds += seconds;
                 }
-                Err(error) => failed.push((
-                    item.id.clone(),
-                    format!("{}: {error}", item.audio.display()),
-                )),
+                Err(error) => {
+                    // Audio errors name their file already; others learn it here, once.
+                    let audio = item.audio.display().to_string();
+                    let message = error.to_string();
+                    failed.push((
+                        item.id.clone(),
+                        if message.contains(&audio) {
+                            message
+                        } else {
+                            format!("{audio}: {message}")
+                        },
+                    ));
+                }
             }
             finished += 1;
             progress(Progress {

@@ -98,8 +98,70 @@ fn main() -> ExitCode {
         Ok(Outcome::Done) => ExitCode::SUCCESS,
         Ok(Outcome::SomeItemsFailed) => ExitCode::from(2),
         Err(error) => {
-            eprintln!("error: {error:#}");
+            eprintln!("error: {}", said_once(&error));
             ExitCode::from(1)
         }
+    }
+}
+
+/// The error and its chain of causes, each said once. Library errors name their file and
+/// usually print their cause too (`x.tsv: No such file or directory (os error 2)`), and the
+/// cause is also their `source`; printing the chain blindly would repeat it. A cause whose text
+/// the message already holds is left out.
+fn said_once(error: &anyhow::Error) -> String {
+    let mut text = error.to_string();
+    for cause in error.chain().skip(1) {
+        let cause = cause.to_string();
+        if !text.contains(&cause) {
+            text.push_str(": ");
+            text.push_str(&cause);
+        }
+    }
+    text
+}
+
+#[cfg(test)]
+mod tests {
+    use super::said_once;
+
+    /// A library error as they are written: it names its file, prints its cause and returns it
+    /// as its source.
+    #[derive(Debug)]
+    struct Shown {
+        path: String,
+        source: std::io::Error,
+    }
+
+    impl std::fmt::Display for Shown {
+        fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+            write!(f, "{}: {}", self.path, self.source)
+        }
+    }
+
+    impl std::error::Error for Shown {
+        fn source(&self) -> Option<&(dyn std::error::Error + 'static)> {
+            Some(&self.source)
+        }
+    }
+
+    #[test]
+    fn a_cause_already_shown_is_not_repeated_and_a_new_one_is_added() {
+        let missing = || std::io::Error::new(std::io::ErrorKind::NotFound, "No such file");
+        let error = anyhow::Error::new(Shown {
+            path: "hyp.tsv".into(),
+            source: missing(),
+        });
+        assert_eq!(said_once(&error), "hyp.tsv: No such file");
+        let error = anyhow::Error::new(missing()).context("creating out");
+        assert_eq!(said_once(&error), "creating out: No such file");
+        let error = anyhow::Error::new(Shown {
+            path: "x.tsv".into(),
+            source: missing(),
+        })
+        .context("training into models/mine");
+        assert_eq!(
+            said_once(&error),
+            "training into models/mine: x.tsv: No such file"
+        );
     }
 }

@@ -155,8 +155,13 @@ impl FeatureConfig {
             path: path.to_path_buf(),
             message,
         };
-        let config: FeatureConfig = toml::from_str(text)
-            .map_err(|error| invalid(format!("not a valid feature config: {error}")))?;
+        // One line: the line and the parser's message, without the parser's excerpt of the file.
+        let config: FeatureConfig = toml::from_str(text).map_err(|error| {
+            let line = error
+                .span()
+                .map_or(1, |span| text[..span.start].matches('\n').count() + 1);
+            invalid(format!("line {line}: {}", error.message().trim()))
+        })?;
         if let Ok(table) = text.parse::<toml::Table>() {
             for notice in deprecated_spellings(&table) {
                 eprintln!("warning: {}: {notice}", path.display());

@@ -34,6 +34,7 @@ use std::path::PathBuf;
 
 pub mod align;
 pub mod bootstrap;
+pub mod chart;
 pub mod input;
 pub mod report;
 pub mod tokens;

@@ -234,8 +234,13 @@ impl ExtractorConfig {
             path: path.to_path_buf(),
             message,
         };
-        let config: ExtractorConfig = toml::from_str(text)
-            .map_err(|error| invalid_file(format!("not a valid i-vector config: {error}")))?;
+        // One line: the line and the parser's message, without the parser's excerpt of the file.
+        let config: ExtractorConfig = toml::from_str(text).map_err(|error| {
+            let line = error
+                .span()
+                .map_or(1, |span| text[..span.start].matches('\n').count() + 1);
+            invalid_file(format!("line {line}: {}", error.message().trim()))
+        })?;
         config
             .validate()
             .map_err(|error| invalid_file(error.to_string()))?;

@@ -1,12 +1,13 @@
 //! The sweep's results as a Markdown table, a CSV file and an SVG chart, in our own layout.
 
 use std::fmt::Write as _;
-use std::path::Path;
 
-use plotters::prelude::*;
+use isogloss_chart::{BarChart, Section};
+use isogloss_score::chart::{
+    error_rate_series, glossary, level_percent, significance_note, summary_row,
+};
 
 use crate::run::{CellResult, SweepResults};
-use crate::SweepError;
 
 fn percent(rate: Option<f64>) -> String {
     rate.map_or_else(|| "–".to_string(), |r| format!("{:.1}", 100.0 * r))
@@ -27,17 +28,13 @@ fn versus(cell: &CellResult) -> String {
     match &cell.versus_baseline {
         None => "baseline".to_string(),
         Some(d) => format!(
-            "{:+.1} points, P(better) {:.2}",
+            "{:+.1} points [{:+.1}, {:+.1}], P(better) {:.2}",
             100.0 * d.difference,
+            100.0 * d.bootstrap.difference_interval.low,
+            100.0 * d.bootstrap.difference_interval.high,
             d.bootstrap.probability_system2_better
         ),
     }
-}
-
-/// A confidence level as a percentage without needless decimals (0.95 → "95", 0.975 → "97.5").
-fn level_percent(level: f64) -> String {
-    let text = format!("{:.1}", 100.0 * level);
-    text.trim_end_matches(".0").to_string()
 }
 
 /// The results as a Markdown document: one row per cell, then per-group figures.
@@ -53,7 +50,7 @@ pub fn markdown(results: &SweepResults) -> String {
         results.cells_decoded,
         results.cells.len()
     );
-    let _ = writeln!(text, "WER and flexible WER in %, {}% bootstrap interval in brackets; the last column compares plain WER with the baseline cell (paired bootstrap: the probability that the cell is better).\n", level_percent(results.confidence));
+    let _ = writeln!(text, "WER and flexible WER in %, {}% bootstrap interval in brackets; the last column compares plain WER with the baseline cell (paired bootstrap: the difference cell − baseline in points with its {}% interval, and the probability that the cell is better).\n", level_percent(results.confidence), level_percent(results.confidence));
     let _ = writeln!(text, "| model | column | LM | lexicon | beam | LM weight | word bonus | perplexity | OOV % | coverage % | WER | flexible WER | search RTF | against baseline |");
     let _ = writeln!(
         text,
@@ -158,166 +155,103 @@ pub fn csv(results: &SweepResults) -> String {
     text
 }
 
-/// A bar chart of WER and flexible WER per cell, as SVG.
-pub fn chart(results: &SweepResults, path: &Path) -> Result<(), SweepError> {
-    let rows: Vec<(String, Option<f64>, Option<f64>)> = results
-        .cells
-        .iter()
-        .map(|c| (c.label(), c.overall.wer, c.overall.flexible_wer))
-        .collect();
-    error_rate_bars(
-        &rows,
-        "WER (dark) and flexible WER (light) per cell, %",
-        path,
-    )
+/// The values of the cell axes, by name, in the order they label a chart row.
+fn axis_values(cell: &CellResult) -> [(&'static str, String); 7] {
+    [
+        ("model", cell.model.clone()),
+        ("column", cell.column.clone()),
+        ("lexicon", format!("{} lexicon", cell.lexicon)),
+        ("lm", cell.lm.clone()),
+        ("beam", format!("beam {}", cell.beam)),
+        (
+            "lm weight",
+            format!(
+                "LM weight {}{}",
+                cell.lm_weight,
+                if cell.tuned { " (dev)" } else { "" }
+            ),
+        ),
+        ("word bonus", format!("word bonus {}", cell.word_bonus)),
+    ]
 }
 
-/// A horizontal bar chart, as SVG: one row per `(label, WER, flexible WER)`, two bars a row
-/// (plain WER dark above, flexible WER light below); a missing rate draws no bar.
-pub fn error_rate_bars(
-    rows: &[(String, Option<f64>, Option<f64>)],
-    caption: &str,
-    path: &Path,
-) -> Result<(), SweepError> {
-    let plot_error = |e: String| SweepError::Build(format!("{}: {e}", path.display()));
-    let height = 120 + 28 * rows.len().max(1) as u32;
-    let label_width = rows
-        .iter()
-        .map(|r| r.0.chars().count())
-        .max()
-        .unwrap_or(0)
-        .clamp(8, 60) as u32
-        * 7
-        + 20;
-    let backend = SVGBackend::new(path, (900, height));
-    let root = backend.into_drawing_area();
-    root.fill(&WHITE).map_err(|e| plot_error(e.to_string()))?;
-    let highest = rows
-        .iter()
-        .flat_map(|r| [r.1, r.2])
-        .flatten()
-        .fold(0.0f64, f64::max);
-    let top = (100.0 * highest * 1.1).max(1.0);
-    let mut chart = ChartBuilder::on(&root)
-        .caption(caption, ("sans-serif", 18))
-        .margin(10)
-        .x_label_area_size(30)
-        .y_label_area_size(label_width)
-        .build_cartesian_2d(0.0..top, (0..rows.len().max(1)).into_segmented())
-        .map_err(|e| plot_error(e.to_string()))?;
-    chart
-        .configure_mesh()
-        .disable_y_mesh()
-        .y_labels(rows.len().max(1))
-        .y_label_formatter(&|v| match v {
-            SegmentValue::CenterOf(i) => rows.get(*i).map(|r| r.0.clone()).unwrap_or_default(),
-            _ => String::new(),
-        })
-        .x_desc("%")
-        .draw()
-        .map_err(|e| plot_error(e.to_string()))?;
-    // Each row holds two half-height bars: plain WER above, flexible WER below.
-    let bar = |i: usize,
-               value: f64,
-               upper: bool,
-               color: RGBColor|
-     -> Rectangle<(f64, SegmentValue<usize>)> {
-        let (top_margin, bottom_margin) = if upper { (3, 14) } else { (14, 3) };
-        let mut rectangle = Rectangle::new(
-            [
-                (0.0, SegmentValue::Exact(i)),
-                (value, SegmentValue::Exact(i + 1)),
-            ],
-            color.filled(),
-        );
-        rectangle.set_margin(top_margin, bottom_margin, 0, 0);
-        rectangle
+/// The sweep's chart, as SVG: WER and flexible WER of every cell with their bootstrap
+/// intervals, a triangle where a cell differs significantly from the baseline (the paired
+/// bootstrap of the report). Rows name only the axes that vary; cells that share their model,
+/// writing and lexicon are grouped under one heading, and what every cell shares is said in a
+/// note.
+pub fn chart(results: &SweepResults) -> String {
+    let values: Vec<[(&str, String); 7]> = results.cells.iter().map(axis_values).collect();
+    let varies = |axis: usize| values.iter().any(|v| v[axis].1 != values[0][axis].1);
+    let section_axes: Vec<usize> = (0..3).filter(|&a| varies(a)).collect();
+    let row_axes: Vec<usize> = (3..7).filter(|&a| varies(a)).collect();
+    let join = |v: &[(&str, String); 7], axes: &[usize]| {
+        axes.iter()
+            .map(|&a| v[a].1.as_str())
+            .collect::<Vec<_>>()
+            .join(" · ")
     };
-    chart
-        .draw_series(
-            rows.iter()
-                .enumerate()
-                .filter_map(|(i, r)| r.1.map(|w| bar(i, 100.0 * w, true, RGBColor(40, 70, 140)))),
-        )
-        .map_err(|e| plot_error(e.to_string()))?;
-    chart
-        .draw_series(rows.iter().enumerate().filter_map(|(i, r)| {
-            r.2.map(|w| bar(i, 100.0 * w, false, RGBColor(140, 170, 220)))
-        }))
-        .map_err(|e| plot_error(e.to_string()))?;
-    root.present().map_err(|e| plot_error(e.to_string()))?;
-    Ok(())
-}
-
-/// A training curve, as SVG: train and dev loss per epoch (left axis) and the dev unit error
-/// rate in % (right axis).
-/// `epochs` holds `(epoch, train loss, dev loss, dev unit error rate)`.
-pub fn training_curve(epochs: &[(usize, f64, f64, f64)], path: &Path) -> Result<(), SweepError> {
-    let plot_error = |e: String| SweepError::Build(format!("{}: {e}", path.display()));
-    let backend = SVGBackend::new(path, (800, 420));
-    let root = backend.into_drawing_area();
-    root.fill(&WHITE).map_err(|e| plot_error(e.to_string()))?;
-    let last = epochs.iter().map(|e| e.0).max().unwrap_or(1).max(2);
-    let highest_loss = epochs
-        .iter()
-        .flat_map(|e| [e.1, e.2])
-        .filter(|v| v.is_finite())
-        .fold(0.0f64, f64::max)
-        .max(1e-6)
-        * 1.1;
-    let mut chart = ChartBuilder::on(&root)
-        .caption("Training curve", ("sans-serif", 18))
-        .margin(10)
-        .x_label_area_size(35)
-        .y_label_area_size(50)
-        .right_y_label_area_size(50)
-        .build_cartesian_2d(1usize..last, 0.0..highest_loss)
-        .map_err(|e| plot_error(e.to_string()))?
-        .set_secondary_coord(1usize..last, 0.0..100.0);
-    chart
-        .configure_mesh()
-        .x_desc("epoch")
-        .y_desc("CTC loss per frame")
-        .draw()
-        .map_err(|e| plot_error(e.to_string()))?;
-    chart
-        .configure_secondary_axes()
-        .y_desc("dev unit error rate, %")
-        .draw()
-        .map_err(|e| plot_error(e.to_string()))?;
-    let train_color = RGBColor(40, 70, 140);
-    let dev_color = RGBColor(200, 90, 40);
-    let error_color = RGBColor(60, 140, 60);
-    chart
-        .draw_series(LineSeries::new(
-            epochs.iter().map(|e| (e.0, e.1)),
-            train_color.stroke_width(2),
-        ))
-        .map_err(|e| plot_error(e.to_string()))?
-        .label("train loss")
-        .legend(move |(x, y)| PathElement::new(vec![(x, y), (x + 20, y)], train_color));
-    chart
-        .draw_series(LineSeries::new(
-            epochs.iter().map(|e| (e.0, e.2)),
-            dev_color.stroke_width(2),
-        ))
-        .map_err(|e| plot_error(e.to_string()))?
-        .label("dev loss")
-        .legend(move |(x, y)| PathElement::new(vec![(x, y), (x + 20, y)], dev_color));
-    chart
-        .draw_secondary_series(LineSeries::new(
-            epochs.iter().map(|e| (e.0, 100.0 * e.3)),
-            error_color.stroke_width(2),
-        ))
-        .map_err(|e| plot_error(e.to_string()))?
-        .label("dev unit error rate (right axis)")
-        .legend(move |(x, y)| PathElement::new(vec![(x, y), (x + 20, y)], error_color));
-    chart
-        .configure_series_labels()
-        .background_style(WHITE.mix(0.8))
-        .border_style(BLACK)
-        .draw()
-        .map_err(|e| plot_error(e.to_string()))?;
-    root.present().map_err(|e| plot_error(e.to_string()))?;
-    Ok(())
+    let mut sections: Vec<Section> = Vec::new();
+    for (index, (cell, v)) in results.cells.iter().zip(&values).enumerate() {
+        let (heading, mut label) = if row_axes.is_empty() {
+            (None, join(v, &section_axes))
+        } else {
+            let heading = (!section_axes.is_empty()).then(|| join(v, &section_axes));
+            (heading, join(v, &row_axes))
+        };
+        if label.is_empty() {
+            label = cell.lm.clone();
+        }
+        if results.baseline == Some(index) {
+            label.push_str(" (baseline)");
+        }
+        let row = summary_row(
+            &label,
+            &cell.overall,
+            cell.versus_baseline.as_ref(),
+            cell.flexible_versus_baseline.as_ref(),
+        );
+        match sections.last_mut() {
+            Some(last) if last.heading == heading => last.rows.push(row),
+            _ => sections.push(Section {
+                heading,
+                rows: vec![row],
+            }),
+        }
+    }
+    let mut notes = Vec::new();
+    if let Some(first) = values.first() {
+        let shared: Vec<String> = (0..7)
+            .filter(|&a| !varies(a))
+            .map(|a| match first[a].0 {
+                "model" => format!("model {}", first[a].1),
+                "column" => format!("{} writing", first[a].1),
+                "lm" => format!("LM {}", first[a].1),
+                _ => first[a].1.clone(),
+            })
+            .collect();
+        if !shared.is_empty() {
+            notes.push(format!("Every cell: {}.", shared.join(", ")));
+        }
+    }
+    if let Some(cell) = results.cells.first() {
+        notes.push(format!(
+            "Test set: {} utterances, {} reference words, {:.1} min of audio.",
+            cell.overall.utterances,
+            cell.overall.ref_words,
+            results.audio_seconds / 60.0
+        ));
+    }
+    if results.baseline.is_some() {
+        notes.push(significance_note(results.confidence, "the baseline"));
+    }
+    BarChart {
+        title: "Sweep: WER and flexible WER per cell".into(),
+        notes,
+        axis: "error rate, %".into(),
+        series: error_rate_series(),
+        glossary: glossary(results.confidence, "the baseline"),
+        sections,
+    }
+    .to_svg()
 }

@@ -189,12 +189,9 @@ fn split(args: SplitArgs) -> anyhow::Result<Outcome> {
         seed: args.seed,
     };
     config.validate()?;
-    let manifest = Manifest::read(&args.manifest).with_context(|| {
-        format!(
-            "cannot split {}; `isogloss corpus check` lists every problem",
-            args.manifest.display()
-        )
-    })?;
+    // The manifest's error names the file; the context says only what could not be done.
+    let manifest = Manifest::read(&args.manifest)
+        .context("cannot split the manifest (`isogloss corpus check` lists every problem)")?;
     let durations = utterance_durations(&manifest)?;
     let split = split_by_speaker(&manifest, &durations, &config)?;
     let written = split.write(&manifest, &args.out)?;

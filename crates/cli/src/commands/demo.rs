@@ -22,18 +22,19 @@ use clap::Args;
 use isogloss_acoustic::config::ModelConfig;
 use isogloss_acoustic::pipeline::TrainOptions;
 use isogloss_acoustic::AcousticModel;
+use isogloss_chart::{BarChart, Section};
 use isogloss_corpus::check::{check_manifests, AudioCheck};
 use isogloss_corpus::tsv::write_atomically;
 use isogloss_corpus::Manifest;
 use isogloss_decoder::{Decoder, GreedyDecoder, SearchGraph};
 use isogloss_lm::Smoothing;
+use isogloss_score::chart::{error_rate_series, glossary, level_percent, summary_row};
 use isogloss_score::{
     report, score_system, BootstrapOptions, Hypotheses, Reference, ScoreOptions, Summary,
     VariantMap,
 };
 use isogloss_sweep::config::{Baseline, DecoderGrid, Tuning};
 use isogloss_sweep::posteriors::{model_key, posteriors};
-use isogloss_sweep::report::{error_rate_bars, training_curve};
 use isogloss_sweep::resources::{build_lexicon, build_lm, lm_words};
 use isogloss_sweep::{run as sweep_run, LexiconChoice, LexiconKind, LmChoice, Sweep, SweepEvent};
 
@@ -45,9 +46,10 @@ use crate::Outcome;
 const BEAM: usize = 16;
 const LM_WEIGHT: f32 = isogloss_decoder::DEFAULT_LM_WEIGHT;
 const WORD_BONUS: f32 = isogloss_decoder::DEFAULT_WORD_BONUS;
-/// Bootstrap resamples and seed of the intervals.
+/// Bootstrap resamples, seed and confidence level of the intervals.
 const RESAMPLES: usize = 1000;
 const SEED: u64 = 1;
+const CONFIDENCE: f64 = 0.95;
 
 /// Run the whole job on the shipped demo data and model: check, build LMs, transcribe, score.
 #[derive(Args)]
@@ -217,11 +219,9 @@ pub fn run(args: DemoArgs) -> anyhow::Result<Outcome> {
         };
         super::train::train_with_progress(&options)
             .with_context(|| format!("training into {}", model_dir.display()))?;
-        let curve = read_training_log(&model_dir.join("training.jsonl"))?;
-        training_curve(&curve, &out.join("training-curve.svg"))?;
         eprintln!(
             "  training curve: {}",
-            out.join("training-curve.svg").display()
+            model_dir.join(isogloss_acoustic::log::CURVE_FILE).display()
         );
         model_dir
     } else {
@@ -269,7 +269,7 @@ pub fn run(args: DemoArgs) -> anyhow::Result<Outcome> {
         group_by: "dialect".into(),
         seed: SEED,
         resamples: RESAMPLES,
-        confidence: BootstrapOptions::default().confidence,
+        confidence: CONFIDENCE,
         lms: lms.clone(),
         lexicons: vec![lexicon_choice.clone()],
         decoder: DecoderGrid {
@@ -358,7 +358,7 @@ pub fn run(args: DemoArgs) -> anyhow::Result<Outcome> {
         bootstrap: BootstrapOptions {
             resamples: RESAMPLES,
             seed: SEED,
-            ..BootstrapOptions::default()
+            confidence: CONFIDENCE,
         },
         ..ScoreOptions::default()
     };
@@ -529,23 +529,9 @@ pub fn run(args: DemoArgs) -> anyhow::Result<Outcome> {
                 .total_cmp(&b.overall.wer.unwrap_or(f64::INFINITY))
         })
         .unwrap_or(&systems[0]);
-    let mut bars: Vec<(String, Option<f64>, Option<f64>)> = chosen
-        .groups
-        .iter()
-        .map(|(dialect, s)| (dialect.clone(), s.wer, s.flexible_wer))
-        .collect();
-    bars.push((
-        "all dialects".into(),
-        chosen.overall.wer,
-        chosen.overall.flexible_wer,
-    ));
-    error_rate_bars(
-        &bars,
-        &format!(
-            "WER (dark) and flexible WER (light) per dialect, %: {}",
-            chosen.name
-        ),
+    write_atomically(
         &out.join("chart.svg"),
+        dialect_chart(chosen, results.audio_seconds).as_bytes(),
     )?;
     let mut markdown = render_markdown(&systems, chosen, &results.audio_seconds, &vtt);
     markdown.push_str(&render_conditions(&conditions, &systems[1].name));
@@ -564,7 +550,7 @@ pub fn run(args: DemoArgs) -> anyhow::Result<Outcome> {
             .map(|n| n.to_string_lossy().into_owned())
             .unwrap_or_default(),
         if args.train {
-            ", training-curve.svg, model/"
+            ", model/ with its training-curve.svg"
         } else {
             ""
         },
@@ -605,25 +591,36 @@ fn greedy_summary(
     Ok(report(&reference, &system, None, Some(variants), options).overall)
 }
 
-/// `(epoch, train loss, dev loss, dev unit error rate)` of every epoch line of a training log.
-fn read_training_log(path: &Path) -> anyhow::Result<Vec<(usize, f64, f64, f64)>> {
-    let text =
-        std::fs::read_to_string(path).with_context(|| format!("reading {}", path.display()))?;
-    let mut epochs = Vec::new();
-    for (number, line) in text.lines().enumerate() {
-        let value: serde_json::Value = serde_json::from_str(line)
-            .with_context(|| format!("{}, line {}: not JSON", path.display(), number + 1))?;
-        if value["event"] == "epoch" {
-            let field = |name: &str| value[name].as_f64().unwrap_or(f64::NAN);
-            epochs.push((
-                value["epoch"].as_u64().unwrap_or(0) as usize,
-                field("train_loss"),
-                field("dev_loss"),
-                field("dev_unit_error_rate"),
-            ));
-        }
+/// The chosen system's WER and flexible WER per dialect and over all dialects, with their
+/// intervals, as SVG.
+fn dialect_chart(chosen: &System, audio_seconds: f64) -> String {
+    BarChart {
+        title: format!("WER and flexible WER per dialect: {}", chosen.name),
+        notes: vec![format!(
+            "Demo test split, dialectal writing: {} utterances, {} words, {:.1} min of speakers not heard in training. Flexible WER counts a permissible spelling variant as correct.",
+            chosen.overall.utterances,
+            chosen.overall.ref_words,
+            audio_seconds / 60.0
+        )],
+        axis: "error rate, %".into(),
+        series: error_rate_series(),
+        glossary: glossary(CONFIDENCE, "the reference"),
+        sections: vec![
+            Section {
+                heading: None,
+                rows: chosen
+                    .groups
+                    .iter()
+                    .map(|(dialect, summary)| summary_row(dialect, summary, None, None))
+                    .collect(),
+            },
+            Section {
+                heading: None,
+                rows: vec![summary_row("all dialects", &chosen.overall, None, None)],
+            },
+        ],
     }
-    Ok(epochs)
+    .to_svg()
 }
 
 fn percent(rate: Option<f64>) -> String {
@@ -649,7 +646,8 @@ fn render_table(systems: &[System], chosen: &System) -> String {
     let mut text = String::new();
     let _ = writeln!(
         text,
-        "Demo test split, dialectal writing: WER and flexible WER in % (95% bootstrap interval)\nsystem: {}\n",
+        "Demo test split, dialectal writing: WER and flexible WER in % ({}% bootstrap interval)\nsystem: {}\n",
+        level_percent(CONFIDENCE),
         chosen.name
     );
     let _ = writeln!(
@@ -689,8 +687,9 @@ fn render_markdown(systems: &[System], chosen: &System, audio_seconds: &f64, vtt
     let _ = writeln!(text, "# isogloss demo report\n");
     let _ = writeln!(
         text,
-        "Test split of the demo corpus ({:.1} min of audio), dialectal writing. WER and flexible WER (spelling variants of the variant map count as correct) in %, with 95% bootstrap intervals over utterances. Automatic transcripts: review before quoting.\n",
-        audio_seconds / 60.0
+        "Test split of the demo corpus ({:.1} min of audio), dialectal writing. WER and flexible WER (spelling variants of the variant map count as correct) in %, with {}% bootstrap intervals over utterances. Automatic transcripts: review before quoting.\n",
+        audio_seconds / 60.0,
+        level_percent(CONFIDENCE)
     );
     let _ = writeln!(text, "## Systems\n");
     let _ = writeln!(
@@ -750,7 +749,8 @@ fn render_markdown(systems: &[System], chosen: &System, audio_seconds: &f64, vtt
     }
     let _ = writeln!(
         text,
-        "\nChart: `chart.svg`. The interview transcript: `{}`. Hypotheses: `hyp-*.tsv`; the LMs: `lm/`; the lexicon: `lexicon-grapheme.tsv`.",
+        "\nChart: `chart.svg` (whiskers: the {}% intervals). The interview transcript: `{}`. Hypotheses: `hyp-*.tsv`; the LMs: `lm/`; the lexicon: `lexicon-grapheme.tsv`.",
+        level_percent(CONFIDENCE),
         vtt.file_name()
             .map(|n| n.to_string_lossy().into_owned())
             .unwrap_or_default()

@@ -62,6 +62,10 @@ pub struct ScoreArgs {
     /// Also write overall and per-group rates as CSV to this file.
     #[arg(long, value_name = "FILE")]
     pub csv: Option<PathBuf>,
+    /// Also draw WER and flexible WER with their intervals, overall and per `--by` group, as an
+    /// SVG chart into this file.
+    #[arg(long, value_name = "FILE.svg")]
+    pub chart: Option<PathBuf>,
 }
 
 /// Runs `isogloss score`.
@@ -113,6 +117,10 @@ pub fn run(args: ScoreArgs) -> anyhow::Result<Outcome> {
     }
     if let Some(path) = &args.csv {
         isogloss_corpus::tsv::write_atomically(path, render_csv(&report).as_bytes())?;
+    }
+    if let Some(path) = &args.chart {
+        let svg = isogloss_score::chart::report_chart(&report).to_svg();
+        isogloss_corpus::tsv::write_atomically(path, svg.as_bytes())?;
     }
     if args.json {
         println!("{}", serde_json::to_string_pretty(&report)?);
@@ -196,10 +204,7 @@ fn summary_rows(out: &mut String, summary: &Summary) {
 
 /// The report as Markdown, in isogloss's own layout.
 pub fn render_markdown(report: &ScoreReport) -> String {
-    // "95", "99.5": one decimal at most, none when it is zero.
-    let level = format!("{:.1}", 100.0 * report.options.bootstrap.confidence)
-        .trim_end_matches(".0")
-        .to_string();
+    let level = isogloss_score::chart::level_percent(report.options.bootstrap.confidence);
     let mut out = String::new();
     let _ = writeln!(out, "# Word error rates\n");
     let _ = writeln!(

@@ -3,7 +3,6 @@
 use std::path::PathBuf;
 use std::sync::Mutex;
 
-use anyhow::Context;
 use clap::Args;
 use isogloss_sweep::report::{chart, csv, markdown};
 use isogloss_sweep::{run, Sweep, SweepEvent};
@@ -57,15 +56,18 @@ pub fn run(args: SweepArgs) -> anyhow::Result<Outcome> {
     let out = &sweep.out_dir;
     let write = |name: &str, text: String| -> anyhow::Result<()> {
         let path = out.join(name);
-        isogloss_corpus::tsv::write_atomically(&path, text.as_bytes())
-            .with_context(|| format!("writing {}", path.display()))
+        // The error names the file.
+        Ok(isogloss_corpus::tsv::write_atomically(
+            &path,
+            text.as_bytes(),
+        )?)
     };
     let table = markdown(&results);
     write("results.md", table.clone())?;
     write("results.csv", csv(&results))?;
     let json = serde_json::to_string_pretty(&results)?;
     write("results.json", json.clone())?;
-    chart(&results, &out.join("chart.svg"))?;
+    write("chart.svg", chart(&results))?;
     if args.json {
         println!("{json}");
     } else {
