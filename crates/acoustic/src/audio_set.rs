@@ -143,10 +143,11 @@ impl PcmStore {
         let text = serde_json::to_string(&index)
             .map_err(|e| AcousticError::Config(format!("PCM index does not serialise: {e}")))?;
         crate::io::write_atomically(&index_path, text.as_bytes())?;
-        let store = Self::from_index(path, manifest, &index)?.ok_or_else(|| AcousticError::Input {
-            path: path.to_path_buf(),
-            problem: "the PCM cache just written does not match its index".into(),
-        })?;
+        let store =
+            Self::from_index(path, manifest, &index)?.ok_or_else(|| AcousticError::Input {
+                path: path.to_path_buf(),
+                problem: "the PCM cache just written does not match its index".into(),
+            })?;
         Ok((store.0, failures))
     }
 
@@ -263,7 +264,10 @@ fn decode_file(
             .zip(decoded)
             .map(|(&i, samples)| {
                 if samples.iter().any(|s| !s.is_finite()) {
-                    return (i, Err(format!("{}: the audio holds non-finite samples", item(i))));
+                    return (
+                        i,
+                        Err(format!("{}: the audio holds non-finite samples", item(i))),
+                    );
                 }
                 let pcm = samples
                     .iter()
@@ -272,7 +276,10 @@ fn decode_file(
                 (i, Ok(pcm))
             })
             .collect(),
-        Err(e) => rows.iter().map(|&i| (i, Err(format!("{}: {e}", item(i))))).collect(),
+        Err(e) => rows
+            .iter()
+            .map(|&i| (i, Err(format!("{}: {e}", item(i)))))
+            .collect(),
     }
 }
 
@@ -418,15 +425,12 @@ impl TrainingData for AudioSet {
             // A failed step (no babble talker could be read) leaves the utterance as it is.
             let _ = augmenter.apply(&mut samples, rng, Some(self as &dyn BabbleSource));
         }
-        let warp = perturbation
-            .vtlp
-            .draw(rng)
-            .and_then(|factor| {
-                perturbation
-                    .vtlp
-                    .warp(factor, self.extractor.config().sample_rate)
-                    .ok()
-            });
+        let warp = perturbation.vtlp.draw(rng).and_then(|factor| {
+            perturbation
+                .vtlp
+                .warp(factor, self.extractor.config().sample_rate)
+                .ok()
+        });
         let mut matrix = match warp {
             Some(warp) => self
                 .extractor

@@ -73,7 +73,10 @@ impl TrainingData for PreparedSet<'_> {
     }
 
     fn frames(&self, index: usize) -> usize {
-        self.utterances[index].variants.first().map_or(0, |v| v.nrows())
+        self.utterances[index]
+            .variants
+            .first()
+            .map_or(0, |v| v.nrows())
     }
 
     fn features(

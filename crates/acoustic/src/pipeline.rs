@@ -23,9 +23,9 @@ use sha2::{Digest, Sha256};
 
 use crate::audio_set::{AudioSet, AudioUtterance, PcmStore, Perturbation};
 use crate::config::ModelConfig;
+use crate::data::TrainingData;
 use crate::model::{AcousticModel, ModelDescription, Provenance, MODEL_FORMAT};
 use crate::train::{checkpoint_path, EpochRecord, PreparedUtterance, Trainer, TrainingEvent};
-use crate::data::TrainingData;
 use crate::units::{grapheme_sequence, transcript_words, UnitInventory, UnitKind};
 use crate::AcousticError;
 
@@ -105,8 +105,11 @@ fn sha256_file(path: &Path) -> Result<String, AcousticError> {
 fn manifest_digest(path: &Path, manifest: &Manifest) -> Result<String, AcousticError> {
     let mut hasher = Sha256::new();
     hasher.update(sha256_file(path)?.as_bytes());
-    let files: std::collections::BTreeSet<&Path> =
-        manifest.utterances.iter().map(|u| u.audio.as_path()).collect();
+    let files: std::collections::BTreeSet<&Path> = manifest
+        .utterances
+        .iter()
+        .map(|u| u.audio.as_path())
+        .collect();
     for file in files {
         let stamp = std::fs::metadata(file)
             .map(|m| {
@@ -362,18 +365,22 @@ fn prepare_split(
     on_event: &mut dyn FnMut(&PipelineEvent),
 ) -> Result<Split, AcousticError> {
     let mut failed = Vec::new();
-    let labels = encode_labels(manifest, column, units, lexicon, false, &mut failed, on_event)?;
-    let progress = std::sync::Mutex::new(Vec::<(usize, usize)>::new());
-    let mut features = manifest_features(
+    let labels = encode_labels(
         manifest,
-        &config.features,
-        Some(cache),
-        &|done, total| {
+        column,
+        units,
+        lexicon,
+        false,
+        &mut failed,
+        on_event,
+    )?;
+    let progress = std::sync::Mutex::new(Vec::<(usize, usize)>::new());
+    let mut features =
+        manifest_features(manifest, &config.features, Some(cache), &|done, total| {
             if let Ok(mut p) = progress.lock() {
                 p.push((done, total));
             }
-        },
-    )?;
+        })?;
     if let Ok(p) = progress.lock() {
         if let Some(&(done, total)) = p.iter().max() {
             on_event(&PipelineEvent::Features {
@@ -436,14 +443,26 @@ fn prepare_training_set(
     on_event: &mut dyn FnMut(&PipelineEvent),
 ) -> Result<TrainingSet, AcousticError> {
     let mut failed = Vec::new();
-    let labels = encode_labels(manifest, column, units, lexicon, true, &mut failed, on_event)?;
+    let labels = encode_labels(
+        manifest,
+        column,
+        units,
+        lexicon,
+        true,
+        &mut failed,
+        on_event,
+    )?;
     let progress = std::sync::Mutex::new((0usize, 0usize));
-    let (store, failures) =
-        PcmStore::open_or_build(&cache.join("train.pcm"), manifest, digest, &|done, total| {
+    let (store, failures) = PcmStore::open_or_build(
+        &cache.join("train.pcm"),
+        manifest,
+        digest,
+        &|done, total| {
             if let Ok(mut p) = progress.lock() {
                 *p = (done, total);
             }
-        })?;
+        },
+    )?;
     if let Ok(&(done, total)) = progress.lock().as_deref() {
         on_event(&PipelineEvent::Features {
             split: "train",
@@ -512,7 +531,13 @@ fn prepare_training_set(
         masks: (masks.time_masks > 0 || masks.frequency_masks > 0)
             .then(|| (masks.clone(), config.features.delta_order() + 1)),
     };
-    let set = AudioSet::new(store, utterances, &config.features, speaker_cmvn, perturbation)?;
+    let set = AudioSet::new(
+        store,
+        utterances,
+        &config.features,
+        speaker_cmvn,
+        perturbation,
+    )?;
     Ok(TrainingSet {
         set,
         failed,

@@ -30,9 +30,9 @@ use rayon::prelude::*;
 use serde::{Deserialize, Serialize};
 
 use crate::config::{ModelConfig, Schedule};
-pub use crate::data::{Augment, PreparedUtterance};
-use crate::data::{utterance_rng, TrainingData};
 use crate::ctc::{min_frames_for, CtcLoss, CtcTargets};
+use crate::data::{utterance_rng, TrainingData};
+pub use crate::data::{Augment, PreparedUtterance};
 use crate::optim::{AdamW, Moments};
 use crate::tdnn::{initial_parameters, initial_statistics, var_builder, Tdnn};
 use crate::units::UnitInventory;
@@ -363,7 +363,8 @@ impl Trainer {
             Schedule::Cosine => {
                 let progress = ((step - warmup) / (total - warmup).max(1.0)).min(1.0);
                 let floor = training.final_rate;
-                peak * (floor + (1.0 - floor) * 0.5 * (1.0 + (std::f64::consts::PI * progress).cos()))
+                peak * (floor
+                    + (1.0 - floor) * 0.5 * (1.0 + (std::f64::consts::PI * progress).cos()))
             }
         }
     }
@@ -1018,14 +1019,26 @@ mod tests {
         let mut trainer = Trainer::new(config, units(), 5, 1).unwrap();
         trainer.progress.planned_updates = 100;
         let rate = |step| trainer.learning_rate(step);
-        assert!((rate(1) - 1e-4).abs() < 1e-12, "linear warm-up over 10 updates");
-        assert!((rate(10) - 1e-3).abs() < 1e-12, "the peak at the end of the warm-up");
+        assert!(
+            (rate(1) - 1e-4).abs() < 1e-12,
+            "linear warm-up over 10 updates"
+        );
+        assert!(
+            (rate(10) - 1e-3).abs() < 1e-12,
+            "the peak at the end of the warm-up"
+        );
         // Half-way through the decay the cosine is at its middle: (peak + floor) / 2.
         assert!((rate(55) - 1e-3 * (1.0 + 0.02) / 2.0).abs() < 1e-12);
-        assert!((rate(100) - 2e-5).abs() < 1e-12, "the floor at the last planned update");
+        assert!(
+            (rate(100) - 2e-5).abs() < 1e-12,
+            "the floor at the last planned update"
+        );
         assert!((rate(150) - 2e-5).abs() < 1e-12, "and after it");
         let steps: Vec<f64> = (10..=100).map(rate).collect();
-        assert!(steps.windows(2).all(|w| w[1] <= w[0]), "never rises after the peak");
+        assert!(
+            steps.windows(2).all(|w| w[1] <= w[0]),
+            "never rises after the peak"
+        );
     }
 
     #[test]

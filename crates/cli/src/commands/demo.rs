@@ -67,8 +67,8 @@ pub struct DemoArgs {
     /// Report folder (created; earlier results in it are reused where nothing changed).
     #[arg(long, default_value = "demo-report")]
     out: PathBuf,
-    /// Retrain a small model from scratch first and use it (measured 7.5 minutes on two cores
-    /// when the train split held 33 minutes of speech; it now holds 50, see the README).
+    /// Retrain a small model from scratch first and use it (a quarter of an hour or more on two
+    /// cores with the current recipe and 50 minutes of speech, see the README).
     #[arg(long)]
     train: bool,
     /// Architecture and training settings for --train.
@@ -414,7 +414,10 @@ pub fn run(args: DemoArgs) -> anyhow::Result<Outcome> {
 
     // The condition table: the test split and each cross condition, greedy and with the
     // in-domain LM and the lexicon (the same decoder settings as above).
-    step(5, "transcribing unseen voices and degraded channels (the cross split)");
+    step(
+        5,
+        "transcribing unseen voices and degraded channels (the cross split)",
+    );
     let mut conditions = Vec::new();
     let cross_dir = out.join("cross");
     std::fs::create_dir_all(&cross_dir)
@@ -457,7 +460,11 @@ pub fn run(args: DemoArgs) -> anyhow::Result<Outcome> {
             .with_context(|| format!("{}: no result from the decoder", manifest.display()))?;
         let target = cross_dir.join(format!("hyp-{stem}-indomain.tsv"));
         std::fs::copy(&cell.hypotheses, &target).with_context(|| {
-            format!("copying {} to {}", cell.hypotheses.display(), target.display())
+            format!(
+                "copying {} to {}",
+                cell.hypotheses.display(),
+                target.display()
+            )
         })?;
         eprintln!(
             "  {label}: greedy WER {} %, with LM and lexicon {} %",
@@ -813,9 +820,8 @@ fn render_conditions_csv(rows: &[ConditionRow]) -> String {
 
 /// The condition table printed at the end.
 fn render_condition_table(rows: &[ConditionRow]) -> String {
-    let mut text = String::from(
-        "Unseen voices and channels (in-domain LM + grapheme lexicon), WER in %\n\n",
-    );
+    let mut text =
+        String::from("Unseen voices and channels (in-domain LM + grapheme lexicon), WER in %\n\n");
     let _ = writeln!(
         text,
         "{:<24} {:>10} {:>20} {:>20}",
