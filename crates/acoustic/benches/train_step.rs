@@ -4,17 +4,31 @@
 //!
 //! Mirrors `scripts/bench/tdnn_torch.py` (same config, batch, frames, units, labels):
 //! `RAYON_NUM_THREADS=2 cargo bench -p isogloss-acoustic --bench train_step -- --batch 16 --frames 600`
-//! Prints one JSON line.
+//! `--normalization batch|layer|none` overrides the configuration's. Prints one JSON line, with
+//! the median wall time and the median CPU time of the process per step (on a loaded machine
+//! the CPU time with `RAYON_NUM_THREADS=1` is the steadier figure).
 
 use std::time::Instant;
 
 use candle_core::{Device, Tensor};
-use isogloss_acoustic::config::ModelConfig;
+use isogloss_acoustic::config::{ModelConfig, Normalization};
 use isogloss_acoustic::train::Trainer;
 use isogloss_acoustic::units::{UnitInventory, UnitKind};
 use ndarray::Array2;
 use rand::{Rng, SeedableRng};
 use rand_chacha::ChaCha8Rng;
+
+/// CPU time consumed by the process (all its threads), in seconds.
+fn process_cpu_seconds() -> f64 {
+    let mut now = libc::timespec {
+        tv_sec: 0,
+        tv_nsec: 0,
+    };
+    // SAFETY: clock_gettime writes one timespec through a valid pointer to a local.
+    let status = unsafe { libc::clock_gettime(libc::CLOCK_PROCESS_CPUTIME_ID, &mut now) };
+    assert_eq!(status, 0, "the process CPU clock is not available");
+    now.tv_sec as f64 + now.tv_nsec as f64 * 1e-9
+}
 
 fn median(mut values: Vec<f64>) -> f64 {
     values.sort_by(|a, b| a.total_cmp(b));
@@ -23,6 +37,7 @@ fn median(mut values: Vec<f64>) -> f64 {
 
 fn main() {
     let mut config_path = None;
+    let mut normalization = None;
     let (mut batch, mut frames, mut steps, mut dims, mut units, mut labels) =
         (16, 600, 12, 39, 40, 60);
     let args: Vec<String> = std::env::args().skip(1).collect();
@@ -31,6 +46,7 @@ fn main() {
         let value = args.get(i + 1).cloned().unwrap_or_default();
         match args[i].as_str() {
             "--config" => config_path = Some(value),
+            "--normalization" => normalization = Some(value),
             "--batch" => batch = value.parse().unwrap_or(batch),
             "--frames" => frames = value.parse().unwrap_or(frames),
             "--steps" => steps = value.parse().unwrap_or(steps),
@@ -44,10 +60,18 @@ fn main() {
         }
         i += 2;
     }
-    let config = match config_path {
+    let mut config = match config_path {
         Some(path) => ModelConfig::read(std::path::Path::new(&path)).expect("readable config"),
         None => ModelConfig::small(),
     };
+    if let Some(name) = normalization {
+        config.model.normalization = match name.as_str() {
+            "batch" => Normalization::Batch,
+            "layer" => Normalization::Layer,
+            "none" => Normalization::None,
+            other => panic!("--normalization is batch, layer or none, not {other:?}"),
+        };
+    }
     let inventory = UnitInventory {
         kind: UnitKind::Phones,
         units: (0..units)
@@ -73,15 +97,17 @@ fn main() {
         })
         .collect();
     let refs: Vec<&Array2<f32>> = features.iter().collect();
-    let mut times = Vec::new();
+    let (mut times, mut cpu_times) = (Vec::new(), Vec::new());
     for _ in 0..steps {
-        let start = Instant::now();
+        let (start, cpu_start) = (Instant::now(), process_cpu_seconds());
         trainer
             .train_batch(&refs, targets.clone(), &mut rng)
             .expect("training step runs");
         times.push(start.elapsed().as_secs_f64());
+        cpu_times.push(process_cpu_seconds() - cpu_start);
     }
     let step = median(times[2..].to_vec());
+    let cpu_step = median(cpu_times[2..].to_vec());
 
     // Matrix-product FLOPs one step needs (what a convolution computes, and what the fused layers
     // compute): per layer, output rows × K·D × H multiply-adds forward, the same again for the
@@ -129,7 +155,8 @@ fn main() {
     let matmul_gflops = 2.0 * (widest.0 * widest.1 * widest.2) as f64 / median(matmul_times) / 1e9;
     let step_gflops = flops / step / 1e9;
     println!(
-        "{{\"impl\": \"isogloss candle\", \"threads\": {}, \"batch\": {batch}, \"frames\": {frames}, \"parameters\": {}, \"median_step_seconds\": {step:.4}, \"matmul_gflop_per_step\": {:.2}, \"frames_per_second\": {:.1}, \"step_matmul_gflops\": {step_gflops:.2}, \"machine_matmul_gflops\": {matmul_gflops:.2}, \"fraction_of_matmul_rate\": {:.3}}}",
+        "{{\"impl\": \"isogloss candle\", \"normalization\": \"{:?}\", \"threads\": {}, \"batch\": {batch}, \"frames\": {frames}, \"parameters\": {}, \"median_step_seconds\": {step:.4}, \"median_step_cpu_seconds\": {cpu_step:.4}, \"matmul_gflop_per_step\": {:.2}, \"frames_per_second\": {:.1}, \"step_matmul_gflops\": {step_gflops:.2}, \"machine_matmul_gflops\": {matmul_gflops:.2}, \"fraction_of_matmul_rate\": {:.3}}}",
+        config.model.normalization,
         std::env::var("RAYON_NUM_THREADS").unwrap_or_else(|_| "default".into()),
         config.model.parameter_count(dims, units),
         flops / 1e9,

@@ -1,7 +1,7 @@
 //! One TDNN layer as a single candle operation with a hand-written backward pass.
 //!
 //! Written with tensor primitives, a hidden layer is a matrix product followed by about fifteen
-//! element-wise operations (shift-add of the per-offset blocks, bias, ReLU, the steps of layer
+//! element-wise operations (shift-add of the per-offset blocks, bias, ReLU, the steps of the
 //! normalisation, the dropout mask), each allocating a tensor of the layer's output size, and
 //! twice as many in the backward pass. Here the layer is one [`CustomOp3`] over
 //! `(input, weight, params)`:
@@ -10,33 +10,79 @@
 //!   strided view (row stride `s·D`), so `z = Σ_k X_k · W_k` is `K` matrix products accumulating
 //!   into one `[rows, H]` buffer (`W_k` is the `k`-th column block of the stored
 //!   `[D, K·H]` weight). With subsampling only the kept frames are computed;
-//! * bias, ReLU, layer normalisation (gain, shift) and the dropout mask run in one pass per frame,
-//!   in parallel over utterances;
-//! * the backward pass runs the same pass in reverse per frame (keeping the post-ReLU values and
-//!   the per-frame mean and inverse deviation from the forward pass), then `2K` matrix products for
-//!   the weight and input gradients. The input gradient is skipped when the input does not need
-//!   one (the features).
+//! * bias, ReLU, normalisation (gain, shift) and the dropout mask run in one pass per frame,
+//!   in parallel over utterances. Batch normalisation first needs the mean and then the variance
+//!   of every unit over the batch's valid frames: two more passes over `z`;
+//! * the backward pass runs the same pass in reverse per frame (keeping what the forward pass
+//!   computed: the post-ReLU values and per-frame statistics for layer normalisation, `z` and
+//!   the per-unit statistics for batch normalisation, whose gradient needs one more pass for
+//!   the batch-mean terms), then `2K` matrix products for the weight and input gradients. The
+//!   input gradient is skipped when the input does not need one (the features).
 //!
-//! `params` is `[1, H]` (bias) or `[3, H]` (bias, layer-norm gain, layer-norm shift).
+//! What `params` holds is set by the [`Transform`].
 //!
-//! Reductions over frames (bias, gain and shift gradients) are summed per utterance and then over
-//! utterances in order, so results do not depend on the thread count.
+//! Reductions over frames (bias, gain and shift gradients, batch statistics) are summed per
+//! utterance and then over utterances in order, so results do not depend on the thread count.
 
-use std::sync::Mutex;
+use std::sync::{Arc, Mutex};
 
 use candle_core::{CpuStorage, CustomOp3, Layout, Shape, Storage, Tensor};
 use gemm::{gemm, Parallelism};
 use rayon::prelude::*;
 
-/// Added to the variance before the square root in layer normalisation.
+/// Added to the variance before the square root in layer and batch normalisation.
 pub(crate) const NORM_EPSILON: f32 = 1e-5;
 
+/// What follows the matrix products `z`, and what the `params` input holds.
+#[derive(Debug, Clone, PartialEq)]
+pub(crate) enum Transform {
+    /// `params` `[1, H]`: bias. `z + b`, then ReLU if the layer has one.
+    Bias,
+    /// `params` `[3, H]`: bias, gain, shift. `ReLU(z + b)`, then normalised per frame over the
+    /// `H` units.
+    LayerNorm,
+    /// `params` `[2, H]`: gain γ, shift β. Every unit normalised with the mean and the biased
+    /// variance of `z` over the batch's valid frames, then ReLU. Frames past an utterance's
+    /// valid count are normalised with the same statistics but do not count in them.
+    BatchNorm {
+        /// Valid output frames of each utterance (its first frames).
+        valid: Vec<usize>,
+    },
+    /// `params` `[4, H]`: mean μ, `1 / √(σ² + ε)`, gain γ, shift β of fixed (running) statistics:
+    /// the same arithmetic as [`Transform::BatchNorm`] without a batch. Inference only; it has no
+    /// backward pass.
+    FixedNorm,
+}
+
+/// Per-unit statistics of one batch-normalised layer over one batch.
+#[derive(Debug, Clone, PartialEq)]
+pub(crate) struct UnitStatistics {
+    /// Mean of every unit over the valid frames.
+    pub mean: Vec<f32>,
+    /// Biased variance (divided by the frame count) of every unit.
+    pub variance: Vec<f32>,
+    /// Valid frames the statistics are over.
+    pub frames: usize,
+}
+
 /// What the forward pass keeps for the backward pass.
-struct Saved {
-    /// `[batch · frames_out, H]` values after bias and ReLU, before normalisation.
-    activations: Vec<f32>,
-    /// Per output frame: mean and `1 / sqrt(variance + ε)` (layer norm only).
-    stats: Vec<(f32, f32)>,
+enum Saved {
+    /// Bias and layer norm: `[batch · frames_out, H]` values after bias and ReLU, before
+    /// normalisation (empty without ReLU and normalisation), and per output frame the mean and
+    /// `1 / sqrt(variance + ε)` (layer norm only).
+    Frames {
+        activations: Vec<f32>,
+        stats: Vec<(f32, f32)>,
+    },
+    /// Batch norm: the pre-activation buffer `z`, the batch statistics and per unit
+    /// `1 / sqrt(variance + ε)`.
+    Units {
+        z: Vec<f32>,
+        statistics: UnitStatistics,
+        inverse: Vec<f32>,
+    },
+    /// Fixed statistics (no backward pass).
+    Nothing,
 }
 
 /// The fused layer operation; see the module documentation.
@@ -47,16 +93,22 @@ pub(crate) struct FusedLayer {
     pub subsample: usize,
     /// Output width `H`.
     pub output_dims: usize,
-    /// ReLU after the bias.
+    /// ReLU (after the bias, or after batch normalisation).
     pub relu: bool,
-    /// Layer normalisation after the ReLU (`params` is then `[3, H]`).
-    pub norm: bool,
+    /// What follows the matrix products.
+    pub transform: Transform,
     /// `[batch, frames_out, H]` dropout multipliers (0 or `1/(1−p)`), if any.
     pub mask: Option<Vec<f32>>,
     /// Whether to compute the input gradient.
     pub input_grad: bool,
     saved: Mutex<Option<Saved>>,
+    /// Where the forward pass leaves the batch statistics (batch normalisation), for the caller:
+    /// candle keeps the operation itself.
+    statistics: Arc<Mutex<Option<UnitStatistics>>>,
 }
+
+/// The batch statistics a [`FusedLayer`] leaves behind.
+pub(crate) type StatisticsSlot = Arc<Mutex<Option<UnitStatistics>>>;
 
 /// Where the rows of the `[rows, H]` pre-activation buffer come from.
 #[derive(Debug, Clone, Copy)]
@@ -204,7 +256,7 @@ impl FusedLayer {
         subsample: usize,
         output_dims: usize,
         relu: bool,
-        norm: bool,
+        transform: Transform,
         mask: Option<Vec<f32>>,
         input_grad: bool,
     ) -> Self {
@@ -213,19 +265,26 @@ impl FusedLayer {
             subsample,
             output_dims,
             relu,
-            norm,
+            transform,
             mask,
             input_grad,
             saved: Mutex::new(None),
+            statistics: StatisticsSlot::default(),
         }
     }
 
     fn param_rows(&self) -> usize {
-        if self.norm {
-            3
-        } else {
-            1
+        match self.transform {
+            Transform::Bias => 1,
+            Transform::BatchNorm { .. } => 2,
+            Transform::LayerNorm => 3,
+            Transform::FixedNorm => 4,
         }
+    }
+
+    /// Where the forward pass will leave the batch statistics (batch normalisation only).
+    pub fn statistics_slot(&self) -> StatisticsSlot {
+        Arc::clone(&self.statistics)
     }
 
     fn geometry(
@@ -312,44 +371,21 @@ impl FusedLayer {
     }
 }
 
-impl CustomOp3 for FusedLayer {
-    fn name(&self) -> &'static str {
-        "fused-tdnn-layer"
-    }
-
-    fn cpu_fwd(
-        &self,
-        s1: &CpuStorage,
-        l1: &Layout,
-        s2: &CpuStorage,
-        l2: &Layout,
-        s3: &CpuStorage,
-        l3: &Layout,
-    ) -> candle_core::Result<(CpuStorage, Shape)> {
-        let g = self.geometry(l1.shape(), l2.shape(), l3.shape())?;
-        let x = contiguous_f32(s1, l1, "input")?;
-        let w = contiguous_f32(s2, l2, "weight")?;
-        let params = contiguous_f32(s3, l3, "layer parameters")?;
+impl FusedLayer {
+    /// Bias, ReLU, layer normalisation and mask, one frame at a time.
+    fn frame_forward(&self, g: &Geometry, z: &[f32], params: &[f32]) -> (Vec<f32>, Saved) {
         let h = self.output_dims;
         let out_len = g.batch * g.frames_out * h;
-        if let Some(mask) = &self.mask {
-            if mask.len() != out_len {
-                candle_core::bail!(
-                    "fused TDNN layer: dropout mask of {} values for {out_len} outputs",
-                    mask.len()
-                )
-            }
-        }
-        let z = self.pre_activation(&g, x, w)?;
+        let norm = self.transform == Transform::LayerNorm;
         let (bias, gain, shift) = (&params[..h], params.get(h..2 * h), params.get(2 * h..3 * h));
-        let keep = self.relu || self.norm;
+        let keep = self.relu || norm;
         let mut out = vec![0f32; out_len];
         let mut activations = if keep {
             vec![0f32; out_len]
         } else {
             Vec::new()
         };
-        let mut stats = if self.norm {
+        let mut stats = if norm {
             vec![(0f32, 0f32); g.batch * g.frames_out]
         } else {
             Vec::new()
@@ -382,7 +418,7 @@ impl CustomOp3 for FusedLayer {
             }
             stat
         };
-        if self.norm {
+        if norm {
             out.par_chunks_mut(per_utt)
                 .zip(activations.par_chunks_mut(per_utt))
                 .zip(stats.par_chunks_mut(g.frames_out))
@@ -420,12 +456,343 @@ impl CustomOp3 for FusedLayer {
                     }
                 });
         }
-        drop(z);
-        let mut saved = self
+        (out, Saved::Frames { activations, stats })
+    }
+
+    /// `((z − mean)·inverse)·gain + shift`, ReLU and mask, one frame at a time.
+    fn unit_forward(
+        &self,
+        g: &Geometry,
+        z: &[f32],
+        [mean, inverse, gain, shift]: [&[f32]; 4],
+    ) -> Vec<f32> {
+        let h = self.output_dims;
+        let per_utt = g.frames_out * h;
+        let mut out = vec![0f32; g.batch * per_utt];
+        out.par_chunks_mut(per_utt)
+            .enumerate()
+            .for_each(|(b, out_u)| {
+                for t in 0..g.frames_out {
+                    let zrow = &z[(b * g.q + t) * h..][..h];
+                    let orow = &mut out_u[t * h..(t + 1) * h];
+                    let units = zrow.iter().zip(mean).zip(inverse).zip(gain).zip(shift);
+                    for (o, ((((&zv, &m), &inv), &gn), &sh)) in orow.iter_mut().zip(units) {
+                        let u = normalised(zv, m, inv) * gn + sh;
+                        *o = if self.relu { u.max(0.0) } else { u };
+                    }
+                    if let Some(mask) = &self.mask {
+                        let base = (b * g.frames_out + t) * h;
+                        for (o, &m) in orow.iter_mut().zip(&mask[base..base + h]) {
+                            *o *= m;
+                        }
+                    }
+                }
+            });
+        out
+    }
+
+    /// Backward of mask, layer norm, ReLU and bias into `gz`; returns the parameter gradient.
+    fn frame_backward(
+        &self,
+        g: &Geometry,
+        gout: &[f32],
+        params: &[f32],
+        activations: &[f32],
+        stats: &[(f32, f32)],
+        gz: &mut [f32],
+    ) -> Vec<f32> {
+        let h = self.output_dims;
+        let p_rows = self.param_rows();
+        let gain = params.get(h..2 * h);
+        let chunk = g.q * h;
+        let partials: Vec<Vec<f32>> = gz
+            .par_chunks_mut(chunk)
+            .enumerate()
+            .map(|(b, gz_u)| {
+                let mut sums = vec![0f32; p_rows * h];
+                let mut grow = vec![0f32; h];
+                for t in 0..g.frames_out {
+                    let o = b * g.frames_out + t;
+                    grow.copy_from_slice(&gout[o * h..(o + 1) * h]);
+                    if let Some(mask) = &self.mask {
+                        for (gv, &m) in grow.iter_mut().zip(&mask[o * h..(o + 1) * h]) {
+                            *gv *= m;
+                        }
+                    }
+                    let act = if activations.is_empty() {
+                        None
+                    } else {
+                        Some(&activations[o * h..(o + 1) * h])
+                    };
+                    if let (Some(gain), Some(act)) = (gain, act) {
+                        let (mean, inv) = stats[o];
+                        let (gain_sum, rest) = sums[h..].split_at_mut(h);
+                        let shift_sum = &mut rest[..h];
+                        let (mut a, mut c) = (0f32, 0f32);
+                        for i in 0..h {
+                            let xhat = (act[i] - mean) * inv;
+                            gain_sum[i] += grow[i] * xhat;
+                            shift_sum[i] += grow[i];
+                            let gx = grow[i] * gain[i];
+                            a += gx;
+                            c += gx * xhat;
+                            grow[i] = gx;
+                        }
+                        let (a, c) = (a / h as f32, c / h as f32);
+                        for i in 0..h {
+                            let xhat = (act[i] - mean) * inv;
+                            grow[i] = inv * (grow[i] - a - xhat * c);
+                        }
+                    }
+                    if let (true, Some(act)) = (self.relu, act) {
+                        for (gv, &av) in grow.iter_mut().zip(act) {
+                            if av <= 0.0 {
+                                *gv = 0.0;
+                            }
+                        }
+                    }
+                    for (bs, &gv) in sums[..h].iter_mut().zip(&grow) {
+                        *bs += gv;
+                    }
+                    gz_u[t * h..(t + 1) * h].copy_from_slice(&grow);
+                }
+                sums
+            })
+            .collect();
+        let mut param_grad = vec![0f32; p_rows * h];
+        for part in &partials {
+            for (p, v) in param_grad.iter_mut().zip(part) {
+                *p += v;
+            }
+        }
+        param_grad
+    }
+
+    /// Backward of mask, ReLU and batch normalisation into `gz`; returns the gain and shift
+    /// gradients. With `g_f` the gradient reaching `γ·x̂_f + β` at output frame `f` (after mask
+    /// and ReLU), `x̂ = (z − μ)/σ`, sums over all output frames and `N` valid frames — the usual
+    /// batch-norm gradient, in which frames that do not count in μ and σ keep their direct term
+    /// only: `∂L/∂z_f = γ/σ · (g_f − [f valid] · (Σ g + x̂_f · Σ g·x̂) / N)`,
+    /// `∂L/∂γ = Σ g·x̂`, `∂L/∂β = Σ g`.
+    #[allow(clippy::too_many_arguments)]
+    fn unit_backward(
+        &self,
+        g: &Geometry,
+        gout: &[f32],
+        params: &[f32],
+        z: &[f32],
+        statistics: &UnitStatistics,
+        inverse: &[f32],
+        valid: &[usize],
+        gz: &mut [f32],
+    ) -> Vec<f32> {
+        let h = self.output_dims;
+        let (gain, shift) = (&params[..h], &params[h..2 * h]);
+        let mean = &statistics.mean;
+        let chunk = g.q * h;
+        // Through the mask and the ReLU into `gz`, with per-utterance sums of g and g·x̂ (in f32
+        // per utterance, so that the loops vectorise; over utterances in f64).
+        let partials: Vec<(Vec<f32>, Vec<f32>)> = gz
+            .par_chunks_mut(chunk)
+            .enumerate()
+            .map(|(b, gz_u)| {
+                let (mut sum, mut dot) = (vec![0f32; h], vec![0f32; h]);
+                for t in 0..g.frames_out {
+                    let o = (b * g.frames_out + t) * h;
+                    let zrow = &z[(b * g.q + t) * h..][..h];
+                    let grow = &mut gz_u[t * h..(t + 1) * h];
+                    grow.copy_from_slice(&gout[o..o + h]);
+                    if let Some(mask) = &self.mask {
+                        for (gv, &m) in grow.iter_mut().zip(&mask[o..o + h]) {
+                            *gv *= m;
+                        }
+                    }
+                    let units = zrow.iter().zip(mean).zip(inverse).zip(gain).zip(shift);
+                    let sums = sum.iter_mut().zip(dot.iter_mut());
+                    for ((gv, ((((&zv, &m), &inv), &gn), &sh)), (s, d)) in
+                        grow.iter_mut().zip(units).zip(sums)
+                    {
+                        let xhat = normalised(zv, m, inv);
+                        if self.relu && xhat * gn + sh <= 0.0 {
+                            *gv = 0.0;
+                        }
+                        *s += *gv;
+                        *d += *gv * xhat;
+                    }
+                }
+                (sum, dot)
+            })
+            .collect();
+        let (mut sum, mut dot) = (vec![0f64; h], vec![0f64; h]);
+        for (part_sum, part_dot) in &partials {
+            for j in 0..h {
+                sum[j] += f64::from(part_sum[j]);
+                dot[j] += f64::from(part_dot[j]);
+            }
+        }
+        let n = statistics.frames as f64;
+        let mean_g: Vec<f32> = sum.iter().map(|v| (v / n) as f32).collect();
+        let mean_gx: Vec<f32> = dot.iter().map(|v| (v / n) as f32).collect();
+        // The batch-mean terms, on valid frames only.
+        gz.par_chunks_mut(chunk).enumerate().for_each(|(b, gz_u)| {
+            for t in 0..g.frames_out {
+                let zrow = &z[(b * g.q + t) * h..][..h];
+                let grow = &mut gz_u[t * h..(t + 1) * h];
+                let scales = gain.iter().zip(inverse);
+                if t < valid[b] {
+                    let units = zrow.iter().zip(mean).zip(mean_g.iter().zip(&mean_gx));
+                    for ((gv, (&gn, &inv)), ((&zv, &m), (&mg, &mgx))) in
+                        grow.iter_mut().zip(scales).zip(units)
+                    {
+                        let xhat = normalised(zv, m, inv);
+                        *gv = gn * inv * (*gv - mg - xhat * mgx);
+                    }
+                } else {
+                    for (gv, (&gn, &inv)) in grow.iter_mut().zip(scales) {
+                        *gv *= gn * inv;
+                    }
+                }
+            }
+        });
+        dot.iter().chain(&sum).map(|&v| v as f32).collect()
+    }
+}
+
+/// `(z − mean)·inverse`, written once so that the forward and backward passes round alike (the
+/// ReLU's mask must be the one the forward pass applied).
+fn normalised(z: f32, mean: f32, inverse: f32) -> f32 {
+    (z - mean) * inverse
+}
+
+/// Mean and biased variance (two passes) of every unit of `z` over the valid frames (the first
+/// `valid[b]` output frames of utterance `b`): sums per utterance, then over utterances in order.
+fn unit_statistics(
+    g: &Geometry,
+    z: &[f32],
+    valid: &[usize],
+    h: usize,
+) -> candle_core::Result<UnitStatistics> {
+    if valid.len() != g.batch || valid.iter().any(|&v| v > g.frames_out) {
+        candle_core::bail!(
+            "fused TDNN layer: valid frame counts {valid:?} for {} utterances of {} output frames",
+            g.batch,
+            g.frames_out
+        )
+    }
+    let frames: usize = valid.iter().sum();
+    if frames == 0 {
+        candle_core::bail!(
+            "fused TDNN layer: batch normalisation over a batch without valid frames"
+        )
+    }
+    // Sums per utterance in f32 (the loops vectorise), over utterances in f64.
+    let total = |centre: Option<&[f32]>| -> Vec<f64> {
+        let parts: Vec<Vec<f32>> = (0..g.batch)
+            .into_par_iter()
+            .map(|b| {
+                let mut sums = vec![0f32; h];
+                for t in 0..valid[b] {
+                    let row = &z[(b * g.q + t) * h..][..h];
+                    match centre {
+                        None => {
+                            for (s, &v) in sums.iter_mut().zip(row) {
+                                *s += v;
+                            }
+                        }
+                        Some(mean) => {
+                            for ((s, &v), &m) in sums.iter_mut().zip(row).zip(mean) {
+                                *s += (v - m) * (v - m);
+                            }
+                        }
+                    }
+                }
+                sums
+            })
+            .collect();
+        let mut sums = vec![0f64; h];
+        for part in parts {
+            for (s, p) in sums.iter_mut().zip(part) {
+                *s += f64::from(p);
+            }
+        }
+        sums
+    };
+    let n = frames as f64;
+    let mean: Vec<f32> = total(None).iter().map(|&s| (s / n) as f32).collect();
+    let variance: Vec<f32> = total(Some(&mean)).iter().map(|&s| (s / n) as f32).collect();
+    Ok(UnitStatistics {
+        mean,
+        variance,
+        frames,
+    })
+}
+
+/// `1 / √(variance + ε)` of every unit.
+pub(crate) fn inverse_deviations(variance: &[f32]) -> Vec<f32> {
+    variance
+        .iter()
+        .map(|&v| (1.0 / (f64::from(v) + f64::from(NORM_EPSILON)).sqrt()) as f32)
+        .collect()
+}
+
+impl CustomOp3 for FusedLayer {
+    fn name(&self) -> &'static str {
+        "fused-tdnn-layer"
+    }
+
+    fn cpu_fwd(
+        &self,
+        s1: &CpuStorage,
+        l1: &Layout,
+        s2: &CpuStorage,
+        l2: &Layout,
+        s3: &CpuStorage,
+        l3: &Layout,
+    ) -> candle_core::Result<(CpuStorage, Shape)> {
+        let g = self.geometry(l1.shape(), l2.shape(), l3.shape())?;
+        let x = contiguous_f32(s1, l1, "input")?;
+        let w = contiguous_f32(s2, l2, "weight")?;
+        let params = contiguous_f32(s3, l3, "layer parameters")?;
+        let h = self.output_dims;
+        let out_len = g.batch * g.frames_out * h;
+        if let Some(mask) = &self.mask {
+            if mask.len() != out_len {
+                candle_core::bail!(
+                    "fused TDNN layer: dropout mask of {} values for {out_len} outputs",
+                    mask.len()
+                )
+            }
+        }
+        let z = self.pre_activation(&g, x, w)?;
+        let rows = |r: usize| &params[r * h..(r + 1) * h];
+        let (out, saved) = match &self.transform {
+            Transform::Bias | Transform::LayerNorm => self.frame_forward(&g, &z, params),
+            Transform::BatchNorm { valid } => {
+                let statistics = unit_statistics(&g, &z, valid, h)?;
+                let inverse = inverse_deviations(&statistics.variance);
+                let out = self.unit_forward(&g, &z, [&statistics.mean, &inverse, rows(0), rows(1)]);
+                *self.statistics.lock().map_err(|_| {
+                    candle_core::Error::Msg("fused TDNN layer statistics poisoned".into())
+                })? = Some(statistics.clone());
+                (
+                    out,
+                    Saved::Units {
+                        z,
+                        statistics,
+                        inverse,
+                    },
+                )
+            }
+            Transform::FixedNorm => {
+                let out = self.unit_forward(&g, &z, [rows(0), rows(1), rows(2), rows(3)]);
+                (out, Saved::Nothing)
+            }
+        };
+        let mut slot = self
             .saved
             .lock()
             .map_err(|_| candle_core::Error::Msg("fused TDNN layer state poisoned".into()))?;
-        *saved = Some(Saved { activations, stats });
+        *slot = Some(saved);
         Ok((
             CpuStorage::F32(out),
             Shape::from((g.batch, g.frames_out, h)),
@@ -453,75 +820,34 @@ impl CustomOp3 for FusedLayer {
             candle_core::bail!("fused TDNN layer: backward pass before the forward pass")
         };
         let grad_res = grad_res.contiguous()?;
-        // Per-frame backward of mask, layer norm, ReLU and bias into `gz` (buffer layout), with
-        // per-utterance sums of the bias, gain and shift gradients.
+        // Backward of everything after the matrix products into `gz` (buffer layout), with the
+        // parameter gradients.
         let mut gz = vec![0f32; g.rows() * h];
-        let partials: Vec<Vec<f32>> = with_values(&grad_res, "output gradient", |gout| {
+        let param_grad = with_values(&grad_res, "output gradient", |gout| {
             with_values(params, "layer parameters", |params| {
-                let gain = params.get(h..2 * h);
-                let chunk = g.q * h;
-                Ok(gz
-                    .par_chunks_mut(chunk)
-                    .enumerate()
-                    .map(|(b, gz_u)| {
-                        let mut sums = vec![0f32; p_rows * h];
-                        let mut grow = vec![0f32; h];
-                        for t in 0..g.frames_out {
-                            let o = b * g.frames_out + t;
-                            grow.copy_from_slice(&gout[o * h..(o + 1) * h]);
-                            if let Some(mask) = &self.mask {
-                                for (gv, &m) in grow.iter_mut().zip(&mask[o * h..(o + 1) * h]) {
-                                    *gv *= m;
-                                }
-                            }
-                            let act = if saved.activations.is_empty() {
-                                None
-                            } else {
-                                Some(&saved.activations[o * h..(o + 1) * h])
-                            };
-                            if let (Some(gain), Some(act)) = (gain, act) {
-                                let (mean, inv) = saved.stats[o];
-                                let (gain_sum, rest) = sums[h..].split_at_mut(h);
-                                let shift_sum = &mut rest[..h];
-                                let (mut a, mut c) = (0f32, 0f32);
-                                for i in 0..h {
-                                    let xhat = (act[i] - mean) * inv;
-                                    gain_sum[i] += grow[i] * xhat;
-                                    shift_sum[i] += grow[i];
-                                    let gx = grow[i] * gain[i];
-                                    a += gx;
-                                    c += gx * xhat;
-                                    grow[i] = gx;
-                                }
-                                let (a, c) = (a / h as f32, c / h as f32);
-                                for i in 0..h {
-                                    let xhat = (act[i] - mean) * inv;
-                                    grow[i] = inv * (grow[i] - a - xhat * c);
-                                }
-                            }
-                            if let (true, Some(act)) = (self.relu, act) {
-                                for (gv, &av) in grow.iter_mut().zip(act) {
-                                    if av <= 0.0 {
-                                        *gv = 0.0;
-                                    }
-                                }
-                            }
-                            for (bs, &gv) in sums[..h].iter_mut().zip(&grow) {
-                                *bs += gv;
-                            }
-                            gz_u[t * h..(t + 1) * h].copy_from_slice(&grow);
-                        }
-                        sums
-                    })
-                    .collect())
+                match (&self.transform, saved) {
+                    (Transform::Bias | Transform::LayerNorm, Saved::Frames { activations, stats }) => {
+                        Ok(self.frame_backward(&g, gout, params, activations, stats, &mut gz))
+                    }
+                    (
+                        Transform::BatchNorm { valid },
+                        Saved::Units {
+                            z,
+                            statistics,
+                            inverse,
+                        },
+                    ) => Ok(self.unit_backward(
+                        &g, gout, params, z, statistics, inverse, valid, &mut gz,
+                    )),
+                    (Transform::FixedNorm, _) => candle_core::bail!(
+                        "fused TDNN layer: batch normalisation with running statistics is for inference; it has no backward pass"
+                    ),
+                    _ => candle_core::bail!(
+                        "fused TDNN layer: the forward pass kept the wrong state"
+                    ),
+                }
             })
         })?;
-        let mut param_grad = vec![0f32; p_rows * h];
-        for part in &partials {
-            for (p, v) in param_grad.iter_mut().zip(part) {
-                *p += v;
-            }
-        }
         drop(guard);
         let (weight_grad, input_grad) = with_values(input, "input", |x| {
             with_values(weight, "weight", |w| {

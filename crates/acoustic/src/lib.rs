@@ -3,8 +3,9 @@
 //!
 //! * [`ctc`] — CTC loss and its exact gradient (forward–backward in log space, parallel over
 //!   utterances), wired into candle's backward pass as a custom operation.
-//! * [`tdnn`] — spliced affine layers with ReLU, layer normalisation, dropout and frame
-//!   subsampling; parameters named `layers.{i}.weight` etc.
+//! * [`tdnn`] — spliced affine layers with ReLU, batch or layer normalisation, dropout and frame
+//!   subsampling; parameters named `layers.{i}.weight` etc. Batch normalisation counts only each
+//!   utterance's valid frames, and keeps running statistics for inference beside the parameters.
 //! * [`optim`] — AdamW updating parameters in place; [`train`] — the training loop (bucketed
 //!   batches, warm-up and decay, clipping, early stopping, atomic checkpoints, exact resume);
 //!   [`pipeline`] — manifests to cached features to a model directory, and back to posteriors;
@@ -20,7 +21,7 @@
 //! `softmax − occupancy`), and the optimizer (one fused loop per parameter instead of a dozen
 //! allocating tensor operations). The TDNN layers are a third such place: each layer is one
 //! custom operation (strided matrix products per offset instead of a spliced copy, then bias,
-//! ReLU, layer normalisation and dropout in one pass, with a hand-written backward pass), because
+//! ReLU, normalisation and dropout in one pass, with a hand-written backward pass), because
 //! as a chain of about fifteen element-wise candle operations per layer, each allocating a tensor
 //! forward and backward, the training step spent most of its time outside the matrix products.
 //!
@@ -43,8 +44,10 @@
 //! ```
 #![deny(missing_docs)]
 
+pub mod audio_set;
 pub mod config;
 pub mod ctc;
+pub mod data;
 mod fused;
 pub mod greedy;
 pub mod io;

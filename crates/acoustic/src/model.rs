@@ -42,6 +42,12 @@ pub struct Provenance {
     pub seed: u64,
     /// Program that wrote the model.
     pub written_by: String,
+    /// Optimizer updates done when these weights were saved.
+    #[serde(default)]
+    pub updates: u64,
+    /// The wall-clock budget of the run in minutes (`--minutes`), if it had one.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub minutes: Option<f64>,
 }
 
 /// `model.toml`: everything decoding needs besides the weights.
@@ -57,6 +63,12 @@ pub struct ModelDescription {
     pub architecture: TdnnConfig,
     /// Where the model came from.
     pub provenance: Provenance,
+    /// How it was trained (absent in models of the previous release).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub training: Option<crate::config::TrainingConfig>,
+    /// How its training utterances were perturbed (absent in models of the previous release).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub augmentation: Option<crate::config::Augmentation>,
 }
 
 /// Reads a `model.toml` of the previous release: its keys are read by their old spellings
@@ -97,23 +109,25 @@ pub struct AcousticModel {
 
 impl AcousticModel {
     /// Writes `model.toml` and `model.safetensors` into `dir` (created if needed), atomically.
+    /// `tensors` are the parameters and, with batch normalisation, the running statistics
+    /// ([`crate::train::Trainer::model_tensors`]).
     pub fn save(
         dir: &Path,
         description: &ModelDescription,
-        parameters: &BTreeMap<String, Var>,
+        tensors: &BTreeMap<String, Var>,
     ) -> Result<(), AcousticError> {
         std::fs::create_dir_all(dir).map_err(|source| AcousticError::Io {
             path: dir.to_path_buf(),
             source,
         })?;
-        let mut tensors = Vec::with_capacity(parameters.len());
-        for (name, var) in parameters {
+        let mut named = Vec::with_capacity(tensors.len());
+        for (name, var) in tensors {
             let values: Vec<f32> = var.as_tensor().flatten_all()?.to_vec1()?;
-            tensors.push((name.clone(), var.dims().to_vec(), values));
+            named.push((name.clone(), var.dims().to_vec(), values));
         }
         write_atomically(
             &dir.join("model.safetensors"),
-            &serialize_tensors(&tensors, None)?,
+            &serialize_tensors(&named, None)?,
         )?;
         let text = toml::to_string_pretty(description).map_err(|e| {
             AcousticError::Config(format!("model description does not serialise: {e}"))
@@ -184,13 +198,13 @@ impl AcousticModel {
         })
     }
 
-    /// A model from in-memory parameters (used right after training).
+    /// A model from in-memory tensors (as [`AcousticModel::save`] takes them).
     pub fn from_parameters(
         description: ModelDescription,
-        parameters: &BTreeMap<String, Var>,
+        tensors: &BTreeMap<String, Var>,
     ) -> Result<AcousticModel, AcousticError> {
         let network = Tdnn::new(
-            var_builder(parameters),
+            var_builder(tensors),
             &description.architecture,
             description.features.dims(),
             description.units.len(),
@@ -247,7 +261,7 @@ impl AcousticModel {
             padded.extend(features.row(source).iter());
         }
         let input = Tensor::from_vec(padded, (1, frames + left + right, dims), &Device::Cpu)?;
-        let logits = self.network.forward(&input, None)?.squeeze(0)?;
+        let logits = self.network.forward(&input)?.squeeze(0)?;
         let log_probs = candle_nn::ops::log_softmax(&logits, 1)?;
         let out_frames = log_probs.dim(0)?;
         let values: Vec<f32> = log_probs.flatten_all()?.to_vec1()?;
@@ -267,7 +281,10 @@ mod tests {
 
     #[test]
     fn a_saved_model_loads_and_gives_normalised_posteriors() {
-        let config = ModelConfig::small();
+        // Layer normalisation: fresh parameters carry no running statistics (the batch-norm
+        // round trip is tested in train.rs with a trained model).
+        let mut config = ModelConfig::small();
+        config.model.normalization = crate::config::Normalization::Layer;
         let units = UnitInventory::graphemes(["abc de"]);
         let mut rng = ChaCha8Rng::seed_from_u64(2);
         let parameters =
@@ -279,6 +296,8 @@ mod tests {
             features: config.features.clone(),
             architecture: config.model.clone(),
             provenance: Provenance::default(),
+            training: Some(config.training.clone()),
+            augmentation: Some(config.augmentation.clone()),
         };
         let dir = tempfile::tempdir().unwrap();
         AcousticModel::save(dir.path(), &description, &parameters).unwrap();
@@ -385,7 +404,7 @@ mod tests {
             .map(|_| rng.random_range(-2.0f32..2.0))
             .collect();
         let input = Tensor::from_vec(x, (2, frames, dims), &Device::Cpu).unwrap();
-        let fused = model.network.forward(&input, None).unwrap();
+        let fused = model.network.forward(&input).unwrap();
         let reference = model.network.forward_reference(&input, None).unwrap();
         let diff: f32 = (fused - reference)
             .unwrap()

@@ -1,10 +1,11 @@
 //! From manifests to a model directory, and from a model to posteriors: the file-level work
 //! behind `isogloss train` and `isogloss transcribe`.
 //!
-//! Features are computed once per utterance and perturbation (speed 0.9/1.0/1.1 with a random
-//! gain each) and cached as safetensors under `MODEL_DIR/cache/<key>/`, where the key hashes
-//! the manifest, the front end and the perturbation settings; normalisation (CMVN) is applied in
-//! memory afterwards, so a changed CMVN setting does not invalidate the cache.
+//! Training audio is decoded once into a PCM cache (`MODEL_DIR/cache/<key>/train.pcm`, see
+//! [`crate::audio_set`]) and every epoch computes its features afresh from it, perturbed per
+//! utterance. Dev features are computed once, unperturbed, and cached as safetensors under
+//! `MODEL_DIR/cache/<key>/dev/`. The key hashes the manifests, the sizes and modification times
+//! of their audio files and the front end; normalisation (CMVN) is applied in memory afterwards.
 
 use std::collections::BTreeMap;
 use std::io::Write;
@@ -13,16 +14,16 @@ use std::path::{Path, PathBuf};
 use isogloss_corpus::Manifest;
 use isogloss_features::{
     read_features, write_features, Cmvn, CmvnMode, FeatureConfig, FeatureExtractor,
-    SpeakerCmvnStats, SpecAugment,
+    SpeakerCmvnStats,
 };
 use isogloss_lexicon::Lexicon;
 use ndarray::Array2;
-use rand::{Rng, SeedableRng};
-use rand_chacha::ChaCha8Rng;
 use rayon::prelude::*;
 use sha2::{Digest, Sha256};
 
+use crate::audio_set::{AudioSet, AudioUtterance, PcmStore, Perturbation};
 use crate::config::ModelConfig;
+use crate::data::TrainingData;
 use crate::model::{AcousticModel, ModelDescription, Provenance, MODEL_FORMAT};
 use crate::train::{checkpoint_path, EpochRecord, PreparedUtterance, Trainer, TrainingEvent};
 use crate::units::{grapheme_sequence, transcript_words, UnitInventory, UnitKind};
@@ -46,6 +47,9 @@ pub struct TrainOptions {
     pub config: ModelConfig,
     /// Overrides `config.training.epochs`.
     pub epochs: Option<usize>,
+    /// Train for this many minutes of wall time (feature preparation excluded) instead of a
+    /// number of epochs; the learning-rate schedule is planned to end when they run out.
+    pub minutes: Option<f64>,
     /// Continue from `out/checkpoint.safetensors`.
     pub resume: bool,
     /// Seed of every random choice.
@@ -96,6 +100,32 @@ fn sha256_file(path: &Path) -> Result<String, AcousticError> {
     Ok(format!("{:x}", Sha256::digest(&bytes)))
 }
 
+/// Digest of a manifest and of the size and modification time of every audio file it names, so
+/// that a cache made from it is rebuilt when an audio file is replaced.
+fn manifest_digest(path: &Path, manifest: &Manifest) -> Result<String, AcousticError> {
+    let mut hasher = Sha256::new();
+    hasher.update(sha256_file(path)?.as_bytes());
+    let files: std::collections::BTreeSet<&Path> = manifest
+        .utterances
+        .iter()
+        .map(|u| u.audio.as_path())
+        .collect();
+    for file in files {
+        let stamp = std::fs::metadata(file)
+            .map(|m| {
+                let modified = m
+                    .modified()
+                    .ok()
+                    .and_then(|t| t.duration_since(std::time::UNIX_EPOCH).ok())
+                    .map_or(0, |d| d.as_nanos());
+                format!("{}:{modified}", m.len())
+            })
+            .unwrap_or_else(|_| "missing".into());
+        hasher.update(format!("{}\t{stamp}\n", file.display()).as_bytes());
+    }
+    Ok(format!("{:x}", hasher.finalize()))
+}
+
 fn read_manifest(path: &Path, column: &str) -> Result<(Manifest, usize), AcousticError> {
     let manifest = Manifest::read(path)?;
     if manifest.utterances.is_empty() {
@@ -137,15 +167,12 @@ fn unit_names(
     }
 }
 
-/// Feature matrices (before normalisation) for every utterance of a manifest, one per speed
-/// factor (`factors[0]` should be 1.0), cached under `cache` when given. Utterances whose audio
-/// fails are returned as errors; the others are unaffected.
+/// Feature matrices (before normalisation) of every utterance of a manifest, unperturbed, cached
+/// under `cache` when given. Utterances whose audio fails are returned as errors; the others are
+/// unaffected. Each result is a one-element list, the shape [`normalize`] takes.
 pub fn manifest_features(
     manifest: &Manifest,
     config: &FeatureConfig,
-    factors: &[f32],
-    volume_range: f32,
-    seed: u64,
     cache: Option<&Path>,
     on_file_done: &(dyn Fn(usize, usize) + Sync),
 ) -> Result<Vec<UtteranceFeatures>, AcousticError> {
@@ -170,12 +197,10 @@ pub fn manifest_features(
     let per_file: Vec<Vec<(usize, UtteranceFeatures)>> = files
         .par_iter()
         .map(|(path, indices)| {
-            let cached =
-                |i: usize, v: usize| cache.map(|dir| dir.join(format!("{i}-{v}.safetensors")));
-            let mut results = Vec::with_capacity(indices.len());
+            let cached = |i: usize| cache.map(|dir| dir.join(format!("{i}.safetensors")));
             let all_cached = indices
                 .iter()
-                .all(|&i| (0..factors.len()).all(|v| cached(i, v).is_some_and(|p| p.exists())));
+                .all(|&i| cached(i).is_some_and(|p| p.exists()));
             let audio = if all_cached {
                 None
             } else {
@@ -189,62 +214,37 @@ pub fn manifest_features(
                     isogloss_audio::read_segments(path, &segments)
                 }))
             };
-            for (k, &i) in indices.iter().enumerate() {
-                let utterance = &manifest.utterances[i];
-                let item = format!(
-                    "{}:{} ({})",
-                    manifest.path.display(),
-                    utterance.line,
-                    utterance.id
-                );
-                let mut variants = Vec::with_capacity(factors.len());
-                let mut failure = None;
-                for (v, &factor) in factors.iter().enumerate() {
-                    if let Some(path) = cached(i, v).filter(|p| p.exists()) {
-                        match read_features(&path) {
-                            Ok(matrix) => {
-                                variants.push(matrix);
-                                continue;
-                            }
-                            Err(e) => {
-                                failure = Some(format!("{item}: cached features unreadable: {e}"));
-                                break;
-                            }
+            let results = indices
+                .iter()
+                .enumerate()
+                .map(|(k, &i)| {
+                    let utterance = &manifest.utterances[i];
+                    let item = format!(
+                        "{}:{} ({})",
+                        manifest.path.display(),
+                        utterance.line,
+                        utterance.id
+                    );
+                    let result = (|| {
+                        if let Some(path) = cached(i).filter(|p| p.exists()) {
+                            return read_features(&path)
+                                .map_err(|e| format!("{item}: cached features unreadable: {e}"));
                         }
-                    }
-                    let samples = match &audio {
-                        Some(Ok(segments)) => &segments[k],
-                        Some(Err(e)) => {
-                            failure = Some(format!("{item}: {e}"));
-                            break;
+                        let samples = match &audio {
+                            Some(Ok(segments)) => &segments[k],
+                            Some(Err(e)) => return Err(format!("{item}: {e}")),
+                            None => return Err(format!("{item}: cache incomplete")),
+                        };
+                        let matrix = extractor.extract(samples);
+                        if let Some(path) = cached(i) {
+                            write_features(&path, &matrix)
+                                .map_err(|e| format!("{item}: cannot cache features: {e}"))?;
                         }
-                        None => {
-                            failure = Some(format!("{item}: cache incomplete"));
-                            break;
-                        }
-                    };
-                    let mut samples = if v == 0 {
-                        samples.clone()
-                    } else {
-                        isogloss_audio::speed_perturb(samples, factor as f64)
-                    };
-                    if v > 0 && volume_range > 1.0 {
-                        let mut rng =
-                            ChaCha8Rng::seed_from_u64(seed ^ ((i as u64) << 8) ^ (v as u64));
-                        let gain = rng.random_range(1.0 / volume_range..volume_range);
-                        isogloss_audio::volume_perturb(&mut samples, gain);
-                    }
-                    let matrix = extractor.extract(&samples);
-                    if let Some(path) = cached(i, v) {
-                        if let Err(e) = write_features(&path, &matrix) {
-                            failure = Some(format!("{item}: cannot cache features: {e}"));
-                            break;
-                        }
-                    }
-                    variants.push(matrix);
-                }
-                results.push((i, failure.map_or(Ok(variants), Err)));
-            }
+                        Ok(matrix)
+                    })();
+                    (i, result.map(|matrix| vec![matrix]))
+                })
+                .collect();
             let finished = done.fetch_add(1, std::sync::atomic::Ordering::Relaxed) + 1;
             on_file_done(finished, total);
             results
@@ -317,22 +317,18 @@ struct Split {
     failed: Vec<String>,
 }
 
-#[allow(clippy::too_many_arguments)]
-fn prepare_split(
-    name: &'static str,
+/// Unit labels of every utterance of a manifest (`None` where the transcript cannot be encoded;
+/// with `strict` that is an error instead).
+fn encode_labels(
     manifest: &Manifest,
     column: usize,
     units: &UnitInventory,
     lexicon: Option<&BTreeMap<String, Vec<String>>>,
-    config: &ModelConfig,
-    factors: &[f32],
-    cache: &Path,
-    seed: u64,
-    strict_units: bool,
+    strict: bool,
+    failed: &mut Vec<String>,
     on_event: &mut dyn FnMut(&PipelineEvent),
-) -> Result<Split, AcousticError> {
+) -> Result<Vec<Option<Vec<u32>>>, AcousticError> {
     let mut labels = Vec::with_capacity(manifest.utterances.len());
-    let mut failed = Vec::new();
     for utterance in &manifest.utterances {
         let item = format!(
             "{}:{} ({})",
@@ -349,7 +345,7 @@ fn prepare_split(
             unit_names(text, lexicon, &item).and_then(|names| units.encode(&names, &item));
         match encoded {
             Ok(sequence) => labels.push(Some(sequence)),
-            Err(e) if strict_units => return Err(e),
+            Err(e) if strict => return Err(e),
             Err(e) => {
                 on_event(&PipelineEvent::Warning(format!("skipped: {e}")));
                 failed.push(e.to_string());
@@ -357,20 +353,38 @@ fn prepare_split(
             }
         }
     }
-    let progress = std::sync::Mutex::new(Vec::<(usize, usize)>::new());
-    let mut features = manifest_features(
+    Ok(labels)
+}
+
+/// Unperturbed, normalised features of a (dev) manifest, cached under `cache`.
+#[allow(clippy::too_many_arguments)]
+fn prepare_split(
+    name: &'static str,
+    manifest: &Manifest,
+    column: usize,
+    units: &UnitInventory,
+    lexicon: Option<&BTreeMap<String, Vec<String>>>,
+    config: &ModelConfig,
+    cache: &Path,
+    on_event: &mut dyn FnMut(&PipelineEvent),
+) -> Result<Split, AcousticError> {
+    let mut failed = Vec::new();
+    let labels = encode_labels(
         manifest,
-        &config.features,
-        factors,
-        config.training.volume_range,
-        seed,
-        Some(cache),
-        &|done, total| {
+        column,
+        units,
+        lexicon,
+        false,
+        &mut failed,
+        on_event,
+    )?;
+    let progress = std::sync::Mutex::new(Vec::<(usize, usize)>::new());
+    let mut features =
+        manifest_features(manifest, &config.features, Some(cache), &|done, total| {
             if let Ok(mut p) = progress.lock() {
                 p.push((done, total));
             }
-        },
-    )?;
+        })?;
     if let Ok(p) = progress.lock() {
         if let Some(&(done, total)) = p.iter().max() {
             on_event(&PipelineEvent::Features {
@@ -410,6 +424,129 @@ fn prepare_split(
         })
         .collect();
     Ok(Split { utterances, failed })
+}
+
+/// The training set: audio decoded into the PCM cache, labels encoded, utterances whose labels
+/// cannot fit their frames skipped, per-speaker statistics when the front end wants them.
+struct TrainingSet {
+    set: AudioSet,
+    failed: Vec<String>,
+    skipped: Vec<(String, usize, usize)>,
+}
+
+#[allow(clippy::too_many_arguments)]
+fn prepare_training_set(
+    manifest: &Manifest,
+    digest: &str,
+    column: usize,
+    units: &UnitInventory,
+    lexicon: Option<&BTreeMap<String, Vec<String>>>,
+    config: &ModelConfig,
+    trainer: &Trainer,
+    cache: &Path,
+    on_event: &mut dyn FnMut(&PipelineEvent),
+) -> Result<TrainingSet, AcousticError> {
+    let mut failed = Vec::new();
+    let labels = encode_labels(
+        manifest,
+        column,
+        units,
+        lexicon,
+        true,
+        &mut failed,
+        on_event,
+    )?;
+    let progress = std::sync::Mutex::new((0usize, 0usize));
+    let (store, failures) = PcmStore::open_or_build(
+        &cache.join("train.pcm"),
+        manifest,
+        digest,
+        &|done, total| {
+            if let Ok(mut p) = progress.lock() {
+                *p = (done, total);
+            }
+        },
+    )?;
+    if let Ok(&(done, total)) = progress.lock().as_deref() {
+        on_event(&PipelineEvent::Features {
+            split: "train",
+            done,
+            total,
+        });
+    }
+    for (_, message) in failures {
+        on_event(&PipelineEvent::Warning(format!("skipped: {message}")));
+        failed.push(message);
+    }
+    let extractor = FeatureExtractor::new(&config.features)?;
+    let mut utterances = Vec::new();
+    let mut skipped = Vec::new();
+    for (row, label) in labels.into_iter().enumerate() {
+        let (Some(labels), Some(samples)) = (label, store.sample_count(row)) else {
+            continue;
+        };
+        let utterance = &manifest.utterances[row];
+        let frames = extractor.config().frame_count(samples);
+        if !trainer.fits(frames, &labels) {
+            let needed = crate::ctc::min_frames_for(&labels);
+            skipped.push((
+                utterance.id.clone(),
+                trainer.network().output_frames(frames),
+                needed,
+            ));
+            continue;
+        }
+        utterances.push(AudioUtterance {
+            id: utterance.id.clone(),
+            row,
+            speaker: utterance.speaker.clone(),
+            labels,
+            frames,
+        });
+    }
+    let mut speaker_cmvn = BTreeMap::new();
+    if config.features.cmvn == CmvnMode::Speaker {
+        let clean: Vec<Array2<f32>> = utterances
+            .par_iter()
+            .map(|u| {
+                let samples = store.samples(u.row)?.unwrap_or_default();
+                Ok(extractor.extract(&samples))
+            })
+            .collect::<Result<_, AcousticError>>()?;
+        let mut stats = SpeakerCmvnStats::new(config.features.dims());
+        for (u, matrix) in utterances.iter().zip(&clean) {
+            stats.accumulate(&u.speaker, matrix.view())?;
+        }
+        speaker_cmvn = stats.finish(config.features.unit_variance)?;
+    }
+    let augmentation = &config.augmentation;
+    let masks = &augmentation.masks;
+    let perturbation = Perturbation {
+        speed_factors: augmentation.speed_factors.clone(),
+        waveform: if augmentation.has_waveform_steps() {
+            Some(
+                isogloss_audio::augment::Augmenter::new(augmentation.waveform())
+                    .map_err(|e| AcousticError::Config(e.to_string()))?,
+            )
+        } else {
+            None
+        },
+        vtlp: augmentation.vtlp.clone(),
+        masks: (masks.time_masks > 0 || masks.frequency_masks > 0)
+            .then(|| (masks.clone(), config.features.delta_order() + 1)),
+    };
+    let set = AudioSet::new(
+        store,
+        utterances,
+        &config.features,
+        speaker_cmvn,
+        perturbation,
+    )?;
+    Ok(TrainingSet {
+        set,
+        failed,
+        skipped,
+    })
 }
 
 /// Trains (or resumes training) a model as `options` says, writing the model directory, and
@@ -474,29 +611,26 @@ pub fn train(
             "this run was started with phone units: pass the same --lexicon again".into(),
         ));
     }
-    let mut factors = vec![1.0f32];
-    factors.extend(config.training.speed_factors.iter().filter(|&&f| f != 1.0));
     let train_hash = sha256_file(&options.train_manifest)?;
     let dev_hash = sha256_file(&options.dev_manifest)?;
+    let train_digest = manifest_digest(&options.train_manifest, &train_manifest)?;
+    let dev_digest = manifest_digest(&options.dev_manifest, &dev_manifest)?;
     let key_text = format!(
-        "{train_hash}\n{}\n{factors:?}\n{}\n{seed}",
+        "{train_digest}\n{dev_digest}\n{}",
         toml::to_string(&config.features).unwrap_or_default(),
-        config.training.volume_range
     );
     let key = format!("{:x}", Sha256::digest(key_text.as_bytes()));
     let cache = options.out.join("cache").join(&key[..16]);
     let units = trainer.units().clone();
-    let train_split = prepare_split(
-        "train",
+    let training_set = prepare_training_set(
         &train_manifest,
+        &train_digest,
         train_column,
         &units,
         lexicon.as_ref(),
         &config,
-        &factors,
-        &cache.join("train"),
-        seed,
-        true,
+        &trainer,
+        &cache,
         on_event,
     )?;
     let dev_split = prepare_split(
@@ -506,14 +640,10 @@ pub fn train(
         &units,
         lexicon.as_ref(),
         &config,
-        &[1.0],
         &cache.join("dev"),
-        seed,
-        false,
         on_event,
     )?;
-    let admission = trainer.admit(train_split.utterances);
-    for (id, available, needed) in &admission.skipped {
+    for (id, available, needed) in &training_set.skipped {
         on_event(&PipelineEvent::Warning(format!(
             "skipped training utterance {id}: {needed} labels need {needed} output frames at least, it has {available}"
         )));
@@ -530,34 +660,32 @@ pub fn train(
             problem: "no dev utterance is usable (all failed or were skipped)".into(),
         });
     }
+    let train_set = &training_set.set;
+    if train_set.is_empty() {
+        return Err(AcousticError::Input {
+            path: options.train_manifest.clone(),
+            problem: "no training utterance is usable (all failed or were skipped)".into(),
+        });
+    }
     let log_path = options.out.join("training.jsonl");
     append_log(
         &log_path,
         &serde_json::json!({
             "event": if options.resume { "resume" } else { "start" },
             "epochs_done": trainer.progress().epochs_done,
-            "train_utterances": admission.kept.len(),
-            "skipped_utterances": admission.skipped.len(),
-            "failed_utterances": train_split.failed.len() + dev_split.failed.len(),
+            "train_utterances": train_set.len(),
+            "skipped_utterances": training_set.skipped.len(),
+            "failed_utterances": training_set.failed.len() + dev_split.failed.len(),
             "dev_utterances": dev_admission.kept.len(),
             "units": units.len(),
             "parameters": config.model.parameter_count(config.features.dims(), units.len()),
             "seed": seed,
+            "minutes": options.minutes,
         }),
     )?;
-    let spec = SpecAugment::default();
-    let blocks = config.features.delta_order() + 1;
-    let augment = move |m: &mut Array2<f32>, mut rng: &mut dyn rand::RngCore| {
-        spec.apply_blocks(m, blocks, &mut rng)
-    };
-    let augment: Option<&crate::train::Augment> = if config.training.spec_augment {
-        Some(&augment)
-    } else {
-        None
-    };
     let mut summary = TrainSummary {
-        skipped_utterances: admission.skipped.clone(),
-        failed_utterances: train_split
+        skipped_utterances: training_set.skipped.clone(),
+        failed_utterances: training_set
             .failed
             .iter()
             .chain(&dev_split.failed)
@@ -565,9 +693,13 @@ pub fn train(
             .collect(),
         ..TrainSummary::default()
     };
+    if let Some(minutes) = options.minutes {
+        let budget = std::time::Duration::from_secs_f64(minutes * 60.0);
+        trainer.set_deadline(Some(std::time::Instant::now() + budget));
+    }
     let mut log_error = None;
     while !trainer.finished() {
-        let record = trainer.run_epoch(&admission.kept, &dev_admission.kept, augment, &mut |event| {
+        let record = trainer.run_epoch(train_set, &dev_admission.kept, &mut |event| {
             if let TrainingEvent::BatchSkipped { utterances, .. } = event {
                 let line = serde_json::json!({"event": "batch_skipped", "reason": "non-finite loss or gradient", "utterances": utterances});
                 if let Err(e) = append_log(&log_path, &line) {
@@ -593,13 +725,17 @@ pub fn train(
                     epochs: record.epoch,
                     dev_loss: record.dev_loss,
                     dev_unit_error_rate: record.dev_unit_error_rate,
-                    train_utterances: admission.kept.len(),
-                    skipped_utterances: admission.skipped.len(),
+                    train_utterances: train_set.len(),
+                    skipped_utterances: training_set.skipped.len(),
                     seed,
                     written_by: format!("isogloss-acoustic {}", env!("CARGO_PKG_VERSION")),
+                    updates: trainer.updates(),
+                    minutes: options.minutes,
                 },
+                training: Some(config.training.clone()),
+                augmentation: Some(config.augmentation.clone()),
             };
-            AcousticModel::save(&options.out, &description, trainer.parameters())?;
+            AcousticModel::save(&options.out, &description, &trainer.model_tensors())?;
             summary.best = Some(record.clone());
         }
         let mut line = serde_json::to_value(&record)
@@ -626,7 +762,8 @@ pub fn train(
         }
     }
     summary.epochs_done = trainer.progress().epochs_done;
-    summary.stopped_early = summary.epochs_done < config.training.epochs;
+    summary.stopped_early =
+        options.minutes.is_none() && summary.epochs_done < config.training.epochs;
     if summary.best.is_none() {
         summary.best = trainer
             .progress()
@@ -646,7 +783,7 @@ pub fn manifest_posteriors(
     on_file_done: &(dyn Fn(usize, usize) + Sync),
 ) -> Result<Vec<Result<Array2<f32>, String>>, AcousticError> {
     let config = model.feature_config();
-    let raw = manifest_features(manifest, config, &[1.0], 1.0, 0, None, on_file_done)?;
+    let raw = manifest_features(manifest, config, None, on_file_done)?;
     let mut ok_indices = Vec::new();
     let mut features = Vec::new();
     let mut results: Vec<Result<Array2<f32>, String>> = Vec::with_capacity(raw.len());

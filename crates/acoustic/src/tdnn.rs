@@ -1,14 +1,34 @@
 //! The time-delay neural network: layers that splice frames at fixed offsets.
 //!
 //! A layer with offsets `o_1 … o_K`, input width `D` and output width `H` computes
-//! `y[t] = b + Σ_k x[s·t + o_k − o_1] · W_k` (`s` is the subsampling factor), then (hidden layers)
-//! ReLU, layer normalisation and dropout. The weight is stored as the `K` per-offset matrices side
-//! by side (`[D, K·H]`). The spliced input is never copied: for offset `k` the input rows
+//! `z[t] = Σ_k x[s·t + o_k − o_1] · W_k` (`s` is the subsampling factor), then in hidden layers
+//! one of (the `normalization` setting):
+//!
+//! * `"layer"`: bias, ReLU, layer normalisation (per frame over the `H` units, gain and shift);
+//! * `"batch"`: batch normalisation (per unit over the batch, gain γ and shift β), ReLU. The
+//!   layer has no bias: a bias would be cancelled by the batch mean, its gradient is zero;
+//! * `"none"`: bias, ReLU;
+//!
+//! then dropout. The output layer is `z + b`. The weight is stored as the `K` per-offset matrices
+//! side by side (`[D, K·H]`). The spliced input is never copied: for offset `k` the input rows
 //! `s·t + o_k − o_1` are a strided view of the input, so the layer is `K` matrix products
-//! accumulating into one buffer — with subsampling, only for the frames that are kept. Bias,
-//! ReLU, layer normalisation and dropout then run in one pass per frame, and the backward pass is
-//! written by hand; the whole layer is one candle operation (see `fused.rs`), tested against the
-//! same layer written with candle primitives and differentiated by candle.
+//! accumulating into one buffer — with subsampling, only for the frames that are kept. The rest
+//! runs in one pass per frame, and the backward pass is written by hand; the whole layer is one
+//! candle operation (see `fused.rs`), tested against the same layer written with candle
+//! primitives and differentiated by candle.
+//!
+//! Batch normalisation in training ([`Tdnn::forward_train`]) normalises with the mean and biased
+//! variance of each unit over the batch's *valid* output frames: each utterance's frames whose
+//! inputs all lie inside the utterance (its features plus the context), so that the padding of
+//! shorter utterances to the longest one does not count. The pass returns those statistics, and
+//! [`Tdnn::update_running_statistics`] folds them into running estimates once the update they
+//! belong to has been made (a skipped batch leaves them alone): an exponential moving average
+//! with weight [`RUNNING_MOMENTUM`] for the newest batch, of the mean and of the *unbiased*
+//! variance (`N/(N−1)` times the batch's), common practice and the convention of
+//! `torch.nn.BatchNorm1d`, against which the layer is tested. Inference ([`Tdnn::forward`])
+//! normalises with the running estimates, so every frame's output depends on that frame alone.
+//! The running estimates (`layers.{i}.norm.running_mean`, `layers.{i}.norm.running_var`) are
+//! stored with the parameters but are not parameters: no gradient, no optimizer state.
 //!
 //! Every layer is "valid" in time (no padding inside the network); callers pad each utterance by
 //! [`TdnnConfig::context`] frames (edge frames repeated) so that the output has
@@ -18,15 +38,44 @@ use std::collections::BTreeMap;
 
 use candle_core::{DType, Device, Tensor, Var};
 use candle_nn::VarBuilder;
-use rand::Rng;
+use rand::{Rng, RngCore};
 
 use crate::config::{Normalization, TdnnConfig};
-use crate::fused::FusedLayer;
 #[cfg(test)]
 use crate::fused::NORM_EPSILON;
+use crate::fused::{inverse_deviations, FusedLayer, Transform, UnitStatistics};
 use crate::AcousticError;
 
-/// One spliced affine layer, optionally followed by ReLU, layer normalisation and dropout.
+/// Weight of the newest batch in the running mean and variance of batch normalisation (common
+/// practice).
+pub const RUNNING_MOMENTUM: f32 = 0.1;
+
+/// What a layer applies after its matrix products, with the tensors it needs.
+#[derive(Debug, Clone)]
+enum Stage {
+    /// Bias, then ReLU in a hidden layer (the output layer; hidden layers without
+    /// normalisation).
+    Bias { bias: Tensor },
+    /// Bias, ReLU, layer normalisation.
+    LayerNorm {
+        bias: Tensor,
+        gain: Tensor,
+        shift: Tensor,
+    },
+    /// Batch normalisation, ReLU.
+    BatchNorm {
+        gain: Tensor,
+        shift: Tensor,
+        running_mean: Var,
+        running_var: Var,
+    },
+}
+
+/// What a training pass gives one layer: the valid output frames of each utterance, the dropout
+/// probability and the generator of the dropout masks.
+pub(crate) type LayerTraining<'a> = (&'a [usize], f32, &'a mut dyn RngCore);
+
+/// One spliced affine layer, optionally followed by ReLU, normalisation and dropout.
 ///
 /// Input `[batch, frames, input_dims]`, output `[batch, frames_out, output_dims]` with
 /// `frames_out = (frames − 1 − (o_K − o_1)) / subsample + 1`.
@@ -34,10 +83,8 @@ use crate::AcousticError;
 pub struct TdnnLayer {
     /// `[input_dims, K · output_dims]`: the per-offset matrices side by side.
     weight: Tensor,
-    /// `[output_dims]`.
-    bias: Tensor,
-    /// Layer-norm gain and shift, each `[output_dims]`.
-    norm: Option<(Tensor, Tensor)>,
+    /// Everything after the matrix products.
+    stage: Stage,
     offsets: Vec<i32>,
     subsample: usize,
     output_dims: usize,
@@ -54,18 +101,28 @@ impl TdnnLayer {
         normalization: Option<Normalization>,
     ) -> Result<Self, AcousticError> {
         let weight = vb.get((input_dims, offsets.len() * output_dims), "weight")?;
-        let bias = vb.get(output_dims, "bias")?;
-        let norm = match normalization {
-            Some(Normalization::Layer) => Some((
-                vb.pp("norm").get(output_dims, "weight")?,
-                vb.pp("norm").get(output_dims, "bias")?,
-            )),
-            _ => None,
+        let norm = vb.pp("norm");
+        let stage = match normalization {
+            Some(Normalization::Batch) => Stage::BatchNorm {
+                gain: norm.get(output_dims, "weight")?,
+                shift: norm.get(output_dims, "bias")?,
+                // Shares the storage when the builder holds variables (training), so that the
+                // updates reach the trainer's copy.
+                running_mean: Var::from_tensor(&norm.get(output_dims, "running_mean")?)?,
+                running_var: Var::from_tensor(&norm.get(output_dims, "running_var")?)?,
+            },
+            Some(Normalization::Layer) => Stage::LayerNorm {
+                bias: vb.get(output_dims, "bias")?,
+                gain: norm.get(output_dims, "weight")?,
+                shift: norm.get(output_dims, "bias")?,
+            },
+            Some(Normalization::None) | None => Stage::Bias {
+                bias: vb.get(output_dims, "bias")?,
+            },
         };
         Ok(TdnnLayer {
             weight,
-            bias,
-            norm,
+            stage,
             offsets: offsets.to_vec(),
             subsample,
             output_dims,
@@ -86,26 +143,58 @@ impl TdnnLayer {
         }
     }
 
-    /// Runs the layer; `dropout` is `Some((p, rng))` during training.
-    ///
-    /// One fused operation (see the `fused` module): the shifted matrix products, bias, ReLU,
-    /// layer normalisation and dropout, with a hand-written backward pass.
-    pub fn forward<R: rand::RngCore + ?Sized>(
-        &self,
-        input: &Tensor,
-        dropout: Option<(f32, &mut R)>,
-    ) -> Result<Tensor, AcousticError> {
-        let (batch, frames, _) = input.dims3()?;
-        let frames_out = self.output_frames(frames);
-        if frames_out == 0 {
-            return Err(AcousticError::Shape(format!(
+    fn check_frames(&self, frames: usize) -> Result<usize, AcousticError> {
+        match self.output_frames(frames) {
+            0 => Err(AcousticError::Shape(format!(
                 "a layer spanning {} frames got only {frames}",
                 self.span() + 1
-            )));
+            ))),
+            frames_out => Ok(frames_out),
         }
-        let params = match &self.norm {
-            Some((gain, shift)) => Tensor::stack(&[&self.bias, gain, shift], 0)?,
-            None => self.bias.unsqueeze(0)?,
+    }
+
+    /// Runs the layer; `training` is given in training passes (dropout on, batch statistics).
+    ///
+    /// One fused operation (see the `fused` module): the shifted matrix products, bias,
+    /// normalisation, ReLU and dropout, with a hand-written backward pass. Returns the batch
+    /// statistics of a batch-normalised layer in training.
+    pub(crate) fn forward(
+        &self,
+        input: &Tensor,
+        training: Option<LayerTraining<'_>>,
+    ) -> Result<(Tensor, Option<UnitStatistics>), AcousticError> {
+        let (batch, frames, _) = input.dims3()?;
+        let frames_out = self.check_frames(frames)?;
+        let (valid, dropout) = match training {
+            Some((valid, p, rng)) => (Some(valid), Some((p, rng))),
+            None => (None, None),
+        };
+        let (transform, params) = match (&self.stage, valid) {
+            (Stage::Bias { bias }, _) => (Transform::Bias, bias.unsqueeze(0)?),
+            (Stage::LayerNorm { bias, gain, shift }, _) => (
+                Transform::LayerNorm,
+                Tensor::stack(&[bias, gain, shift], 0)?,
+            ),
+            (Stage::BatchNorm { gain, shift, .. }, Some(valid)) => (
+                Transform::BatchNorm {
+                    valid: valid.to_vec(),
+                },
+                Tensor::stack(&[gain, shift], 0)?,
+            ),
+            (
+                Stage::BatchNorm {
+                    gain,
+                    shift,
+                    running_mean,
+                    running_var,
+                },
+                None,
+            ) => {
+                let inverse = inverse_deviations(&running_var.as_tensor().to_vec1()?);
+                let inverse = Tensor::from_vec(inverse, self.output_dims, input.device())?;
+                let params = Tensor::stack(&[running_mean.as_tensor(), &inverse, gain, shift], 0)?;
+                (Transform::FixedNorm, params.detach())
+            }
         };
         let mask = match dropout {
             Some((p, rng)) if self.hidden && p > 0.0 => {
@@ -128,29 +217,62 @@ impl TdnnLayer {
             self.subsample,
             self.output_dims,
             self.hidden,
-            self.norm.is_some(),
+            transform,
             mask,
             input.track_op(),
         );
-        Ok(input.contiguous()?.apply_op3(&self.weight, &params, op)?)
+        let slot = op.statistics_slot();
+        let output = input.contiguous()?.apply_op3(&self.weight, &params, op)?;
+        let statistics = slot
+            .lock()
+            .map_err(|_| candle_core::Error::Msg("fused TDNN layer statistics poisoned".into()))?
+            .take();
+        Ok((output, statistics))
+    }
+
+    /// Folds one batch's statistics into the running estimates (see the module documentation).
+    fn update_running_statistics(&self, batch: &UnitStatistics) -> Result<(), AcousticError> {
+        let Stage::BatchNorm {
+            running_mean,
+            running_var,
+            ..
+        } = &self.stage
+        else {
+            return Err(AcousticError::Shape(
+                "batch statistics for a layer without batch normalisation".into(),
+            ));
+        };
+        let n = batch.frames as f64;
+        let unbiased = if batch.frames > 1 { n / (n - 1.0) } else { 1.0 };
+        let m = RUNNING_MOMENTUM;
+        let mean: Vec<f32> = running_mean.as_tensor().to_vec1()?;
+        let variance: Vec<f32> = running_var.as_tensor().to_vec1()?;
+        let mean: Vec<f32> = mean
+            .iter()
+            .zip(&batch.mean)
+            .map(|(&old, &new)| (1.0 - m) * old + m * new)
+            .collect();
+        let variance: Vec<f32> = variance
+            .iter()
+            .zip(&batch.variance)
+            .map(|(&old, &new)| (1.0 - m) * old + m * (f64::from(new) * unbiased) as f32)
+            .collect();
+        let device = running_mean.device();
+        running_mean.set(&Tensor::from_vec(mean, self.output_dims, device)?)?;
+        running_var.set(&Tensor::from_vec(variance, self.output_dims, device)?)?;
+        Ok(())
     }
 
     /// The layer written with candle primitives (the definition the fused operation is tested
-    /// against).
+    /// against); `training` as for [`TdnnLayer::forward`].
     #[cfg(test)]
-    fn forward_reference<R: rand::RngCore + ?Sized>(
+    fn forward_reference(
         &self,
         input: &Tensor,
-        dropout: Option<(f32, &mut R)>,
+        training: Option<LayerTraining<'_>>,
     ) -> Result<Tensor, AcousticError> {
         let (batch, frames, dims) = input.dims3()?;
-        let frames_out = self.output_frames(frames);
-        if frames_out == 0 {
-            return Err(AcousticError::Shape(format!(
-                "a layer spanning {} frames got only {frames}",
-                self.span() + 1
-            )));
-        }
+        let frames_out = self.check_frames(frames)?;
         let width = self.offsets.len() * self.output_dims;
         let product = input
             .reshape((batch * frames, dims))?
@@ -181,22 +303,63 @@ impl TdnnLayer {
                 Some(sum) => (sum + block)?,
             });
         }
-        let mut output = match output {
-            Some(sum) => sum.broadcast_add(&self.bias)?,
-            None => return Err(AcousticError::Shape("a layer without offsets".into())),
+        let Some(mut output) = output else {
+            return Err(AcousticError::Shape("a layer without offsets".into()));
         };
-        if !self.hidden {
-            return Ok(output);
-        }
-        output = output.relu()?;
-        if let Some((gain, shift)) = &self.norm {
-            let centred = output.broadcast_sub(&output.mean_keepdim(2)?)?;
-            let variance = centred.sqr()?.mean_keepdim(2)?;
-            output = centred
+        let (valid, dropout) = match training {
+            Some((valid, p, rng)) => (Some(valid), Some((p, rng))),
+            None => (None, None),
+        };
+        let layer_norm =
+            |output: Tensor, gain: &Tensor, shift: &Tensor| -> candle_core::Result<_> {
+                let centred = output.broadcast_sub(&output.mean_keepdim(2)?)?;
+                let variance = centred.sqr()?.mean_keepdim(2)?;
+                centred
+                    .broadcast_div(&(variance + NORM_EPSILON as f64)?.sqrt()?)?
+                    .broadcast_mul(gain)?
+                    .broadcast_add(shift)
+            };
+        let normalise = |output: Tensor, mean: &Tensor, variance: &Tensor, gain, shift| {
+            output
+                .broadcast_sub(mean)?
                 .broadcast_div(&(variance + NORM_EPSILON as f64)?.sqrt()?)?
                 .broadcast_mul(gain)?
-                .broadcast_add(shift)?;
-        }
+                .broadcast_add(shift)
+        };
+        output = match (&self.stage, valid) {
+            (Stage::Bias { bias }, _) => {
+                let output = output.broadcast_add(bias)?;
+                if !self.hidden {
+                    return Ok(output);
+                }
+                output.relu()?
+            }
+            (Stage::LayerNorm { bias, gain, shift }, _) => {
+                layer_norm(output.broadcast_add(bias)?.relu()?, gain, shift)?
+            }
+            (Stage::BatchNorm { gain, shift, .. }, Some(valid)) => {
+                // The statistics over the valid frames only: each utterance's first frames.
+                let mut counted = Vec::new();
+                for (b, &v) in valid.iter().enumerate() {
+                    if v > 0 {
+                        counted.push(output.get(b)?.narrow(0, 0, v)?);
+                    }
+                }
+                let counted = Tensor::cat(&counted, 0)?;
+                let mean = counted.mean_keepdim(0)?;
+                let variance = counted.broadcast_sub(&mean)?.sqr()?.mean_keepdim(0)?;
+                normalise(output, &mean, &variance, gain, shift)?.relu()?
+            }
+            (
+                Stage::BatchNorm {
+                    gain,
+                    shift,
+                    running_mean,
+                    running_var,
+                },
+                None,
+            ) => normalise(output, running_mean, running_var, gain, shift)?.relu()?,
+        };
         if let Some((p, rng)) = dropout {
             if p > 0.0 {
                 let keep = 1.0 / (1.0 - p);
@@ -222,9 +385,12 @@ pub struct Tdnn {
 }
 
 impl Tdnn {
-    /// Builds the network, taking parameters `layers.{i}.weight`, `layers.{i}.bias`,
-    /// `layers.{i}.norm.weight`, `layers.{i}.norm.bias` from `vb`; the output layer is
-    /// `layers.{hidden_count}`.
+    /// Builds the network, taking from `vb` the tensors `layers.{i}.weight`, `layers.{i}.bias`
+    /// (not with batch normalisation), `layers.{i}.norm.weight` and `layers.{i}.norm.bias` (gain
+    /// and shift of either normalisation), `layers.{i}.norm.running_mean` and
+    /// `layers.{i}.norm.running_var` (batch normalisation); the output layer is
+    /// `layers.{hidden_count}` (weight and bias). The running statistics share the builder's
+    /// storage when it holds variables, so [`Tdnn::update_running_statistics`] updates those.
     pub fn new(
         vb: VarBuilder,
         config: &TdnnConfig,
@@ -272,44 +438,130 @@ impl Tdnn {
         &self.config
     }
 
-    /// Logits `[batch, output_frames, units]`; pass an RNG to train (dropout on).
-    pub fn forward(
-        &self,
-        input: &Tensor,
-        mut dropout_rng: Option<&mut dyn rand::RngCore>,
-    ) -> Result<Tensor, AcousticError> {
+    /// Logits `[batch, output_frames, units]` for inference: no dropout, batch normalisation
+    /// with the running statistics (so each frame's logits depend on its own context only).
+    pub fn forward(&self, input: &Tensor) -> Result<Tensor, AcousticError> {
         let mut x = input.clone();
         for layer in &self.layers {
-            let dropout = dropout_rng
-                .as_deref_mut()
-                .map(|rng| (self.config.dropout, rng));
-            x = layer.forward(&x, dropout)?;
+            x = layer.forward(&x, None)?.0;
         }
         Ok(x)
     }
+
+    /// Logits `[batch, output_frames, units]` of a training pass: dropout masks drawn from `rng`,
+    /// batch normalisation with the statistics of the batch, whose utterance `b` has
+    /// `frames[b]` feature frames (before the context padding; the rest of its row in `input`
+    /// is padding and does not count in the statistics). Returns the batch statistics for
+    /// [`Tdnn::update_running_statistics`] (empty without batch normalisation).
+    pub fn forward_train(
+        &self,
+        input: &Tensor,
+        frames: &[usize],
+        rng: &mut dyn RngCore,
+    ) -> Result<(Tensor, BatchStatistics), AcousticError> {
+        let mut valid = self.input_valid_frames(input, frames)?;
+        let mut statistics = BatchStatistics::default();
+        let mut x = input.clone();
+        for (index, layer) in self.layers.iter().enumerate() {
+            valid.iter_mut().for_each(|v| *v = layer.output_frames(*v));
+            let (output, unit_statistics) =
+                layer.forward(&x, Some((&valid, self.config.dropout, &mut *rng)))?;
+            if let Some(unit_statistics) = unit_statistics {
+                statistics.layers.push((index, unit_statistics));
+            }
+            x = output;
+        }
+        Ok((x, statistics))
+    }
+
+    /// Folds the statistics of a training pass into the running mean and variance of every
+    /// batch-normalised layer (an exponential moving average, see the module documentation).
+    /// Call it once per update made, not for a batch that was skipped.
+    pub fn update_running_statistics(
+        &self,
+        statistics: &BatchStatistics,
+    ) -> Result<(), AcousticError> {
+        for (index, unit_statistics) in &statistics.layers {
+            let layer = self.layers.get(*index).ok_or_else(|| {
+                AcousticError::Shape(format!(
+                    "batch statistics for a layer {index} that does not exist"
+                ))
+            })?;
+            layer.update_running_statistics(unit_statistics)?;
+        }
+        Ok(())
+    }
+
+    /// Valid input frames of each utterance of a padded batch: its feature frames plus the
+    /// context (none for an empty utterance).
+    fn input_valid_frames(
+        &self,
+        input: &Tensor,
+        frames: &[usize],
+    ) -> Result<Vec<usize>, AcousticError> {
+        let (batch, padded, _) = input.dims3()?;
+        if frames.len() != batch {
+            return Err(AcousticError::Shape(format!(
+                "{} frame counts for a batch of {batch} utterances",
+                frames.len()
+            )));
+        }
+        let (left, right) = self.config.context();
+        let valid: Vec<usize> = frames
+            .iter()
+            .map(|&f| if f == 0 { 0 } else { f + left + right })
+            .collect();
+        if let Some(b) = valid.iter().position(|&v| v > padded) {
+            return Err(AcousticError::Shape(format!(
+                "utterance {b} of the batch has {} feature frames, the batch holds {padded} with the context",
+                frames[b]
+            )));
+        }
+        Ok(valid)
+    }
+}
+
+/// The batch statistics of one training pass ([`Tdnn::forward_train`]): for every
+/// batch-normalised layer, the mean and biased variance of each unit over the batch's valid
+/// frames, and their number.
+#[derive(Debug, Clone, Default)]
+pub struct BatchStatistics {
+    layers: Vec<(usize, UnitStatistics)>,
 }
 
 impl Tdnn {
-    /// [`Tdnn::forward`] through [`TdnnLayer::forward_reference`] (tests only).
+    /// [`Tdnn::forward`] (`training` = `None`) or [`Tdnn::forward_train`] (`Some((frames,
+    /// rng))`, without the statistics) through [`TdnnLayer::forward_reference`] (tests only).
     #[cfg(test)]
     pub(crate) fn forward_reference(
         &self,
         input: &Tensor,
-        mut dropout_rng: Option<&mut dyn rand::RngCore>,
+        training: Option<(&[usize], &mut dyn RngCore)>,
     ) -> Result<Tensor, AcousticError> {
         let mut x = input.clone();
-        for layer in &self.layers {
-            let dropout = dropout_rng
-                .as_deref_mut()
-                .map(|rng| (self.config.dropout, rng));
-            x = layer.forward_reference(&x, dropout)?;
+        match training {
+            None => {
+                for layer in &self.layers {
+                    x = layer.forward_reference(&x, None)?;
+                }
+            }
+            Some((frames, rng)) => {
+                let mut valid = self.input_valid_frames(input, frames)?;
+                for layer in &self.layers {
+                    valid.iter_mut().for_each(|v| *v = layer.output_frames(*v));
+                    x = layer
+                        .forward_reference(&x, Some((&valid, self.config.dropout, &mut *rng)))?;
+                }
+            }
         }
         Ok(x)
     }
 }
 
 /// Freshly initialised parameters by name: affine weights uniform in `±1/√fan_in` (the common
-/// default for linear layers), biases zero, norm gains one. Deterministic for the RNG.
+/// default for linear layers), biases zero, norm gains one, norm shifts zero. Deterministic for
+/// the RNG. The running statistics of batch normalisation are not parameters; see
+/// [`initial_statistics`].
 pub fn initial_parameters(
     config: &TdnnConfig,
     input_dims: usize,
@@ -335,11 +587,18 @@ pub fn initial_parameters(
             format!("{prefix}.weight"),
             Var::from_vec(weight, (input, offsets * output), &device)?,
         );
-        vars.insert(
-            format!("{prefix}.bias"),
-            Var::zeros(output, DType::F32, &device)?,
-        );
-        if hidden && config.normalization == Normalization::Layer {
+        let normalization = if hidden {
+            config.normalization
+        } else {
+            Normalization::None
+        };
+        if normalization != Normalization::Batch {
+            vars.insert(
+                format!("{prefix}.bias"),
+                Var::zeros(output, DType::F32, &device)?,
+            );
+        }
+        if normalization != Normalization::None {
             vars.insert(
                 format!("{prefix}.norm.weight"),
                 Var::ones(output, DType::F32, &device)?,
@@ -349,6 +608,28 @@ pub fn initial_parameters(
                 Var::zeros(output, DType::F32, &device)?,
             );
         }
+    }
+    Ok(vars)
+}
+
+/// The running statistics of a fresh network by name: `layers.{i}.norm.running_mean` (zeros)
+/// and `layers.{i}.norm.running_var` (ones) of every hidden layer with batch normalisation;
+/// empty for other networks. They are saved and loaded with the parameters, but have no
+/// gradient and no optimizer state.
+pub fn initial_statistics(config: &TdnnConfig) -> Result<BTreeMap<String, Var>, AcousticError> {
+    let mut vars = BTreeMap::new();
+    if config.normalization != Normalization::Batch {
+        return Ok(vars);
+    }
+    for (i, layer) in config.layers.iter().enumerate() {
+        vars.insert(
+            format!("layers.{i}.norm.running_mean"),
+            Var::zeros(layer.width, DType::F32, &Device::Cpu)?,
+        );
+        vars.insert(
+            format!("layers.{i}.norm.running_var"),
+            Var::ones(layer.width, DType::F32, &Device::Cpu)?,
+        );
     }
     Ok(vars)
 }
@@ -403,10 +684,11 @@ mod tests {
         // Give the biases non-zero values so that they are checked too.
         let bias = Tensor::new(&[0.1f32, -0.2, 0.3, 0.4, -0.5], &Device::Cpu).unwrap();
         vars["layers.1.bias"].set(&bias).unwrap();
-        let first = net.layers[0].forward::<ChaCha8Rng>(&input, None).unwrap();
+        let first = net.layers[0].forward(&input, None).unwrap().0;
         let got: Vec<Vec<Vec<f32>>> = net.layers[1]
-            .forward::<ChaCha8Rng>(&first, None)
+            .forward(&first, None)
             .unwrap()
+            .0
             .to_vec3()
             .unwrap();
         let first: Vec<Vec<Vec<f32>>> = first.to_vec3().unwrap();
@@ -439,32 +721,97 @@ mod tests {
 
     #[test]
     fn output_has_one_frame_per_subsampling_period() {
-        let config = ModelConfig::small().model;
-        assert_eq!(config.context(), (10, 10));
-        let mut rng = ChaCha8Rng::seed_from_u64(1);
-        let vars = initial_parameters(&config, 39, 30, &mut rng).unwrap();
-        let net = Tdnn::new(var_builder(&vars), &config, 39, 30).unwrap();
-        for frames in [1usize, 2, 3, 4, 100, 101] {
-            assert_eq!(
-                net.output_frames(frames),
-                frames.div_ceil(3),
-                "{frames} frames"
+        for normalization in [
+            Normalization::Layer,
+            Normalization::Batch,
+            Normalization::None,
+        ] {
+            let config = with_norm(ModelConfig::small().model, normalization, 0.1);
+            // ±2 frames at the input rate, then four layers of ±1 at a third of it.
+            assert_eq!(config.context(), (14, 14));
+            let mut rng = ChaCha8Rng::seed_from_u64(1);
+            let vars = initial_parameters(&config, 39, 30, &mut rng).unwrap();
+            let statistics = initial_statistics(&config).unwrap();
+            let net = Tdnn::new(var_builder(&merged(&vars, &statistics)), &config, 39, 30).unwrap();
+            for frames in [1usize, 2, 3, 4, 100, 101] {
+                assert_eq!(
+                    net.output_frames(frames),
+                    frames.div_ceil(3),
+                    "{frames} frames"
+                );
+            }
+            let input = Tensor::zeros((2, 50 + 28, 39), DType::F32, &Device::Cpu).unwrap();
+            let out = net.forward(&input).unwrap();
+            assert_eq!(out.dims3().unwrap(), (2, 17, 30));
+            let (out, _) = net.forward_train(&input, &[50, 43], &mut rng).unwrap();
+            assert_eq!(out.dims3().unwrap(), (2, 17, 30));
+            let count: usize = vars.values().map(|v| v.elem_count()).sum();
+            assert_eq!(count, config.parameter_count(39, 30), "{normalization:?}");
+            assert!(
+                (1_000_000..2_000_000).contains(&count),
+                "{count} parameters"
             );
+            let running = if normalization == Normalization::Batch {
+                2 * 320 * config.layers.len()
+            } else {
+                0
+            };
+            assert_eq!(
+                statistics.values().map(|v| v.elem_count()).sum::<usize>(),
+                running
+            );
+            // Frame counts that do not describe the batch are refused.
+            for frames in [&[50usize][..], &[50, 51], &[50, 43, 1]] {
+                let error = net.forward_train(&input, frames, &mut rng).unwrap_err();
+                assert!(matches!(error, AcousticError::Shape(_)), "{error}");
+            }
         }
-        let input = Tensor::zeros((2, 50 + 20, 39), DType::F32, &Device::Cpu).unwrap();
-        let out = net.forward(&input, None).unwrap();
-        assert_eq!(out.dims3().unwrap(), (2, 17, 30));
-        let count: usize = vars.values().map(|v| v.elem_count()).sum();
-        assert_eq!(count, config.parameter_count(39, 30));
-        assert!(
-            (1_000_000..2_000_000).contains(&count),
-            "{count} parameters"
-        );
     }
-    fn with_norm(mut config: TdnnConfig, dropout: f32) -> TdnnConfig {
-        config.normalization = Normalization::Layer;
+    fn with_norm(mut config: TdnnConfig, normalization: Normalization, dropout: f32) -> TdnnConfig {
+        config.normalization = normalization;
         config.dropout = dropout;
         config
+    }
+
+    fn merged(a: &BTreeMap<String, Var>, b: &BTreeMap<String, Var>) -> BTreeMap<String, Var> {
+        a.iter()
+            .chain(b)
+            .map(|(name, var)| (name.clone(), var.clone()))
+            .collect()
+    }
+
+    /// A fresh network with non-trivial biases, gains, shifts and running statistics; returns
+    /// the parameters, the running statistics and the network over both.
+    fn network(
+        config: &TdnnConfig,
+        dims: usize,
+        units: usize,
+        rng: &mut ChaCha8Rng,
+    ) -> (BTreeMap<String, Var>, BTreeMap<String, Var>, Tdnn) {
+        let vars = initial_parameters(config, dims, units, rng).unwrap();
+        let statistics = initial_statistics(config).unwrap();
+        for (name, var) in vars.iter().chain(&statistics) {
+            if var.rank() == 1 {
+                let values: Vec<f32> = (0..var.elem_count())
+                    .map(|_| rng.random_range(0.5..1.5))
+                    .collect();
+                let values = if name.ends_with("norm.weight") || name.ends_with("running_var") {
+                    values
+                } else {
+                    values.iter().map(|v| v - 1.0).collect()
+                };
+                var.set(&Tensor::from_vec(values, var.shape(), &Device::Cpu).unwrap())
+                    .unwrap();
+            }
+        }
+        let net = Tdnn::new(
+            var_builder(&merged(&vars, &statistics)),
+            config,
+            dims,
+            units,
+        )
+        .unwrap();
+        (vars, statistics, net)
     }
 
     fn max_difference(a: &Tensor, b: &Tensor) -> f32 {
@@ -482,15 +829,20 @@ mod tests {
 
     /// The fused layers give the outputs and gradients (input, weights, biases, norm gains and
     /// shifts) of the same layers written with candle primitives and differentiated by candle,
-    /// with and without layer norm and dropout, for frame counts that do and do not line up with
-    /// the subsampling period.
+    /// with layer norm, batch norm and neither, with and without dropout, for frame counts that
+    /// do and do not line up with the subsampling period, and (batch norm) utterances shorter
+    /// than the batch whose padding must not count. Inference (running statistics) too.
     #[test]
     fn fused_layers_match_the_candle_graph_and_its_gradients() {
+        let small = ModelConfig::small().model;
         let configs = [
-            with_norm(tiny(), 0.3),
-            with_norm(tiny(), 0.0),
+            with_norm(tiny(), Normalization::Layer, 0.3),
+            with_norm(tiny(), Normalization::Layer, 0.0),
             tiny(),
-            with_norm(ModelConfig::small().model, 0.1),
+            with_norm(small.clone(), Normalization::Layer, 0.1),
+            with_norm(tiny(), Normalization::Batch, 0.3),
+            with_norm(tiny(), Normalization::Batch, 0.0),
+            with_norm(small, Normalization::Batch, 0.1),
         ];
         for (c, config) in configs.iter().enumerate() {
             for frames in [14usize, 15, 16, 31] {
@@ -498,44 +850,38 @@ mod tests {
                 if frames <= left + right + 2 {
                     continue;
                 }
+                let features = frames - left - right;
+                let lengths = [features, features.saturating_sub(4).max(1), 1];
                 for input_is_var in [false, true] {
                     let mut rng = ChaCha8Rng::seed_from_u64(7 + frames as u64);
                     let dims = 3;
                     let units = 4;
-                    let vars = initial_parameters(config, dims, units, &mut rng).unwrap();
-                    // Non-trivial biases, gains and shifts.
-                    for (name, var) in &vars {
-                        if var.rank() == 1 {
-                            let values: Vec<f32> = (0..var.elem_count())
-                                .map(|_| rng.random_range(0.5..1.5))
-                                .collect();
-                            let values = if name.ends_with("norm.weight") {
-                                values
-                            } else {
-                                values.iter().map(|v| v - 1.0).collect()
-                            };
-                            var.set(&Tensor::from_vec(values, var.shape(), &Device::Cpu).unwrap())
-                                .unwrap();
-                        }
-                    }
-                    let net = Tdnn::new(var_builder(&vars), config, dims, units).unwrap();
-                    let x: Vec<f32> = (0..2 * frames * dims)
+                    let (vars, _, net) = network(config, dims, units, &mut rng);
+                    let x: Vec<f32> = (0..3 * frames * dims)
                         .map(|_| rng.random_range(-1.0..1.0))
                         .collect();
-                    let input_var = Var::from_vec(x, (2, frames, dims), &Device::Cpu).unwrap();
+                    let input_var = Var::from_vec(x, (3, frames, dims), &Device::Cpu).unwrap();
                     let input = if input_is_var {
                         input_var.as_tensor().clone()
                     } else {
                         input_var.as_tensor().detach()
                     };
+                    let what = format!("config {c}, {frames} frames, input var {input_is_var}");
+                    let diff = max_difference(
+                        &net.forward(&input).unwrap(),
+                        &net.forward_reference(&input, None).unwrap(),
+                    );
+                    assert!(diff < 1e-5, "{what}: inference outputs differ by {diff}");
                     let mut rng_a = ChaCha8Rng::seed_from_u64(99);
                     let mut rng_b = ChaCha8Rng::seed_from_u64(99);
-                    let fused = net.forward(&input, Some(&mut rng_a)).unwrap();
-                    let reference = net.forward_reference(&input, Some(&mut rng_b)).unwrap();
+                    let (fused, _) = net.forward_train(&input, &lengths, &mut rng_a).unwrap();
+                    let reference = net
+                        .forward_reference(&input, Some((&lengths, &mut rng_b)))
+                        .unwrap();
                     assert_eq!(fused.dims(), reference.dims());
-                    let what = format!("config {c}, {frames} frames, input var {input_is_var}");
                     let diff = max_difference(&fused, &reference);
                     assert!(diff < 1e-5, "{what}: outputs differ by {diff}");
+                    // Every output frame gets a gradient, padded ones included.
                     let weights = Tensor::randn(0f32, 1.0, fused.shape(), &Device::Cpu).unwrap();
                     let grads_fused = (&fused * &weights)
                         .unwrap()
@@ -579,75 +925,361 @@ mod tests {
     }
 
     /// Central finite differences of the fused network (no candle graph involved) agree with its
-    /// hand-written backward pass.
+    /// hand-written backward pass, with layer and batch normalisation.
     #[test]
     fn fused_gradients_match_finite_differences() {
-        let config = with_norm(tiny(), 0.0);
-        let mut rng = ChaCha8Rng::seed_from_u64(3);
-        let vars = initial_parameters(&config, 3, 4, &mut rng).unwrap();
-        let net = Tdnn::new(var_builder(&vars), &config, 3, 4).unwrap();
-        let x: Vec<f32> = (0..2 * 16 * 3)
-            .map(|_| rng.random_range(-1.0..1.0))
-            .collect();
-        let input = Tensor::from_vec(x, (2, 16, 3), &Device::Cpu).unwrap();
-        let probe = Tensor::randn(
-            0f32,
-            1.0,
-            net.forward(&input, None).unwrap().shape(),
-            &Device::Cpu,
-        )
-        .unwrap();
-        let loss = |net: &Tdnn| -> f64 {
-            let out = net.forward(&input, None).unwrap();
-            let out: Vec<f32> = out.flatten_all().unwrap().to_vec1().unwrap();
-            let probe: Vec<f32> = probe.flatten_all().unwrap().to_vec1().unwrap();
-            out.iter()
-                .zip(&probe)
-                .map(|(a, b)| *a as f64 * *b as f64)
-                .sum()
-        };
-        let grads = (net.forward(&input, None).unwrap() * &probe)
-            .unwrap()
-            .sum_all()
-            .unwrap()
-            .backward()
-            .unwrap();
-        for name in [
-            "layers.0.weight",
-            "layers.1.weight",
-            "layers.0.norm.weight",
-            "layers.1.bias",
-        ] {
-            let var = &vars[name];
-            let original: Vec<f32> = var.as_tensor().flatten_all().unwrap().to_vec1().unwrap();
-            let analytic: Vec<f32> = grads
-                .get(var.as_tensor())
+        for normalization in [Normalization::Layer, Normalization::Batch] {
+            let config = with_norm(tiny(), normalization, 0.0);
+            let mut rng = ChaCha8Rng::seed_from_u64(3);
+            let (vars, _, net) = network(&config, 3, 4, &mut rng);
+            let x: Vec<f32> = (0..2 * 16 * 3)
+                .map(|_| rng.random_range(-1.0..1.0))
+                .collect();
+            let input = Tensor::from_vec(x, (2, 16, 3), &Device::Cpu).unwrap();
+            let lengths = [11, 6];
+            let forward = |net: &Tdnn| {
+                net.forward_train(&input, &lengths, &mut ChaCha8Rng::seed_from_u64(0))
+                    .unwrap()
+                    .0
+            };
+            let probe = Tensor::randn(0f32, 1.0, forward(&net).shape(), &Device::Cpu).unwrap();
+            let loss = |net: &Tdnn| -> f64 {
+                let out: Vec<f32> = forward(net).flatten_all().unwrap().to_vec1().unwrap();
+                let probe: Vec<f32> = probe.flatten_all().unwrap().to_vec1().unwrap();
+                out.iter()
+                    .zip(&probe)
+                    .map(|(a, b)| *a as f64 * *b as f64)
+                    .sum()
+            };
+            let grads = (forward(&net) * &probe)
                 .unwrap()
-                .flatten_all()
+                .sum_all()
                 .unwrap()
-                .to_vec1()
+                .backward()
                 .unwrap();
-            for index in [0, original.len() / 2, original.len() - 1] {
-                let step = 1e-3f32;
-                let mut values = original.clone();
-                values[index] = original[index] + step;
-                var.set(&Tensor::from_vec(values.clone(), var.shape(), &Device::Cpu).unwrap())
+            for name in [
+                "layers.0.weight",
+                "layers.1.weight",
+                "layers.0.norm.weight",
+                "layers.1.norm.bias",
+                "layers.2.bias",
+            ] {
+                let var = &vars[name];
+                let original: Vec<f32> = var.as_tensor().flatten_all().unwrap().to_vec1().unwrap();
+                let analytic: Vec<f32> = grads
+                    .get(var.as_tensor())
+                    .unwrap()
+                    .flatten_all()
+                    .unwrap()
+                    .to_vec1()
                     .unwrap();
-                let plus = loss(&net);
-                values[index] = original[index] - step;
-                var.set(&Tensor::from_vec(values, var.shape(), &Device::Cpu).unwrap())
+                for index in [0, original.len() / 2, original.len() - 1] {
+                    let step = 1e-3f32;
+                    let mut values = original.clone();
+                    values[index] = original[index] + step;
+                    var.set(&Tensor::from_vec(values.clone(), var.shape(), &Device::Cpu).unwrap())
+                        .unwrap();
+                    let plus = loss(&net);
+                    values[index] = original[index] - step;
+                    var.set(&Tensor::from_vec(values, var.shape(), &Device::Cpu).unwrap())
+                        .unwrap();
+                    let minus = loss(&net);
+                    var.set(
+                        &Tensor::from_vec(original.clone(), var.shape(), &Device::Cpu).unwrap(),
+                    )
                     .unwrap();
-                let minus = loss(&net);
-                var.set(&Tensor::from_vec(original.clone(), var.shape(), &Device::Cpu).unwrap())
-                    .unwrap();
-                let numeric = (plus - minus) / (2.0 * step as f64);
-                let tolerance = 2e-2 * numeric.abs().max(analytic[index].abs() as f64).max(0.1);
+                    let numeric = (plus - minus) / (2.0 * step as f64);
+                    let tolerance = 2e-2 * numeric.abs().max(analytic[index].abs() as f64).max(0.1);
+                    assert!(
+                        (numeric - analytic[index] as f64).abs() < tolerance,
+                        "{normalization:?} {name}[{index}]: finite difference {numeric}, backward {}",
+                        analytic[index]
+                    );
+                }
+            }
+        }
+    }
+
+    /// The running statistics after three training passes are the moving average (weight 0.1
+    /// for the newest batch, unbiased variance) of each pass's statistics computed directly:
+    /// the hidden layers written out as loops in f64 over each utterance's valid frames only.
+    /// The padding is random, so counting it would show.
+    #[test]
+    fn running_statistics_follow_the_batches_they_saw() {
+        let config = with_norm(tiny(), Normalization::Batch, 0.0);
+        let mut rng = ChaCha8Rng::seed_from_u64(11);
+        let dims = 3;
+        let (vars, statistics, net) = network(&config, dims, 4, &mut rng);
+        let values = |name: &str, map: &BTreeMap<String, Var>| -> Vec<f64> {
+            let tensor = map[name].as_tensor().flatten_all().unwrap();
+            tensor
+                .to_vec1::<f32>()
+                .unwrap()
+                .into_iter()
+                .map(f64::from)
+                .collect()
+        };
+        let hidden = config.layers.len();
+        let mut expected: Vec<(Vec<f64>, Vec<f64>)> = (0..hidden)
+            .map(|l| {
+                (
+                    values(&format!("layers.{l}.norm.running_mean"), &statistics),
+                    values(&format!("layers.{l}.norm.running_var"), &statistics),
+                )
+            })
+            .collect();
+        let (left, right) = config.context();
+        for pass in 0..3usize {
+            let lengths = [12 - pass, 7 + 2 * pass, 1 + pass];
+            let frames = lengths.iter().max().unwrap() + left + right;
+            let x: Vec<f32> = (0..3 * frames * dims)
+                .map(|_| rng.random_range(-1.0..1.0) + 0.3)
+                .collect();
+            let input = Tensor::from_vec(x.clone(), (3, frames, dims), &Device::Cpu).unwrap();
+            let (_, batch) = net.forward_train(&input, &lengths, &mut rng).unwrap();
+            net.update_running_statistics(&batch).unwrap();
+            // The definition, utterance by utterance, valid frames only.
+            let mut activations: Vec<Vec<Vec<f64>>> = (0..3)
+                .map(|b| {
+                    (0..lengths[b] + left + right)
+                        .map(|t| {
+                            let at = (b * frames + t) * dims;
+                            x[at..at + dims].iter().map(|&v| f64::from(v)).collect()
+                        })
+                        .collect()
+                })
+                .collect();
+            for (l, layer) in config.layers.iter().enumerate() {
+                let h = layer.width;
+                let weight = values(&format!("layers.{l}.weight"), &vars);
+                let gain = values(&format!("layers.{l}.norm.weight"), &vars);
+                let shift = values(&format!("layers.{l}.norm.bias"), &vars);
+                let span = (layer.taps[layer.taps.len() - 1] - layer.taps[0]) as usize;
+                let width = layer.taps.len() * h;
+                let z: Vec<Vec<Vec<f64>>> = activations
+                    .iter()
+                    .map(|utterance| {
+                        let valid = if utterance.len() > span {
+                            (utterance.len() - 1 - span) / layer.keep_every + 1
+                        } else {
+                            0
+                        };
+                        (0..valid)
+                            .map(|t| {
+                                (0..h)
+                                    .map(|j| {
+                                        let mut sum = 0.0;
+                                        for (k, &tap) in layer.taps.iter().enumerate() {
+                                            let source = layer.keep_every * t
+                                                + (tap - layer.taps[0]) as usize;
+                                            for (d, &v) in utterance[source].iter().enumerate() {
+                                                sum += v * weight[d * width + k * h + j];
+                                            }
+                                        }
+                                        sum
+                                    })
+                                    .collect()
+                            })
+                            .collect()
+                    })
+                    .collect();
+                let rows: Vec<&Vec<f64>> = z.iter().flatten().collect();
+                let n = rows.len() as f64;
+                let mean: Vec<f64> = (0..h)
+                    .map(|j| rows.iter().map(|r| r[j]).sum::<f64>() / n)
+                    .collect();
+                let variance: Vec<f64> = (0..h)
+                    .map(|j| rows.iter().map(|r| (r[j] - mean[j]).powi(2)).sum::<f64>() / n)
+                    .collect();
+                let (running_mean, running_var) = &mut expected[l];
+                for j in 0..h {
+                    running_mean[j] = 0.9 * running_mean[j] + 0.1 * mean[j];
+                    running_var[j] = 0.9 * running_var[j] + 0.1 * variance[j] * n / (n - 1.0);
+                }
+                activations = z
+                    .iter()
+                    .map(|utterance| {
+                        utterance
+                            .iter()
+                            .map(|row| {
+                                (0..h)
+                                    .map(|j| {
+                                        let xhat = (row[j] - mean[j])
+                                            / (variance[j] + f64::from(NORM_EPSILON)).sqrt();
+                                        (xhat * gain[j] + shift[j]).max(0.0)
+                                    })
+                                    .collect()
+                            })
+                            .collect()
+                    })
+                    .collect();
+            }
+        }
+        assert_eq!(RUNNING_MOMENTUM, 0.1);
+        for (l, (mean, variance)) in expected.iter().enumerate() {
+            let got_mean = values(&format!("layers.{l}.norm.running_mean"), &statistics);
+            let got_var = values(&format!("layers.{l}.norm.running_var"), &statistics);
+            for j in 0..mean.len() {
                 assert!(
-                    (numeric - analytic[index] as f64).abs() < tolerance,
-                    "{name}[{index}]: finite difference {numeric}, backward {}",
-                    analytic[index]
+                    (got_mean[j] - mean[j]).abs() < 1e-5 * mean[j].abs().max(1.0),
+                    "layer {l} unit {j}: running mean {} vs {}",
+                    got_mean[j],
+                    mean[j]
+                );
+                assert!(
+                    (got_var[j] - variance[j]).abs() < 1e-5 * variance[j].abs().max(1.0),
+                    "layer {l} unit {j}: running variance {} vs {}",
+                    got_var[j],
+                    variance[j]
                 );
             }
         }
+    }
+
+    fn flat(value: &serde_json::Value) -> Vec<f32> {
+        match value {
+            serde_json::Value::Array(items) => items.iter().flat_map(flat).collect(),
+            number => vec![number.as_f64().unwrap() as f32],
+        }
+    }
+
+    /// Asserts `ours` equals `torch` within `relative` of the largest torch magnitude (at least
+    /// 1).
+    fn assert_close(ours: &[f32], torch: &[f32], relative: f32, what: &str) {
+        assert_eq!(ours.len(), torch.len(), "{what}: sizes");
+        let scale = torch.iter().fold(1f32, |m, v| m.max(v.abs()));
+        for (i, (a, b)) in ours.iter().zip(torch).enumerate() {
+            assert!(
+                (a - b).abs() <= relative * scale,
+                "{what}[{i}]: ours {a}, torch.nn.BatchNorm1d {b}"
+            );
+        }
+    }
+
+    /// One batch-normalised layer against torch.nn.BatchNorm1d fed the valid frames of the
+    /// batch (fixture by `scripts/reference/batchnorm_reference.py`, torch in float64 on
+    /// float32 inputs): training outputs, the gradients of the input, weight, gain and shift,
+    /// the running statistics over three passes, and inference with them.
+    #[test]
+    fn batch_norm_layer_matches_torch() {
+        let fixture: serde_json::Value =
+            serde_json::from_str(include_str!("../tests/fixtures/batchnorm_torch.json")).unwrap();
+        let device = Device::Cpu;
+        let taps: Vec<i32> = fixture["taps"]
+            .as_array()
+            .unwrap()
+            .iter()
+            .map(|t| t.as_i64().unwrap() as i32)
+            .collect();
+        let keep_every = fixture["keep_every"].as_u64().unwrap() as usize;
+        let dims = fixture["dims"].as_u64().unwrap() as usize;
+        let units = fixture["units"].as_u64().unwrap() as usize;
+        let counts = |value: &serde_json::Value| -> Vec<usize> {
+            let list = value.as_array().unwrap();
+            list.iter().map(|v| v.as_u64().unwrap() as usize).collect()
+        };
+        let input = |value: &serde_json::Value| {
+            let utterances = value.as_array().unwrap();
+            let frames = utterances[0].as_array().unwrap().len();
+            Var::from_vec(flat(value), (utterances.len(), frames, dims), &device).unwrap()
+        };
+        let layer = || {
+            let mut vars = BTreeMap::new();
+            let weight = Var::from_vec(
+                flat(&fixture["weight"]),
+                (dims, taps.len() * units),
+                &device,
+            );
+            vars.insert("weight".to_string(), weight.unwrap());
+            for (name, values) in [
+                ("norm.weight", flat(&fixture["gain"])),
+                ("norm.bias", flat(&fixture["shift"])),
+                ("norm.running_mean", vec![0.0; units]),
+                ("norm.running_var", vec![1.0; units]),
+            ] {
+                vars.insert(
+                    name.to_string(),
+                    Var::from_vec(values, units, &device).unwrap(),
+                );
+            }
+            let vb = var_builder(&vars);
+            let layer = TdnnLayer::new(
+                vb,
+                dims,
+                units,
+                &taps,
+                keep_every,
+                Some(Normalization::Batch),
+            );
+            (vars, layer.unwrap())
+        };
+        let mut rng = ChaCha8Rng::seed_from_u64(0);
+
+        // One training pass: outputs of the valid frames and the gradients.
+        let (vars, net) = layer();
+        let train = &fixture["train"];
+        let x = input(&train["x"]);
+        let valid = counts(&train["valid"]);
+        let (y, _) = net
+            .forward(x.as_tensor(), Some((&valid, 0.0, &mut rng)))
+            .unwrap();
+        let (batch, frames_out, _) = y.dims3().unwrap();
+        let outputs: Vec<Vec<Vec<f32>>> = y.to_vec3().unwrap();
+        let ours: Vec<f32> = valid
+            .iter()
+            .enumerate()
+            .flat_map(|(b, &v)| outputs[b][..v].iter().flatten().copied())
+            .collect();
+        assert_close(&ours, &flat(&train["y"]), 1e-5, "training output");
+        let torch_probe = flat(&train["probe"]);
+        let mut probe = vec![0f32; batch * frames_out * units];
+        let mut next = torch_probe.chunks(units);
+        for (b, &v) in valid.iter().enumerate() {
+            for t in 0..v {
+                let at = (b * frames_out + t) * units;
+                probe[at..at + units].copy_from_slice(next.next().unwrap());
+            }
+        }
+        let probe = Tensor::from_vec(probe, y.shape(), &device).unwrap();
+        let grads = (y * probe).unwrap().sum_all().unwrap().backward().unwrap();
+        let gradient = |var: &Var| -> Vec<f32> {
+            let grad = grads.get(var.as_tensor()).unwrap();
+            grad.flatten_all().unwrap().to_vec1().unwrap()
+        };
+        assert_close(
+            &gradient(&x),
+            &flat(&train["grad_x"]),
+            1e-5,
+            "input gradient",
+        );
+        for (name, key) in [
+            ("weight", "grad_weight"),
+            ("norm.weight", "grad_gain"),
+            ("norm.bias", "grad_shift"),
+        ] {
+            assert_close(&gradient(&vars[name]), &flat(&train[key]), 1e-5, name);
+        }
+
+        // The running statistics over three passes, then inference with them.
+        let (vars, net) = layer();
+        for (p, pass) in fixture["running"].as_array().unwrap().iter().enumerate() {
+            let valid = counts(&pass["valid"]);
+            let x = input(&pass["x"]);
+            let (_, statistics) = net
+                .forward(x.as_tensor(), Some((&valid, 0.0, &mut rng)))
+                .unwrap();
+            net.update_running_statistics(&statistics.unwrap()).unwrap();
+            for name in ["running_mean", "running_var"] {
+                let got: Vec<f32> = vars[&format!("norm.{name}")].as_tensor().to_vec1().unwrap();
+                assert_close(&got, &flat(&pass[name]), 1e-6, &format!("pass {p}: {name}"));
+            }
+        }
+        let inference = &fixture["inference"];
+        let (y, statistics) = net
+            .forward(input(&inference["x"]).as_tensor(), None)
+            .unwrap();
+        assert!(statistics.is_none());
+        let ours: Vec<f32> = y.flatten_all().unwrap().to_vec1().unwrap();
+        assert_close(&ours, &flat(&inference["y"]), 1e-5, "inference output");
     }
 }

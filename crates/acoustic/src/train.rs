@@ -1,11 +1,21 @@
-//! The training loop: duration-bucketed batches, CTC, AdamW with warm-up and decay, gradient
-//! clipping, early stopping, atomic checkpoints and exact resumption.
+//! The training loop: duration-bucketed batches, CTC, AdamW with a planned learning-rate
+//! schedule, gradient clipping, an optional wall-clock budget, early stopping, atomic checkpoints
+//! and exact resumption.
 //!
-//! Determinism: every random choice of epoch `e` (batch order, perturbation variant, SpecAugment
-//! masks, dropout) comes from a ChaCha stream keyed by `(seed, e)`. A checkpoint therefore only
-//! has to hold the parameters, the optimizer moments and counters; resuming after epoch `e`
-//! replays epoch `e + 1` exactly as an uninterrupted run would (for the same thread count: the
-//! matrix products split their work by thread count).
+//! The schedule is planned in updates: a linear warm-up over `warmup_share` of all planned
+//! updates, then (by default) half a cosine down to `final_rate` of the peak at the last one. With
+//! a fixed number of epochs the plan is `epochs × batches per epoch`. With a wall-clock budget
+//! ([`Trainer::set_deadline`]) the plan is first estimated from the time of the first few updates
+//! and re-estimated at the end of every epoch from the measured epoch time (dev pass included), so
+//! the rate reaches its floor when the budget runs out, whatever the machine's speed.
+//!
+//! Determinism: the batch order and dropout masks of epoch `e` come from a ChaCha stream keyed by
+//! `(seed, e)`, and every utterance's perturbation from a stream keyed by `(seed, e, utterance)`
+//! (see [`crate::data`]). A checkpoint therefore only has to hold the parameters, the optimizer
+//! moments and counters; resuming after epoch `e` replays epoch `e + 1` exactly as an
+//! uninterrupted run would (for the same thread count: the matrix products split their work by
+//! thread count). A run under a wall-clock budget plans from measured times, so it is not
+//! repeatable to the bit.
 
 use std::collections::BTreeMap;
 use std::path::{Path, PathBuf};
@@ -16,30 +26,17 @@ use ndarray::Array2;
 use rand::seq::SliceRandom;
 use rand::{Rng, RngCore, SeedableRng};
 use rand_chacha::ChaCha8Rng;
+use rayon::prelude::*;
 use serde::{Deserialize, Serialize};
 
-use crate::config::ModelConfig;
+use crate::config::{ModelConfig, Schedule};
 use crate::ctc::{min_frames_for, CtcLoss, CtcTargets};
+use crate::data::{utterance_rng, TrainingData};
+pub use crate::data::{Augment, PreparedUtterance};
 use crate::optim::{AdamW, Moments};
-use crate::tdnn::{initial_parameters, var_builder, Tdnn};
+use crate::tdnn::{initial_parameters, initial_statistics, var_builder, Tdnn};
 use crate::units::UnitInventory;
 use crate::{greedy_path, AcousticError};
-
-/// One utterance ready for training: feature matrices (already normalised) and unit labels.
-#[derive(Debug, Clone)]
-pub struct PreparedUtterance {
-    /// Utterance id (for messages).
-    pub id: String,
-    /// `[frames, dims]` features; `variants[0]` is the unperturbed audio, the others are
-    /// perturbed copies (speed, volume) of which one is drawn per epoch.
-    pub variants: Vec<Array2<f32>>,
-    /// Unit indices (no blank).
-    pub labels: Vec<u32>,
-}
-
-/// Augments a training feature matrix in place (SpecAugment); supplied by the caller so that
-/// this crate does not fix how masks are drawn.
-pub type Augment = dyn Fn(&mut Array2<f32>, &mut dyn RngCore) + Sync;
 
 /// Something the training loop reports as it runs (the CLI draws the progress bar from these).
 #[derive(Debug, Clone)]
@@ -94,6 +91,18 @@ pub struct EpochRecord {
     pub learning_rate: f64,
     /// True when the dev loss was the best so far (the model directory was updated).
     pub improved: bool,
+    /// Updates done in this epoch.
+    #[serde(default)]
+    pub updates: u64,
+    /// Wall time of the training pass, seconds (feature work included).
+    #[serde(default)]
+    pub train_seconds: f64,
+    /// Wall time spent producing the batches' features (perturbation, extraction, masks).
+    #[serde(default)]
+    pub feature_seconds: f64,
+    /// Wall time of the dev pass, seconds.
+    #[serde(default)]
+    pub dev_seconds: f64,
 }
 
 /// Counters that survive a resume.
@@ -109,6 +118,12 @@ pub struct TrainingProgress {
     pub epochs_without_improvement: usize,
     /// One record per completed epoch.
     pub history: Vec<EpochRecord>,
+    /// Updates the learning-rate schedule is planned for (0: not planned yet).
+    #[serde(default)]
+    pub planned_updates: u64,
+    /// The epoch count the plan was made for (a changed `--epochs` re-plans).
+    #[serde(default)]
+    pub planned_epochs: usize,
 }
 
 /// Utterances left out because their labels cannot fit the output frames.
@@ -126,10 +141,16 @@ pub struct Trainer {
     units: UnitInventory,
     input_dims: usize,
     parameters: BTreeMap<String, Var>,
+    /// Running statistics of batch normalisation: saved with the parameters, not trained.
+    statistics: BTreeMap<String, Var>,
     network: Tdnn,
     optimizer: AdamW,
     progress: TrainingProgress,
+    deadline: Option<Instant>,
 }
+
+/// Updates of the first epoch timed before a budgeted run plans its schedule.
+const PROBE_UPDATES: usize = 8;
 
 fn epoch_rng(seed: u64, epoch: usize) -> ChaCha8Rng {
     let mut rng = ChaCha8Rng::seed_from_u64(seed);
@@ -194,8 +215,9 @@ impl Trainer {
         config.model.check_size(input_dims, units.len())?;
         let mut rng = epoch_rng(seed, usize::MAX - 1);
         let parameters = initial_parameters(&config.model, input_dims, units.len(), &mut rng)?;
+        let statistics = initial_statistics(&config.model)?;
         let network = Tdnn::new(
-            var_builder(&parameters),
+            var_builder(&model_tensors(&parameters, &statistics)),
             &config.model,
             input_dims,
             units.len(),
@@ -206,12 +228,14 @@ impl Trainer {
             units,
             input_dims,
             parameters,
+            statistics,
             network,
             optimizer,
             progress: TrainingProgress {
                 seed,
                 ..TrainingProgress::default()
             },
+            deadline: None,
         })
     }
 
@@ -220,9 +244,20 @@ impl Trainer {
         &self.network
     }
 
-    /// Parameters by name.
+    /// Trained parameters by name.
     pub fn parameters(&self) -> &BTreeMap<String, Var> {
         &self.parameters
+    }
+
+    /// Running statistics of batch normalisation by name (empty for other networks).
+    pub fn running_statistics(&self) -> &BTreeMap<String, Var> {
+        &self.statistics
+    }
+
+    /// Everything a model directory holds: the parameters and the running statistics (sharing
+    /// their storage), for [`crate::AcousticModel::save`].
+    pub fn model_tensors(&self) -> BTreeMap<String, Var> {
+        model_tensors(&self.parameters, &self.statistics)
     }
 
     /// Counters and history.
@@ -245,11 +280,50 @@ impl Trainer {
         self.config.training.epochs = epochs;
     }
 
-    /// True when training should stop (all epochs done or no dev improvement for `patience`).
+    /// Trains until `deadline` (wall clock) instead of a fixed number of epochs; the schedule is
+    /// planned to end there. `None` returns to epoch counting.
+    pub fn set_deadline(&mut self, deadline: Option<Instant>) {
+        self.deadline = deadline;
+        if deadline.is_some() {
+            self.config.training.epochs = usize::MAX;
+            self.progress.planned_updates = 0;
+        }
+    }
+
+    /// True when training should stop: all epochs done, the budget spent, or no dev improvement
+    /// for `patience` epochs.
     pub fn finished(&self) -> bool {
-        self.progress.epochs_done >= self.config.training.epochs
+        let budget_spent = self.deadline.is_some_and(|deadline| {
+            Instant::now() >= deadline
+                || (self.progress.planned_updates > 0
+                    && self.optimizer.step >= self.progress.planned_updates)
+        });
+        budget_spent
+            || self.progress.epochs_done >= self.config.training.epochs
             || (self.config.training.patience > 0
                 && self.progress.epochs_without_improvement >= self.config.training.patience)
+    }
+
+    /// True when an utterance of `frames` input frames has enough output frames for `labels`.
+    pub fn fits(&self, frames: usize, labels: &[u32]) -> bool {
+        frames > 0 && min_frames_for(labels) <= self.network.output_frames(frames)
+    }
+
+    /// Updates done so far.
+    pub fn updates(&self) -> u64 {
+        self.optimizer.step
+    }
+
+    /// Plans the schedule of a budgeted run: the updates that fit in the time left at
+    /// `seconds_per_update` (dev passes included), on top of those done.
+    fn plan_for_deadline(&mut self, seconds_per_update: f64) {
+        if let Some(deadline) = self.deadline {
+            let left = deadline
+                .saturating_duration_since(Instant::now())
+                .as_secs_f64();
+            let more = (left / seconds_per_update.max(1e-6)).floor() as u64;
+            self.progress.planned_updates = self.optimizer.step + more.max(1);
+        }
     }
 
     /// Keeps utterances whose labels fit their output frames; perturbed variants that do not
@@ -275,17 +349,25 @@ impl Trainer {
         admission
     }
 
-    fn learning_rate(&self, step: u64) -> f64 {
+    /// The rate of update `step` (1-based) under the planned schedule.
+    pub fn learning_rate(&self, step: u64) -> f64 {
         let training = &self.config.training;
         let peak = training.learning_rate;
-        let warmup = training.warmup_steps.max(1) as f64;
+        let total = self.progress.planned_updates.max(1) as f64;
+        let warmup = (training.warmup_share * total).ceil().max(1.0);
         let step = step.max(1) as f64;
         if step <= warmup {
-            peak * step / warmup
-        } else if training.decay {
-            peak * (warmup / step).sqrt()
-        } else {
-            peak
+            return peak * step / warmup;
+        }
+        match training.schedule {
+            Schedule::Constant => peak,
+            Schedule::InverseSqrt => peak * (warmup / step).sqrt(),
+            Schedule::Cosine => {
+                let progress = ((step - warmup) / (total - warmup).max(1.0)).min(1.0);
+                let floor = training.final_rate;
+                peak * (floor
+                    + (1.0 - floor) * 0.5 * (1.0 + (std::f64::consts::PI * progress).cos()))
+            }
         }
     }
 
@@ -330,7 +412,8 @@ impl Trainer {
         rng: &mut dyn RngCore,
     ) -> Result<Option<(f64, usize)>, AcousticError> {
         let (input, output_frames) = self.batch_input(features)?;
-        let logits = self.network.forward(&input, Some(rng))?;
+        let frames: Vec<usize> = features.iter().map(|f| f.nrows()).collect();
+        let (logits, batch_statistics) = self.network.forward_train(&input, &frames, rng)?;
         let total_frames: usize = output_frames.iter().sum();
         let targets = CtcTargets {
             frame_lengths: output_frames,
@@ -352,6 +435,7 @@ impl Trainer {
         let rate = self.learning_rate(self.optimizer.step + 1);
         self.optimizer
             .update(&self.parameters, &grads, rate, scale)?;
+        self.network.update_running_statistics(&batch_statistics)?;
         Ok(Some((value, total_frames)))
     }
 
@@ -364,7 +448,7 @@ impl Trainer {
         for batch in batches {
             let features: Vec<&Array2<f32>> = batch.iter().map(|&i| &dev[i].variants[0]).collect();
             let (input, output_frames) = self.batch_input(&features)?;
-            let logits = self.network.forward(&input, None)?;
+            let logits = self.network.forward(&input)?;
             let targets = CtcTargets {
                 frame_lengths: output_frames.clone(),
                 labels: batch.iter().map(|&i| dev[i].labels.clone()).collect(),
@@ -388,12 +472,12 @@ impl Trainer {
         ))
     }
 
-    /// Trains one epoch over `train` (admitted utterances), then evaluates on `dev`.
+    /// Trains one epoch over `train` (admitted utterances), then evaluates on `dev`. Under a
+    /// deadline the epoch ends early when the budget is spent.
     pub fn run_epoch(
         &mut self,
-        train: &[PreparedUtterance],
+        train: &dyn TrainingData,
         dev: &[PreparedUtterance],
-        augment: Option<&Augment>,
         on_event: &mut dyn FnMut(&TrainingEvent),
     ) -> Result<EpochRecord, AcousticError> {
         if train.is_empty() {
@@ -402,36 +486,65 @@ impl Trainer {
             ));
         }
         let epoch = self.progress.epochs_done + 1;
-        let mut rng = epoch_rng(self.progress.seed, epoch);
-        let lengths: Vec<usize> = train.iter().map(|u| u.variants[0].nrows()).collect();
+        let seed = self.progress.seed;
+        let mut rng = epoch_rng(seed, epoch);
+        let lengths: Vec<usize> = (0..train.len()).map(|i| train.frames(i)).collect();
         let batches = bucketed_batches(&lengths, self.config.training.batch_frames, &mut rng);
+        let epochs = self.config.training.epochs;
+        if self.deadline.is_none()
+            && (self.progress.planned_updates == 0 || self.progress.planned_epochs != epochs)
+        {
+            let left = epochs.saturating_sub(self.progress.epochs_done) as u64;
+            self.progress.planned_updates =
+                self.optimizer.step + left.saturating_mul(batches.len() as u64);
+            self.progress.planned_epochs = epochs;
+        }
         on_event(&TrainingEvent::EpochStart {
             epoch,
             batches: batches.len(),
             frames: lengths.iter().sum(),
         });
         let started = Instant::now();
+        let updates_before = self.optimizer.step;
         let (mut loss_sum, mut loss_frames, mut epoch_frames, mut skipped) =
             (0f64, 0usize, 0usize, 0);
+        let mut feature_seconds = 0f64;
+        let dev_share = dev.iter().map(|u| u.variants[0].nrows()).sum::<usize>() as f64
+            / lengths.iter().sum::<usize>().max(1) as f64;
         for (done, batch) in batches.iter().enumerate() {
-            let mut features: Vec<Array2<f32>> = Vec::with_capacity(batch.len());
-            for &i in batch {
-                let variants = &train[i].variants;
-                let mut matrix = variants[rng.random_range(0..variants.len())].clone();
-                if let Some(augment) = augment {
-                    augment(&mut matrix, &mut rng);
+            if let Some(deadline) = self.deadline {
+                let planned = self.progress.planned_updates;
+                if Instant::now() >= deadline || (planned > 0 && self.optimizer.step >= planned) {
+                    break;
                 }
-                features.push(matrix);
+                if planned == 0 && done == PROBE_UPDATES {
+                    // A forward-only dev pass costs about a third of a training pass per frame.
+                    let per_update = started.elapsed().as_secs_f64() / done as f64;
+                    self.plan_for_deadline(per_update * (1.0 + dev_share / 3.0));
+                }
             }
+            let feature_start = Instant::now();
+            let network = &self.network;
+            let features: Vec<Array2<f32>> = batch
+                .par_iter()
+                .map(|&i| {
+                    let labels = train.labels(i);
+                    let fits = |frames: usize| {
+                        frames > 0 && min_frames_for(labels) <= network.output_frames(frames)
+                    };
+                    train.features(i, &mut utterance_rng(seed, epoch, i), &fits)
+                })
+                .collect();
+            feature_seconds += feature_start.elapsed().as_secs_f64();
             let refs: Vec<&Array2<f32>> = features.iter().collect();
-            let labels: Vec<Vec<u32>> = batch.iter().map(|&i| train[i].labels.clone()).collect();
+            let labels: Vec<Vec<u32>> = batch.iter().map(|&i| train.labels(i).to_vec()).collect();
             let batch_frames: usize = refs.iter().map(|f| f.nrows()).sum();
             epoch_frames += batch_frames;
             let Some((value, total_frames)) = self.train_batch(&refs, labels, &mut rng)? else {
                 skipped += 1;
                 on_event(&TrainingEvent::BatchSkipped {
                     done: done + 1,
-                    utterances: batch.iter().map(|&i| train[i].id.clone()).collect(),
+                    utterances: batch.iter().map(|&i| train.id(i).to_string()).collect(),
                 });
                 continue;
             };
@@ -444,8 +557,15 @@ impl Trainer {
                 frames_per_second: epoch_frames as f64 / started.elapsed().as_secs_f64().max(1e-9),
             });
         }
-        let frames_per_second = epoch_frames as f64 / started.elapsed().as_secs_f64().max(1e-9);
+        let train_seconds = started.elapsed().as_secs_f64();
+        let frames_per_second = epoch_frames as f64 / train_seconds.max(1e-9);
+        let dev_started = Instant::now();
         let (dev_loss, dev_unit_error_rate) = self.evaluate(dev)?;
+        let dev_seconds = dev_started.elapsed().as_secs_f64();
+        let updates = self.optimizer.step - updates_before;
+        if self.deadline.is_some() && updates > 0 {
+            self.plan_for_deadline((train_seconds + dev_seconds) / updates as f64);
+        }
         let improved = self
             .progress
             .best_dev_loss
@@ -465,6 +585,10 @@ impl Trainer {
             frames_per_second,
             learning_rate: self.learning_rate(self.optimizer.step),
             improved,
+            updates,
+            train_seconds,
+            feature_seconds,
+            dev_seconds,
         };
         self.progress.epochs_done = epoch;
         self.progress.history.push(record.clone());
@@ -478,6 +602,10 @@ impl Trainer {
         for (name, var) in &self.parameters {
             let values: Vec<f32> = var.as_tensor().flatten_all()?.to_vec1()?;
             tensors.push((format!("param/{name}"), var.dims().to_vec(), values));
+        }
+        for (name, var) in &self.statistics {
+            let values: Vec<f32> = var.as_tensor().flatten_all()?.to_vec1()?;
+            tensors.push((format!("statistic/{name}"), var.dims().to_vec(), values));
         }
         for (name, moments) in &self.optimizer.moments {
             let n = moments.first.len();
@@ -592,10 +720,29 @@ impl Trainer {
                 trainer.optimizer.moments.insert(name.clone(), moments);
             }
         }
+        for (name, var) in &trainer.statistics {
+            let values = read(&format!("statistic/{name}"))?;
+            if values.len() != var.elem_count() {
+                return Err(corrupt(&format!("statistic `{name}` has the wrong size")));
+            }
+            var.set(&Tensor::from_vec(values, var.shape(), &Device::Cpu)?)?;
+        }
         trainer.optimizer.step = step;
         trainer.progress = progress;
         Ok(trainer)
     }
+}
+
+/// The parameters and running statistics in one map (the vars share their storage).
+fn model_tensors(
+    parameters: &BTreeMap<String, Var>,
+    statistics: &BTreeMap<String, Var>,
+) -> BTreeMap<String, Var> {
+    parameters
+        .iter()
+        .chain(statistics)
+        .map(|(name, var)| (name.clone(), var.clone()))
+        .collect()
 }
 
 /// Where the training files live inside a model directory.
@@ -607,9 +754,14 @@ pub fn checkpoint_path(model_dir: &Path) -> PathBuf {
 mod tests {
     use super::*;
     use crate::config::{LayerConfig, Normalization, TdnnConfig, TrainingConfig};
+    use crate::data::PreparedSet;
     use crate::units::UnitKind;
 
     fn tiny_config() -> ModelConfig {
+        config_with(Normalization::Layer)
+    }
+
+    fn config_with(normalization: Normalization) -> ModelConfig {
         ModelConfig {
             model: TdnnConfig {
                 layers: vec![
@@ -624,17 +776,17 @@ mod tests {
                         keep_every: 3,
                     },
                 ],
-                normalization: Normalization::Layer,
+                normalization,
                 dropout: 0.1,
             },
             training: TrainingConfig {
                 epochs: 2,
                 batch_frames: 200,
                 learning_rate: 5e-3,
-                warmup_steps: 2,
                 ..TrainingConfig::default()
             },
             features: crate::config::default_features(),
+            augmentation: crate::config::Augmentation::none(),
         }
     }
 
@@ -679,39 +831,79 @@ mod tests {
             .collect()
     }
 
-    fn weights(trainer: &Trainer) -> Vec<Vec<f32>> {
+    fn set(utterances: &[PreparedUtterance]) -> PreparedSet<'_> {
+        PreparedSet {
+            utterances,
+            augment: None,
+        }
+    }
+
+    /// Every parameter and running statistic, by name.
+    fn weights(trainer: &Trainer) -> Vec<(String, Vec<f32>)> {
         trainer
-            .parameters()
-            .values()
-            .map(|v| v.as_tensor().flatten_all().unwrap().to_vec1().unwrap())
+            .model_tensors()
+            .iter()
+            .map(|(name, v)| {
+                let values = v.as_tensor().flatten_all().unwrap().to_vec1().unwrap();
+                (name.clone(), values)
+            })
             .collect()
     }
 
     #[test]
     fn resuming_from_a_checkpoint_gives_identical_weights() {
+        for normalization in [Normalization::Layer, Normalization::Batch] {
+            resume_gives_identical_weights(config_with(normalization));
+        }
+    }
+
+    fn resume_gives_identical_weights(config: ModelConfig) {
         let train = synthetic(12, 1);
         let dev = synthetic(3, 2);
-        let mut straight = Trainer::new(tiny_config(), units(), 5, 42).unwrap();
+        let mut straight = Trainer::new(config.clone(), units(), 5, 42).unwrap();
         for _ in 0..2 {
-            straight.run_epoch(&train, &dev, None, &mut |_| {}).unwrap();
+            straight.run_epoch(&set(&train), &dev, &mut |_| {}).unwrap();
         }
         let dir = tempfile::tempdir().unwrap();
         let path = checkpoint_path(dir.path());
-        let mut first = Trainer::new(tiny_config(), units(), 5, 42).unwrap();
-        first.run_epoch(&train, &dev, None, &mut |_| {}).unwrap();
+        let mut first = Trainer::new(config.clone(), units(), 5, 42).unwrap();
+        first.run_epoch(&set(&train), &dev, &mut |_| {}).unwrap();
         first.save_checkpoint(&path).unwrap();
+        let after_one = weights(&first);
         drop(first);
         let mut resumed = Trainer::load_checkpoint(&path).unwrap();
         assert_eq!(resumed.progress().epochs_done, 1);
-        resumed.run_epoch(&train, &dev, None, &mut |_| {}).unwrap();
+        assert_eq!(
+            weights(&resumed),
+            after_one,
+            "the checkpoint restores everything"
+        );
+        resumed.run_epoch(&set(&train), &dev, &mut |_| {}).unwrap();
         assert_eq!(weights(&straight), weights(&resumed));
+        if config.model.normalization == Normalization::Batch {
+            // The running statistics moved, have no optimizer state and are not parameters.
+            let fresh = Trainer::new(config, units(), 5, 42).unwrap();
+            assert_eq!(resumed.running_statistics().len(), 4);
+            for (name, var) in resumed.running_statistics() {
+                let now: Vec<f32> = var.as_tensor().to_vec1().unwrap();
+                let before: Vec<f32> = fresh.running_statistics()[name]
+                    .as_tensor()
+                    .to_vec1()
+                    .unwrap();
+                assert_ne!(now, before, "{name} was updated");
+                assert!(!resumed.parameters().contains_key(name));
+                assert!(!resumed.optimizer.moments.contains_key(name));
+            }
+        }
         // Everything but the wall-clock speed must agree.
         let without_speed = |trainer: &Trainer| {
             let mut progress = trainer.progress().clone();
-            progress
-                .history
-                .iter_mut()
-                .for_each(|r| r.frames_per_second = 0.0);
+            for record in &mut progress.history {
+                record.frames_per_second = 0.0;
+                record.train_seconds = 0.0;
+                record.feature_seconds = 0.0;
+                record.dev_seconds = 0.0;
+            }
             progress
         };
         assert_eq!(without_speed(&straight), without_speed(&resumed));
@@ -787,43 +979,178 @@ mod tests {
 
     #[test]
     fn a_batch_with_non_finite_loss_is_skipped_and_reported() {
-        let mut config = tiny_config();
-        config.training.batch_frames = 10_000; // one batch
-        let mut trainer = Trainer::new(config, units(), 5, 1).unwrap();
-        let mut train = synthetic(4, 4);
-        train[2].variants[0][[3, 1]] = f32::NAN;
-        let before = weights(&trainer);
-        let mut skipped = Vec::new();
-        let record = trainer
-            .run_epoch(&train, &synthetic(2, 5), None, &mut |event| {
-                if let TrainingEvent::BatchSkipped { utterances, .. } = event {
-                    skipped.extend(utterances.clone());
-                }
-            })
-            .unwrap();
-        assert_eq!(record.skipped_batches, 1);
-        assert!(skipped.contains(&"utt2".to_string()));
-        assert_eq!(before, weights(&trainer), "no update from a skipped batch");
+        for normalization in [Normalization::Layer, Normalization::Batch] {
+            let mut config = config_with(normalization);
+            config.training.batch_frames = 10_000; // one batch
+            let mut trainer = Trainer::new(config, units(), 5, 1).unwrap();
+            let mut train = synthetic(4, 4);
+            train[2].variants[0][[3, 1]] = f32::NAN;
+            let before = weights(&trainer);
+            let mut skipped = Vec::new();
+            let record = trainer
+                .run_epoch(&set(&train), &synthetic(2, 5), &mut |event| {
+                    if let TrainingEvent::BatchSkipped { utterances, .. } = event {
+                        skipped.extend(utterances.clone());
+                    }
+                })
+                .unwrap();
+            assert_eq!(record.skipped_batches, 1);
+            assert!(skipped.contains(&"utt2".to_string()));
+            assert_eq!(
+                before,
+                weights(&trainer),
+                "no update from a skipped batch, running statistics included"
+            );
+        }
     }
 
     #[test]
     fn learns_synthetic_bursts_to_zero_error() {
-        let mut config = tiny_config();
-        config.training.epochs = 60;
-        config.training.patience = 0;
-        config.model.dropout = 0.0;
-        let train = synthetic(16, 6);
-        let mut trainer = Trainer::new(config, units(), 5, 3).unwrap();
-        let mut last = None;
-        while !trainer.finished() {
-            last = Some(
-                trainer
-                    .run_epoch(&train, &train, None, &mut |_| {})
-                    .unwrap(),
+        for normalization in [Normalization::Layer, Normalization::Batch] {
+            let mut config = config_with(normalization);
+            config.training.epochs = 60;
+            config.training.patience = 0;
+            config.model.dropout = 0.0;
+            let train = synthetic(16, 6);
+            let mut trainer = Trainer::new(config, units(), 5, 3).unwrap();
+            let mut last = None;
+            while !trainer.finished() {
+                last = Some(
+                    trainer
+                        .run_epoch(&set(&train), &train, &mut |_| {})
+                        .unwrap(),
+                );
+            }
+            // The dev pass is inference: with batch norm, the running statistics.
+            let last = last.unwrap();
+            assert!(
+                last.dev_unit_error_rate < 0.05,
+                "{normalization:?}: {last:?}"
             );
         }
-        let last = last.unwrap();
-        assert!(last.dev_unit_error_rate < 0.05, "{last:?}");
+    }
+
+    /// A batch-normalised model after training: saved, loaded and run on features, it gives the
+    /// posteriors of the in-memory network (running statistics included, by their names).
+    #[test]
+    fn a_trained_model_with_batch_norm_saves_loads_and_infers_alike() {
+        use crate::model::{ModelDescription, Provenance, MODEL_FORMAT};
+        let config = config_with(Normalization::Batch);
+        let train = synthetic(12, 1);
+        let mut trainer = Trainer::new(config.clone(), units(), 5, 7).unwrap();
+        trainer
+            .run_epoch(&set(&train), &train, &mut |_| {})
+            .unwrap();
+        let mut features = config.features.clone();
+        features.cepstra = 5;
+        features.deltas = Some(0);
+        assert_eq!(features.dims(), 5);
+        let description = ModelDescription {
+            format: MODEL_FORMAT,
+            units: units(),
+            features,
+            architecture: config.model.clone(),
+            provenance: Provenance::default(),
+            training: None,
+            augmentation: None,
+        };
+        let dir = tempfile::tempdir().unwrap();
+        crate::AcousticModel::save(dir.path(), &description, &trainer.model_tensors()).unwrap();
+        let stored =
+            candle_core::safetensors::load(dir.path().join("model.safetensors"), &Device::Cpu)
+                .unwrap();
+        for (name, var) in trainer.running_statistics() {
+            let expected: Vec<f32> = var.as_tensor().to_vec1().unwrap();
+            assert_eq!(stored[name].to_vec1::<f32>().unwrap(), expected, "{name}");
+        }
+        assert!(stored.contains_key("layers.1.norm.running_var"));
+        assert!(
+            !stored.contains_key("layers.0.bias"),
+            "no bias before batch norm"
+        );
+        let loaded = crate::AcousticModel::load(dir.path()).unwrap();
+        let in_memory =
+            crate::AcousticModel::from_parameters(description, &trainer.model_tensors()).unwrap();
+        for utterance in synthetic(4, 9) {
+            let matrix = &utterance.variants[0];
+            let posteriors = loaded.log_posteriors(matrix).unwrap();
+            assert_eq!(posteriors, in_memory.log_posteriors(matrix).unwrap());
+            // And the trainer's own network, as the dev pass runs it.
+            let (input, _) = trainer.batch_input(&[matrix]).unwrap();
+            let logits = trainer
+                .network()
+                .forward(&input)
+                .unwrap()
+                .squeeze(0)
+                .unwrap();
+            let direct = candle_nn::ops::log_softmax(&logits, 1).unwrap();
+            let direct: Vec<f32> = direct.flatten_all().unwrap().to_vec1().unwrap();
+            assert_eq!(posteriors.iter().copied().collect::<Vec<f32>>(), direct);
+        }
+    }
+
+    #[test]
+    fn the_cosine_schedule_warms_up_peaks_and_ends_at_its_floor() {
+        let mut config = tiny_config();
+        config.training.learning_rate = 1e-3;
+        config.training.warmup_share = 0.1;
+        config.training.final_rate = 0.02;
+        let mut trainer = Trainer::new(config, units(), 5, 1).unwrap();
+        trainer.progress.planned_updates = 100;
+        let rate = |step| trainer.learning_rate(step);
+        assert!(
+            (rate(1) - 1e-4).abs() < 1e-12,
+            "linear warm-up over 10 updates"
+        );
+        assert!(
+            (rate(10) - 1e-3).abs() < 1e-12,
+            "the peak at the end of the warm-up"
+        );
+        // Half-way through the decay the cosine is at its middle: (peak + floor) / 2.
+        assert!((rate(55) - 1e-3 * (1.0 + 0.02) / 2.0).abs() < 1e-12);
+        assert!(
+            (rate(100) - 2e-5).abs() < 1e-12,
+            "the floor at the last planned update"
+        );
+        assert!((rate(150) - 2e-5).abs() < 1e-12, "and after it");
+        let steps: Vec<f64> = (10..=100).map(rate).collect();
+        assert!(
+            steps.windows(2).all(|w| w[1] <= w[0]),
+            "never rises after the peak"
+        );
+    }
+
+    #[test]
+    fn a_fixed_run_plans_its_schedule_over_all_epochs() {
+        let train = synthetic(12, 1);
+        let dev = synthetic(3, 2);
+        let mut trainer = Trainer::new(tiny_config(), units(), 5, 42).unwrap();
+        trainer.run_epoch(&set(&train), &dev, &mut |_| {}).unwrap();
+        let per_epoch = trainer.updates();
+        assert!(per_epoch > 1);
+        assert_eq!(trainer.progress().planned_updates, 2 * per_epoch);
+        // A longer run asked for on resume re-plans from where it is.
+        trainer.set_epochs(4);
+        trainer.run_epoch(&set(&train), &dev, &mut |_| {}).unwrap();
+        assert_eq!(trainer.progress().planned_updates, 4 * per_epoch);
+    }
+
+    #[test]
+    fn a_spent_budget_ends_training() {
+        let train = synthetic(12, 1);
+        let dev = synthetic(3, 2);
+        let mut trainer = Trainer::new(tiny_config(), units(), 5, 42).unwrap();
+        trainer.set_deadline(Some(Instant::now() + std::time::Duration::from_secs(3600)));
+        assert!(!trainer.finished());
+        trainer.run_epoch(&set(&train), &dev, &mut |_| {}).unwrap();
+        assert!(
+            trainer.progress().planned_updates > trainer.updates(),
+            "an hour holds more updates than one epoch of twelve tiny utterances"
+        );
+        trainer.set_deadline(Some(Instant::now()));
+        assert!(trainer.finished());
+        let record = trainer.run_epoch(&set(&train), &dev, &mut |_| {}).unwrap();
+        assert_eq!(record.updates, 0, "no update once the budget is spent");
     }
 
     #[test]

@@ -49,11 +49,16 @@ layers = [
 epochs = 70
 batch_frames = 4000
 learning_rate = 0.003
-warmup_steps = 10
+warmup_share = 0.05
 patience = 0
+[augmentation]
 speed_factors = []
-volume_range = 1.0
-spec_augment = false
+vtlp = { probability = 0.0 }
+reverb = { probability = 0.0 }
+noise = { probability = 0.0 }
+band_limit = { probability = 0.0 }
+gain = { probability = 0.0 }
+masks = { time_masks = 0, frequency_masks = 0 }
 "#;
 
 fn options(
@@ -69,6 +74,7 @@ fn options(
         out: dir.join("model"),
         config: ModelConfig::parse(TINY).unwrap(),
         epochs: None,
+        minutes: None,
         resume: false,
         seed: 7,
         lexicon: None,

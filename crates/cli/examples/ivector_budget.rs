@@ -53,9 +53,6 @@ fn features(
     let computed = manifest_features(
         &manifest,
         model.feature_config(),
-        &[1.0],
-        1.0,
-        1,
         Some(&cache.join(name)),
         &|_, _| {},
     )

@@ -2,7 +2,9 @@
 //!
 //! It checks the corpus, builds an in-domain and a mixed (in-domain + out-of-domain) trigram LM,
 //! transcribes the test split with the shipped model (greedy, then with each LM and the grapheme
-//! lexicon), scores WER and flexible WER per dialect with bootstrap intervals, transcribes one
+//! lexicon), scores WER and flexible WER per dialect with bootstrap intervals, does the same for
+//! each condition of the `cross` split (unseen voices, clean and through reverberation, noise, a
+//! telephone line and a lossy codec: one table row per condition), transcribes one
 //! long interview recording to WebVTT, and writes a report folder. `--train` first retrains a
 //! small model from scratch and uses it instead of the shipped one.
 //!
@@ -65,8 +67,8 @@ pub struct DemoArgs {
     /// Report folder (created; earlier results in it are reused where nothing changed).
     #[arg(long, default_value = "demo-report")]
     out: PathBuf,
-    /// Retrain a small model from scratch first and use it (measured 7.5 minutes on two cores
-    /// when the train split held 33 minutes of speech; it now holds 50, see the README).
+    /// Retrain a small model from scratch first and use it (a quarter of an hour or more on two
+    /// cores with the current recipe and 50 minutes of speech, see the README).
     #[arg(long)]
     train: bool,
     /// Architecture and training settings for --train.
@@ -78,6 +80,50 @@ pub struct DemoArgs {
     /// The long recording transcribed to WebVTT (relative to --data).
     #[arg(long, default_value = "interviews/interview1.ogg")]
     interview: PathBuf,
+}
+
+/// The conditions of the demo's condition table: label, manifest (relative to the data folder),
+/// what it tests. The first is the test split itself; the others are the `cross` split, whose
+/// voice configurations no training speaker has, clean and through four archive-like channels.
+const CONDITIONS: [(&str, &str, &str); 6] = [
+    (
+        "clean, unseen speakers",
+        "test.tsv",
+        "speakers not in train, voices of the kinds heard in train",
+    ),
+    (
+        "unseen voices",
+        "cross-clean.tsv",
+        "voice configurations and a synthesizer never heard in train",
+    ),
+    (
+        "reverberant",
+        "cross-reverb.tsv",
+        "the unseen voices in simulated rooms",
+    ),
+    (
+        "noisy",
+        "cross-noise.tsv",
+        "the unseen voices with noise at 5-20 dB SNR",
+    ),
+    (
+        "telephone",
+        "cross-phone.tsv",
+        "the unseen voices through a 300-3400 Hz line",
+    ),
+    (
+        "lossy codec",
+        "cross-codec.tsv",
+        "the unseen voices through a low-bit-rate MP3",
+    ),
+];
+
+/// One row of the condition table: greedy and LM + lexicon figures on one manifest.
+struct ConditionRow {
+    label: &'static str,
+    what: &'static str,
+    greedy: Summary,
+    with_lm: Summary,
 }
 
 /// One decoded system of the demo: its name and per-dialect figures.
@@ -93,7 +139,7 @@ struct System {
 }
 
 fn step(number: usize, text: &str) {
-    eprintln!("\n[{number}/6] {text}");
+    eprintln!("\n[{number}/7] {text}");
 }
 
 fn need(path: &Path, what: &str) -> anyhow::Result<()> {
@@ -166,6 +212,7 @@ pub fn run(args: DemoArgs) -> anyhow::Result<Outcome> {
             out: model_dir.clone(),
             config: ModelConfig::read(&args.config)?,
             epochs: Some(args.epochs),
+            minutes: None,
             resume: model_dir.join("checkpoint.safetensors").exists(),
             seed: SEED,
             lexicon: None,
@@ -365,8 +412,75 @@ pub fn run(args: DemoArgs) -> anyhow::Result<Outcome> {
         })?;
     }
 
+    // The condition table: the test split and each cross condition, greedy and with the
+    // in-domain LM and the lexicon (the same decoder settings as above).
+    step(
+        5,
+        "transcribing unseen voices and degraded channels (the cross split)",
+    );
+    let mut conditions = Vec::new();
+    let cross_dir = out.join("cross");
+    std::fs::create_dir_all(&cross_dir)
+        .with_context(|| format!("creating {}", cross_dir.display()))?;
+    for (index, (label, file, what)) in CONDITIONS.iter().enumerate() {
+        let manifest = data.join(file);
+        if index == 0 {
+            conditions.push(ConditionRow {
+                label,
+                what,
+                greedy: systems[0].overall.clone(),
+                with_lm: systems[1].overall.clone(),
+            });
+            continue;
+        }
+        if !manifest.exists() {
+            eprintln!("  {}: not found, condition left out", manifest.display());
+            continue;
+        }
+        let stem = file.trim_end_matches(".tsv");
+        let greedy = greedy_summary(
+            &model,
+            &model_dir,
+            &manifest,
+            &out.join("cache").join("posteriors"),
+            &cross_dir.join(format!("hyp-{stem}-greedy.tsv")),
+            &variants,
+            &options,
+        )?;
+        let condition_sweep = Sweep {
+            test: manifest.clone(),
+            dev: None,
+            lms: vec![lms[0].clone()],
+            ..sweep.clone()
+        };
+        let condition_results = sweep_run::run(&condition_sweep, &|_| {})?;
+        let cell = condition_results
+            .cells
+            .first()
+            .with_context(|| format!("{}: no result from the decoder", manifest.display()))?;
+        let target = cross_dir.join(format!("hyp-{stem}-indomain.tsv"));
+        std::fs::copy(&cell.hypotheses, &target).with_context(|| {
+            format!(
+                "copying {} to {}",
+                cell.hypotheses.display(),
+                target.display()
+            )
+        })?;
+        eprintln!(
+            "  {label}: greedy WER {} %, with LM and lexicon {} %",
+            percent(greedy.wer),
+            percent(cell.overall.wer)
+        );
+        conditions.push(ConditionRow {
+            label,
+            what,
+            greedy,
+            with_lm: cell.overall.clone(),
+        });
+    }
+
     // 6. The interview.
-    step(5, "transcribing a long interview recording to WebVTT");
+    step(6, "transcribing a long interview recording to WebVTT");
     let vtt = out.join(format!(
         "{}.vtt",
         interview
@@ -411,7 +525,7 @@ pub fn run(args: DemoArgs) -> anyhow::Result<Outcome> {
     );
 
     // 7. The report.
-    step(6, "writing the report");
+    step(7, "writing the report");
     let chosen = systems
         .iter()
         .skip(1)
@@ -426,12 +540,18 @@ pub fn run(args: DemoArgs) -> anyhow::Result<Outcome> {
         &out.join("chart.svg"),
         dialect_chart(chosen, results.audio_seconds).as_bytes(),
     )?;
-    let markdown = render_markdown(&systems, chosen, &results.audio_seconds, &vtt);
+    let mut markdown = render_markdown(&systems, chosen, &results.audio_seconds, &vtt);
+    markdown.push_str(&render_conditions(&conditions, &systems[1].name));
     write_atomically(&out.join("results.md"), markdown.as_bytes())?;
     write_atomically(&out.join("results.csv"), render_csv(&systems).as_bytes())?;
+    write_atomically(
+        &out.join("conditions.csv"),
+        render_conditions_csv(&conditions).as_bytes(),
+    )?;
     println!("{}", render_table(&systems, chosen));
+    println!("{}", render_condition_table(&conditions));
     eprintln!(
-        "report: {} (results.md, results.csv, chart.svg, {}{}), {:.0} s in all",
+        "report: {} (results.md, results.csv, conditions.csv, chart.svg, {}{}), {:.0} s in all",
         out.display(),
         vtt.file_name()
             .map(|n| n.to_string_lossy().into_owned())
@@ -444,6 +564,38 @@ pub fn run(args: DemoArgs) -> anyhow::Result<Outcome> {
         started.elapsed().as_secs_f64()
     );
     Ok(Outcome::Done)
+}
+
+/// Greedy hypotheses (no LM, no lexicon) of every utterance of `manifest_path` from the cached
+/// posteriors, written to `hyp_path` and scored against its dialectal writing.
+fn greedy_summary(
+    model: &AcousticModel,
+    model_dir: &Path,
+    manifest_path: &Path,
+    cache: &Path,
+    hyp_path: &Path,
+    variants: &VariantMap,
+    options: &ScoreOptions,
+) -> anyhow::Result<Summary> {
+    let manifest = Manifest::read(manifest_path)?;
+    let pass = posteriors(model, &model_key(model_dir)?, &manifest, cache)?;
+    let graph = SearchGraph::lexicon_free(model.units().to_vec())?;
+    let mut greedy = GreedyDecoder::new(&graph);
+    let mut rows = Vec::new();
+    for utterance in &manifest.utterances {
+        if let Some(p) = pass.by_id.get(&utterance.id) {
+            rows.push(vec![utterance.id.clone(), greedy.decode(p.view())?.text()]);
+        }
+    }
+    isogloss_corpus::tsv::write_table(hyp_path, &["id", "text"], &rows)?;
+    let reference = Reference::read(manifest_path, "dialectal", &["dialect".to_string()])?;
+    let system = score_system(
+        &reference,
+        &Hypotheses::read(hyp_path)?,
+        Some(variants),
+        &options.rules,
+    )?;
+    Ok(report(&reference, &system, None, Some(variants), options).overall)
 }
 
 /// The chosen system's WER and flexible WER per dialect and over all dialects, with their
@@ -610,6 +762,81 @@ fn render_markdown(systems: &[System], chosen: &System, audio_seconds: &f64, vtt
             .map(|n| n.to_string_lossy().into_owned())
             .unwrap_or_default()
     );
+    text
+}
+
+/// The condition table in the report: greedy and LM + lexicon figures per condition.
+fn render_conditions(rows: &[ConditionRow], system: &str) -> String {
+    let mut text = String::new();
+    let _ = writeln!(
+        text,
+        "\n## Unseen voices and channels\n\nGreedy (no LM, no lexicon) and {system}; dialectal writing, WER and flexible WER in % with 95% bootstrap intervals. The cross conditions are the same utterances, clean and through each channel.\n"
+    );
+    let _ = writeln!(
+        text,
+        "| condition | what it tests | utterances | greedy WER | WER | flexible WER |"
+    );
+    let _ = writeln!(text, "|---|---|---:|---|---|---|");
+    for row in rows {
+        let _ = writeln!(
+            text,
+            "| {} | {} | {} | {} | {} | {} |",
+            row.label,
+            row.what,
+            row.with_lm.utterances,
+            with_interval(row.greedy.wer, row.greedy.wer_interval),
+            with_interval(row.with_lm.wer, row.with_lm.wer_interval),
+            with_interval(row.with_lm.flexible_wer, row.with_lm.flexible_wer_interval)
+        );
+    }
+    text
+}
+
+/// One row per condition: greedy WER, then WER and flexible WER with LM and lexicon.
+fn render_conditions_csv(rows: &[ConditionRow]) -> String {
+    let mut text = String::from(
+        "condition,utterances,ref_words,greedy_wer,wer,wer_low,wer_high,flexible_wer,flexible_wer_low,flexible_wer_high\n",
+    );
+    let number = |v: Option<f64>| v.map_or_else(String::new, |v| format!("{v:.6}"));
+    for row in rows {
+        let s = &row.with_lm;
+        let _ = writeln!(
+            text,
+            "{},{},{},{},{},{},{},{},{},{}",
+            row.label.replace(',', ";"),
+            s.utterances,
+            s.ref_words,
+            number(row.greedy.wer),
+            number(s.wer),
+            number(s.wer_interval.map(|i| i.low)),
+            number(s.wer_interval.map(|i| i.high)),
+            number(s.flexible_wer),
+            number(s.flexible_wer_interval.map(|i| i.low)),
+            number(s.flexible_wer_interval.map(|i| i.high)),
+        );
+    }
+    text
+}
+
+/// The condition table printed at the end.
+fn render_condition_table(rows: &[ConditionRow]) -> String {
+    let mut text =
+        String::from("Unseen voices and channels (in-domain LM + grapheme lexicon), WER in %\n\n");
+    let _ = writeln!(
+        text,
+        "{:<24} {:>10} {:>20} {:>20}",
+        "condition", "greedy WER", "WER", "flexible WER"
+    );
+    for row in rows {
+        let _ = writeln!(
+            text,
+            "{:<24} {:>10} {:>20} {:>20}",
+            row.label,
+            percent(row.greedy.wer),
+            with_interval(row.with_lm.wer, row.with_lm.wer_interval),
+            with_interval(row.with_lm.flexible_wer, row.with_lm.flexible_wer_interval)
+        );
+    }
     text
 }
 

@@ -30,8 +30,12 @@ pub struct TrainArgs {
     #[arg(long)]
     config: Option<PathBuf>,
     /// Number of epochs (overrides the configuration).
-    #[arg(long)]
+    #[arg(long, conflicts_with = "minutes")]
     epochs: Option<usize>,
+    /// Train for this many minutes of wall time instead of a number of epochs; the learning-rate
+    /// schedule is planned to end when they run out (decoding the audio first is not counted).
+    #[arg(long, value_parser = parse_minutes)]
+    minutes: Option<f64>,
     /// Continue an interrupted run from its last checkpoint.
     #[arg(long)]
     resume: bool,
@@ -42,6 +46,20 @@ pub struct TrainArgs {
     /// graphemes.
     #[arg(long)]
     lexicon: Option<PathBuf>,
+}
+
+/// A training budget: a positive number of minutes up to a year.
+fn parse_minutes(text: &str) -> Result<f64, String> {
+    let minutes: f64 = text
+        .parse()
+        .map_err(|_| format!("expected a number of minutes, found {text:?}"))?;
+    if minutes.is_finite() && minutes > 0.0 && minutes <= 525_600.0 {
+        Ok(minutes)
+    } else {
+        Err(format!(
+            "expected minutes above 0 and at most 525600 (a year), found {text}"
+        ))
+    }
 }
 
 /// Runs `isogloss train`.
@@ -66,6 +84,7 @@ pub fn run(args: TrainArgs) -> anyhow::Result<Outcome> {
         out: args.out.clone(),
         config,
         epochs: args.epochs,
+        minutes: args.minutes,
         resume: args.resume,
         seed: args.seed,
         lexicon: args.lexicon,
