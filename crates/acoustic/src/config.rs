@@ -325,7 +325,11 @@ impl TrainingConfig {
             );
         }
         if !(0.0..=1.0).contains(&self.final_rate) {
-            return invalid("final_rate", "a share from 0 to 1", self.final_rate.to_string());
+            return invalid(
+                "final_rate",
+                "a share from 0 to 1",
+                self.final_rate.to_string(),
+            );
         }
         Ok(())
     }

@@ -350,7 +350,8 @@ mod tests {
     /// an error naming `model.toml`, before any weight is read.
     #[test]
     fn out_of_range_descriptions_are_errors_naming_model_toml() {
-        let config = ModelConfig::small();
+        let mut config = ModelConfig::small();
+        config.model.normalization = crate::config::Normalization::Layer;
         let units = UnitInventory::graphemes(["abc de"]);
         let mut rng = ChaCha8Rng::seed_from_u64(2);
         let parameters =
@@ -362,6 +363,8 @@ mod tests {
             features: config.features.clone(),
             architecture: config.model.clone(),
             provenance: Provenance::default(),
+            training: None,
+            augmentation: None,
         };
         let dir = tempfile::tempdir().unwrap();
         AcousticModel::save(dir.path(), &description, &parameters).unwrap();

@@ -916,8 +916,9 @@ mod tests {
         let dir = tempfile::tempdir().unwrap();
         let path = dir.path().join("checkpoint.safetensors");
         let mut trainer = Trainer::new(tiny_config(), units(), 5, 42).unwrap();
+        let train = synthetic(4, 4);
         trainer
-            .run_epoch(&synthetic(4, 4), &synthetic(2, 5), None, &mut |_| {})
+            .run_epoch(&set(&train), &synthetic(2, 5), &mut |_| {})
             .unwrap();
         trainer.save_checkpoint(&path).unwrap();
         let bytes = std::fs::read(&path).unwrap();
