@@ -87,6 +87,8 @@ fn main() {
             features: config.features.clone(),
             architecture: config.model.clone(),
             provenance: Provenance::default(),
+            training: None,
+            augmentation: None,
         };
         let model = AcousticModel::from_parameters(description, &trainer.model_tensors());
         (normalization, model.expect("valid model"))

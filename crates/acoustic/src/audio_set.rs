@@ -104,7 +104,7 @@ impl PcmStore {
         let mut next = 0u64;
         let mut done = 0;
         for round in files.chunks(FILES_PER_ROUND) {
-            let decoded: Vec<Vec<(usize, Result<Vec<i16>, String>)>> = round
+            let decoded: Vec<Vec<DecodedRow>> = round
                 .par_iter()
                 .map(|(audio, rows)| decode_file(manifest, audio, rows))
                 .collect();
@@ -245,11 +245,10 @@ fn index_path(path: &Path) -> PathBuf {
     PathBuf::from(name)
 }
 
-fn decode_file(
-    manifest: &Manifest,
-    audio: &Path,
-    rows: &[usize],
-) -> Vec<(usize, Result<Vec<i16>, String>)> {
+/// A manifest row and its 16-bit samples, or why they could not be read.
+type DecodedRow = (usize, Result<Vec<i16>, String>);
+
+fn decode_file(manifest: &Manifest, audio: &Path, rows: &[usize]) -> Vec<DecodedRow> {
     let segments: Vec<_> = rows
         .iter()
         .map(|&i| manifest.utterances[i].segment())
