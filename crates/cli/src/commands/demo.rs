@@ -797,25 +797,37 @@ fn render_conditions_csv(rows: &[ConditionRow]) -> String {
     let mut text = String::from(
         "condition,utterances,ref_words,greedy_wer,wer,wer_low,wer_high,flexible_wer,flexible_wer_low,flexible_wer_high\n",
     );
-    let number = |v: Option<f64>| v.map_or_else(String::new, |v| format!("{v:.6}"));
     for row in rows {
-        let s = &row.with_lm;
         let _ = writeln!(
             text,
-            "{},{},{},{},{},{},{},{},{},{}",
+            "{},{},{},{},{}",
             row.label.replace(',', ";"),
-            s.utterances,
-            s.ref_words,
-            number(row.greedy.wer),
-            number(s.wer),
-            number(s.wer_interval.map(|i| i.low)),
-            number(s.wer_interval.map(|i| i.high)),
-            number(s.flexible_wer),
-            number(s.flexible_wer_interval.map(|i| i.low)),
-            number(s.flexible_wer_interval.map(|i| i.high)),
+            row.with_lm.utterances,
+            row.with_lm.ref_words,
+            csv_number(row.greedy.wer),
+            csv_rates(&row.with_lm),
         );
     }
     text
+}
+
+/// A rate for the CSV files: six decimals, empty when undefined.
+fn csv_number(value: Option<f64>) -> String {
+    value.map_or_else(String::new, |v| format!("{v:.6}"))
+}
+
+/// `wer,wer_low,wer_high,flexible_wer,flexible_wer_low,flexible_wer_high` of a summary.
+fn csv_rates(s: &Summary) -> String {
+    [
+        s.wer,
+        s.wer_interval.map(|i| i.low),
+        s.wer_interval.map(|i| i.high),
+        s.flexible_wer,
+        s.flexible_wer_interval.map(|i| i.low),
+        s.flexible_wer_interval.map(|i| i.high),
+    ]
+    .map(csv_number)
+    .join(",")
 }
 
 /// The condition table printed at the end.
@@ -845,7 +857,6 @@ fn render_csv(systems: &[System]) -> String {
     let mut text = String::from(
         "system,dialect,utterances,ref_words,wer,wer_low,wer_high,flexible_wer,flexible_wer_low,flexible_wer_high\n",
     );
-    let number = |v: Option<f64>| v.map_or_else(String::new, |v| format!("{v:.6}"));
     for system in systems {
         for (dialect, s) in system
             .groups
@@ -855,17 +866,12 @@ fn render_csv(systems: &[System]) -> String {
         {
             let _ = writeln!(
                 text,
-                "\"{}\",{},{},{},{},{},{},{},{},{}",
+                "\"{}\",{},{},{},{}",
                 system.name.replace('"', "\"\""),
                 dialect,
                 s.utterances,
                 s.ref_words,
-                number(s.wer),
-                number(s.wer_interval.map(|i| i.low)),
-                number(s.wer_interval.map(|i| i.high)),
-                number(s.flexible_wer),
-                number(s.flexible_wer_interval.map(|i| i.low)),
-                number(s.flexible_wer_interval.map(|i| i.high)),
+                csv_rates(s),
             );
         }
     }
