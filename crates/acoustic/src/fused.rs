@@ -475,10 +475,17 @@ impl FusedLayer {
                 for t in 0..g.frames_out {
                     let zrow = &z[(b * g.q + t) * h..][..h];
                     let orow = &mut out_u[t * h..(t + 1) * h];
-                    let units = zrow.iter().zip(mean).zip(inverse).zip(gain).zip(shift);
-                    for (o, ((((&zv, &m), &inv), &gn), &sh)) in orow.iter_mut().zip(units) {
-                        let u = normalised(zv, m, inv) * gn + sh;
-                        *o = if self.relu { u.max(0.0) } else { u };
+                    let (mean, inverse) = (&mean[..h], &inverse[..h]);
+                    let (gain, shift) = (&gain[..h], &shift[..h]);
+                    if self.relu {
+                        for j in 0..h {
+                            let u = normalised(zrow[j], mean[j], inverse[j]) * gain[j] + shift[j];
+                            orow[j] = u.max(0.0);
+                        }
+                    } else {
+                        for j in 0..h {
+                            orow[j] = normalised(zrow[j], mean[j], inverse[j]) * gain[j] + shift[j];
+                        }
                     }
                     if let Some(mask) = &self.mask {
                         let base = (b * g.frames_out + t) * h;
@@ -607,18 +614,13 @@ impl FusedLayer {
                             *gv *= m;
                         }
                     }
-                    let units = zrow.iter().zip(mean).zip(inverse).zip(gain).zip(shift);
-                    let sums = sum.iter_mut().zip(dot.iter_mut());
-                    for ((gv, ((((&zv, &m), &inv), &gn), &sh)), (s, d)) in
-                        grow.iter_mut().zip(units).zip(sums)
-                    {
-                        let xhat = normalised(zv, m, inv);
-                        if self.relu && xhat * gn + sh <= 0.0 {
-                            *gv = 0.0;
-                        }
-                        *s += *gv;
-                        *d += *gv * xhat;
-                    }
+                    mask_backward_row(
+                        self.relu,
+                        grow,
+                        [zrow, mean.as_slice(), inverse, gain, shift],
+                        &mut sum,
+                        &mut dot,
+                    );
                 }
                 (sum, dot)
             })
@@ -655,6 +657,43 @@ impl FusedLayer {
             }
         });
         dot.iter().chain(&sum).map(|&v| v as f32).collect()
+    }
+}
+
+/// One output frame of the first batch-norm backward pass: zeroes the gradient `g` where the
+/// forward ReLU was off (`x̂·γ + β ≤ 0`, with `x̂ = (z − μ)·inverse`) and accumulates `Σ g` and
+/// `Σ g·x̂` per unit. A function of its own over equal-length slices, with the ReLU test as a
+/// select on a value loaded unconditionally, so that the loop vectorises: inside the closure,
+/// with the test as a conditional store, it ran scalar (11 % of a training run in a profile).
+fn mask_backward_row(
+    relu: bool,
+    g: &mut [f32],
+    [z, mean, inverse, gain, shift]: [&[f32]; 5],
+    sum: &mut [f32],
+    dot: &mut [f32],
+) {
+    let n = g.len();
+    let (z, mean, inverse) = (&z[..n], &mean[..n], &inverse[..n]);
+    let (gain, shift, sum, dot) = (&gain[..n], &shift[..n], &mut sum[..n], &mut dot[..n]);
+    if relu {
+        for j in 0..n {
+            let xhat = normalised(z[j], mean[j], inverse[j]);
+            let value = g[j];
+            let gv = if xhat * gain[j] + shift[j] <= 0.0 {
+                0.0
+            } else {
+                value
+            };
+            g[j] = gv;
+            sum[j] += gv;
+            dot[j] += gv * xhat;
+        }
+    } else {
+        for j in 0..n {
+            let xhat = normalised(z[j], mean[j], inverse[j]);
+            sum[j] += g[j];
+            dot[j] += g[j] * xhat;
+        }
     }
 }
 

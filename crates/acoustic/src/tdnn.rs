@@ -38,7 +38,9 @@ use std::collections::BTreeMap;
 
 use candle_core::{DType, Device, Tensor, Var};
 use candle_nn::VarBuilder;
-use rand::{Rng, RngCore};
+use rand::{Rng, RngCore, SeedableRng};
+use rand_chacha::ChaCha8Rng;
+use rayon::prelude::*;
 
 use crate::config::{Normalization, TdnnConfig};
 #[cfg(test)]
@@ -198,12 +200,7 @@ impl TdnnLayer {
         };
         let mask = match dropout {
             Some((p, rng)) if self.hidden && p > 0.0 => {
-                let keep = 1.0 / (1.0 - p);
-                Some(
-                    (0..batch * frames_out * self.output_dims)
-                        .map(|_| if rng.random::<f32>() < p { 0.0 } else { keep })
-                        .collect(),
-                )
+                Some(dropout_mask(rng, p, batch, frames_out * self.output_dims))
             }
             _ => None,
         };
@@ -362,16 +359,39 @@ impl TdnnLayer {
         };
         if let Some((p, rng)) = dropout {
             if p > 0.0 {
-                let keep = 1.0 / (1.0 - p);
-                let mask: Vec<f32> = (0..output.elem_count())
-                    .map(|_| if rng.random::<f32>() < p { 0.0 } else { keep })
-                    .collect();
+                let (batch, frames_out, units) = output.dims3()?;
+                let mask = dropout_mask(rng, p, batch, frames_out * units);
                 let mask = Tensor::from_vec(mask, output.shape(), output.device())?;
                 output = (output * mask)?;
             }
         }
         Ok(output)
     }
+}
+
+/// A dropout mask of `batch` utterances of `per_utterance` values: `0` with probability `p`,
+/// else `1/(1−p)`. One generator per utterance (stream `b` of a seed drawn from `rng`), so the
+/// utterances are drawn in parallel and the mask does not depend on the thread count; a unit is
+/// dropped when a uniform 32-bit draw falls below `p·2³²`.
+fn dropout_mask(rng: &mut dyn RngCore, p: f32, batch: usize, per_utterance: usize) -> Vec<f32> {
+    let keep = 1.0 / (1.0 - p);
+    let mut mask = vec![keep; batch * per_utterance];
+    let seed = rng.next_u64();
+    let drop_below = (f64::from(p) * 4_294_967_296.0) as u64;
+    if per_utterance > 0 {
+        mask.par_chunks_mut(per_utterance)
+            .enumerate()
+            .for_each(|(b, chunk)| {
+                let mut draw = ChaCha8Rng::seed_from_u64(seed);
+                draw.set_stream(b as u64);
+                for m in chunk {
+                    if u64::from(draw.next_u32()) < drop_below {
+                        *m = 0.0;
+                    }
+                }
+            });
+    }
+    mask
 }
 
 /// The network: hidden [`TdnnLayer`]s and a final affine layer over the units (blank at 0).
