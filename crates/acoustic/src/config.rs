@@ -479,10 +479,12 @@ pub struct ModelConfig {
     pub augmentation: Augmentation,
 }
 
-/// The default front end (MFCC + Δ + ΔΔ) with per-speaker mean and variance normalisation.
+/// The default front end (MFCC + Δ + ΔΔ) with per-utterance mean and variance normalisation:
+/// what `isogloss transcribe` applies to each segment of a recording, whose speakers it does not
+/// know, so that a model is decoded with the normalisation it was trained with.
 pub fn default_features() -> FeatureConfig {
     FeatureConfig {
-        cmvn: CmvnMode::Speaker,
+        cmvn: CmvnMode::Utterance,
         ..FeatureConfig::default()
     }
 }
@@ -674,10 +676,17 @@ mod tests {
         assert_eq!(small.augmentation, Augmentation::default());
         assert_eq!(small.model.layers[0].keep_every, 3);
         assert_eq!(small.model.normalization, Normalization::Batch);
+        assert_eq!(small.features.cmvn, isogloss_features::CmvnMode::Utterance);
         let mut demo = ModelConfig::parse(include_str!("../../../configs/tdnn-demo.toml")).unwrap();
-        assert_eq!(demo.features.cmvn, isogloss_features::CmvnMode::Utterance);
-        demo.features.cmvn = small.features.cmvn;
-        assert_eq!(demo, small, "the demo recipe is the small one but for CMVN");
+        for layer in [3, 4] {
+            assert_eq!(demo.model.layers[layer].taps, vec![-1, 0, 1]);
+            assert_eq!(small.model.layers[layer].taps, vec![-3, 0, 3]);
+            demo.model.layers[layer].taps = vec![-3, 0, 3];
+        }
+        assert_eq!(
+            demo, small,
+            "the demo recipe is the small one but for the taps of layers 4 and 5"
+        );
     }
 
     #[test]
