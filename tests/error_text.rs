@@ -191,7 +191,7 @@ fn every_command_names_the_file_and_says_each_piece_once() {
         (
             owned(&["corpus", "check", path(&bad_audio)]),
             "not-audio.wav".into(),
-            1,
+            2,
         ),
         (
             owned(&["corpus", "split", path(&missing), "--out", &out("split")]),
