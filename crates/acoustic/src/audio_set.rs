@@ -202,7 +202,7 @@ impl PcmStore {
                     failures.push((
                         row,
                         format!(
-                            "{}:{} ({}): the audio could not be decoded when the cache was built",
+                            "{}, line {} ({}): the audio could not be decoded when the cache was built",
                             manifest.path.display(),
                             utterance.line,
                             utterance.id
@@ -279,7 +279,7 @@ fn decode_file(
         .collect();
     let item = |i: usize| {
         let u = &manifest.utterances[i];
-        format!("{}:{} ({})", manifest.path.display(), u.line, u.id)
+        format!("{}, line {} ({})", manifest.path.display(), u.line, u.id)
     };
     // A panic while decoding one file is that file's failure, not the end of training.
     match isogloss_audio::isolated(audio, || read(audio, &segments)) {

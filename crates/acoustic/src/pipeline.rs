@@ -242,7 +242,7 @@ pub fn manifest_features_with(
                 .map(|(k, &i)| {
                     let utterance = &manifest.utterances[i];
                     let item = format!(
-                        "{}:{} ({})",
+                        "{}, line {} ({})",
                         manifest.path.display(),
                         utterance.line,
                         utterance.id
@@ -353,7 +353,7 @@ fn encode_labels(
     let mut labels = Vec::with_capacity(manifest.utterances.len());
     for utterance in &manifest.utterances {
         let item = format!(
-            "{}:{} ({})",
+            "{}, line {} ({})",
             manifest.path.display(),
             utterance.line,
             utterance.id
@@ -830,7 +830,12 @@ pub fn manifest_posteriors(
         .map(|(variants, &i)| {
             model.log_posteriors(&variants[0]).map_err(|e| {
                 let u = &manifest.utterances[i];
-                format!("{}:{} ({}): {e}", manifest.path.display(), u.line, u.id)
+                format!(
+                    "{}, line {} ({}): {e}",
+                    manifest.path.display(),
+                    u.line,
+                    u.id
+                )
             })
         })
         .collect();

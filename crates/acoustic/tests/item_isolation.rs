@@ -49,7 +49,7 @@ fn reader(
 /// and what happened.
 fn expected_reason(dir: &Path, line: usize, id: &str) -> String {
     format!(
-        "{}:{line} ({id}): {}: the audio data is damaged: the decoder failed inside ({PANIC_MESSAGE})",
+        "{}, line {line} ({id}): {}: the audio data is damaged: the decoder failed inside ({PANIC_MESSAGE})",
         dir.join("m.tsv").display(),
         dir.join("panic.wav").display()
     )
