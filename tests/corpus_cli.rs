@@ -117,17 +117,27 @@ fn start_beyond_the_audio_and_start_after_end_are_both_listed() {
     assert!(all.contains("total: 1 utterances"), "{all}");
 }
 
+/// Issue 16: audio that cannot be read is a failed item of the check (exit code 2,
+/// docs/exit-codes.md), listed with its file and reason; every other row is still checked.
 #[test]
-fn unreadable_and_missing_audio_are_errors_and_the_rest_is_checked() {
+fn unreadable_and_missing_audio_are_failed_items_and_the_rest_is_checked() {
     let output = isogloss(&[
         "corpus",
         "check",
         "tests/fixtures/corpus/bad-audio.tsv",
         "--json",
     ]);
-    assert_eq!(output.status.code(), Some(1), "{}", text(&output));
+    assert_eq!(output.status.code(), Some(2), "{}", text(&output));
+    assert!(
+        String::from_utf8_lossy(&output.stderr).contains(
+            "2 row(s) of tests/fixtures/corpus/bad-audio.tsv have audio that cannot be read"
+        ),
+        "{}",
+        text(&output)
+    );
     let report = json(&output);
     assert_eq!(report["errors"], 2);
+    assert_eq!(report["audio_errors"], 2);
     assert_eq!(report["warnings"], 1);
     assert_eq!(report["utterances"], 1);
     let messages: Vec<String> = report["problems"]

@@ -37,6 +37,19 @@ fn repeat_in(line: &str, file: &str) -> Option<String> {
     None
 }
 
+/// A place in `file` spelled otherwise than `FILE, line N` (docs/exit-codes.md): `FILE:N` or
+/// `FILE: line N`.
+fn odd_location(line: &str, file: &str) -> Option<String> {
+    line.match_indices(file).find_map(|(at, _)| {
+        let after = &line[at + file.len()..];
+        let colon_number = after
+            .strip_prefix(':')
+            .is_some_and(|rest| rest.starts_with(|c: char| c.is_ascii_digit()));
+        (colon_number || after.starts_with(": line "))
+            .then(|| format!("`{}`", &line[at..(at + file.len() + 8).min(line.len())]))
+    })
+}
+
 /// Runs one failing command and checks its output against the rule.
 fn check(args: &[&str], file: &str, exit_code: i32) {
     let output = Command::new(env!("CARGO_BIN_EXE_isogloss"))
@@ -58,6 +71,9 @@ fn check(args: &[&str], file: &str, exit_code: i32) {
         if let Some(repeat) = repeat_in(line, file) {
             panic!("{repeat} said twice in `{line}`:\n{shown}");
         }
+        if let Some(place) = odd_location(line, file) {
+            panic!("the place {place} is not spelled `FILE, line N` in `{line}`:\n{shown}");
+        }
     }
 }
 
@@ -76,6 +92,20 @@ fn the_check_finds_the_repeats_quoted_in_issue_20() {
 }
 
 #[test]
+fn a_place_is_spelled_one_way() {
+    assert!(odd_location("error: lm/bad.arpa:6: expected a number", "bad.arpa").is_some());
+    assert!(odd_location("error: bad.toml: line 2: expected `=`", "bad.toml").is_some());
+    assert_eq!(
+        odd_location("error: bad.arpa, line 6: expected a number", "bad.arpa"),
+        None
+    );
+    assert_eq!(
+        odd_location("error: bad.toml: unknown key", "bad.toml"),
+        None
+    );
+}
+
+#[test]
 fn every_command_names_the_file_and_says_each_piece_once() {
     let dir = tempfile::tempdir().unwrap();
     let temp = |name: &str, text: &str| {
@@ -89,6 +119,7 @@ fn every_command_names_the_file_and_says_each_piece_once() {
     let bad_arpa = temp("bad.arpa", "garbage\n");
     let words = temp("words.txt", "wendle valley\n");
     let not_transcript = temp("other.json", "{\"results\": []}");
+    let not_json = temp("broken.json", "{\n  \"items\": [,]\n}");
     let missing = dir.path().join("missing.tsv");
     let repo = repo();
     let score = repo.join("tests/fixtures/score");
@@ -191,7 +222,7 @@ fn every_command_names_the_file_and_says_each_piece_once() {
         (
             owned(&["corpus", "check", path(&bad_audio)]),
             "not-audio.wav".into(),
-            1,
+            2,
         ),
         (
             owned(&["corpus", "split", path(&missing), "--out", &out("split")]),
@@ -401,6 +432,11 @@ fn every_command_names_the_file_and_says_each_piece_once() {
         (
             owned(&["review", path(&not_transcript), "--out", &out("review")]),
             "other.json".into(),
+            1,
+        ),
+        (
+            owned(&["review", path(&not_json), "--out", &out("review")]),
+            "broken.json".into(),
             1,
         ),
         (

@@ -362,7 +362,7 @@ fn bad_input_exits_with_1_and_names_the_problem() {
     assert_eq!(output.status.code(), Some(1));
     let (_, stderr) = text(&output);
     assert!(
-        stderr.contains("bad.arpa:6") && stderr.contains("'high'"),
+        stderr.contains("bad.arpa, line 6:") && stderr.contains("'high'"),
         "{stderr}"
     );
 }

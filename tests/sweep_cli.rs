@@ -369,3 +369,175 @@ fn the_shipped_demo_sweep_reads_and_pairs_each_model_with_its_lexicon() {
         }
     }
 }
+
+/// Issue 16: a cell whose LM file is damaged fails alone. The other cell is decoded, scored and
+/// written; every output marks the failed cell with its reason (naming the file); the failures
+/// are listed at the end and the exit code is 2 (docs/exit-codes.md). Once the file is repaired,
+/// a new run decodes only the cell that failed.
+#[test]
+fn a_cell_with_a_damaged_lm_fails_alone_and_the_others_are_written() {
+    let dir = tempfile::tempdir().unwrap();
+    let dir = dir.path();
+    let (manifest, _) = slice_of_test_split(dir);
+    // A header count far beyond what the file can hold (docs/limits.md).
+    let broken = dir.join("broken.arpa");
+    std::fs::write(
+        &broken,
+        "\\data\\\nngram 1=99999999999\n\n\\1-grams:\n-1.0\ta\n\n\\end\\\n",
+    )
+    .unwrap();
+    let config = dir.join("sweep.toml");
+    std::fs::write(
+        &config,
+        format!(
+            r#"out_dir = "{out}"
+models = ["{model}"]
+test = "{manifest}"
+columns = ["dialectal"]
+resamples = 100
+
+[[lm]]
+name = "two"
+order = 2
+text = ["{train}"]
+
+[[lm]]
+name = "broken"
+file = "{broken}"
+
+[[lexicon]]
+name = "letters"
+kind = "grapheme"
+
+[decoder]
+beam = [16]
+lm_weight = [0.8]
+word_bonus = [1.5]
+"#,
+            out = text(&dir.join("out")),
+            model = text(&repo("models/demo")),
+            manifest = text(&manifest),
+            train = text(&repo("tests/data/demo/train.{column}.txt")),
+            broken = text(&broken),
+        ),
+    )
+    .unwrap();
+    let sweep = || {
+        Command::new(env!("CARGO_BIN_EXE_isogloss"))
+            .args(["sweep", "--config", &text(&config), "--json"])
+            .output()
+            .expect("the isogloss binary runs")
+    };
+
+    let output = sweep();
+    let stderr = String::from_utf8_lossy(&output.stderr).into_owned();
+    assert_eq!(output.status.code(), Some(2), "{stderr}");
+    let label = "demo dialectal lm=broken lexicon=letters beam=16 lm-weight=0.8 word-bonus=1.5";
+    let listed = stderr
+        .split_once("1 of 2 cells failed")
+        .unwrap_or_else(|| panic!("no list of failures:\n{stderr}"))
+        .1;
+    assert!(
+        listed.contains(&format!("  {label}: LM broken: {}", text(&broken))),
+        "{stderr}"
+    );
+    let results: serde_json::Value = serde_json::from_slice(&output.stdout).unwrap();
+    assert_eq!(results, {
+        let written = std::fs::read_to_string(dir.join("out/results.json")).unwrap();
+        serde_json::from_str::<serde_json::Value>(&written).unwrap()
+    });
+    let cells = results["cells"].as_array().unwrap();
+    assert_eq!(cells.len(), 1);
+    assert_eq!(cells[0]["lm"], "two");
+    assert!(cells[0]["overall"]["wer"].is_number());
+    assert!(PathBuf::from(cells[0]["hypotheses"].as_str().unwrap()).exists());
+    let failed = results["failed"].as_array().unwrap();
+    assert_eq!(failed.len(), 1);
+    assert_eq!(failed[0]["lm"], "broken");
+    let reason = failed[0]["reason"].as_str().unwrap();
+    assert!(
+        reason.starts_with(&format!("LM broken: {}", text(&broken)))
+            && reason.contains("99999999999"),
+        "{reason}"
+    );
+
+    let csv = std::fs::read_to_string(dir.join("out/results.csv")).unwrap();
+    let mut lines = csv.lines();
+    let header: Vec<&str> = lines.next().unwrap().split(',').collect();
+    assert_eq!(header.last(), Some(&"failure"));
+    let rows: Vec<Vec<String>> = lines.map(split_csv).collect();
+    let failure = header.iter().position(|h| *h == "failure").unwrap();
+    let wer = header.iter().position(|h| *h == "wer").unwrap();
+    assert!(rows.iter().all(|r| r.len() == header.len()), "{csv}");
+    let broken_rows: Vec<&Vec<String>> = rows.iter().filter(|r| r[2] == "broken").collect();
+    assert_eq!(broken_rows.len(), 1, "{csv}");
+    assert_eq!(broken_rows[0][failure], reason);
+    assert_eq!(broken_rows[0][wer], "");
+    assert!(rows
+        .iter()
+        .filter(|r| r[2] == "two")
+        .all(|r| r[failure].is_empty() && !r[wer].is_empty()));
+
+    let markdown = std::fs::read_to_string(dir.join("out/results.md")).unwrap();
+    assert!(markdown.contains("**1 cell(s) failed**"), "{markdown}");
+    assert!(
+        markdown.lines().any(
+            |l| l.starts_with("| demo | dialectal | broken | letters | 16 |")
+                && l.contains("| failed | failed |")
+                && l.contains(text(&broken).as_str())
+        ),
+        "{markdown}"
+    );
+
+    let svg = std::fs::read_to_string(dir.join("out/chart.svg")).unwrap();
+    assert_eq!(
+        geometry::bar_rows(&svg).len(),
+        1,
+        "only the cell with figures is drawn"
+    );
+    assert!(svg.contains("Failed, so not drawn (1; reasons in"), "{svg}");
+    assert!(svg.contains("lm=broken"), "{svg}");
+
+    // Repaired: only the failed cell is decoded; the other comes from the cache.
+    isogloss(&[
+        "lm",
+        "build",
+        "--sentences",
+        &text(&repo("tests/data/demo/train.dialectal.txt")),
+        "--order",
+        "1",
+        "--out",
+        &text(&broken),
+    ]);
+    let output = sweep();
+    assert_eq!(
+        output.status.code(),
+        Some(0),
+        "{}",
+        String::from_utf8_lossy(&output.stderr)
+    );
+    let again: serde_json::Value = serde_json::from_slice(&output.stdout).unwrap();
+    assert_eq!(again["cells"].as_array().unwrap().len(), 2);
+    assert_eq!(again["cells_decoded"], 1);
+    assert_eq!(again["failed"].as_array().unwrap().len(), 0);
+    assert_eq!(again["cells"][0]["overall"], cells[0]["overall"]);
+}
+
+/// One CSV line split into fields (quoted fields may hold commas and doubled quotes).
+fn split_csv(line: &str) -> Vec<String> {
+    let mut fields = vec![String::new()];
+    let mut quoted = false;
+    let mut chars = line.chars().peekable();
+    while let Some(c) = chars.next() {
+        match (c, quoted) {
+            ('"', true) if chars.peek() == Some(&'"') => {
+                chars.next();
+                fields.last_mut().unwrap().push('"');
+            }
+            ('"', _) => quoted = !quoted,
+            (',', false) => fields.push(String::new()),
+            _ => fields.last_mut().unwrap().push(c),
+        }
+    }
+    fields
+}

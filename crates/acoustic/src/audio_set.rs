@@ -29,6 +29,7 @@ use rayon::prelude::*;
 use serde::{Deserialize, Serialize};
 
 use crate::data::TrainingData;
+use crate::pipeline::SegmentReader;
 use crate::AcousticError;
 
 /// Full scale of the stored 16-bit samples.
@@ -72,6 +73,24 @@ impl PcmStore {
         manifest_sha256: &str,
         on_file_done: &(dyn Fn(usize, usize) + Sync),
     ) -> Result<(PcmStore, DecodeFailures), AcousticError> {
+        Self::open_or_build_with(
+            path,
+            manifest,
+            manifest_sha256,
+            &isogloss_audio::read_segments,
+            on_file_done,
+        )
+    }
+
+    /// [`PcmStore::open_or_build`] with `read` decoding each audio file's segments (what tests
+    /// replace to make one file fail or panic). A panic inside `read` is that file's failure.
+    pub fn open_or_build_with(
+        path: &Path,
+        manifest: &Manifest,
+        manifest_sha256: &str,
+        read: &SegmentReader<'_>,
+        on_file_done: &(dyn Fn(usize, usize) + Sync),
+    ) -> Result<(PcmStore, DecodeFailures), AcousticError> {
         let index_path = index_path(path);
         let io = |path: &Path| {
             let path = path.to_path_buf();
@@ -106,7 +125,7 @@ impl PcmStore {
         for round in files.chunks(FILES_PER_ROUND) {
             let decoded: Vec<Vec<DecodedRow>> = round
                 .par_iter()
-                .map(|(audio, rows)| decode_file(manifest, audio, rows))
+                .map(|(audio, rows)| decode_file(manifest, audio, rows, read))
                 .collect();
             for (row, result) in decoded.into_iter().flatten() {
                 match result {
@@ -183,7 +202,7 @@ impl PcmStore {
                     failures.push((
                         row,
                         format!(
-                            "{}:{} ({}): the audio could not be decoded when the cache was built",
+                            "{}, line {} ({}): the audio could not be decoded when the cache was built",
                             manifest.path.display(),
                             utterance.line,
                             utterance.id
@@ -248,16 +267,22 @@ fn index_path(path: &Path) -> PathBuf {
 /// A manifest row and its 16-bit samples, or why they could not be read.
 type DecodedRow = (usize, Result<Vec<i16>, String>);
 
-fn decode_file(manifest: &Manifest, audio: &Path, rows: &[usize]) -> Vec<DecodedRow> {
+fn decode_file(
+    manifest: &Manifest,
+    audio: &Path,
+    rows: &[usize],
+    read: &SegmentReader<'_>,
+) -> Vec<DecodedRow> {
     let segments: Vec<_> = rows
         .iter()
         .map(|&i| manifest.utterances[i].segment())
         .collect();
     let item = |i: usize| {
         let u = &manifest.utterances[i];
-        format!("{}:{} ({})", manifest.path.display(), u.line, u.id)
+        format!("{}, line {} ({})", manifest.path.display(), u.line, u.id)
     };
-    match isogloss_audio::read_segments(audio, &segments) {
+    // A panic while decoding one file is that file's failure, not the end of training.
+    match isogloss_audio::isolated(audio, || read(audio, &segments)) {
         Ok(decoded) => rows
             .iter()
             .zip(decoded)

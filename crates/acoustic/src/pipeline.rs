@@ -32,6 +32,12 @@ use crate::AcousticError;
 /// The feature matrices of one utterance (one per perturbation), or why there are none.
 pub type UtteranceFeatures = Result<Vec<Array2<f32>>, String>;
 
+/// Decodes the given segments of one audio file into 16 kHz mono samples:
+/// [`isogloss_audio::read_segments`], or a stand-in in tests.
+pub type SegmentReader<'a> = dyn Fn(&Path, &[isogloss_audio::Segment]) -> Result<Vec<Vec<f32>>, isogloss_audio::AudioError>
+    + Sync
+    + 'a;
+
 /// What `isogloss train` asks for.
 #[derive(Debug, Clone)]
 pub struct TrainOptions {
@@ -176,6 +182,24 @@ pub fn manifest_features(
     cache: Option<&Path>,
     on_file_done: &(dyn Fn(usize, usize) + Sync),
 ) -> Result<Vec<UtteranceFeatures>, AcousticError> {
+    manifest_features_with(
+        manifest,
+        config,
+        cache,
+        &isogloss_audio::read_segments,
+        on_file_done,
+    )
+}
+
+/// [`manifest_features`] with `read` decoding each audio file's segments (what tests replace to
+/// make one file fail or panic).
+pub fn manifest_features_with(
+    manifest: &Manifest,
+    config: &FeatureConfig,
+    cache: Option<&Path>,
+    read: &SegmentReader<'_>,
+    on_file_done: &(dyn Fn(usize, usize) + Sync),
+) -> Result<Vec<UtteranceFeatures>, AcousticError> {
     let extractor = FeatureExtractor::new(config)?;
     if let Some(dir) = cache {
         std::fs::create_dir_all(dir).map_err(|source| AcousticError::Io {
@@ -210,9 +234,7 @@ pub fn manifest_features(
                     .collect();
                 // A panic while decoding one file is that file's error (its utterances are
                 // skipped with a warning), not the end of training.
-                Some(isogloss_audio::isolated(path, || {
-                    isogloss_audio::read_segments(path, &segments)
-                }))
+                Some(isogloss_audio::isolated(path, || read(path, &segments)))
             };
             let results = indices
                 .iter()
@@ -220,7 +242,7 @@ pub fn manifest_features(
                 .map(|(k, &i)| {
                     let utterance = &manifest.utterances[i];
                     let item = format!(
-                        "{}:{} ({})",
+                        "{}, line {} ({})",
                         manifest.path.display(),
                         utterance.line,
                         utterance.id
@@ -331,7 +353,7 @@ fn encode_labels(
     let mut labels = Vec::with_capacity(manifest.utterances.len());
     for utterance in &manifest.utterances {
         let item = format!(
-            "{}:{} ({})",
+            "{}, line {} ({})",
             manifest.path.display(),
             utterance.line,
             utterance.id
@@ -808,7 +830,12 @@ pub fn manifest_posteriors(
         .map(|(variants, &i)| {
             model.log_posteriors(&variants[0]).map_err(|e| {
                 let u = &manifest.utterances[i];
-                format!("{}:{} ({}): {e}", manifest.path.display(), u.line, u.id)
+                format!(
+                    "{}, line {} ({}): {e}",
+                    manifest.path.display(),
+                    u.line,
+                    u.id
+                )
             })
         })
         .collect();

@@ -189,7 +189,7 @@ fn bad_input_gets_errors_naming_the_file_and_item() {
         "{message}"
     );
     assert!(
-        message.contains("good.tsv:2") && message.contains("not in the lexicon"),
+        message.contains("good.tsv, line 2") && message.contains("not in the lexicon"),
         "{message}"
     );
 

@@ -5,7 +5,7 @@
 use std::collections::{BTreeMap, BTreeSet, HashMap};
 use std::path::{Path, PathBuf};
 
-use isogloss_audio::{AudioInfo, END_TOLERANCE_SECONDS};
+use isogloss_audio::{AudioError, AudioInfo, END_TOLERANCE_SECONDS};
 use serde::Serialize;
 
 use crate::manifest::{Manifest, Problem, Severity, Utterance};
@@ -36,6 +36,10 @@ pub struct CheckReport {
     pub speakers: usize,
     /// Number of problems of severity error.
     pub errors: usize,
+    /// How many of the errors are audio files that could not be read or decoded (missing,
+    /// damaged, or the decoder failed inside): failed items of the check, not faults of the
+    /// manifest's text.
+    pub audio_errors: usize,
     /// Number of problems of severity warning.
     pub warnings: usize,
     /// One summary per manifest, in the order given.
@@ -107,6 +111,20 @@ pub fn check_manifests(
     audio_check: AudioCheck,
     progress: &mut dyn FnMut(usize, usize),
 ) -> CheckReport {
+    let examine = |file: &Path| match audio_check {
+        AudioCheck::Decode => isogloss_audio::verify(file),
+        AudioCheck::HeaderOnly => isogloss_audio::probe(file),
+    };
+    check_manifests_with(paths, &examine, progress)
+}
+
+/// [`check_manifests`] with `examine` reading each audio file once (what tests replace to make
+/// one file's reading fail or panic). A panic inside `examine` is that file's error.
+pub fn check_manifests_with(
+    paths: &[PathBuf],
+    examine: &dyn Fn(&Path) -> Result<AudioInfo, AudioError>,
+    progress: &mut dyn FnMut(usize, usize),
+) -> CheckReport {
     let mut problems = Vec::new();
     let mut read = Vec::new();
     for path in paths {
@@ -126,17 +144,16 @@ pub fn check_manifests(
     let mut audio: HashMap<&Path, Result<AudioInfo, String>> = HashMap::new();
     for (done, file) in audio_files.into_iter().enumerate() {
         // A panic while reading one file is that file's problem; the check goes on.
-        let result = isogloss_audio::isolated(file, || match audio_check {
-            AudioCheck::Decode => isogloss_audio::verify(file),
-            AudioCheck::HeaderOnly => isogloss_audio::probe(file),
-        });
+        let result = isogloss_audio::isolated(file, || examine(file));
         audio.insert(file, result.map_err(|e| e.to_string()));
         progress(done + 1, total);
     }
     let mut manifests = Vec::new();
     let mut all_speakers = BTreeSet::new();
+    let mut audio_errors = 0;
     for manifest in &read {
-        let (summary, found) = check_one(manifest, &audio);
+        let (summary, found, failed_audio) = check_one(manifest, &audio);
+        audio_errors += failed_audio;
         all_speakers.extend(manifest.utterances.iter().map(|u| u.speaker.as_str()));
         problems.extend(found);
         manifests.push(summary);
@@ -157,6 +174,7 @@ pub fn check_manifests(
         hours: manifests.iter().map(|m| m.hours).sum(),
         speakers: all_speakers.len(),
         errors,
+        audio_errors,
         warnings: problems.len() - errors,
         manifests,
         shared_speakers,
@@ -164,13 +182,15 @@ pub fn check_manifests(
     }
 }
 
-/// Audio and content checks of one manifest whose text has been read.
+/// Audio and content checks of one manifest whose text has been read; also returns how many of
+/// the problems are rows whose audio could not be read.
 fn check_one(
     manifest: &Manifest,
     audio: &HashMap<&Path, Result<AudioInfo, String>>,
-) -> (ManifestSummary, Vec<Problem>) {
+) -> (ManifestSummary, Vec<Problem>, usize) {
     let path = manifest.path.as_path();
     let mut problems = Vec::new();
+    let mut audio_errors = 0;
     let mut reported_files: HashMap<&Path, usize> = HashMap::new();
     let mut first_line_of_segment: HashMap<(&Path, u64, u64), (usize, &str)> = HashMap::new();
     let mut usable: Vec<(&Utterance, f64)> = Vec::new();
@@ -180,6 +200,7 @@ fn check_one(
         let info = match audio.get(utterance.audio.as_path()) {
             Some(Ok(info)) => *info,
             Some(Err(message)) => {
+                audio_errors += 1;
                 // One message per bad file: a long recording may be cut into hundreds of rows.
                 match reported_files.get(utterance.audio.as_path()) {
                     Some(&first) => problems.push(Problem::error(
@@ -253,7 +274,7 @@ fn check_one(
         usable.push((utterance, seconds));
     }
     problems.sort_by_key(|p| p.line);
-    (summarize(manifest, &usable), problems)
+    (summarize(manifest, &usable), problems, audio_errors)
 }
 
 fn summarize(manifest: &Manifest, usable: &[(&Utterance, f64)]) -> ManifestSummary {
@@ -501,5 +522,49 @@ mod tests {
         assert_eq!(decoded.errors, 1);
         assert!(messages(&decoded)[0].contains("truncated"));
         assert_eq!(check_rows(rows, AudioCheck::HeaderOnly).errors, 0);
+    }
+
+    /// Issue 16: a panic while one audio file is read (as a decoding library can on a crafted
+    /// file) is that file's error, listed with its reason; every other file is still checked.
+    #[test]
+    fn a_panic_while_reading_one_file_is_that_files_error() {
+        let dir = tempfile::tempdir().unwrap();
+        let path = dir.path().join("m.tsv");
+        std::fs::write(
+            &path,
+            "id\taudio\tstart\tend\tspeaker\tdialect\ttext\n\
+             a\tone.wav\t\t\ts1\td\tx\n\
+             b\tpanic.wav\t\t\ts1\td\ty\n\
+             c\tpanic.wav\t0\t0.5\ts2\td\ty\n\
+             d\tthree.wav\t\t\ts2\td\tz\n",
+        )
+        .unwrap();
+        let examined = std::sync::Mutex::new(Vec::new());
+        let examine = |file: &Path| -> Result<AudioInfo, AudioError> {
+            let name = file.file_name().unwrap().to_string_lossy().into_owned();
+            examined.lock().unwrap().push(name.clone());
+            if name == "panic.wav" {
+                panic!("internal state the reader did not expect");
+            }
+            Ok(AudioInfo {
+                sample_rate: 16_000,
+                channels: 1,
+                frames: 16_000,
+                duration_seconds: 1.0,
+            })
+        };
+        let report = check_manifests_with(&[path], &examine, &mut |_, _| {});
+        let listed = messages(&report);
+        assert_eq!(examined.lock().unwrap().len(), 3, "every file is read once");
+        assert_eq!((report.errors, report.audio_errors), (2, 2), "{listed:?}");
+        assert_eq!(report.utterances, 2, "{listed:?}");
+        assert!(
+            listed[0].contains("line 3")
+                && listed[0].contains(
+                    "panic.wav: the audio data is damaged: the decoder failed inside (internal state the reader did not expect)"
+                ),
+            "{listed:?}"
+        );
+        assert!(listed[1].contains("(see line 3)"), "{listed:?}");
     }
 }

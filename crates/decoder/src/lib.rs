@@ -96,6 +96,18 @@ pub enum DecodeError {
         /// The value given.
         found: String,
     },
+    /// A transcript JSON file is not JSON or not of the transcript layout, at a line and column.
+    #[error("{path}, line {line}, column {column}: {message}")]
+    TranscriptSyntax {
+        /// The file.
+        path: std::path::PathBuf,
+        /// 1-based line.
+        line: usize,
+        /// 1-based column.
+        column: usize,
+        /// What was expected and found.
+        message: String,
+    },
     /// A transcript JSON file cannot be read or is not an isogloss transcript.
     #[error("{path}: {problem}")]
     TranscriptFile {

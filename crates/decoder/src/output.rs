@@ -146,9 +146,17 @@ impl TranscriptDocument {
             path: path.to_path_buf(),
             problem: format!("cannot read the transcript: {error}"),
         })?;
-        TranscriptDocument::parse(&text).map_err(|problem| DecodeError::TranscriptFile {
-            path: path.to_path_buf(),
-            problem,
+        TranscriptDocument::parse_placed(&text).map_err(|problem| match problem {
+            (Some((line, column)), message) => DecodeError::TranscriptSyntax {
+                path: path.to_path_buf(),
+                line,
+                column,
+                message,
+            },
+            (None, problem) => DecodeError::TranscriptFile {
+                path: path.to_path_buf(),
+                problem,
+            },
         })
     }
 
@@ -157,8 +165,17 @@ impl TranscriptDocument {
     /// token outside its stretch, a certainty outside [0, 1]) are refused with a message that
     /// says where (line, or item, stretch and token) and what was expected and found.
     pub fn parse(text: &str) -> Result<TranscriptDocument, String> {
-        let value: serde_json::Value = serde_json::from_str(text)
-            .map_err(|e| format!("not JSON: line {}, column {}: {e}", e.line(), e.column()))?;
+        TranscriptDocument::parse_placed(text).map_err(|problem| match problem {
+            (Some((line, column)), message) => format!("line {line}, column {column}: {message}"),
+            (None, message) => message,
+        })
+    }
+
+    /// [`TranscriptDocument::parse`] with the line and column of the JSON text apart from the
+    /// message, when the problem is placed there.
+    fn parse_placed(text: &str) -> Result<TranscriptDocument, PlacedProblem> {
+        let value: serde_json::Value =
+            serde_json::from_str(text).map_err(|e| json_problem("not JSON", &e))?;
         let format = value.get("format");
         if format.and_then(|f| f.as_str()) != Some(TRANSCRIPT_FORMAT) {
             let found = match format {
@@ -166,26 +183,21 @@ impl TranscriptDocument {
                 None if value.is_object() => "no \"format\" key".to_string(),
                 None => "JSON that is not an object".to_string(),
             };
-            return Err(format!(
+            return Err(unplaced(format!(
                 "not an isogloss transcript: expected \"format\": \"{TRANSCRIPT_FORMAT}\" (written by `isogloss transcribe --format json`), found {found}"
-            ));
+            )));
         }
         match value.get("version").and_then(|v| v.as_u64()) {
             Some(v) if v <= TRANSCRIPT_VERSION as u64 => {}
             found => {
-                return Err(format!(
+                return Err(unplaced(format!(
                     "expected transcript \"version\" {TRANSCRIPT_VERSION} or lower, found {}",
                     found.map_or("none".to_string(), |v| v.to_string())
-                ))
+                )))
             }
         }
-        let document: TranscriptDocument = serde_json::from_str(text).map_err(|e| {
-            format!(
-                "line {}, column {}: not the transcript layout of docs/formats.md: {e}",
-                e.line(),
-                e.column()
-            )
-        })?;
+        let document: TranscriptDocument = serde_json::from_str(text)
+            .map_err(|e| json_problem("not the transcript layout of docs/formats.md", &e))?;
         for item in &document.items {
             for (s, stretch) in item.segments.iter().enumerate() {
                 let here = format!("item `{}`, stretch {}", item.id, s + 1);
@@ -193,10 +205,10 @@ impl TranscriptDocument {
                     || stretch.start < 0.0
                     || stretch.end < stretch.start
                 {
-                    return Err(format!(
+                    return Err(unplaced(format!(
                         "{here}: expected 0 ≤ from_s ≤ to_s, found from_s {} and to_s {}",
                         stretch.start, stretch.end
-                    ));
+                    )));
                 }
                 for (t, token) in stretch.words.iter().enumerate() {
                     let here = format!("{here}, token {} (`{}`)", t + 1, token.word);
@@ -205,16 +217,16 @@ impl TranscriptDocument {
                         || token.start < stretch.start
                         || token.end > stretch.end
                     {
-                        return Err(format!(
+                        return Err(unplaced(format!(
                             "{here}: expected from_s ≤ to_s inside the stretch [{}, {}], found {} to {}",
                             stretch.start, stretch.end, token.start, token.end
-                        ));
+                        )));
                     }
                     if !(0.0..=1.0).contains(&token.confidence) {
-                        return Err(format!(
+                        return Err(unplaced(format!(
                             "{here}: expected a certainty in [0, 1], found {}",
                             token.confidence
-                        ));
+                        )));
                     }
                 }
             }
@@ -229,6 +241,26 @@ impl TranscriptDocument {
             .map(|s| s.words.iter().map(|w| w.end).fold(s.end, f64::max))
             .fold(0.0, f64::max)
     }
+}
+
+/// A problem of a transcript document: the line and column of the JSON text where it is, when
+/// it is placed there, and what was expected and found.
+type PlacedProblem = (Option<(usize, usize)>, String);
+
+fn unplaced(message: String) -> PlacedProblem {
+    (None, message)
+}
+
+/// A JSON parser error placed at its line and column, its message without the position (which
+/// the parser appends) so that the position is said once.
+fn json_problem(what: &str, error: &serde_json::Error) -> PlacedProblem {
+    let message = error.to_string();
+    let position = format!(" at line {} column {}", error.line(), error.column());
+    let message = message.strip_suffix(&position).unwrap_or(&message);
+    (
+        Some((error.line(), error.column())),
+        format!("{what}: {message}"),
+    )
 }
 
 impl ItemTranscript {
@@ -650,7 +682,8 @@ mod tests {
     fn other_json_and_impossible_times_are_refused_with_their_place() {
         let not_json = TranscriptDocument::parse("{\n  \"items\": [,]\n}").unwrap_err();
         assert!(
-            not_json.starts_with("not JSON: line 2, column"),
+            not_json.starts_with("line 2, column 13: not JSON: expected value")
+                && !not_json.contains(" at line "),
             "{not_json}"
         );
         let other = TranscriptDocument::parse(r#"{"segments": []}"#).unwrap_err();

@@ -176,7 +176,11 @@ impl FeatureConfig {
             let line = error
                 .span()
                 .map_or(1, |span| text[..span.start].matches('\n').count() + 1);
-            invalid(format!("line {line}: {}", error.message().trim()))
+            FeatureError::ConfigSyntax {
+                path: path.to_path_buf(),
+                line,
+                message: error.message().trim().to_string(),
+            }
         })?;
         if let Ok(table) = text.parse::<toml::Table>() {
             for notice in deprecated_spellings(&table) {

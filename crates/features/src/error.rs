@@ -26,13 +26,22 @@ pub enum FeatureError {
         /// The value that was given.
         found: String,
     },
-    /// A TOML config file could not be parsed or holds an invalid setting (the parser's message
-    /// carries the line and column; a setting out of range is named).
+    /// A TOML config file could not be parsed.
+    #[error("{path}, line {line}: {message}")]
+    ConfigSyntax {
+        /// The config file.
+        path: PathBuf,
+        /// 1-based line of the problem.
+        line: usize,
+        /// The parser's message.
+        message: String,
+    },
+    /// A TOML config file holds an invalid setting (the setting is named).
     #[error("{path}: {message}")]
     ConfigFile {
         /// The config file.
         path: PathBuf,
-        /// What was wrong: the parser's message with line and column, or the invalid setting.
+        /// The invalid setting, what was expected and found.
         message: String,
     },
     /// Reading or writing a file failed.

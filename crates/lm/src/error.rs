@@ -19,7 +19,7 @@ pub enum LmError {
         source: std::io::Error,
     },
     /// A malformed line in an ARPA file.
-    #[error("{path}:{line}: {message}")]
+    #[error("{path}, line {line}: {message}")]
     Arpa {
         /// The ARPA file.
         path: PathBuf,
@@ -29,7 +29,7 @@ pub enum LmError {
         message: String,
     },
     /// A problem in a training, tuning or vocabulary text.
-    #[error("{path}:{line}: {message}")]
+    #[error("{path}, line {line}: {message}")]
     Text {
         /// The text file.
         path: PathBuf,

@@ -239,7 +239,11 @@ impl ExtractorConfig {
             let line = error
                 .span()
                 .map_or(1, |span| text[..span.start].matches('\n').count() + 1);
-            invalid_file(format!("line {line}: {}", error.message().trim()))
+            SpeakerError::ConfigSyntax {
+                path: path.to_path_buf(),
+                line,
+                message: error.message().trim().to_string(),
+            }
         })?;
         config
             .validate()

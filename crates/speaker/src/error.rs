@@ -16,12 +16,22 @@ pub enum SpeakerError {
         /// The value given.
         found: String,
     },
-    /// A TOML config file that cannot be parsed or holds an invalid setting.
+    /// A TOML config file that cannot be parsed.
+    #[error("{path}, line {line}: {message}")]
+    ConfigSyntax {
+        /// The config file.
+        path: PathBuf,
+        /// 1-based line of the problem.
+        line: usize,
+        /// The parser's message.
+        message: String,
+    },
+    /// A TOML config file that holds an invalid setting.
     #[error("{path}: {message}")]
     ConfigFile {
         /// The config file.
         path: PathBuf,
-        /// The parser's message (with line and column) or the invalid setting.
+        /// The invalid setting, what was expected and found.
         message: String,
     },
     /// An utterance (or a stream) with no feature frames at all.

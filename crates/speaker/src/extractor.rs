@@ -27,7 +27,7 @@ pub struct FeatureLayout {
 /// [`IvectorExtractor::frame_ivectors`] take them.
 #[derive(Debug, Clone, Copy)]
 pub struct Utterance<'a> {
-    /// How errors name the utterance (for example `train.tsv:12 (utt-0012)`).
+    /// How errors name the utterance (for example `train.tsv, line 12 (utt-0012)`).
     pub id: &'a str,
     /// The speaker's label.
     pub speaker: &'a str,

@@ -17,7 +17,7 @@ pub mod resources;
 pub mod run;
 
 pub use config::{Cell, LexiconChoice, LexiconKind, LmChoice, Sweep};
-pub use run::{CellResult, SweepEvent, SweepResults};
+pub use run::{CellResult, FailedCell, SweepEvent, SweepResults};
 
 /// Everything that can go wrong in a sweep.
 #[derive(Debug, thiserror::Error)]

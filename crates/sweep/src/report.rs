@@ -7,7 +7,7 @@ use isogloss_score::chart::{
     error_rate_series, glossary, level_percent, significance_note, summary_row,
 };
 
-use crate::run::{CellResult, SweepResults};
+use crate::run::{CellResult, FailedCell, SweepResults};
 
 fn percent(rate: Option<f64>) -> String {
     rate.map_or_else(|| "–".to_string(), |r| format!("{:.1}", 100.0 * r))
@@ -48,8 +48,15 @@ pub fn markdown(results: &SweepResults) -> String {
         results.acoustic_runs,
         results.acoustic_seconds,
         results.cells_decoded,
-        results.cells.len()
+        results.cells.len() + results.failed.len()
     );
+    if !results.failed.is_empty() {
+        let _ = writeln!(
+            text,
+            "**{} cell(s) failed** and have no figures: their rows say why.\n",
+            results.failed.len()
+        );
+    }
     let _ = writeln!(text, "WER and flexible WER in %, {}% bootstrap interval in brackets; the last column compares plain WER with the baseline cell (paired bootstrap: the difference cell − baseline in points with its {}% interval, and the probability that the cell is better).\n", level_percent(results.confidence), level_percent(results.confidence));
     let _ = writeln!(text, "| model | column | LM | lexicon | beam | LM weight | word bonus | perplexity | OOV % | coverage % | WER | flexible WER | search RTF | against baseline |");
     let _ = writeln!(
@@ -79,6 +86,21 @@ pub fn markdown(results: &SweepResults) -> String {
             versus(cell)
         );
     }
+    for failed in &results.failed {
+        let setting = |v: Option<f32>| v.map_or_else(|| "(dev)".to_string(), |v| v.to_string());
+        let _ = writeln!(
+            text,
+            "| {} | {} | {} | {} | {} | {} | {} | – | – | – | failed | failed | – | {} |",
+            failed.model,
+            failed.column,
+            failed.lm,
+            failed.lexicon,
+            failed.beam,
+            setting(failed.lm_weight),
+            setting(failed.word_bonus),
+            table_text(&failed.reason)
+        );
+    }
     if let Some(first) = results.cells.first() {
         let groups: Vec<&str> = first.groups.iter().map(|(g, _)| g.as_str()).collect();
         if !groups.is_empty() {
@@ -104,24 +126,32 @@ pub fn markdown(results: &SweepResults) -> String {
     text
 }
 
-/// The results as CSV: one row per cell and group (`group` empty for the overall figures).
+/// A failure reason as one Markdown table cell: on one line, `|` escaped.
+fn table_text(reason: &str) -> String {
+    reason.replace('\n', " ").replace('|', "\\|")
+}
+
+/// A CSV field, quoted when it holds a comma, a quote or a line break.
+fn quote(s: &str) -> String {
+    if s.contains([',', '"', '\n', '\r']) {
+        format!("\"{}\"", s.replace('"', "\"\""))
+    } else {
+        s.to_string()
+    }
+}
+
+/// The results as CSV: one row per cell and group (`group` empty for the overall figures),
+/// then one row per failed cell, its figures empty and `failure` holding the reason.
 pub fn csv(results: &SweepResults) -> String {
-    let mut text = String::from("model,column,lm,lexicon,beam,lm_weight,word_bonus,tuned,group,perplexity,oov_rate,coverage,type_coverage,ref_words,wer,wer_low,wer_high,flexible_wer,flexible_wer_low,flexible_wer_high,search_rtf,difference_to_baseline,probability_better_than_baseline\n");
+    let mut text = String::from("model,column,lm,lexicon,beam,lm_weight,word_bonus,tuned,group,perplexity,oov_rate,coverage,type_coverage,ref_words,wer,wer_low,wer_high,flexible_wer,flexible_wer_low,flexible_wer_high,search_rtf,difference_to_baseline,probability_better_than_baseline,failure\n");
     let number = |v: Option<f64>| v.map_or_else(String::new, |v| format!("{v:.6}"));
     for cell in &results.cells {
         let rows = std::iter::once((String::new(), &cell.overall))
             .chain(cell.groups.iter().map(|(g, s)| (g.clone(), s)));
         for (group, summary) in rows {
-            let quote = |s: &str| {
-                if s.contains([',', '"', '\n']) {
-                    format!("\"{}\"", s.replace('"', "\"\""))
-                } else {
-                    s.to_string()
-                }
-            };
             let _ = writeln!(
                 text,
-                "{},{},{},{},{},{},{},{},{},{:.6},{:.6},{:.6},{:.6},{},{},{},{},{},{},{},{:.6},{},{}",
+                "{},{},{},{},{},{},{},{},{},{:.6},{:.6},{:.6},{:.6},{},{},{},{},{},{},{},{:.6},{},{},",
                 quote(&cell.model),
                 quote(&cell.column),
                 quote(&cell.lm),
@@ -151,6 +181,23 @@ pub fn csv(results: &SweepResults) -> String {
                 },
             );
         }
+    }
+    for failed in &results.failed {
+        let setting = |v: Option<f32>| v.map_or_else(String::new, |v| v.to_string());
+        let _ = writeln!(
+            text,
+            "{},{},{},{},{},{},{},{},{}{}",
+            quote(&failed.model),
+            quote(&failed.column),
+            quote(&failed.lm),
+            quote(&failed.lexicon),
+            failed.beam,
+            setting(failed.lm_weight),
+            setting(failed.word_bonus),
+            failed.lm_weight.is_none(),
+            ",".repeat(15),
+            quote(&failed.reason)
+        );
     }
     text
 }
@@ -244,6 +291,14 @@ pub fn chart(results: &SweepResults) -> String {
     }
     if results.baseline.is_some() {
         notes.push(significance_note(results.confidence, "the baseline"));
+    }
+    if !results.failed.is_empty() {
+        let labels: Vec<String> = results.failed.iter().map(FailedCell::label).collect();
+        notes.push(format!(
+            "Failed, so not drawn ({}; reasons in results.md): {}.",
+            results.failed.len(),
+            labels.join("; ")
+        ));
     }
     BarChart {
         title: "Sweep: WER and flexible WER per cell".into(),

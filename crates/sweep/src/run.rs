@@ -44,6 +44,13 @@ pub enum SweepEvent {
         /// Whether it came from the cache.
         cached: bool,
     },
+    /// One cell failed; the others carry on.
+    CellFailed {
+        /// Its label.
+        label: String,
+        /// Why (the message names the file where there is one).
+        reason: String,
+    },
     /// Something the user should know (skipped combinations, estimation warnings).
     Note(String),
 }
@@ -107,11 +114,90 @@ impl CellResult {
     }
 }
 
+/// A cell whose LM, lexicon, decoding or scoring failed: its axis values and the reason.
+#[derive(Debug, Clone, Serialize, Deserialize)]
+pub struct FailedCell {
+    /// Model name.
+    pub model: String,
+    /// Transcript column.
+    pub column: String,
+    /// LM name.
+    pub lm: String,
+    /// Lexicon name.
+    pub lexicon: String,
+    /// Beam width.
+    pub beam: usize,
+    /// LM weight, or `None` when it was to be tuned on dev.
+    pub lm_weight: Option<f32>,
+    /// Word bonus, or `None` when it was to be tuned on dev.
+    pub word_bonus: Option<f32>,
+    /// Why the cell failed.
+    pub reason: String,
+    /// Its position in the grid, for listing failures in grid order.
+    #[serde(skip)]
+    position: usize,
+}
+
+impl FailedCell {
+    fn new(
+        sweep: &Sweep,
+        model: &str,
+        (position, cell): (usize, &Cell),
+        reason: String,
+    ) -> FailedCell {
+        FailedCell {
+            model: model.to_string(),
+            column: sweep.columns[cell.column].clone(),
+            lm: sweep.lms[cell.lm].name().to_string(),
+            lexicon: sweep.lexicons[cell.lexicon].name.clone(),
+            beam: cell.beam,
+            lm_weight: cell.lm_weight,
+            word_bonus: cell.word_bonus,
+            reason,
+            position,
+        }
+    }
+
+    fn from_result(cell: &CellResult, position: usize, reason: String) -> FailedCell {
+        FailedCell {
+            model: cell.model.clone(),
+            column: cell.column.clone(),
+            lm: cell.lm.clone(),
+            lexicon: cell.lexicon.clone(),
+            beam: cell.beam,
+            lm_weight: Some(cell.lm_weight),
+            word_bonus: Some(cell.word_bonus),
+            reason,
+            position,
+        }
+    }
+
+    /// A one-line label of the cell's axis values, as [`CellResult::label`] writes it (`dev`
+    /// for a value that was to be tuned).
+    pub fn label(&self) -> String {
+        let value = |v: Option<f32>| v.map_or_else(|| "dev".to_string(), |v| v.to_string());
+        format!(
+            "{} {} lm={} lexicon={} beam={} lm-weight={} word-bonus={}",
+            self.model,
+            self.column,
+            self.lm,
+            self.lexicon,
+            self.beam,
+            value(self.lm_weight),
+            value(self.word_bonus)
+        )
+    }
+}
+
 /// Everything a sweep produced.
 #[derive(Debug, Clone, Serialize, Deserialize)]
 pub struct SweepResults {
-    /// One entry per cell, in grid order.
+    /// One entry per cell that ran to the end, in grid order.
     pub cells: Vec<CellResult>,
+    /// The cells that failed, in grid order, with their reasons (the sweep carries on past
+    /// them).
+    #[serde(default)]
+    pub failed: Vec<FailedCell>,
     /// Index of the baseline cell in `cells`, when it ran.
     pub baseline: Option<usize>,
     /// Utterances that went through an acoustic model in this run.
@@ -228,6 +314,7 @@ pub fn run(
     let cache = sweep.out_dir.join("cache");
     let mut results = SweepResults {
         cells: Vec::new(),
+        failed: Vec::new(),
         baseline: None,
         acoustic_runs: 0,
         acoustic_seconds: 0.0,
@@ -273,9 +360,12 @@ pub fn run(
         });
     }
 
-    // 2. LMs per (column, LM) and lexicons per (column, LM, lexicon), with their figures.
+    // 2. LMs per (column, LM) and lexicons per (column, LM, lexicon), with their figures. One
+    // that fails (or panics) is the failure of every cell that uses it; the others go on.
     let mut lms: HashMap<(usize, usize), (ArpaModel, PathBuf, f64, f64)> = HashMap::new();
     let mut lexicons: HashMap<(usize, usize, usize), BuiltCellLexicon> = HashMap::new();
+    let mut lm_failures: HashMap<(usize, usize), String> = HashMap::new();
+    let mut lexicon_failures: HashMap<(usize, usize, usize), String> = HashMap::new();
     for (c, column) in sweep.columns.iter().enumerate() {
         let test_sentences = sentences_of(&test, column)?;
         let dev_sentences = dev.as_ref().map(|d| sentences_of(d, column)).transpose()?;
@@ -285,17 +375,41 @@ pub fn run(
             .map(String::as_str)
             .collect();
         for (l, choice) in sweep.lms.iter().enumerate() {
-            let built = build_lm(choice, column, dev_sentences.as_deref(), &cache.join("lms"))?;
+            let built = contained(|| {
+                let built = build_lm(choice, column, dev_sentences.as_deref(), &cache.join("lms"))?;
+                let figures = evaluate_sentences(&built.model, test_sentences.iter().cloned());
+                Ok((built, figures))
+            });
+            let (built, figures) = match built {
+                Ok(built) => built,
+                Err(reason) => {
+                    lm_failures.insert((c, l), format!("LM {}: {reason}", choice.name()));
+                    continue;
+                }
+            };
             for warning in &built.warnings {
                 progress(SweepEvent::Note(format!(
                     "LM {} ({column}): {warning}",
                     choice.name()
                 )));
             }
-            let figures = evaluate_sentences(&built.model, test_sentences.iter().cloned());
             let words = lm_words(&built.model);
             for (x, lexicon_choice) in sweep.lexicons.iter().enumerate() {
-                let lexicon = build_lexicon(lexicon_choice, &words)?;
+                let lexicon = contained(|| {
+                    let lexicon = build_lexicon(lexicon_choice, &words)?;
+                    let coverage = Coverage::count(&lexicon.lexicon, test_tokens.iter().copied());
+                    Ok((lexicon, coverage))
+                });
+                let (lexicon, coverage) = match lexicon {
+                    Ok(built) => built,
+                    Err(reason) => {
+                        lexicon_failures.insert(
+                            (c, l, x),
+                            format!("lexicon {}: {reason}", lexicon_choice.name),
+                        );
+                        continue;
+                    }
+                };
                 if !lexicon.uncovered.is_empty() {
                     progress(SweepEvent::Note(format!(
                         "lexicon {} ({column}, LM {}): {} words got no pronunciation, e.g. {}",
@@ -305,7 +419,6 @@ pub fn run(
                         lexicon.uncovered[0]
                     )));
                 }
-                let coverage = Coverage::count(&lexicon.lexicon, test_tokens.iter().copied());
                 let mut key = ContentKey::new();
                 for (word, units) in &lexicon.lexicon.entries {
                     key.text(word);
@@ -314,7 +427,7 @@ pub fn run(
                 lexicons.insert(
                     (c, l, x),
                     (
-                        lexicon.lexicon.entries.clone(),
+                        lexicon.lexicon.entries,
                         key.finish(),
                         coverage.token_rate(),
                         coverage.type_rate(),
@@ -335,13 +448,49 @@ pub fn run(
 
     // 3. The cells, after leaving out model × lexicon pairs whose units do not fit.
     let mut graphs: HashMap<(usize, usize, usize, usize), SearchGraph> = HashMap::new();
-    let mut cells: Vec<Cell> = Vec::new();
+    let mut cells: Vec<(usize, Cell)> = Vec::new();
     let mut left_out = std::collections::HashSet::new();
-    for cell in sweep.cells() {
+    let mut failed_early: Vec<FailedCell> = Vec::new();
+    let mut graph_failures: HashMap<(usize, usize, usize, usize), String> = HashMap::new();
+    for (position, cell) in sweep.cells().into_iter().enumerate() {
+        let model = &passes[cell.model].name;
         let graph_key = (cell.model, cell.column, cell.lm, cell.lexicon);
+        let failure = lm_failures
+            .get(&(cell.column, cell.lm))
+            .or_else(|| lexicon_failures.get(&(cell.column, cell.lm, cell.lexicon)))
+            .or_else(|| graph_failures.get(&graph_key));
+        if let Some(reason) = failure {
+            failed_early.push(FailedCell::new(
+                sweep,
+                model,
+                (position, &cell),
+                reason.clone(),
+            ));
+            continue;
+        }
         if let std::collections::hash_map::Entry::Vacant(slot) = graphs.entry(graph_key) {
             let entries = &lexicons[&(cell.column, cell.lm, cell.lexicon)].0;
-            match SearchGraph::with_lexicon(passes[cell.model].units.clone(), entries) {
+            let units = passes[cell.model].units.clone();
+            let built = std::panic::catch_unwind(|| SearchGraph::with_lexicon(units, entries));
+            let built = match built {
+                Ok(built) => built,
+                Err(payload) => {
+                    let reason = format!(
+                        "lexicon {}: the search graph of model {model}: {}",
+                        sweep.lexicons[cell.lexicon].name,
+                        defect(payload.as_ref())
+                    );
+                    failed_early.push(FailedCell::new(
+                        sweep,
+                        model,
+                        (position, &cell),
+                        reason.clone(),
+                    ));
+                    graph_failures.insert(graph_key, reason);
+                    continue;
+                }
+            };
+            match built {
                 Ok((graph, report)) => {
                     if !report.unknown_units.is_empty() {
                         progress(SweepEvent::Note(format!(
@@ -369,16 +518,22 @@ pub fn run(
                 }
             }
         }
-        cells.push(cell);
+        cells.push((position, cell));
     }
-    progress(SweepEvent::Cells(cells.len()));
+    progress(SweepEvent::Cells(cells.len() + failed_early.len()));
+    for failure in &failed_early {
+        progress(SweepEvent::CellFailed {
+            label: failure.label(),
+            reason: failure.reason.clone(),
+        });
+    }
 
     let decoded = AtomicUsize::new(0);
     let cell_dir = sweep.out_dir.join("cells");
-    let scored: Vec<Result<(CellResult, Option<usize>), SweepError>> = cells
+    let scored: Vec<Result<(usize, CellResult, bool), Box<FailedCell>>> = cells
         .par_iter()
-        .map(|cell| {
-            isolated(cell, || {
+        .map(|(position, cell)| {
+            let outcome = contained(|| {
                 let pass = &passes[cell.model];
                 let column = &sweep.columns[cell.column];
                 let (lm, lm_path, perplexity, oov_rate) = &lms[&(cell.column, cell.lm)];
@@ -515,38 +670,57 @@ pub fn run(
                     && cell.column == sweep.baseline.column
                     && cell.lm == sweep.baseline.lm
                     && cell.lexicon == sweep.baseline.lexicon;
-                Ok((result, is_baseline.then_some(0)))
-            })
+                Ok((result, is_baseline))
+            });
+            outcome
+                .map(|(result, is_baseline)| (*position, result, is_baseline))
+                .map_err(|reason| {
+                    let failure =
+                        FailedCell::new(sweep, &passes[cell.model].name, (*position, cell), reason);
+                    progress(SweepEvent::CellFailed {
+                        label: failure.label(),
+                        reason: failure.reason.clone(),
+                    });
+                    Box::new(failure)
+                })
         })
         .collect();
-    let mut baseline = None;
-    for (index, item) in scored.into_iter().enumerate() {
-        let (cell, is_baseline) = item?;
-        if is_baseline.is_some() && baseline.is_none() {
-            baseline = Some(index);
-        }
-        results.cells.push(cell);
-    }
     results.cells_decoded = decoded.load(Ordering::Relaxed);
-    results.baseline = baseline;
-    score_cells(sweep, &mut results)?;
+    let mut decoded_cells = Vec::new();
+    let mut failed_late = Vec::new();
+    for item in scored {
+        match item {
+            Ok(cell) => decoded_cells.push(cell),
+            Err(failure) => failed_late.push(*failure),
+        }
+    }
+    score_cells(sweep, &mut results, decoded_cells, &mut failed_late)?;
+    // Failures found before decoding and after it, merged in grid order.
+    results.failed = failed_early;
+    results.failed.extend(failed_late);
+    results.failed.sort_by_key(|f| f.position);
     Ok(results)
 }
 
-/// Runs one cell's work; a panic inside it (a defect) becomes an error naming the cell, so
-/// that the sweep ends with a message instead of a crash. Cells finished before it are cached
-/// in `OUT/cells/` and not decoded again when the sweep is run anew.
-fn isolated<T>(cell: &Cell, work: impl FnOnce() -> Result<T, SweepError>) -> Result<T, SweepError> {
-    std::panic::catch_unwind(std::panic::AssertUnwindSafe(work)).unwrap_or_else(|payload| {
-        let detail = payload
-            .downcast_ref::<&str>()
-            .map(|s| s.to_string())
-            .or_else(|| payload.downcast_ref::<String>().cloned())
-            .unwrap_or_else(|| "no message".into());
-        Err(SweepError::Build(format!(
-            "cell {cell:?}: processing failed inside isogloss (a defect; please report it): {detail}"
-        )))
-    })
+/// Runs one piece of a sweep's work (an LM, a lexicon, a cell); its error, or a panic inside
+/// it (a defect), becomes the reason the cells that depend on it failed, so that the sweep
+/// carries on with the others. Finished cells are cached in `OUT/cells/`: a new run decodes
+/// only the failed ones again.
+fn contained<T>(work: impl FnOnce() -> Result<T, SweepError>) -> Result<T, String> {
+    match std::panic::catch_unwind(std::panic::AssertUnwindSafe(work)) {
+        Ok(outcome) => outcome.map_err(|error| error.to_string()),
+        Err(payload) => Err(defect(payload.as_ref())),
+    }
+}
+
+/// The reason given for a panic caught inside a sweep.
+fn defect(payload: &(dyn std::any::Any + Send)) -> String {
+    let detail = payload
+        .downcast_ref::<&str>()
+        .map(|s| s.to_string())
+        .or_else(|| payload.downcast_ref::<String>().cloned())
+        .unwrap_or_else(|| "no message".into());
+    format!("processing failed inside isogloss (a defect; please report it): {detail}")
 }
 
 /// What tuning chose: LM weight, word bonus, and every `(weight, bonus, dev WER)` tried in order.
@@ -627,8 +801,16 @@ fn empty_summary() -> Summary {
     isogloss_score::summarize(std::iter::empty(), &BootstrapOptions::default())
 }
 
-/// Scores every cell against the test manifest, with the paired comparison to the baseline.
-fn score_cells(sweep: &Sweep, results: &mut SweepResults) -> Result<(), SweepError> {
+/// Scores every decoded cell against the test manifest, with the paired comparison to the
+/// baseline, into `results.cells`; a cell whose hypotheses cannot be read or scored joins
+/// `failed`. What every cell needs (the references and spelling variants) is read first: it
+/// failing is an error of the whole sweep.
+fn score_cells(
+    sweep: &Sweep,
+    results: &mut SweepResults,
+    decoded: Vec<(usize, CellResult, bool)>,
+    failed: &mut Vec<FailedCell>,
+) -> Result<(), SweepError> {
     let score_error = |e: isogloss_score::ScoreError| SweepError::Build(e.to_string());
     let options = ScoreOptions {
         bootstrap: BootstrapOptions {
@@ -652,30 +834,38 @@ fn score_cells(sweep: &Sweep, results: &mut SweepResults) -> Result<(), SweepErr
             .map_err(score_error)?;
         variants.insert(column.clone(), map);
     }
-    let systems: Vec<isogloss_score::ScoredSystem> = results
-        .cells
+    let systems: Vec<Result<isogloss_score::ScoredSystem, String>> = decoded
         .par_iter()
-        .map(|cell| {
-            let hypotheses = Hypotheses::read(&cell.hypotheses).map_err(score_error)?;
-            score_system(
-                &references[&cell.column],
-                &hypotheses,
-                variants[&cell.column].as_ref(),
-                &options.rules,
-            )
-            .map_err(score_error)
+        .map(|(_, cell, _)| {
+            contained(|| {
+                let hypotheses = Hypotheses::read(&cell.hypotheses).map_err(score_error)?;
+                score_system(
+                    &references[&cell.column],
+                    &hypotheses,
+                    variants[&cell.column].as_ref(),
+                    &options.rules,
+                )
+                .map_err(score_error)
+            })
         })
-        .collect::<Result<_, _>>()?;
-    let baseline = results.baseline.map(|b| &systems[b]);
-    let reports: Vec<_> = results
-        .cells
+        .collect();
+    let mut scored = Vec::new();
+    for ((position, cell, is_baseline), system) in decoded.into_iter().zip(systems) {
+        match system {
+            Ok(system) => scored.push((cell, is_baseline, system)),
+            Err(reason) => failed.push(FailedCell::from_result(&cell, position, reason)),
+        }
+    }
+    let baseline = scored.iter().position(|(_, is_baseline, _)| *is_baseline);
+    results.baseline = baseline;
+    let baseline_system = baseline.map(|b| &scored[b].2);
+    let reports: Vec<_> = scored
         .par_iter()
-        .zip(&systems)
         .enumerate()
-        .map(|(index, (cell, system))| {
+        .map(|(index, (cell, _, system))| {
             // The comparison puts the baseline first, so differences read as "cell − baseline".
-            let second = (Some(index) != results.baseline).then_some(system);
-            match (baseline, second) {
+            let second = (Some(index) != baseline).then_some(system);
+            match (baseline_system, second) {
                 (Some(base), Some(this)) => {
                     let full = report(
                         &references[&cell.column],
@@ -706,7 +896,7 @@ fn score_cells(sweep: &Sweep, results: &mut SweepResults) -> Result<(), SweepErr
             }
         })
         .collect();
-    for (cell, (own, comparison)) in results.cells.iter_mut().zip(reports) {
+    for ((mut cell, _, _), (own, comparison)) in scored.into_iter().zip(reports) {
         cell.overall = own.overall;
         cell.groups = own
             .groups
@@ -717,6 +907,7 @@ fn score_cells(sweep: &Sweep, results: &mut SweepResults) -> Result<(), SweepErr
             cell.versus_baseline = comparison.wer_difference;
             cell.flexible_versus_baseline = comparison.flexible_wer_difference;
         }
+        results.cells.push(cell);
     }
     Ok(())
 }

@@ -2,13 +2,15 @@
 //! out, with the front end of a TOML config (the default front end of `docs/features.md` without `--config`). The
 //! algorithms live in `isogloss_features`; decoding and resampling in `isogloss_audio`.
 
-use std::path::PathBuf;
+use std::path::{Path, PathBuf};
 
 use anyhow::{bail, Context};
 use clap::Args;
+use isogloss_audio::AudioError;
 use isogloss_features::{
     write_features, Cmvn, CmvnMode, FeatureConfig, FeatureExtractor, FeatureKind,
 };
+use ndarray::Array2;
 
 use crate::Outcome;
 
@@ -44,14 +46,14 @@ pub fn run(args: FeaturesArgs) -> anyhow::Result<Outcome> {
         );
     }
     let extractor = FeatureExtractor::new(&config)?;
-    let samples = isogloss_audio::read_mono_16k(&args.audio)?;
-    let mut features = extractor.extract(&samples);
+    let (samples, mut features) =
+        features_of(&args.audio, &extractor, &isogloss_audio::read_mono_16k)?;
     if features.nrows() == 0 {
         bail!(
             "{}: {} samples ({:.3} s) is shorter than one frame of {} samples; no features to write",
             args.audio.display(),
-            samples.len(),
-            samples.len() as f64 / f64::from(config.sample_rate),
+            samples,
+            samples as f64 / f64::from(config.sample_rate),
             config.window_samples
         );
     }
@@ -74,8 +76,49 @@ pub fn run(args: FeaturesArgs) -> anyhow::Result<Outcome> {
             FeatureKind::Mfcc => "MFCC",
             FeatureKind::LogMel => "log-mel",
         },
-        samples.len() as f64 / f64::from(config.sample_rate),
+        samples as f64 / f64::from(config.sample_rate),
         args.out.display()
     );
     Ok(Outcome::Done)
+}
+
+/// Decodes `audio` with `read` (16 kHz mono) and computes its features: the number of samples
+/// and the feature matrix. A panic inside either step (a decoding library failing on a crafted
+/// file, or a defect) is this file's error, naming it, instead of a crash.
+fn features_of(
+    audio: &Path,
+    extractor: &FeatureExtractor,
+    read: &dyn Fn(&Path) -> Result<Vec<f32>, AudioError>,
+) -> Result<(usize, Array2<f32>), AudioError> {
+    isogloss_audio::isolated(audio, || {
+        let samples = read(audio)?;
+        Ok((samples.len(), extractor.extract(&samples)))
+    })
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    /// Issue 16: a panic while the file is decoded becomes an error naming the file and what
+    /// happened; a reader that works gives the features.
+    #[test]
+    fn a_panic_while_decoding_is_the_files_error() {
+        let extractor = FeatureExtractor::new(&FeatureConfig::default()).unwrap();
+        let panicking = |_: &Path| -> Result<Vec<f32>, AudioError> {
+            panic!("internal state the reader did not expect")
+        };
+        let error = features_of(Path::new("interviews/int7.mp3"), &extractor, &panicking)
+            .unwrap_err()
+            .to_string();
+        assert_eq!(
+            error,
+            "interviews/int7.mp3: the audio data is damaged: the decoder failed inside (internal state the reader did not expect)"
+        );
+        let silence = |_: &Path| -> Result<Vec<f32>, AudioError> { Ok(vec![0.0; 16_000]) };
+        let (samples, features) =
+            features_of(Path::new("quiet.wav"), &extractor, &silence).unwrap();
+        // The default front end: 400-sample windows every 160 samples, (16000 − 400) / 160 + 1.
+        assert_eq!((samples, features.nrows()), (16_000, 98));
+    }
 }

@@ -21,7 +21,8 @@ pub struct SweepArgs {
 }
 
 /// Runs the sweep, writes `results.md`, `results.csv`, `results.json` and `chart.svg` into the
-/// sweep's output folder and prints the table.
+/// sweep's output folder and prints the table. Cells that failed are marked in every output and
+/// listed at the end; the sweep then ends with [`Outcome::SomeItemsFailed`] (exit code 2).
 pub fn run(args: SweepArgs) -> anyhow::Result<Outcome> {
     let sweep = Sweep::read(&args.config)?;
     let bar = Mutex::new(None::<indicatif::ProgressBar>);
@@ -44,6 +45,16 @@ pub fn run(args: SweepArgs) -> anyhow::Result<Outcome> {
                     bar.set_message(format!("{label}{}", if cached { " (cached)" } else { "" }));
                     bar.inc(1);
                 }
+            }
+        }
+        SweepEvent::CellFailed { label, reason } => {
+            let line = format!("cell {label} failed: {reason}");
+            match bar.lock().ok().as_ref().and_then(|slot| slot.as_ref()) {
+                Some(bar) => {
+                    bar.println(line);
+                    bar.inc(1);
+                }
+                None => eprintln!("{line}"),
             }
         }
         SweepEvent::Note(note) => eprintln!("note: {note}"),
@@ -74,5 +85,16 @@ pub fn run(args: SweepArgs) -> anyhow::Result<Outcome> {
         println!("{table}");
         eprintln!("results written to {}", out.display());
     }
-    Ok(Outcome::Done)
+    if results.failed.is_empty() {
+        return Ok(Outcome::Done);
+    }
+    eprintln!(
+        "{} of {} cells failed (the others are in the results; a new run decodes only the failed ones):",
+        results.failed.len(),
+        results.failed.len() + results.cells.len()
+    );
+    for failed in &results.failed {
+        eprintln!("  {}: {}", failed.label(), failed.reason);
+    }
+    Ok(Outcome::SomeItemsFailed)
 }

@@ -977,7 +977,10 @@ mod tests {
             + 1;
         std::fs::write(&path, text.replacen("ngram 1=", "ngram 1=x", 1)).unwrap();
         let error = G2pModel::read(&path).unwrap_err().to_string();
-        assert!(error.contains(&format!(":{damaged_line}:")), "{error}");
+        assert!(
+            error.contains(&format!(", line {damaged_line}:")),
+            "{error}"
+        );
     }
 
     /// Every graphone sequence that spells `letters` (no two letterless graphones in a row),
