@@ -570,6 +570,30 @@ mod tests {
     }
 
     #[test]
+    fn an_untranscribed_manifest_needs_no_transcript_column_but_the_rest_is_checked() {
+        let dir = tempfile::tempdir().unwrap();
+        let path = dir.path().join("pool.tsv");
+        std::fs::write(
+            &path,
+            "id\taudio\tstart\tend\tspeaker\tdialect\nu1\ta.ogg\t\t\tsp\tfells\n",
+        )
+        .unwrap();
+        let manifest = Manifest::read_untranscribed(&path).unwrap();
+        assert!(manifest.transcript_columns.is_empty());
+        assert_eq!(manifest.utterances[0].audio, dir.path().join("a.ogg"));
+        std::fs::write(
+            &path,
+            "id\taudio\tstart\tend\tspeaker\tdialect\nu1\ta.ogg\tsoon\t\tsp\tfells\n",
+        )
+        .unwrap();
+        let message = Manifest::read_untranscribed(&path).unwrap_err().to_string();
+        assert!(message.contains("pool.tsv, line 2"), "{message}");
+        std::fs::write(&path, "id\taudio\tstart\tend\tspeaker\n").unwrap();
+        let message = Manifest::read_untranscribed(&path).unwrap_err().to_string();
+        assert!(message.contains("missing: dialect"), "{message}");
+    }
+
+    #[test]
     fn every_row_problem_is_listed_with_its_line() {
         let (_dir, path) = manifest_with(
             "u1\tx.wav\t\t\ts\td\ta\tb\n\
