@@ -89,6 +89,7 @@ fn main() {
             provenance: Provenance::default(),
             training: None,
             augmentation: None,
+            self_training: Vec::new(),
         };
         let model = AcousticModel::from_parameters(description, &trainer.model_tensors());
         (normalization, model.expect("valid model"))

@@ -48,6 +48,48 @@ pub struct Provenance {
     /// The wall-clock budget of the run in minutes (`--minutes`), if it had one.
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub minutes: Option<f64>,
+    /// The model directory whose weights the run started from (`train --from`), if any.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub started_from: Option<String>,
+}
+
+/// One round of self-training (`isogloss train --untranscribed`), as `model.toml` and the
+/// training log record it (docs/training.md, "Self-training").
+#[derive(Debug, Clone, Default, PartialEq, Serialize, Deserialize)]
+pub struct SelfTrainingRound {
+    /// Round number, from 1.
+    pub round: usize,
+    /// How the threshold was chosen, in words.
+    pub rule: String,
+    /// Segments with a confidence at least this were kept; absent: the rule kept nothing.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub threshold: Option<f64>,
+    /// Untranscribed segments transcribed in the round.
+    pub offered_segments: usize,
+    /// Their audio, hours.
+    pub offered_hours: f64,
+    /// Segments kept as pseudo-labels.
+    pub kept_segments: usize,
+    /// Their audio, hours.
+    pub kept_hours: f64,
+    /// Dev segments at or above the threshold.
+    pub dev_kept_segments: usize,
+    /// WER of those dev segments (absent when none).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub dev_kept_wer: Option<f64>,
+    /// Dev WER of the model that made the pseudo-labels (the previous round's; absent when dev
+    /// has no reference words).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub dev_wer_before: Option<f64>,
+    /// Dev WER of the model this round trained (absent until measured).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub dev_wer_after: Option<f64>,
+    /// Training utterances of the round: transcribed plus pseudo-labelled.
+    pub train_utterances: usize,
+    /// Why nothing was kept, when nothing was (training then went on with the transcribed
+    /// data alone).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub note: Option<String>,
 }
 
 /// `model.toml`: everything decoding needs besides the weights.
@@ -69,6 +111,9 @@ pub struct ModelDescription {
     /// How its training utterances were perturbed (absent in models of the previous release).
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub augmentation: Option<crate::config::Augmentation>,
+    /// The rounds of self-training that made the model, in order (absent: none).
+    #[serde(default, skip_serializing_if = "Vec::is_empty")]
+    pub self_training: Vec<SelfTrainingRound>,
 }
 
 /// Reads a `model.toml` of the previous release: its keys are read by their old spellings
@@ -298,6 +343,7 @@ mod tests {
             provenance: Provenance::default(),
             training: Some(config.training.clone()),
             augmentation: Some(config.augmentation.clone()),
+            self_training: Vec::new(),
         };
         let dir = tempfile::tempdir().unwrap();
         AcousticModel::save(dir.path(), &description, &parameters).unwrap();
@@ -365,6 +411,7 @@ mod tests {
             provenance: Provenance::default(),
             training: None,
             augmentation: None,
+            self_training: Vec::new(),
         };
         let dir = tempfile::tempdir().unwrap();
         AcousticModel::save(dir.path(), &description, &parameters).unwrap();

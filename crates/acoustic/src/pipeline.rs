@@ -62,6 +62,10 @@ pub struct TrainOptions {
     pub seed: u64,
     /// Phone units from this lexicon instead of graphemes.
     pub lexicon: Option<PathBuf>,
+    /// Start from the weights of this model directory (same network and front end as
+    /// `config`; its units are kept) instead of a random initialisation. Ignored on resume:
+    /// the checkpoint has the weights.
+    pub start_from: Option<PathBuf>,
 }
 
 /// Progress of the whole run, for the CLI to draw.
@@ -571,6 +575,29 @@ fn prepare_training_set(
     })
 }
 
+/// The model a warm start reads, checked against the run's configuration: the network and the
+/// front end must be the same (the training settings may differ).
+fn start_model(dir: &Path, config: &ModelConfig) -> Result<AcousticModel, AcousticError> {
+    let model = AcousticModel::load(dir)?;
+    let description = model.description();
+    let differs = if description.architecture != config.model {
+        Some("[model] (the network)")
+    } else if description.features != config.features {
+        Some("[features] (the front end)")
+    } else {
+        None
+    };
+    if let Some(table) = differs {
+        return Err(AcousticError::Model {
+            path: dir.join("model.toml"),
+            problem: format!(
+                "its {table} differs from this run's configuration: a warm start needs the same; pass the configuration it was trained with"
+            ),
+        });
+    }
+    Ok(model)
+}
+
 /// Trains (or resumes training) a model as `options` says, writing the model directory, and
 /// after every epoch a checkpoint, a line of `training.jsonl` and the training curve
 /// `training-curve.svg` drawn from it.
@@ -607,21 +634,31 @@ pub fn train(
                 problem: "a training run already wrote here; pass --resume to continue it or choose another --out".into(),
             });
         }
-        let units = match &lexicon {
-            Some(lexicon) => UnitInventory::phones(lexicon.values().flatten().cloned()),
-            None => UnitInventory::graphemes(train_manifest.utterances.iter().map(|u| {
+        let start = options
+            .start_from
+            .as_deref()
+            .map(|dir| start_model(dir, &options.config))
+            .transpose()?;
+        let units = match (&start, &lexicon) {
+            (Some(start), _) => start.inventory().clone(),
+            (None, Some(lexicon)) => UnitInventory::phones(lexicon.values().flatten().cloned()),
+            (None, None) => UnitInventory::graphemes(train_manifest.utterances.iter().map(|u| {
                 u.transcripts
                     .get(train_column)
                     .map(String::as_str)
                     .unwrap_or("")
             })),
         };
-        Trainer::new(
+        let mut trainer = Trainer::new(
             options.config.clone(),
             units,
             options.config.features.dims(),
             options.seed,
-        )?
+        )?;
+        if let Some(dir) = &options.start_from {
+            trainer.load_model_weights(&dir.join("model.safetensors"))?;
+        }
+        trainer
     };
     if let Some(epochs) = options.epochs {
         trainer.set_epochs(epochs);
@@ -753,9 +790,14 @@ pub fn train(
                     written_by: format!("isogloss-acoustic {}", env!("CARGO_PKG_VERSION")),
                     updates: trainer.updates(),
                     minutes: options.minutes,
+                    started_from: options
+                        .start_from
+                        .as_ref()
+                        .map(|dir| dir.display().to_string()),
                 },
                 training: Some(config.training.clone()),
                 augmentation: Some(config.augmentation.clone()),
+                self_training: Vec::new(),
             };
             AcousticModel::save(&options.out, &description, &trainer.model_tensors())?;
             summary.best = Some(record.clone());

@@ -596,6 +596,35 @@ impl Trainer {
         Ok(record)
     }
 
+    /// A warm start: replaces the weights (parameters and running statistics) by those of a
+    /// model directory's `model.safetensors` written for the same network. The optimizer's
+    /// moments, the schedule and the progress stay fresh: a new run that starts from trained
+    /// weights.
+    pub fn load_model_weights(&mut self, weights: &Path) -> Result<(), AcousticError> {
+        let bad = |problem: String| AcousticError::Model {
+            path: weights.to_path_buf(),
+            problem,
+        };
+        let tensors = candle_core::safetensors::load(weights, &Device::Cpu)
+            .map_err(|e| bad(format!("not readable as model weights ({e})")))?;
+        for (name, var) in self.parameters.iter().chain(&self.statistics) {
+            let tensor = tensors.get(name).ok_or_else(|| {
+                bad(format!(
+                    "tensor `{name}` missing: expected the weights of the network this run trains"
+                ))
+            })?;
+            if tensor.dims() != var.dims() {
+                return Err(bad(format!(
+                    "tensor `{name}` has shape {:?}, this run's network expects {:?}",
+                    tensor.dims(),
+                    var.dims()
+                )));
+            }
+            var.set(&tensor.to_dtype(candle_core::DType::F32)?)?;
+        }
+        Ok(())
+    }
+
     /// Writes parameters, optimizer moments and progress to one safetensors file, atomically.
     pub fn save_checkpoint(&self, path: &Path) -> Result<(), AcousticError> {
         let mut tensors: Vec<(String, Vec<usize>, Vec<f32>)> = Vec::new();
@@ -1054,6 +1083,7 @@ mod tests {
             provenance: Provenance::default(),
             training: None,
             augmentation: None,
+            self_training: Vec::new(),
         };
         let dir = tempfile::tempdir().unwrap();
         crate::AcousticModel::save(dir.path(), &description, &trainer.model_tensors()).unwrap();

@@ -1,6 +1,6 @@
 //! Word certainties for isogloss after decoding: how far they can be trusted, and what they are
-//! good for — choosing which untranscribed segments a person should transcribe next, and (later)
-//! which machine transcripts are safe to train on.
+//! good for — choosing which untranscribed segments a person should transcribe next, and which
+//! machine transcripts are safe to train on.
 //!
 //! The decoder gives every word a *certainty* in (0, 1]: the geometric mean of its units' peak
 //! posteriors (`isogloss_decoder::DecodedWord::confidence`). That number ranks words well but is
@@ -14,6 +14,9 @@
 //! - [`ranking`]: untranscribed segments ranked for human transcription within a budget in
 //!   minutes, by expected word errors, unknown words and the dialects and speakers the training
 //!   manifest has least of.
+//! - [`selftrain`]: the confidence threshold of a self-training round, chosen on dev (the lowest
+//!   one whose kept dev segments meet a WER target, or a fixed one), and the untranscribed
+//!   segments it keeps as pseudo-labels.
 //!
 //! # Key design decision
 //!
@@ -22,7 +25,7 @@
 //! calibrated word confidences, so it reads as "expected share of words right", and a threshold
 //! on it means the same thing on any corpus whose dev split the calibration was fitted on. The
 //! ranking and a self-training loop share that plumbing: ranking takes the lowest segments for
-//! people, self-training would keep the highest ones as pseudo-labels. The calibration is
+//! people, self-training keeps the highest ones as pseudo-labels. The calibration is
 //! monotone (two parameters on the log-odds), so it cannot reorder words: a ranking by word
 //! confidence is the same with or without it, and a small dev split is enough to fit it.
 //!
@@ -48,6 +51,7 @@ use std::path::PathBuf;
 pub mod calibration;
 pub mod outcome;
 pub mod ranking;
+pub mod selftrain;
 
 pub use calibration::{
     expected_calibration_error, reliability, reliability_svg, segment_confidence, Calibration,
@@ -56,6 +60,10 @@ pub use calibration::{
 pub use outcome::{word_outcomes, WordOutcome};
 pub use ranking::{
     rank_correlation, shortlist, Candidate, RankWeights, Ranked, Shortlist, TrainingProfile,
+};
+pub use selftrain::{
+    choose_threshold, pooled_wer, select, DevSegment, PseudoCandidate, Selection, ThresholdChoice,
+    ThresholdRule,
 };
 
 /// Everything that can go wrong calibrating or ranking; messages name the file or item.

@@ -153,12 +153,33 @@ impl Manifest {
     /// the text alone (audio is not opened; see [`crate::check`]). Fails outright only when the
     /// file cannot be read or its header lacks a required column.
     pub fn read_collecting(path: &Path) -> Result<(Manifest, Vec<Problem>), CorpusError> {
+        Manifest::read_collecting_with(path, true)
+    }
+
+    /// Reads a manifest of untranscribed segments: as [`Manifest::read`], except that it may
+    /// have no transcript column (any it has are read as usual).
+    pub fn read_untranscribed(path: &Path) -> Result<Manifest, CorpusError> {
+        let (manifest, problems) = Manifest::read_collecting_with(path, false)?;
+        match problems.into_iter().find(|p| p.severity == Severity::Error) {
+            None => Ok(manifest),
+            Some(problem) => Err(CorpusError::Format {
+                path: problem.file,
+                line: problem.line.unwrap_or(1),
+                message: problem.message,
+            }),
+        }
+    }
+
+    fn read_collecting_with(
+        path: &Path,
+        need_transcripts: bool,
+    ) -> Result<(Manifest, Vec<Problem>), CorpusError> {
         let (table, row_errors) = Table::read_with_header_collecting(path)?;
         let mut problems: Vec<Problem> = row_errors
             .into_iter()
             .map(Problem::from_corpus_error)
             .collect();
-        let columns = Columns::find(&table)?;
+        let columns = Columns::find(&table, need_transcripts)?;
         let transcript_columns: Vec<String> = columns
             .transcripts
             .iter()
@@ -345,7 +366,7 @@ struct Columns {
 }
 
 impl Columns {
-    fn find(table: &Table) -> Result<Columns, CorpusError> {
+    fn find(table: &Table, need_transcripts: bool) -> Result<Columns, CorpusError> {
         let header_error = |message: String| CorpusError::Format {
             path: table.path.clone(),
             line: 1,
@@ -375,7 +396,7 @@ impl Columns {
         let transcripts: Vec<usize> = (0..table.header.len())
             .filter(|&i| !REQUIRED_COLUMNS.contains(&table.header[i].as_str()))
             .collect();
-        if transcripts.is_empty() {
+        if need_transcripts && transcripts.is_empty() {
             return Err(header_error(format!(
                 "expected at least one transcript column besides {}, found none",
                 REQUIRED_COLUMNS.join(", ")
@@ -546,6 +567,30 @@ mod tests {
         std::fs::write(&path, "id\taudio\tstart\tend\tspeaker\tdialect\n").unwrap();
         let message = Manifest::read(&path).unwrap_err().to_string();
         assert!(message.contains("transcript column"), "{message}");
+    }
+
+    #[test]
+    fn an_untranscribed_manifest_needs_no_transcript_column_but_the_rest_is_checked() {
+        let dir = tempfile::tempdir().unwrap();
+        let path = dir.path().join("pool.tsv");
+        std::fs::write(
+            &path,
+            "id\taudio\tstart\tend\tspeaker\tdialect\nu1\ta.ogg\t\t\tsp\tfells\n",
+        )
+        .unwrap();
+        let manifest = Manifest::read_untranscribed(&path).unwrap();
+        assert!(manifest.transcript_columns.is_empty());
+        assert_eq!(manifest.utterances[0].audio, dir.path().join("a.ogg"));
+        std::fs::write(
+            &path,
+            "id\taudio\tstart\tend\tspeaker\tdialect\nu1\ta.ogg\tsoon\t\tsp\tfells\n",
+        )
+        .unwrap();
+        let message = Manifest::read_untranscribed(&path).unwrap_err().to_string();
+        assert!(message.contains("pool.tsv, line 2"), "{message}");
+        std::fs::write(&path, "id\taudio\tstart\tend\tspeaker\n").unwrap();
+        let message = Manifest::read_untranscribed(&path).unwrap_err().to_string();
+        assert!(message.contains("missing: dialect"), "{message}");
     }
 
     #[test]

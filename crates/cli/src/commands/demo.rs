@@ -216,6 +216,7 @@ pub fn run(args: DemoArgs) -> anyhow::Result<Outcome> {
             resume: model_dir.join("checkpoint.safetensors").exists(),
             seed: SEED,
             lexicon: None,
+            start_from: None,
         };
         super::train::train_with_progress(&options)
             .with_context(|| format!("training into {}", model_dir.display()))?;

@@ -8,6 +8,7 @@ pub mod lexicon;
 pub mod lm;
 pub mod review;
 pub mod score;
+pub mod selftrain;
 pub mod shortlist;
 pub mod sweep;
 pub mod train;

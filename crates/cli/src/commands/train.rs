@@ -9,7 +9,14 @@ use isogloss_acoustic::config::ModelConfig;
 use isogloss_acoustic::pipeline::{self, PipelineEvent, TrainOptions};
 use isogloss_acoustic::train::TrainingEvent;
 
+use isogloss_confidence::ThresholdRule;
+use isogloss_decoder::SearchOptions;
+
+use super::selftrain::{self, SelfTraining};
 use crate::Outcome;
+
+/// The most rounds of self-training one run may ask for.
+const MAX_ROUNDS: usize = 100;
 
 /// Train a TDNN acoustic model with CTC on a manifest's transcripts.
 #[derive(Args)]
@@ -46,6 +53,38 @@ pub struct TrainArgs {
     /// graphemes.
     #[arg(long)]
     lexicon: Option<PathBuf>,
+    /// Start from the weights of this model directory (same network and front end) instead of
+    /// a random initialisation; with --untranscribed, the model round 1 starts from.
+    #[arg(long, value_name = "MODEL_DIR")]
+    from: Option<PathBuf>,
+    /// Self-training: a manifest of untranscribed segments (transcript columns are ignored).
+    /// Each round transcribes it with the current model, keeps the segments whose confidence
+    /// reaches a threshold chosen on dev, and trains on the transcribed plus these
+    /// pseudo-labelled segments (docs/training.md, "Self-training").
+    #[arg(long, value_name = "MANIFEST")]
+    untranscribed: Option<PathBuf>,
+    /// Rounds of self-training.
+    #[arg(long, default_value_t = 1, requires = "untranscribed")]
+    rounds: usize,
+    /// The threshold rule: the lowest segment confidence at which the kept dev segments' WER is
+    /// at most this share (0.1 = 10 %).
+    #[arg(long, default_value_t = isogloss_confidence::selftrain::DEFAULT_TARGET_WER)]
+    pseudo_max_wer: f64,
+    /// A fixed segment-confidence threshold instead of the dev rule.
+    #[arg(long, conflicts_with = "pseudo_max_wer")]
+    pseudo_threshold: Option<f64>,
+    /// ARPA language model for transcribing the untranscribed segments and dev.
+    #[arg(long, requires = "untranscribed")]
+    lm: Option<PathBuf>,
+    /// Lexicon for transcribing (word<TAB>units); default: --lexicon when given.
+    #[arg(long, requires = "untranscribed")]
+    decode_lexicon: Option<PathBuf>,
+    /// Weight of the LM in that decoding (as `transcribe --lm-weight`).
+    #[arg(long, default_value_t = isogloss_decoder::DEFAULT_LM_WEIGHT)]
+    lm_weight: f32,
+    /// Score added per word in that decoding (as `transcribe --word-bonus`).
+    #[arg(long, default_value_t = isogloss_decoder::DEFAULT_WORD_BONUS)]
+    word_bonus: f32,
 }
 
 /// A training budget: a positive number of minutes up to a year.
@@ -87,8 +126,58 @@ pub fn run(args: TrainArgs) -> anyhow::Result<Outcome> {
         minutes: args.minutes,
         resume: args.resume,
         seed: args.seed,
-        lexicon: args.lexicon,
+        lexicon: args.lexicon.clone(),
+        start_from: args.from.clone(),
     };
+    if let Some(untranscribed) = args.untranscribed {
+        let rule = match args.pseudo_threshold {
+            Some(t) if (0.0..=1.0).contains(&t) => ThresholdRule::Fixed(t),
+            Some(t) => anyhow::bail!("--pseudo-threshold: expected from 0 to 1, found {t}"),
+            None if (0.0..=1.0).contains(&args.pseudo_max_wer) => {
+                ThresholdRule::DevWer(args.pseudo_max_wer)
+            }
+            None => anyhow::bail!(
+                "--pseudo-max-wer: expected a share from 0 to 1, found {}",
+                args.pseudo_max_wer
+            ),
+        };
+        if !(1..=MAX_ROUNDS).contains(&args.rounds) {
+            anyhow::bail!(
+                "--rounds: expected 1 to {MAX_ROUNDS}, found {}",
+                args.rounds
+            );
+        }
+        let search = SearchOptions {
+            lm_weight: args.lm_weight,
+            word_bonus: args.word_bonus,
+            ..SearchOptions::default()
+        };
+        search
+            .validate()
+            .map_err(|e| anyhow::anyhow!("--lm-weight/--word-bonus: {e}"))?;
+        let plan = SelfTraining {
+            untranscribed,
+            rounds: args.rounds,
+            rule,
+            from: args.from,
+            lm: args.lm,
+            lexicon: args.decode_lexicon.or(args.lexicon),
+            search,
+        };
+        let options = TrainOptions {
+            start_from: None,
+            ..options
+        };
+        let records = selftrain::run(&options, &plan)
+            .with_context(|| format!("self-training into {}", args.out.display()))?;
+        eprintln!(
+            "model: {} ({} rounds of self-training; each round in {})",
+            args.out.display(),
+            records.len(),
+            args.out.join("round-K").display()
+        );
+        return Ok(Outcome::Done);
+    }
     let summary = train_with_progress(&options)
         .with_context(|| format!("training into {}", args.out.display()))?;
     if !summary.skipped_utterances.is_empty() {

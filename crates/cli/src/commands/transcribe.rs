@@ -154,11 +154,24 @@ impl From<FormatArg> for OutputFormat {
     }
 }
 
-/// A trained model with its own front end.
-struct ModelRecognizer {
+/// A trained model with its own front end (shared with `train --untranscribed`).
+pub(crate) struct ModelRecognizer {
     model: AcousticModel,
     extractor: FeatureExtractor,
     dir: PathBuf,
+}
+
+impl ModelRecognizer {
+    /// Loads the model directory `dir`.
+    pub(crate) fn load(dir: &Path) -> anyhow::Result<ModelRecognizer> {
+        let model = AcousticModel::load(dir)?;
+        let extractor = FeatureExtractor::new(model.feature_config())?;
+        Ok(ModelRecognizer {
+            model,
+            extractor,
+            dir: dir.to_path_buf(),
+        })
+    }
 }
 
 impl Recognizer for ModelRecognizer {
@@ -195,7 +208,7 @@ impl Recognizer for ModelRecognizer {
 }
 
 /// Audio files decoded by the audio crate.
-struct FileAudio;
+pub(crate) struct FileAudio;
 
 impl AudioSource for FileAudio {
     fn read_cut(&self, path: &Path, start: f64, end: Option<f64>) -> Result<Vec<f32>, SideError> {
@@ -218,13 +231,7 @@ pub fn run(args: TranscribeArgs) -> anyhow::Result<Outcome> {
         None => ItemSource::Recordings(args.audio.clone()),
     };
     let items = batch_items(&source, args.shard)?;
-    let model = AcousticModel::load(&args.model)?;
-    let extractor = FeatureExtractor::new(model.feature_config())?;
-    let recognizer = ModelRecognizer {
-        model,
-        extractor,
-        dir: args.model.clone(),
-    };
+    let recognizer = ModelRecognizer::load(&args.model)?;
     let mut bar: Option<ProgressBar> = None;
     let mut events = |event: Event| match event {
         Event::Warning(message) => eprintln!("warning: {message}"),
