@@ -747,8 +747,9 @@ mod tests {
             Normalization::None,
         ] {
             let config = with_norm(ModelConfig::small().model, normalization, 0.1);
-            // ±2 frames at the input rate, then four layers of ±1 at a third of it.
-            assert_eq!(config.context(), (14, 14));
+            // ±2 frames at the input rate, then at a third of it two layers of ±1 and two of ±3:
+            // 2 + 3·(1 + 1 + 3 + 3).
+            assert_eq!(config.context(), (26, 26));
             let mut rng = ChaCha8Rng::seed_from_u64(1);
             let vars = initial_parameters(&config, 39, 30, &mut rng).unwrap();
             let statistics = initial_statistics(&config).unwrap();
@@ -760,7 +761,7 @@ mod tests {
                     "{frames} frames"
                 );
             }
-            let input = Tensor::zeros((2, 50 + 28, 39), DType::F32, &Device::Cpu).unwrap();
+            let input = Tensor::zeros((2, 50 + 52, 39), DType::F32, &Device::Cpu).unwrap();
             let out = net.forward(&input).unwrap();
             assert_eq!(out.dims3().unwrap(), (2, 17, 30));
             let (out, _) = net.forward_train(&input, &[50, 43], &mut rng).unwrap();
