@@ -89,6 +89,7 @@ fn main() {
             provenance: Provenance::default(),
             training: None,
             augmentation: None,
+            speaker_vectors: None,
         };
         let model = AcousticModel::from_parameters(description, &trainer.model_tensors());
         (normalization, model.expect("valid model"))

@@ -787,6 +787,7 @@ mod tests {
             },
             features: crate::config::default_features(),
             augmentation: crate::config::Augmentation::none(),
+            speaker_vectors: None,
         }
     }
 
@@ -1054,6 +1055,7 @@ mod tests {
             provenance: Provenance::default(),
             training: None,
             augmentation: None,
+            speaker_vectors: None,
         };
         let dir = tempfile::tempdir().unwrap();
         crate::AcousticModel::save(dir.path(), &description, &trainer.model_tensors()).unwrap();
