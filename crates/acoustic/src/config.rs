@@ -660,12 +660,68 @@ mod tests {
             include_str!("../../../configs/tdnn-small.toml"),
             include_str!("../../../configs/tdnn-medium.toml"),
             include_str!("../../../configs/tdnn-demo.toml"),
+            include_str!("../../../configs/tdnn-small-ivector.toml"),
         ] {
             let config = ModelConfig::parse(text).unwrap();
-            config
-                .model
-                .check_size(config.features.dims(), 100)
-                .unwrap();
+            config.model.check_size(config.input_dims(), 100).unwrap();
+        }
+    }
+
+    /// `[speaker_vectors]`: off unless written; the shipped table is the extractor's defaults;
+    /// a wrong key or value is named with its table.
+    #[test]
+    fn the_speaker_vectors_table_reads_and_bad_settings_name_their_key() {
+        let small = ModelConfig::small();
+        assert_eq!(small.speaker_vectors, None);
+        assert_eq!(small.input_dims(), 39);
+        let text = include_str!("../../../configs/tdnn-small-ivector.toml");
+        let config = ModelConfig::parse(text).unwrap();
+        let vectors = config.speaker_vectors.clone().unwrap();
+        assert_eq!(vectors.input, VectorInput::Frames);
+        assert_eq!(vectors.extractor, ExtractorConfig::default());
+        assert_eq!(config.input_dims(), 39 + 40);
+        // Everything else is the demo recipe.
+        let demo = ModelConfig::parse(include_str!("../../../configs/tdnn-demo.toml")).unwrap();
+        assert_eq!(
+            ModelConfig {
+                speaker_vectors: None,
+                ..config
+            },
+            demo
+        );
+        for (old, new, expected) in [
+            (
+                "dimension = 40",
+                "dimenson = 40",
+                "unknown field `dimenson`",
+            ),
+            (
+                "input = \"frames\"",
+                "input = \"bias\"",
+                "unknown variant `bias`",
+            ),
+            (
+                "input = \"frames\"",
+                "inputs = \"frames\"",
+                "unknown field `inputs`",
+            ),
+            (
+                "mode = \"online\"",
+                "mode = \"speaker\"",
+                "speaker_vectors.extractor.mode: expected \"online\"",
+            ),
+            (
+                "dimension = 40",
+                "dimension = 0",
+                "speaker_vectors.extractor: ",
+            ),
+            ("gaussians = 128", "gaussians = 0", "`ubm.gaussians`"),
+        ] {
+            assert!(text.contains(old), "{old}");
+            let message = ModelConfig::parse(&text.replacen(old, new, 1))
+                .unwrap_err()
+                .to_string();
+            assert!(message.contains(expected), "{expected}: {message}");
         }
     }
 
