@@ -2,7 +2,7 @@
 //! feature frame.
 //!
 //! The contract, the same in training and in every command that computes posteriors
-//! (`transcribe`, `sweep`, `demo`, `calibrate`, all through [`crate::AcousticModel::log_posteriors`]):
+//! (`transcribe`, `sweep`, `demo`, all through [`crate::AcousticModel::log_posteriors`]):
 //! the network reads, for frame t of a feature matrix, the normalised features of frame t
 //! followed by the online i-vector of frame t of that same matrix
 //! ([`isogloss_speaker::OnlineIvectors`]: the vector recomputed at frames 0, K, 2K, … from the
