@@ -350,14 +350,27 @@ impl AudioSet {
         self.speaker_vectors = Some(extractor);
     }
 
-    /// Speaker of utterance `index`.
-    pub fn speaker(&self, index: usize) -> &str {
-        &self.utterances[index].speaker
+    /// Id, speaker and unperturbed normalised features of every utterance (what the i-vector
+    /// extractor is trained on), computed in parallel.
+    pub fn clean_training_features(
+        &self,
+    ) -> Result<crate::speaker_vectors::TrainingFeatures, AcousticError> {
+        (0..self.utterances.len())
+            .into_par_iter()
+            .map(|i| {
+                let utterance = &self.utterances[i];
+                Ok((
+                    utterance.id.clone(),
+                    utterance.speaker.clone(),
+                    self.clean_features(i)?,
+                ))
+            })
+            .collect()
     }
 
     /// The unperturbed, normalised features of utterance `index` (what the i-vector extractor
     /// is trained on).
-    pub fn clean_features(&self, index: usize) -> Result<Array2<f32>, AcousticError> {
+    fn clean_features(&self, index: usize) -> Result<Array2<f32>, AcousticError> {
         let utterance = &self.utterances[index];
         let samples = self.store.samples(utterance.row)?.unwrap_or_default();
         let mut matrix = self.extractor.extract(&samples);

@@ -25,7 +25,9 @@ use crate::audio_set::{AudioSet, AudioUtterance, PcmStore, Perturbation};
 use crate::config::ModelConfig;
 use crate::data::TrainingData;
 use crate::model::{AcousticModel, ModelDescription, Provenance, MODEL_FORMAT};
-use crate::speaker_vectors::{train_or_load, with_vectors, ExtractorProgress};
+use crate::speaker_vectors::{
+    cached_extractor, train_extractor, with_vectors, ExtractorOutcome, ExtractorProgress,
+};
 use crate::train::{checkpoint_path, EpochRecord, PreparedUtterance, Trainer, TrainingEvent};
 use crate::units::{grapheme_sequence, transcript_words, UnitInventory, UnitKind};
 use crate::AcousticError;
@@ -649,31 +651,23 @@ pub fn train(
         on_event,
     )?;
     if let Some(vectors) = &config.speaker_vectors {
-        let set = &training_set.set;
-        let clean = || -> Result<Vec<(String, String, Array2<f32>)>, AcousticError> {
-            (0..set.len())
-                .into_par_iter()
-                .map(|i| {
-                    Ok((
-                        set.id(i).to_string(),
-                        set.speaker(i).to_string(),
-                        set.clean_features(i)?,
-                    ))
-                })
-                .collect()
-        };
-        std::fs::create_dir_all(&options.out).map_err(|source| AcousticError::Io {
-            path: options.out.clone(),
-            source,
-        })?;
         let started = std::time::Instant::now();
-        let outcome = train_or_load(
-            &vectors.extractor,
-            config.features.dims(),
-            &cache.join("ivector"),
-            &clean,
-            &mut |progress| on_event(&PipelineEvent::SpeakerVectors(progress.clone())),
-        )?;
+        let cache_dir = cache.join("ivector");
+        let dims = config.features.dims();
+        let outcome = match cached_extractor(&vectors.extractor, dims, &cache_dir) {
+            Some(extractor) => ExtractorOutcome {
+                extractor,
+                cached: true,
+                skipped: Vec::new(),
+            },
+            None => train_extractor(
+                &vectors.extractor,
+                dims,
+                &cache_dir,
+                &training_set.set.clean_training_features()?,
+                &mut |progress| on_event(&PipelineEvent::SpeakerVectors(progress.clone())),
+            )?,
+        };
         if outcome.cached {
             on_event(&PipelineEvent::SpeakerVectorsCached);
         }

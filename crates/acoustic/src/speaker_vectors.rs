@@ -50,8 +50,8 @@ pub fn with_vectors(
     features: ArrayView2<f32>,
 ) -> Result<Array2<f32>, AcousticError> {
     let vectors = online_vectors(extractor, item, features)?;
-    Ok(concatenate(Axis(1), &[features, vectors.view()])
-        .map_err(|e| AcousticError::Shape(e.to_string()))?)
+    concatenate(Axis(1), &[features, vectors.view()])
+        .map_err(|e| AcousticError::Shape(e.to_string()))
 }
 
 /// The online vector of every frame of `features` (`[frames, R]`; empty input gives no rows).
@@ -66,6 +66,10 @@ pub fn online_vectors(
     Ok(extractor.online_ivectors(item, features)?)
 }
 
+/// Id, speaker and unperturbed normalised features of every training utterance: what the
+/// extractor is trained on.
+pub type TrainingFeatures = Vec<(String, String, Array2<f32>)>;
+
 /// One step of extractor training, for a progress bar.
 #[derive(Debug, Clone)]
 pub struct ExtractorProgress {
@@ -77,7 +81,7 @@ pub struct ExtractorProgress {
     pub stage: String,
 }
 
-/// What [`train_or_load`] did.
+/// What [`train_extractor`] made, or [`cached_extractor`] found.
 pub struct ExtractorOutcome {
     /// The extractor.
     pub extractor: IvectorExtractor,
@@ -107,37 +111,39 @@ fn describe(stage: &TrainingStage) -> String {
     }
 }
 
-/// The extractor for `config`: loaded from `cache_dir` when one trained with the same settings
-/// on features of the same layout is there, else trained on `utterances` (each with its id and
-/// speaker) and saved there. `cache_dir` must be specific to the training data (the caller keys
-/// it by the manifest and front end).
-pub fn train_or_load(
+fn layout(dims: usize) -> FeatureLayout {
+    FeatureLayout {
+        dims,
+        frame_shift_seconds: FEATURE_FRAME_SHIFT_SECONDS,
+    }
+}
+
+/// The extractor in `cache_dir` if one trained with `config` on features of `dims` dimensions is
+/// there (an unreadable or different one counts as none: it is trained again). `cache_dir` must
+/// be specific to the training data (the caller keys it by the manifest and front end).
+pub fn cached_extractor(
     config: &ExtractorConfig,
     dims: usize,
     cache_dir: &Path,
-    utterances: &dyn Fn() -> Result<Vec<(String, String, Array2<f32>)>, AcousticError>,
-    on_progress: &mut dyn FnMut(&ExtractorProgress),
-) -> Result<ExtractorOutcome, AcousticError> {
-    let layout = FeatureLayout {
-        dims,
-        frame_shift_seconds: FEATURE_FRAME_SHIFT_SECONDS,
-    };
+) -> Option<IvectorExtractor> {
     let complete = cache_dir.join(EXTRACTOR_DESCRIPTION).exists()
         && cache_dir.join(EXTRACTOR_TENSORS).exists();
-    if complete {
-        // A cached extractor that cannot be read or was trained otherwise is simply retrained.
-        if let Ok(extractor) = IvectorExtractor::load(cache_dir) {
-            if extractor.config() == config && extractor.layout() == layout {
-                return Ok(ExtractorOutcome {
-                    extractor,
-                    cached: true,
-                    skipped: Vec::new(),
-                });
-            }
-        }
-    }
-    let owned = utterances()?;
-    let views: Vec<Utterance> = owned
+    let extractor = IvectorExtractor::load(cache_dir)
+        .ok()
+        .filter(|_| complete)?;
+    (extractor.config() == config && extractor.layout() == layout(dims)).then_some(extractor)
+}
+
+/// Trains the extractor for `config` on `utterances` (id, speaker, features) and saves it in
+/// `cache_dir` for [`cached_extractor`].
+pub fn train_extractor(
+    config: &ExtractorConfig,
+    dims: usize,
+    cache_dir: &Path,
+    utterances: &TrainingFeatures,
+    on_progress: &mut dyn FnMut(&ExtractorProgress),
+) -> Result<ExtractorOutcome, AcousticError> {
+    let views: Vec<Utterance> = utterances
         .iter()
         .map(|(id, speaker, features)| Utterance {
             id,
@@ -147,7 +153,7 @@ pub fn train_or_load(
         .collect();
     let mut skipped = Vec::new();
     let (extractor, _) =
-        IvectorExtractor::train(config, layout, &views, &mut |event| match event {
+        IvectorExtractor::train(config, layout(dims), &views, &mut |event| match event {
             TrainingEvent::Skipped(error) => skipped.push(error.to_string()),
             TrainingEvent::Step { step, steps, stage } => on_progress(&ExtractorProgress {
                 step: *step,
@@ -172,16 +178,20 @@ mod tests {
     use super::*;
 
     fn tiny_config() -> ExtractorConfig {
-        let mut config = ExtractorConfig::default();
-        config.dimension = 3;
-        config.iterations = 2;
-        config.ubm.gaussians = 4;
-        config.ubm.iterations = 2;
-        config.top_gaussians = 0;
-        config.frame_stride = 1;
-        config.period_frames = 5;
-        config.window_seconds = 0.2;
-        config
+        ExtractorConfig {
+            dimension: 3,
+            iterations: 2,
+            top_gaussians: 0,
+            frame_stride: 1,
+            period_frames: 5,
+            window_seconds: 0.2,
+            ubm: isogloss_speaker::UbmConfig {
+                gaussians: 4,
+                iterations: 2,
+                ..Default::default()
+            },
+            ..Default::default()
+        }
     }
 
     fn utterance(offset: f32, frames: usize) -> Array2<f32> {
@@ -190,43 +200,37 @@ mod tests {
         })
     }
 
-    fn training_utterances() -> Result<Vec<(String, String, Array2<f32>)>, AcousticError> {
-        Ok(vec![
+    fn training_utterances() -> TrainingFeatures {
+        vec![
             ("a-1".into(), "a".into(), utterance(0.0, 120)),
             ("b-1".into(), "b".into(), utterance(2.0, 90)),
             ("b-2".into(), "b".into(), utterance(1.0, 3)),
-        ])
+        ]
     }
 
     #[test]
-    fn the_vectors_follow_the_online_rule_and_a_second_run_reads_the_cache() {
+    fn the_vectors_follow_the_online_rule_and_the_cache_holds_the_same_extractor() {
         let dir = tempfile::tempdir().unwrap();
         let config = tiny_config();
         let mut steps = Vec::new();
-        let first = train_or_load(&config, 2, dir.path(), &training_utterances, &mut |p| {
+        assert!(cached_extractor(&config, 2, dir.path()).is_none());
+        let first = train_extractor(&config, 2, dir.path(), &training_utterances(), &mut |p| {
             steps.push(p.clone())
         })
         .unwrap();
-        assert!(!first.cached);
         // The 3-frame utterance is below `min_frames` (10) and named.
         assert_eq!(first.skipped.len(), 1);
         assert!(first.skipped[0].contains("b-2"), "{:?}", first.skipped);
         assert_eq!(steps.len(), isogloss_speaker::training_steps(&config));
-        let unused = || -> Result<Vec<(String, String, Array2<f32>)>, AcousticError> {
-            Err(AcousticError::Config(
-                "the cache should have been read".into(),
-            ))
-        };
-        let second = train_or_load(&config, 2, dir.path(), &unused, &mut |_| {}).unwrap();
-        assert!(second.cached);
-        assert_eq!(second.extractor, first.extractor);
-        // Other settings: trained again.
+        assert_eq!(
+            cached_extractor(&config, 2, dir.path()).as_ref(),
+            Some(&first.extractor)
+        );
+        // Other settings or features: not the cached one.
         let mut other = config.clone();
         other.dimension = 2;
-        let third =
-            train_or_load(&other, 2, dir.path(), &training_utterances, &mut |_| {}).unwrap();
-        assert!(!third.cached);
-        assert_eq!(third.extractor.output_dimension(), 2);
+        assert!(cached_extractor(&other, 2, dir.path()).is_none());
+        assert!(cached_extractor(&config, 3, dir.path()).is_none());
 
         let extractor = &first.extractor;
         let features = utterance(0.5, 23);

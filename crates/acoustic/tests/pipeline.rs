@@ -11,7 +11,7 @@ use isogloss_acoustic::data::{utterance_rng, TrainingData};
 use isogloss_acoustic::log::{read_epochs, CURVE_FILE};
 use isogloss_acoustic::model::{ModelDescription, Provenance, MODEL_FORMAT};
 use isogloss_acoustic::pipeline::{manifest_posteriors, train, PipelineEvent, TrainOptions};
-use isogloss_acoustic::speaker_vectors::train_or_load;
+use isogloss_acoustic::speaker_vectors::train_extractor;
 use isogloss_acoustic::tdnn::initial_parameters;
 use isogloss_acoustic::units::UnitInventory;
 use isogloss_acoustic::{greedy_decode, AcousticError, AcousticModel};
@@ -315,14 +315,11 @@ fn a_model_with_speaker_vectors_trains_and_transcribes_from_its_directory_alone(
             offset + ((t * 7 + d * 3) % 11) as f32 / 5.0
         })
     };
-    let features = || -> Result<Vec<(String, String, ndarray::Array2<f32>)>, AcousticError> {
-        Ok(vec![
-            ("a".into(), "a".into(), frames(0.0)),
-            ("b".into(), "b".into(), frames(1.0)),
-        ])
-    };
-    let outcome = train_or_load(&other, 39, &moved, &features, &mut |_| {}).unwrap();
-    assert!(!outcome.cached);
+    let features = vec![
+        ("a".into(), "a".into(), frames(0.0)),
+        ("b".into(), "b".into(), frames(1.0)),
+    ];
+    train_extractor(&other, 39, &moved, &features, &mut |_| {}).unwrap();
     let message = AcousticModel::load(&moved).err().unwrap().to_string();
     assert!(
         message.contains(&moved.join("ivector.toml").display().to_string())
@@ -394,22 +391,11 @@ fn training_and_transcription_give_the_network_the_same_speaker_vectors() {
     )
     .unwrap();
     let vectors = config.speaker_vectors.clone().unwrap();
-    let clean = || -> Result<Vec<(String, String, ndarray::Array2<f32>)>, AcousticError> {
-        (0..set.len())
-            .map(|i| {
-                Ok((
-                    set.id(i).to_string(),
-                    set.speaker(i).to_string(),
-                    set.clean_features(i)?,
-                ))
-            })
-            .collect()
-    };
-    let outcome = train_or_load(
+    let outcome = train_extractor(
         &vectors.extractor,
         39,
         &dir.path().join("ivector"),
-        &clean,
+        &set.clean_training_features().unwrap(),
         &mut |_| {},
     )
     .unwrap();
