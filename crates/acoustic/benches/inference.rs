@@ -90,6 +90,7 @@ fn main() {
             training: None,
             augmentation: None,
             self_training: Vec::new(),
+            speaker_vectors: None,
         };
         let model = AcousticModel::from_parameters(description, &trainer.model_tensors());
         (normalization, model.expect("valid model"))

@@ -22,7 +22,8 @@ use std::sync::Mutex;
 use isogloss_audio::augment::{Augmenter, BabbleSource};
 use isogloss_corpus::Manifest;
 use isogloss_features::{Cmvn, CmvnMode, FeatureConfig, FeatureExtractor, SpecAugment, VtlpConfig};
-use ndarray::Array2;
+use isogloss_speaker::IvectorExtractor;
+use ndarray::{concatenate, Array2, Axis};
 use rand::Rng;
 use rand_chacha::ChaCha8Rng;
 use rayon::prelude::*;
@@ -30,6 +31,7 @@ use serde::{Deserialize, Serialize};
 
 use crate::data::TrainingData;
 use crate::pipeline::SegmentReader;
+use crate::speaker_vectors::online_vectors;
 use crate::AcousticError;
 
 /// Full scale of the stored 16-bit samples.
@@ -342,6 +344,7 @@ pub struct AudioSet {
     unit_variance: bool,
     speaker_cmvn: BTreeMap<String, Cmvn>,
     perturbation: Perturbation,
+    speaker_vectors: Option<IvectorExtractor>,
 }
 
 impl AudioSet {
@@ -362,7 +365,42 @@ impl AudioSet {
             unit_variance: features.unit_variance,
             speaker_cmvn,
             perturbation,
+            speaker_vectors: None,
         })
+    }
+
+    /// Appends to every epoch's features the online speaker vector of each frame, computed from
+    /// that epoch's features before the masks ([`crate::speaker_vectors`]).
+    pub fn set_speaker_vectors(&mut self, extractor: IvectorExtractor) {
+        self.speaker_vectors = Some(extractor);
+    }
+
+    /// Id, speaker and unperturbed normalised features of every utterance (what the i-vector
+    /// extractor is trained on), computed in parallel.
+    pub fn clean_training_features(
+        &self,
+    ) -> Result<crate::speaker_vectors::TrainingFeatures, AcousticError> {
+        (0..self.utterances.len())
+            .into_par_iter()
+            .map(|i| {
+                let utterance = &self.utterances[i];
+                Ok((
+                    utterance.id.clone(),
+                    utterance.speaker.clone(),
+                    self.clean_features(i)?,
+                ))
+            })
+            .collect()
+    }
+
+    /// The unperturbed, normalised features of utterance `index` (what the i-vector extractor
+    /// is trained on).
+    fn clean_features(&self, index: usize) -> Result<Array2<f32>, AcousticError> {
+        let utterance = &self.utterances[index];
+        let samples = self.store.samples(utterance.row)?.unwrap_or_default();
+        let mut matrix = self.extractor.extract(&samples);
+        self.normalise(&mut matrix, utterance);
+        Ok(matrix)
     }
 
     fn normalise(&self, matrix: &mut Array2<f32>, utterance: &AudioUtterance) {
@@ -463,9 +501,28 @@ impl TrainingData for AudioSet {
             None => self.extractor.extract(&samples),
         };
         self.normalise(&mut matrix, utterance);
+        // The vectors see the features as perturbed in this epoch, not the masks.
+        let vectors = self
+            .speaker_vectors
+            .as_ref()
+            .map(|extractor| online_vectors(extractor, &utterance.id, matrix.view()));
         if let Some((spec, blocks)) = &perturbation.masks {
             spec.apply_blocks(&mut matrix, *blocks, rng);
         }
-        matrix
+        match vectors {
+            None => matrix,
+            // Features the extractor refuses (a non-finite value) get non-finite vectors: the
+            // batch's loss is then not finite, and the batch is skipped and reported with its
+            // utterances, as a non-finite feature would be without speaker vectors.
+            Some(vectors) => {
+                let dimension = self
+                    .speaker_vectors
+                    .as_ref()
+                    .map_or(0, IvectorExtractor::output_dimension);
+                let vectors = vectors
+                    .unwrap_or_else(|_| Array2::from_elem((matrix.nrows(), dimension), f32::NAN));
+                concatenate(Axis(1), &[matrix.view(), vectors.view()]).unwrap_or(matrix)
+            }
+        }
     }
 }

@@ -4,6 +4,7 @@ use isogloss_audio::augment::{
     AugmentConfig, BandLimitConfig, GainConfig, NoiseConfig, ReverbConfig,
 };
 use isogloss_features::{deprecated_spellings, CmvnMode, FeatureConfig, SpecAugment, VtlpConfig};
+use isogloss_speaker::{ExtractionMode, ExtractorConfig};
 use serde::{Deserialize, Serialize};
 
 use crate::AcousticError;
@@ -477,6 +478,55 @@ pub struct ModelConfig {
     /// How training utterances are perturbed.
     #[serde(default)]
     pub augmentation: Augmentation,
+    /// Speaker vectors (online i-vectors) as a second input of the network; absent: none.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub speaker_vectors: Option<SpeakerVectors>,
+}
+
+/// How the speaker vector enters the network (`input = "frames"`).
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize, Default)]
+#[serde(rename_all = "lowercase")]
+pub enum VectorInput {
+    /// Appended to every feature frame, so that the first layer reads it beside the features at
+    /// each of its taps.
+    #[default]
+    Frames,
+}
+
+/// The `[speaker_vectors]` table: an i-vector extractor trained before the network, whose online
+/// vector of every frame is a second input of the network (see `crate::speaker_vectors`).
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct SpeakerVectors {
+    /// Where the vector enters the network.
+    #[serde(default)]
+    pub input: VectorInput,
+    /// The extractor's settings (`[speaker_vectors.extractor]`, with its `[ubm]` table); missing
+    /// keys take the extractor's defaults.
+    #[serde(default)]
+    pub extractor: ExtractorConfig,
+}
+
+impl SpeakerVectors {
+    /// Checks the extractor settings; the mode must be `"online"`, the one rule that training
+    /// and `isogloss transcribe` can both follow (transcription has no speaker labels).
+    pub fn validate(&self) -> Result<(), AcousticError> {
+        self.extractor
+            .validate()
+            .map_err(|e| AcousticError::Config(format!("speaker_vectors.extractor: {e}")))?;
+        if self.extractor.mode != ExtractionMode::Online {
+            return Err(AcousticError::Config(format!(
+                "speaker_vectors.extractor.mode: expected \"online\" (transcription computes the vector from the audio it is given, without speaker labels), found {:?}",
+                self.extractor.mode
+            )));
+        }
+        Ok(())
+    }
+
+    /// Dimension of the vector appended to each frame.
+    pub fn dimension(&self) -> usize {
+        self.extractor.output_dimension()
+    }
 }
 
 /// The default front end (MFCC + Δ + ΔΔ) with per-utterance mean and variance normalisation:
@@ -578,7 +628,20 @@ impl ModelConfig {
         self.training.validate()?;
         self.features.validate()?;
         self.augmentation.validate(&self.features)?;
+        if let Some(vectors) = &self.speaker_vectors {
+            vectors.validate()?;
+        }
         Ok(())
+    }
+
+    /// Dimensions of each frame the network reads: the features, plus the speaker vector when
+    /// there is one.
+    pub fn input_dims(&self) -> usize {
+        self.features.dims()
+            + self
+                .speaker_vectors
+                .as_ref()
+                .map_or(0, SpeakerVectors::dimension)
     }
 
     /// The built-in small configuration (`configs/tdnn-small.toml`).
@@ -599,12 +662,68 @@ mod tests {
             include_str!("../../../configs/tdnn-small.toml"),
             include_str!("../../../configs/tdnn-medium.toml"),
             include_str!("../../../configs/tdnn-demo.toml"),
+            include_str!("../../../configs/tdnn-small-ivector.toml"),
         ] {
             let config = ModelConfig::parse(text).unwrap();
-            config
-                .model
-                .check_size(config.features.dims(), 100)
-                .unwrap();
+            config.model.check_size(config.input_dims(), 100).unwrap();
+        }
+    }
+
+    /// `[speaker_vectors]`: off unless written; the shipped table is the extractor's defaults;
+    /// a wrong key or value is named with its table.
+    #[test]
+    fn the_speaker_vectors_table_reads_and_bad_settings_name_their_key() {
+        let small = ModelConfig::small();
+        assert_eq!(small.speaker_vectors, None);
+        assert_eq!(small.input_dims(), 39);
+        let text = include_str!("../../../configs/tdnn-small-ivector.toml");
+        let config = ModelConfig::parse(text).unwrap();
+        let vectors = config.speaker_vectors.clone().unwrap();
+        assert_eq!(vectors.input, VectorInput::Frames);
+        assert_eq!(vectors.extractor, ExtractorConfig::default());
+        assert_eq!(config.input_dims(), 39 + 40);
+        // Everything else is the demo recipe.
+        let demo = ModelConfig::parse(include_str!("../../../configs/tdnn-demo.toml")).unwrap();
+        assert_eq!(
+            ModelConfig {
+                speaker_vectors: None,
+                ..config
+            },
+            demo
+        );
+        for (old, new, expected) in [
+            (
+                "dimension = 40",
+                "dimenson = 40",
+                "unknown field `dimenson`",
+            ),
+            (
+                "input = \"frames\"",
+                "input = \"bias\"",
+                "unknown variant `bias`",
+            ),
+            (
+                "input = \"frames\"",
+                "inputs = \"frames\"",
+                "unknown field `inputs`",
+            ),
+            (
+                "mode = \"online\"",
+                "mode = \"speaker\"",
+                "speaker_vectors.extractor.mode: expected \"online\"",
+            ),
+            (
+                "dimension = 40",
+                "dimension = 0",
+                "speaker_vectors.extractor: ",
+            ),
+            ("gaussians = 128", "gaussians = 0", "`ubm.gaussians`"),
+        ] {
+            assert!(text.contains(old), "{old}");
+            let message = ModelConfig::parse(&text.replacen(old, new, 1))
+                .unwrap_err()
+                .to_string();
+            assert!(message.contains(expected), "{expected}: {message}");
         }
     }
 

@@ -10,6 +10,9 @@
 //!   batches, warm-up and decay, clipping, early stopping, atomic checkpoints, exact resume);
 //!   [`pipeline`] — manifests to cached features to a model directory, and back to posteriors;
 //!   [`log`] — the training log read back and the training curve drawn from it.
+//! * [`speaker_vectors`] — an online i-vector appended to every input frame, computed alike in
+//!   training and inference, and the extractor trained (or read from the cache) before the
+//!   network.
 //! * [`model`] — `model.toml` + `model.safetensors`, [`AcousticModel::log_posteriors`] and
 //!   [`greedy_decode`].
 //!
@@ -55,6 +58,7 @@ pub mod log;
 pub mod model;
 pub mod optim;
 pub mod pipeline;
+pub mod speaker_vectors;
 pub mod tdnn;
 pub mod train;
 pub mod units;
@@ -140,6 +144,10 @@ pub enum AcousticError {
         /// The word.
         word: String,
     },
+    /// An i-vector extractor that cannot be trained, read or applied (its message names the
+    /// utterance or file).
+    #[error(transparent)]
+    Speaker(#[from] isogloss_speaker::SpeakerError),
     /// An error from the tensor library.
     #[error("tensor operation failed: {0}")]
     Tensor(#[from] candle_core::Error),

@@ -1,11 +1,14 @@
 //! The model directory (`model.safetensors` + `model.toml`) and inference.
 
+use std::borrow::Cow;
 use std::collections::BTreeMap;
 use std::path::Path;
 
 use candle_core::{Device, Tensor, Var};
 use ndarray::Array2;
 use serde::{Deserialize, Serialize};
+
+use isogloss_speaker::{IvectorExtractor, EXTRACTOR_DESCRIPTION};
 
 use crate::config::TdnnConfig;
 use crate::io::{serialize_tensors, write_atomically};
@@ -114,6 +117,21 @@ pub struct ModelDescription {
     /// The rounds of self-training that made the model, in order (absent: none).
     #[serde(default, skip_serializing_if = "Vec::is_empty")]
     pub self_training: Vec<SelfTrainingRound>,
+    /// The speaker vectors the network reads beside the features; the extractor itself is
+    /// `ivector.toml` + `ivector.safetensors` in the model directory. Absent: none.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub speaker_vectors: Option<crate::config::SpeakerVectors>,
+}
+
+impl ModelDescription {
+    /// Dimensions of each frame the network reads: the features, plus the speaker vector.
+    pub fn input_dims(&self) -> usize {
+        self.features.dims()
+            + self
+                .speaker_vectors
+                .as_ref()
+                .map_or(0, crate::config::SpeakerVectors::dimension)
+    }
 }
 
 /// Reads a `model.toml` of the previous release: its keys are read by their old spellings
@@ -150,6 +168,7 @@ fn upgrade_previous_release(description: &mut ModelDescription, text: &str) -> V
 pub struct AcousticModel {
     description: ModelDescription,
     network: Tdnn,
+    speaker_vectors: Option<IvectorExtractor>,
 }
 
 impl AcousticModel {
@@ -214,10 +233,18 @@ impl AcousticModel {
             .features
             .validate()
             .map_err(|e| invalid(e.into()))?;
+        if let Some(vectors) = &description.speaker_vectors {
+            vectors.validate().map_err(invalid)?;
+        }
         description
             .architecture
-            .check_size(description.features.dims(), description.units.len())
+            .check_size(description.input_dims(), description.units.len())
             .map_err(invalid)?;
+        // The extractor is checked before the weights, so that a mismatch is blamed on it.
+        let extractor = match &description.speaker_vectors {
+            Some(_) => Some(IvectorExtractor::load(dir)?),
+            None => None,
+        };
         let weights = dir.join("model.safetensors");
         let tensors = candle_core::safetensors::load(&weights, &Device::Cpu).map_err(|e| {
             AcousticError::Model {
@@ -230,20 +257,68 @@ impl AcousticModel {
         let network = Tdnn::new(
             vb,
             &description.architecture,
-            description.features.dims(),
+            description.input_dims(),
             description.units.len(),
         )
         .map_err(|e| AcousticError::Model {
             path: weights,
             problem: e.to_string(),
         })?;
-        Ok(AcousticModel {
+        let model = AcousticModel {
             description,
             network,
-        })
+            speaker_vectors: None,
+        };
+        match extractor {
+            Some(extractor) => {
+                model.with_speaker_vectors(extractor, &dir.join(EXTRACTOR_DESCRIPTION))
+            }
+            None => Ok(model),
+        }
     }
 
-    /// A model from in-memory tensors (as [`AcousticModel::save`] takes them).
+    /// Attaches the i-vector extractor the description's `speaker_vectors` calls for. Fails,
+    /// naming `source` (the extractor's file), when the model takes no speaker vectors, or when
+    /// the extractor's features or vector dimension differ from the model's.
+    pub fn with_speaker_vectors(
+        mut self,
+        extractor: IvectorExtractor,
+        source: &Path,
+    ) -> Result<AcousticModel, AcousticError> {
+        let mismatch = |problem: String| AcousticError::Model {
+            path: source.to_path_buf(),
+            problem,
+        };
+        let Some(vectors) = &self.description.speaker_vectors else {
+            return Err(mismatch(
+                "the model takes no speaker vectors (model.toml has no [speaker_vectors])".into(),
+            ));
+        };
+        if extractor.output_dimension() != vectors.dimension() {
+            return Err(mismatch(format!(
+                "the extractor gives {}-dimensional vectors, the model takes {} (model.toml, [speaker_vectors])",
+                extractor.output_dimension(),
+                vectors.dimension()
+            )));
+        }
+        extractor
+            .check_front_end(
+                &source.display().to_string(),
+                self.description.features.dims(),
+                crate::speaker_vectors::FEATURE_FRAME_SHIFT_SECONDS,
+            )
+            .map_err(|e| mismatch(format!("{e} (model.toml, [features])")))?;
+        self.speaker_vectors = Some(extractor);
+        Ok(self)
+    }
+
+    /// The i-vector extractor of a model with speaker vectors.
+    pub fn speaker_vectors(&self) -> Option<&IvectorExtractor> {
+        self.speaker_vectors.as_ref()
+    }
+
+    /// A model from in-memory tensors (as [`AcousticModel::save`] takes them); a model with
+    /// speaker vectors needs its extractor attached ([`AcousticModel::with_speaker_vectors`]).
     pub fn from_parameters(
         description: ModelDescription,
         tensors: &BTreeMap<String, Var>,
@@ -251,12 +326,13 @@ impl AcousticModel {
         let network = Tdnn::new(
             var_builder(tensors),
             &description.architecture,
-            description.features.dims(),
+            description.input_dims(),
             description.units.len(),
         )?;
         Ok(AcousticModel {
             description,
             network,
+            speaker_vectors: None,
         })
     }
 
@@ -285,8 +361,30 @@ impl AcousticModel {
         0.01 * self.description.architecture.subsampling() as f64
     }
 
+    /// What the network reads for `[frames, dims]` normalised features: the features
+    /// themselves, or with speaker vectors the features with the online vector of each frame
+    /// appended ([`crate::speaker_vectors::with_vectors`], a fresh window from the first frame).
+    pub fn network_input<'a>(
+        &self,
+        features: &'a Array2<f32>,
+    ) -> Result<Cow<'a, Array2<f32>>, AcousticError> {
+        match (&self.description.speaker_vectors, &self.speaker_vectors) {
+            (None, _) => Ok(Cow::Borrowed(features)),
+            (Some(_), Some(extractor)) => Ok(Cow::Owned(crate::speaker_vectors::with_vectors(
+                extractor,
+                "features",
+                features.view(),
+            )?)),
+            (Some(_), None) => Err(AcousticError::Config(
+                "the model takes speaker vectors but has no i-vector extractor attached".into(),
+            )),
+        }
+    }
+
     /// Natural-log posteriors `[⌈frames / subsampling⌉, units]` for `[frames, dims]` features
     /// normalised as the front end's `cmvn` setting says. Empty input gives an empty output.
+    /// A model with speaker vectors appends the online vector of each frame first
+    /// ([`crate::speaker_vectors`]), starting a fresh window at the first frame.
     pub fn log_posteriors(&self, features: &Array2<f32>) -> Result<Array2<f32>, AcousticError> {
         let (frames, dims) = features.dim();
         let units = self.units().len();
@@ -299,6 +397,8 @@ impl AcousticModel {
                 self.description.features.dims()
             )));
         }
+        let features = self.network_input(features)?;
+        let dims = features.ncols();
         let (left, right) = self.description.architecture.context();
         let mut padded: Vec<f32> = Vec::with_capacity((frames + left + right) * dims);
         for t in 0..frames + left + right {
@@ -344,6 +444,7 @@ mod tests {
             training: Some(config.training.clone()),
             augmentation: Some(config.augmentation.clone()),
             self_training: Vec::new(),
+            speaker_vectors: None,
         };
         let dir = tempfile::tempdir().unwrap();
         AcousticModel::save(dir.path(), &description, &parameters).unwrap();
@@ -412,6 +513,7 @@ mod tests {
             training: None,
             augmentation: None,
             self_training: Vec::new(),
+            speaker_vectors: None,
         };
         let dir = tempfile::tempdir().unwrap();
         AcousticModel::save(dir.path(), &description, &parameters).unwrap();

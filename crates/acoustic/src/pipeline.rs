@@ -25,6 +25,9 @@ use crate::audio_set::{AudioSet, AudioUtterance, PcmStore, Perturbation};
 use crate::config::ModelConfig;
 use crate::data::TrainingData;
 use crate::model::{AcousticModel, ModelDescription, Provenance, MODEL_FORMAT};
+use crate::speaker_vectors::{
+    cached_extractor, train_extractor, with_vectors, ExtractorOutcome, ExtractorProgress,
+};
 use crate::train::{checkpoint_path, EpochRecord, PreparedUtterance, Trainer, TrainingEvent};
 use crate::units::{grapheme_sequence, transcript_words, UnitInventory, UnitKind};
 use crate::AcousticError;
@@ -82,6 +85,10 @@ pub enum PipelineEvent {
     },
     /// Something the user should know that does not stop the run.
     Warning(String),
+    /// One step of training the i-vector extractor (before the network).
+    SpeakerVectors(ExtractorProgress),
+    /// The i-vector extractor was read from the cache of an earlier run instead of trained.
+    SpeakerVectorsCached,
     /// The training loop.
     Training(TrainingEvent),
 }
@@ -652,7 +659,7 @@ pub fn train(
         let mut trainer = Trainer::new(
             options.config.clone(),
             units,
-            options.config.features.dims(),
+            options.config.input_dims(),
             options.seed,
         )?;
         if let Some(dir) = &options.start_from {
@@ -681,7 +688,7 @@ pub fn train(
     let key = format!("{:x}", Sha256::digest(key_text.as_bytes()));
     let cache = options.out.join("cache").join(&key[..16]);
     let units = trainer.units().clone();
-    let training_set = prepare_training_set(
+    let mut training_set = prepare_training_set(
         &train_manifest,
         &train_digest,
         train_column,
@@ -692,7 +699,7 @@ pub fn train(
         &cache,
         on_event,
     )?;
-    let dev_split = prepare_split(
+    let mut dev_split = prepare_split(
         "dev",
         &dev_manifest,
         dev_column,
@@ -702,6 +709,64 @@ pub fn train(
         &cache.join("dev"),
         on_event,
     )?;
+    if let Some(vectors) = &config.speaker_vectors {
+        let started = std::time::Instant::now();
+        let cache_dir = cache.join("ivector");
+        let dims = config.features.dims();
+        let outcome = match cached_extractor(&vectors.extractor, dims, &cache_dir) {
+            Some(extractor) => ExtractorOutcome {
+                extractor,
+                cached: true,
+                skipped: Vec::new(),
+            },
+            None => train_extractor(
+                &vectors.extractor,
+                dims,
+                &cache_dir,
+                &training_set.set.clean_training_features()?,
+                &mut |progress| on_event(&PipelineEvent::SpeakerVectors(progress.clone())),
+            )?,
+        };
+        if outcome.cached {
+            on_event(&PipelineEvent::SpeakerVectorsCached);
+        }
+        append_log(
+            &options.out.join("training.jsonl"),
+            &serde_json::json!({
+                "event": "speaker_vectors",
+                "cached": outcome.cached,
+                "seconds": started.elapsed().as_secs_f64(),
+                "skipped_utterances": outcome.skipped.len(),
+            }),
+        )?;
+        for message in &outcome.skipped {
+            on_event(&PipelineEvent::Warning(format!(
+                "i-vector extractor training left out {message}"
+            )));
+        }
+        outcome.extractor.save(&options.out)?;
+        let mut kept = Vec::with_capacity(dev_split.utterances.len());
+        for mut utterance in dev_split.utterances.drain(..) {
+            let item = format!("{} ({})", options.dev_manifest.display(), utterance.id);
+            let appended: Result<Vec<Array2<f32>>, AcousticError> = utterance
+                .variants
+                .iter()
+                .map(|matrix| with_vectors(&outcome.extractor, &item, matrix.view()))
+                .collect();
+            match appended {
+                Ok(variants) => {
+                    utterance.variants = variants;
+                    kept.push(utterance);
+                }
+                Err(e) => {
+                    on_event(&PipelineEvent::Warning(format!("skipped: {e}")));
+                    dev_split.failed.push(e.to_string());
+                }
+            }
+        }
+        dev_split.utterances = kept;
+        training_set.set.set_speaker_vectors(outcome.extractor);
+    }
     for (id, available, needed) in &training_set.skipped {
         on_event(&PipelineEvent::Warning(format!(
             "skipped training utterance {id}: {needed} labels need {needed} output frames at least, it has {available}"
@@ -798,6 +863,7 @@ pub fn train(
                 training: Some(config.training.clone()),
                 augmentation: Some(config.augmentation.clone()),
                 self_training: Vec::new(),
+                speaker_vectors: config.speaker_vectors.clone(),
             };
             AcousticModel::save(&options.out, &description, &trainer.model_tensors())?;
             summary.best = Some(record.clone());

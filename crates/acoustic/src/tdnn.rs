@@ -1021,6 +1021,89 @@ mod tests {
         }
     }
 
+    /// Issue 15: a speaker vector enters as extra input columns, the same values on every frame
+    /// of an utterance (between recomputations). The gradient with respect to one vector entry —
+    /// the input gradient of its column summed over the frames — equals the finite difference
+    /// of moving that entry on every frame of the utterance, through the whole network in a
+    /// training pass, with layer and batch normalisation.
+    #[test]
+    fn the_gradient_reaches_a_speaker_vector_appended_to_every_frame() {
+        let (feature_dims, vector_dims, frames) = (3, 2, 16);
+        let dims = feature_dims + vector_dims;
+        for normalization in [Normalization::Layer, Normalization::Batch] {
+            let config = with_norm(tiny(), normalization, 0.0);
+            let mut rng = ChaCha8Rng::seed_from_u64(8);
+            let (_, _, net) = network(&config, dims, 4, &mut rng);
+            let features: Vec<f32> = (0..2 * frames * feature_dims)
+                .map(|_| rng.random_range(-1.0..1.0))
+                .collect();
+            let vectors: Vec<f32> = (0..2 * vector_dims)
+                .map(|_| rng.random_range(-1.0..1.0))
+                .collect();
+            let input_of = |vectors: &[f32]| {
+                let mut x = Vec::with_capacity(2 * frames * dims);
+                for b in 0..2 {
+                    for t in 0..frames {
+                        let row = (b * frames + t) * feature_dims;
+                        x.extend_from_slice(&features[row..row + feature_dims]);
+                        x.extend_from_slice(&vectors[b * vector_dims..(b + 1) * vector_dims]);
+                    }
+                }
+                Tensor::from_vec(x, (2, frames, dims), &Device::Cpu).unwrap()
+            };
+            let lengths = [11, 6];
+            let forward = |input: &Tensor| {
+                net.forward_train(input, &lengths, &mut ChaCha8Rng::seed_from_u64(0))
+                    .unwrap()
+                    .0
+            };
+            let probe = Tensor::randn(
+                0f32,
+                1.0,
+                forward(&input_of(&vectors)).shape(),
+                &Device::Cpu,
+            )
+            .unwrap();
+            let loss = |vectors: &[f32]| -> f64 {
+                let out: Vec<f32> = (forward(&input_of(vectors)) * &probe)
+                    .unwrap()
+                    .flatten_all()
+                    .unwrap()
+                    .to_vec1()
+                    .unwrap();
+                out.iter().map(|&v| f64::from(v)).sum()
+            };
+            let input = Var::from_tensor(&input_of(&vectors)).unwrap();
+            let grads = (forward(input.as_tensor()) * &probe)
+                .unwrap()
+                .sum_all()
+                .unwrap()
+                .backward()
+                .unwrap();
+            let gradient: Vec<Vec<Vec<f32>>> =
+                grads.get(input.as_tensor()).unwrap().to_vec3().unwrap();
+            for b in 0..2 {
+                for j in 0..vector_dims {
+                    let analytic: f64 = (0..frames)
+                        .map(|t| f64::from(gradient[b][t][feature_dims + j]))
+                        .sum();
+                    let step = 1e-3f32;
+                    let mut moved = vectors.clone();
+                    moved[b * vector_dims + j] += step;
+                    let plus = loss(&moved);
+                    moved[b * vector_dims + j] -= 2.0 * step;
+                    let minus = loss(&moved);
+                    let numeric = (plus - minus) / (2.0 * f64::from(step));
+                    let tolerance = 2e-2 * numeric.abs().max(analytic.abs()).max(0.1);
+                    assert!(
+                        (numeric - analytic).abs() < tolerance,
+                        "{normalization:?} utterance {b}, entry {j}: finite difference {numeric}, backward {analytic}"
+                    );
+                }
+            }
+        }
+    }
+
     /// The running statistics after three training passes are the moving average (weight 0.1
     /// for the newest batch, unbiased variance) of each pass's statistics computed directly:
     /// the hidden layers written out as loops in f64 over each utterance's valid frames only.

@@ -816,6 +816,7 @@ mod tests {
             },
             features: crate::config::default_features(),
             augmentation: crate::config::Augmentation::none(),
+            speaker_vectors: None,
         }
     }
 
@@ -1084,6 +1085,7 @@ mod tests {
             training: None,
             augmentation: None,
             self_training: Vec::new(),
+            speaker_vectors: None,
         };
         let dir = tempfile::tempdir().unwrap();
         crate::AcousticModel::save(dir.path(), &description, &trainer.model_tensors()).unwrap();

@@ -5,11 +5,20 @@ use std::path::{Path, PathBuf};
 #[path = "../../chart/tests/support/geometry.rs"]
 mod geometry;
 
+use isogloss_acoustic::audio_set::{AudioSet, AudioUtterance, PcmStore, Perturbation};
 use isogloss_acoustic::config::ModelConfig;
+use isogloss_acoustic::data::{utterance_rng, TrainingData};
 use isogloss_acoustic::log::{read_epochs, CURVE_FILE};
-use isogloss_acoustic::pipeline::{manifest_posteriors, train, TrainOptions};
+use isogloss_acoustic::model::{ModelDescription, Provenance, MODEL_FORMAT};
+use isogloss_acoustic::pipeline::{manifest_posteriors, train, PipelineEvent, TrainOptions};
+use isogloss_acoustic::speaker_vectors::train_extractor;
+use isogloss_acoustic::tdnn::initial_parameters;
+use isogloss_acoustic::units::UnitInventory;
 use isogloss_acoustic::{greedy_decode, AcousticError, AcousticModel};
 use isogloss_corpus::Manifest;
+use isogloss_features::{Cmvn, FeatureExtractor, SpecAugment};
+use rand::SeedableRng;
+use rand_chacha::ChaCha8Rng;
 
 fn demo() -> PathBuf {
     Path::new(env!("CARGO_MANIFEST_DIR")).join("../../tests/data/demo")
@@ -250,4 +259,280 @@ fn a_warm_start_begins_from_the_model_and_refuses_another_network() {
         message.contains("model.toml") && message.contains("[model]"),
         "{message}"
     );
+}
+
+/// A small extractor for the demo utterances: 8 Gaussians, 4-dimensional vectors, a 2 s window
+/// recomputed every 20 frames.
+const SPEAKER_VECTORS: &str = r#"
+[speaker_vectors]
+input = "frames"
+[speaker_vectors.extractor]
+dimension = 4
+iterations = 2
+window_seconds = 2.0
+period_frames = 20
+[speaker_vectors.extractor.ubm]
+gaussians = 8
+iterations = 2
+"#;
+
+/// Issue 15: a model with speaker vectors trains its extractor first, keeps it in the model
+/// directory, and transcribes from the directory alone; a resumed run reads the extractor from
+/// the cache instead of training it again; an extractor that does not fit the model is refused
+/// with its file named.
+#[test]
+fn a_model_with_speaker_vectors_trains_and_transcribes_from_its_directory_alone() {
+    let dir = tempfile::tempdir().unwrap();
+    let ids = [
+        "larch01-0006",
+        "vale02-0008",
+        "corran01-0003",
+        "quays01-0019",
+    ];
+    let path = manifest(dir.path(), "few.tsv", &ids);
+    let mut options = options(dir.path(), path.clone(), path.clone(), "normalized");
+    options.config = ModelConfig::parse(&format!("{TINY}{SPEAKER_VECTORS}")).unwrap();
+    let mut extractor_steps = 0;
+    let summary = train(&options, &mut |event| {
+        if let PipelineEvent::SpeakerVectors(_) = event {
+            extractor_steps += 1;
+        }
+    })
+    .expect("training runs");
+    let vectors = options.config.speaker_vectors.clone().unwrap();
+    assert_eq!(
+        extractor_steps,
+        isogloss_speaker::training_steps(&vectors.extractor)
+    );
+    let best = summary.best.expect("some epoch improved");
+    assert!(
+        best.dev_unit_error_rate < 0.05,
+        "greedy unit error rate {best:?}"
+    );
+
+    // Only the four files of the model directory travel.
+    let moved = dir.path().join("moved");
+    std::fs::create_dir(&moved).unwrap();
+    for file in [
+        "model.toml",
+        "model.safetensors",
+        "ivector.toml",
+        "ivector.safetensors",
+    ] {
+        std::fs::copy(dir.path().join("model").join(file), moved.join(file)).unwrap();
+    }
+    let model = AcousticModel::load(&moved).unwrap();
+    assert_eq!(model.description().speaker_vectors.as_ref(), Some(&vectors));
+    assert_eq!(model.speaker_vectors().unwrap().output_dimension(), 4);
+    let manifest = Manifest::read(&path).unwrap();
+    let posteriors = manifest_posteriors(&model, &manifest, &|_, _| {}).unwrap();
+    let mut correct = 0;
+    for (utterance, result) in manifest.utterances.iter().zip(posteriors) {
+        let text = model
+            .inventory()
+            .to_text(&greedy_decode(&result.unwrap(), model.units()));
+        correct += usize::from(text == utterance.transcripts[1]);
+    }
+    assert!(
+        correct >= 3,
+        "{correct} of 4 transcripts reproduced exactly"
+    );
+    // An utterance of one frame is shorter than the network's context: padded, not refused.
+    let one = ndarray::Array2::<f32>::zeros((1, 39));
+    assert_eq!(model.log_posteriors(&one).unwrap().nrows(), 1);
+    // A non-finite feature is named with its frame.
+    let mut bad = ndarray::Array2::<f32>::zeros((30, 39));
+    bad[(12, 3)] = f32::NAN;
+    let message = model.log_posteriors(&bad).unwrap_err().to_string();
+    assert!(
+        message.contains("frame 12") && message.contains("dimension 3"),
+        "{message}"
+    );
+
+    // Resuming reads the extractor from the cache.
+    options.resume = true;
+    options.epochs = Some(summary.epochs_done + 1);
+    let mut cached = false;
+    train(&options, &mut |event| {
+        assert!(!matches!(event, PipelineEvent::SpeakerVectors(_)));
+        cached |= matches!(event, PipelineEvent::SpeakerVectorsCached);
+    })
+    .unwrap();
+    assert!(cached);
+
+    // An extractor of other dimensions in the directory is refused, naming its file.
+    let mut other = vectors.extractor.clone();
+    other.dimension = 3;
+    let frames = |offset: f32| {
+        ndarray::Array2::from_shape_fn((200, 39), |(t, d)| {
+            offset + ((t * 7 + d * 3) % 11) as f32 / 5.0
+        })
+    };
+    let features = vec![
+        ("a".into(), "a".into(), frames(0.0)),
+        ("b".into(), "b".into(), frames(1.0)),
+    ];
+    train_extractor(&other, 39, &moved, &features, &mut |_| {}).unwrap();
+    let message = AcousticModel::load(&moved).err().unwrap().to_string();
+    assert!(
+        message.contains(&moved.join("ivector.toml").display().to_string())
+            && message.contains("3-dimensional")
+            && message.contains("takes 4"),
+        "{message}"
+    );
+    // Missing: the error names the file.
+    std::fs::remove_file(moved.join("ivector.safetensors")).unwrap();
+    let message = AcousticModel::load(&moved).err().unwrap().to_string();
+    assert!(message.contains("ivector.safetensors"), "{message}");
+}
+
+/// Issue 15: the network reads in training what it reads in transcription. For the same audio,
+/// an epoch's training features (here without perturbation) equal the network input the model
+/// computes from the features `isogloss transcribe` computes (extraction, then per-utterance
+/// CMVN), vectors included; with SpecAugment masks on, the vectors are still those of the
+/// unmasked features.
+#[test]
+fn training_and_transcription_give_the_network_the_same_speaker_vectors() {
+    let dir = tempfile::tempdir().unwrap();
+    let ids = ["larch01-0006", "vale02-0008", "corran01-0003"];
+    let path = manifest(dir.path(), "few.tsv", &ids);
+    let manifest = Manifest::read(&path).unwrap();
+    let mut config = ModelConfig::parse(&format!(
+        "{TINY}{SPEAKER_VECTORS}\n[features]\ncmvn = \"utterance\"\n"
+    ))
+    .unwrap();
+    config
+        .speaker_vectors
+        .as_mut()
+        .unwrap()
+        .extractor
+        .min_frames = 1;
+    let (store, failures) =
+        PcmStore::open_or_build(&dir.path().join("train.pcm"), &manifest, "test", &|_, _| {})
+            .unwrap();
+    assert!(failures.is_empty());
+    let front_end = FeatureExtractor::new(&config.features).unwrap();
+    let utterances: Vec<AudioUtterance> = manifest
+        .utterances
+        .iter()
+        .enumerate()
+        .map(|(row, u)| AudioUtterance {
+            id: u.id.clone(),
+            row,
+            speaker: u.speaker.clone(),
+            labels: vec![1],
+            frames: front_end
+                .config()
+                .frame_count(store.sample_count(row).unwrap()),
+        })
+        .collect();
+    let samples: Vec<Vec<f32>> = (0..ids.len())
+        .map(|row| store.samples(row).unwrap().unwrap())
+        .collect();
+    let no_perturbation = |masks| Perturbation {
+        speed_factors: vec![],
+        waveform: None,
+        vtlp: config.augmentation.vtlp.clone(),
+        masks,
+    };
+    let mut set = AudioSet::new(
+        store,
+        utterances,
+        &config.features,
+        Default::default(),
+        no_perturbation(None),
+    )
+    .unwrap();
+    let vectors = config.speaker_vectors.clone().unwrap();
+    let outcome = train_extractor(
+        &vectors.extractor,
+        39,
+        &dir.path().join("ivector"),
+        &set.clean_training_features().unwrap(),
+        &mut |_| {},
+    )
+    .unwrap();
+    let extractor = outcome.extractor;
+    set.set_speaker_vectors(extractor.clone());
+
+    let units = UnitInventory::graphemes(["abc de"]);
+    let mut rng = ChaCha8Rng::seed_from_u64(1);
+    let parameters =
+        initial_parameters(&config.model, config.input_dims(), units.len(), &mut rng).unwrap();
+    let description = ModelDescription {
+        format: MODEL_FORMAT,
+        units,
+        features: config.features.clone(),
+        architecture: config.model.clone(),
+        provenance: Provenance::default(),
+        training: None,
+        augmentation: None,
+        self_training: Vec::new(),
+        speaker_vectors: Some(vectors),
+    };
+    let model = AcousticModel::from_parameters(description, &parameters)
+        .unwrap()
+        .with_speaker_vectors(extractor, Path::new("ivector.toml"))
+        .unwrap();
+
+    // What `isogloss transcribe` hands the model: the segment's features normalised by its own
+    // statistics (crates/cli/src/commands/transcribe.rs).
+    let transcribed = |samples: &[f32]| {
+        let mut features = front_end.extract(samples);
+        let cmvn =
+            Cmvn::from_features(&features, config.features.unit_variance, "segment").unwrap();
+        cmvn.apply(&mut features, "segment").unwrap();
+        model.network_input(&features).unwrap().into_owned()
+    };
+    for (i, samples) in samples.iter().enumerate() {
+        let trained = set.features(i, &mut utterance_rng(1, 1, i), &|_| true);
+        let inferred = transcribed(samples);
+        assert_eq!(trained.dim(), (inferred.nrows(), 39 + 4));
+        assert_eq!(trained, inferred, "utterance {i}");
+        // The vectors change over the utterance (the window fills), so the check has teeth.
+        let vector = |t: usize| trained.row(t).slice(ndarray::s![39..]).to_owned();
+        assert_ne!(vector(0), vector(trained.nrows() - 1));
+    }
+
+    let masks = SpecAugment {
+        time_masks: 2,
+        max_time_width: 20,
+        max_time_fraction: 0.3,
+        frequency_masks: 2,
+        max_frequency_width: 5,
+        ..config.augmentation.masks.clone()
+    };
+    let mut masked = AudioSet::new(
+        PcmStore::open_or_build(&dir.path().join("train.pcm"), &manifest, "test", &|_, _| {})
+            .unwrap()
+            .0,
+        (0..ids.len())
+            .map(|row| AudioUtterance {
+                id: manifest.utterances[row].id.clone(),
+                row,
+                speaker: manifest.utterances[row].speaker.clone(),
+                labels: vec![1],
+                frames: 0,
+            })
+            .collect(),
+        &config.features,
+        Default::default(),
+        no_perturbation(Some((masks, 3))),
+    )
+    .unwrap();
+    masked.set_speaker_vectors(model.speaker_vectors().unwrap().clone());
+    for (i, samples) in samples.iter().enumerate() {
+        let trained = masked.features(i, &mut utterance_rng(1, 1, i), &|_| true);
+        let inferred = transcribed(samples);
+        assert_ne!(
+            trained.slice(ndarray::s![.., ..39]),
+            inferred.slice(ndarray::s![.., ..39]),
+            "the masks hid something"
+        );
+        assert_eq!(
+            trained.slice(ndarray::s![.., 39..]),
+            inferred.slice(ndarray::s![.., 39..]),
+            "utterance {i}"
+        );
+    }
 }

@@ -227,6 +227,21 @@ pub fn train_with_progress(options: &TrainOptions) -> anyhow::Result<pipeline::T
             Some(bar) => bar.println(format!("warning: {message}")),
             None => eprintln!("warning: {message}"),
         },
+        PipelineEvent::SpeakerVectors(progress) => {
+            let current = bar.get_or_insert_with(|| {
+                crate::progress::bar(progress.steps as u64, "i-vector extractor")
+            });
+            current.set_position(progress.step as u64);
+            current.set_message(progress.stage.clone());
+            if progress.step == progress.steps {
+                current.finish_and_clear();
+                bar = None;
+                eprintln!("i-vector extractor: trained ({} steps)", progress.steps);
+            }
+        }
+        PipelineEvent::SpeakerVectorsCached => {
+            eprintln!("i-vector extractor: read from the cache of an earlier run");
+        }
         PipelineEvent::Training(TrainingEvent::EpochStart { epoch, frames, .. }) => {
             bar = Some(crate::progress::bar(
                 *frames as u64,

@@ -200,10 +200,15 @@ impl Recognizer for ModelRecognizer {
     }
 
     fn files(&self) -> Vec<PathBuf> {
-        vec![
+        let mut files = vec![
             self.dir.join("model.safetensors"),
             self.dir.join("model.toml"),
-        ]
+        ];
+        if self.model.speaker_vectors().is_some() {
+            files.push(self.dir.join(isogloss_speaker::EXTRACTOR_TENSORS));
+            files.push(self.dir.join(isogloss_speaker::EXTRACTOR_DESCRIPTION));
+        }
+        files
     }
 }
 
