@@ -24,6 +24,21 @@ fn demo() -> PathBuf {
     Path::new(env!("CARGO_MANIFEST_DIR")).join("../../tests/data/demo")
 }
 
+/// How many utterances of the manifest at `path` the model's greedy transcript reproduces
+/// exactly (normalized writing, the manifest's second transcript column).
+fn exact_transcripts(model: &AcousticModel, path: &Path) -> usize {
+    let manifest = Manifest::read(path).unwrap();
+    let posteriors = manifest_posteriors(model, &manifest, &|_, _| {}).unwrap();
+    let mut correct = 0;
+    for (utterance, result) in manifest.utterances.iter().zip(posteriors) {
+        let text = model
+            .inventory()
+            .to_text(&greedy_decode(&result.unwrap(), model.units()));
+        correct += usize::from(text == utterance.transcripts[1]);
+    }
+    correct
+}
+
 /// A manifest in `dir` listing demo utterances by absolute audio path.
 fn manifest(dir: &Path, name: &str, ids: &[&str]) -> PathBuf {
     let source = std::fs::read_to_string(demo().join("train.tsv")).unwrap();
@@ -115,15 +130,7 @@ fn overfits_a_handful_of_demo_utterances() {
     // The saved model directory reproduces the transcripts through the public inference path.
     let model = AcousticModel::load(&dir.path().join("model")).unwrap();
     assert!((model.frame_shift_seconds() - 0.03).abs() < 1e-12);
-    let manifest = Manifest::read(&path).unwrap();
-    let posteriors = manifest_posteriors(&model, &manifest, &|_, _| {}).unwrap();
-    let mut correct = 0;
-    for (utterance, result) in manifest.utterances.iter().zip(posteriors) {
-        let text = model
-            .inventory()
-            .to_text(&greedy_decode(&result.unwrap(), model.units()));
-        correct += usize::from(text == utterance.transcripts[1]);
-    }
+    let correct = exact_transcripts(&model, &path);
     assert!(
         correct >= 3,
         "{correct} of 4 transcripts reproduced exactly"
@@ -324,15 +331,7 @@ fn a_model_with_speaker_vectors_trains_and_transcribes_from_its_directory_alone(
     let model = AcousticModel::load(&moved).unwrap();
     assert_eq!(model.description().speaker_vectors.as_ref(), Some(&vectors));
     assert_eq!(model.speaker_vectors().unwrap().output_dimension(), 4);
-    let manifest = Manifest::read(&path).unwrap();
-    let posteriors = manifest_posteriors(&model, &manifest, &|_, _| {}).unwrap();
-    let mut correct = 0;
-    for (utterance, result) in manifest.utterances.iter().zip(posteriors) {
-        let text = model
-            .inventory()
-            .to_text(&greedy_decode(&result.unwrap(), model.units()));
-        correct += usize::from(text == utterance.transcripts[1]);
-    }
+    let correct = exact_transcripts(&model, &path);
     assert!(
         correct >= 3,
         "{correct} of 4 transcripts reproduced exactly"
