@@ -13,11 +13,12 @@ use isogloss_score::{align, tokenize, TokenRules, VariantMap};
 use isogloss_sweep::resources::lm_words;
 
 /// WER and flexible WER of the first interview with the shipped model, LM and lexicon at the
-/// default decoder settings, measured 28.3 % and 25.4 % (272 reference words; the interviewer's
-/// questions are not in the LM's text; 36.8 % / 33.5 % with the model of the previous recipe),
-/// plus about two points (DEVELOPERS.md).
+/// default decoder settings, measured 28.3 % and 25.0 % (272 reference words; the interviewer's
+/// questions are not in the LM's text; 28.3 % / 25.4 % with the narrow-context model before it,
+/// 36.8 % / 33.5 % with the model of the recipe before that), plus about two points
+/// (DEVELOPERS.md).
 const MAX_INTERVIEW_WER: f64 = 0.305;
-const MAX_INTERVIEW_FLEXIBLE_WER: f64 = 0.275;
+const MAX_INTERVIEW_FLEXIBLE_WER: f64 = 0.27;
 
 fn repo(path: &str) -> PathBuf {
     Path::new(env!("CARGO_MANIFEST_DIR"))
@@ -120,10 +121,10 @@ fn lm_and_lexicon_decoding_beats_greedy_on_the_test_split() {
         "LM + lexicon WER {wer} should be below greedy WER {greedy_wer}"
     );
     // The same LM and lexicon as `isogloss demo` at the default settings: the demo's measured
-    // 10.0 % / 6.3 % (README) plus about two points, as in tests/demo_cli.rs.
+    // 11.4 % / 7.3 % (README) plus about two points, as in tests/demo_cli.rs.
     assert!(
-        wer <= 0.12 && flexible_wer <= 0.083,
-        "LM + lexicon WER {wer:.3} / flexible {flexible_wer:.3} above 0.12 / 0.083"
+        wer <= 0.134 && flexible_wer <= 0.093,
+        "LM + lexicon WER {wer:.3} / flexible {flexible_wer:.3} above 0.134 / 0.093"
     );
     assert!(
         flexible_wer < wer,

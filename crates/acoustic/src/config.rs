@@ -661,7 +661,7 @@ mod tests {
         for text in [
             include_str!("../../../configs/tdnn-small.toml"),
             include_str!("../../../configs/tdnn-medium.toml"),
-            include_str!("../../../configs/tdnn-demo.toml"),
+            include_str!("../../../configs/tdnn-narrow.toml"),
             include_str!("../../../configs/tdnn-small-ivector.toml"),
         ] {
             let config = ModelConfig::parse(text).unwrap();
@@ -682,14 +682,14 @@ mod tests {
         assert_eq!(vectors.input, VectorInput::Frames);
         assert_eq!(vectors.extractor, ExtractorConfig::default());
         assert_eq!(config.input_dims(), 39 + 40);
-        // Everything else is the demo recipe.
-        let demo = ModelConfig::parse(include_str!("../../../configs/tdnn-demo.toml")).unwrap();
+        // Everything else is the narrow recipe.
+        let narrow = ModelConfig::parse(include_str!("../../../configs/tdnn-narrow.toml")).unwrap();
         assert_eq!(
             ModelConfig {
                 speaker_vectors: None,
                 ..config
             },
-            demo
+            narrow
         );
         for (old, new, expected) in [
             (
@@ -796,15 +796,16 @@ mod tests {
         assert_eq!(small.model.layers[0].keep_every, 3);
         assert_eq!(small.model.normalization, Normalization::Batch);
         assert_eq!(small.features.cmvn, isogloss_features::CmvnMode::Utterance);
-        let mut demo = ModelConfig::parse(include_str!("../../../configs/tdnn-demo.toml")).unwrap();
+        let mut narrow =
+            ModelConfig::parse(include_str!("../../../configs/tdnn-narrow.toml")).unwrap();
         for layer in [3, 4] {
-            assert_eq!(demo.model.layers[layer].taps, vec![-1, 0, 1]);
+            assert_eq!(narrow.model.layers[layer].taps, vec![-1, 0, 1]);
             assert_eq!(small.model.layers[layer].taps, vec![-3, 0, 3]);
-            demo.model.layers[layer].taps = vec![-3, 0, 3];
+            narrow.model.layers[layer].taps = vec![-3, 0, 3];
         }
         assert_eq!(
-            demo, small,
-            "the demo recipe is the small one but for the taps of layers 4 and 5"
+            narrow, small,
+            "the narrow recipe is the small one but for the taps of layers 4 and 5"
         );
     }
 

@@ -72,7 +72,7 @@ pub struct DemoArgs {
     #[arg(long)]
     train: bool,
     /// Architecture and training settings for --train.
-    #[arg(long, default_value = "configs/tdnn-demo.toml")]
+    #[arg(long, default_value = "configs/tdnn-small.toml")]
     config: PathBuf,
     /// Epochs for --train.
     #[arg(long, default_value_t = 25)]
