@@ -270,7 +270,7 @@ fn rank_pid(marker: &str, rank: usize) -> Option<i32> {
         let pid: i32 = entry.file_name().to_str()?.parse().ok()?;
         let environ = fs::read(entry.path().join("environ")).ok()?;
         let variables: Vec<&[u8]> = environ.split(|&b| b == 0).collect();
-        let has = |wanted: &str| variables.iter().any(|v| *v == wanted.as_bytes());
+        let has = |wanted: &str| variables.contains(&wanted.as_bytes());
         let exe = fs::read_link(entry.path().join("exe")).ok()?;
         let isogloss = exe.file_name()? == "isogloss";
         (isogloss && has(&wanted_job) && has(&wanted_rank)).then_some(pid)

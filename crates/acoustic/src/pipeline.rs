@@ -7,6 +7,7 @@
 //! `MODEL_DIR/cache/<key>/dev/`. The key hashes the manifests, the sizes and modification times
 //! of their audio files and the front end; normalisation (CMVN) is applied in memory afterwards.
 
+use std::borrow::Cow;
 use std::collections::BTreeMap;
 use std::io::Write;
 use std::path::{Path, PathBuf};
@@ -771,7 +772,7 @@ pub fn train_with(
     let cache = options.out.join("cache").join(&key[..16]);
     let units = trainer.units().clone();
     // A rank's share of each manifest, and where its caches live.
-    let (share_rows, train_share, dev_share, pcm_cache, dev_cache) = if distributed {
+    let (share_rows, train_share, dev_share, pcm_cache, dev_cache, share_digest) = if distributed {
         let seconds = estimated_seconds(&train_manifest, collective.as_ref())?;
         let share_rows = balanced_share(&seconds, rank, size);
         let dev_rows: Vec<usize> = (rank..dev_manifest.utterances.len())
@@ -779,23 +780,25 @@ pub fn train_with(
             .collect();
         (
             share_rows.clone(),
-            sub_manifest(&train_manifest, &share_rows),
-            sub_manifest(&dev_manifest, &dev_rows),
+            Cow::Owned(sub_manifest(&train_manifest, &share_rows)),
+            Cow::Owned(sub_manifest(&dev_manifest, &dev_rows)),
             cache.join(format!("train-{rank}-of-{size}.pcm")),
             cache.join(format!("dev-{rank}-of-{size}")),
+            format!("{train_digest}:{rank}/{size}"),
         )
     } else {
         (
             Vec::new(),
-            train_manifest.clone(),
-            dev_manifest.clone(),
+            Cow::Borrowed(&train_manifest),
+            Cow::Borrowed(&dev_manifest),
             cache.join("train.pcm"),
             cache.join("dev"),
+            train_digest.clone(),
         )
     };
     let mut training_set = prepare_training_set(
         &train_share,
-        &format!("{train_digest}:{rank}/{size}"),
+        &share_digest,
         train_column,
         &units,
         lexicon.as_ref(),

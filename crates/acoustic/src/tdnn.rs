@@ -1412,7 +1412,7 @@ mod tests {
         let x = input(&train["x"]);
         let valid = counts(&train["valid"]);
         let (y, _) = net
-            .forward(x.as_tensor(), Some((&valid, 0.0, &mut rng)))
+            .forward(x.as_tensor(), Some((&valid, 0.0, &mut rng)), None)
             .unwrap();
         let (batch, frames_out, _) = y.dims3().unwrap();
         let outputs: Vec<Vec<Vec<f32>>> = y.to_vec3().unwrap();
@@ -1457,7 +1457,7 @@ mod tests {
             let valid = counts(&pass["valid"]);
             let x = input(&pass["x"]);
             let (_, statistics) = net
-                .forward(x.as_tensor(), Some((&valid, 0.0, &mut rng)))
+                .forward(x.as_tensor(), Some((&valid, 0.0, &mut rng)), None)
                 .unwrap();
             net.update_running_statistics(&statistics.unwrap()).unwrap();
             for name in ["running_mean", "running_var"] {
@@ -1467,7 +1467,7 @@ mod tests {
         }
         let inference = &fixture["inference"];
         let (y, statistics) = net
-            .forward(input(&inference["x"]).as_tensor(), None)
+            .forward(input(&inference["x"]).as_tensor(), None, None)
             .unwrap();
         assert!(statistics.is_none());
         let ours: Vec<f32> = y.flatten_all().unwrap().to_vec1().unwrap();
