@@ -1051,6 +1051,158 @@ mod tests {
             .collect()
     }
 
+    /// Ranks as threads of one process: every sum goes through one shared buffer between
+    /// barriers (the order in which the ranks add is whatever the threads' timing makes it).
+    struct ThreadRanks {
+        rank: usize,
+        size: usize,
+        shared: Arc<(std::sync::Mutex<Vec<f64>>, std::sync::Barrier)>,
+    }
+
+    impl ThreadRanks {
+        fn sum(&self, values: &mut [f64]) {
+            let (buffer, barrier) = &*self.shared;
+            barrier.wait();
+            if self.rank == 0 {
+                *buffer.lock().unwrap() = vec![0.0; values.len()];
+            }
+            barrier.wait();
+            for (total, v) in buffer.lock().unwrap().iter_mut().zip(values.iter()) {
+                *total += *v;
+            }
+            barrier.wait();
+            values.copy_from_slice(&buffer.lock().unwrap());
+            barrier.wait();
+        }
+    }
+
+    impl Collective for ThreadRanks {
+        fn rank(&self) -> usize {
+            self.rank
+        }
+
+        fn size(&self) -> usize {
+            self.size
+        }
+
+        fn sum_f64(&self, _what: &str, values: &mut [f64]) -> Result<(), AcousticError> {
+            self.sum(values);
+            Ok(())
+        }
+
+        fn sum_f32(&self, _what: &str, values: &mut [f32]) -> Result<(), AcousticError> {
+            let mut wide: Vec<f64> = values.iter().map(|&v| f64::from(v)).collect();
+            self.sum(&mut wide);
+            for (v, w) in values.iter_mut().zip(wide) {
+                *v = w as f32;
+            }
+            Ok(())
+        }
+
+        fn abort(&self, code: i32) -> ! {
+            panic!("rank {} aborted with {code}", self.rank)
+        }
+    }
+
+    /// Data parallelism at the level of the trainer, with ranks as threads: three ranks, each
+    /// holding its length-balanced share of the training set and every third dev utterance,
+    /// train two epochs of a batch-normalised network with dropout and reach the weights and
+    /// the epoch records of one process (up to the order of sums). Small batches leave some
+    /// ranks without a part in some batches.
+    #[test]
+    fn ranks_train_the_weights_of_one_process() {
+        let mut config = config_with(Normalization::Batch);
+        config.training.batch_frames = 90;
+        let train = synthetic(14, 1);
+        let dev = synthetic(5, 2);
+        let mut alone = Trainer::new(config.clone(), units(), 5, 42).unwrap();
+        let single: Vec<EpochRecord> = (0..2)
+            .map(|_| alone.run_epoch(&set(&train), &dev, &mut |_| {}).unwrap())
+            .collect();
+        let size = 3;
+        let shared = Arc::new((
+            std::sync::Mutex::new(Vec::new()),
+            std::sync::Barrier::new(size),
+        ));
+        let lengths: Vec<f64> = train.iter().map(|u| u.variants[0].nrows() as f64).collect();
+        let idle = std::sync::atomic::AtomicUsize::new(0);
+        let ranks: Vec<(Vec<(String, Vec<f32>)>, Vec<EpochRecord>)> = std::thread::scope(|scope| {
+            let handles: Vec<_> = (0..size)
+                .map(|rank| {
+                    let shared = Arc::clone(&shared);
+                    let (config, train, dev, lengths, idle) =
+                        (&config, &train, &dev, &lengths, &idle);
+                    scope.spawn(move || {
+                        let share = crate::collective::balanced_share(lengths, rank, size);
+                        let local: Vec<PreparedUtterance> =
+                            share.iter().map(|&i| train[i].clone()).collect();
+                        let mut local_index = vec![None; train.len()];
+                        for (k, &i) in share.iter().enumerate() {
+                            local_index[i] = Some(k);
+                        }
+                        let local_set = set(&local);
+                        let whole = crate::data::ShardedSet::new(
+                            &local_set,
+                            train.iter().map(|u| u.id.clone()).collect(),
+                            train.iter().map(|u| u.variants[0].nrows()).collect(),
+                            local_index,
+                        )
+                        .unwrap();
+                        let my_dev: Vec<PreparedUtterance> =
+                            dev.iter().skip(rank).step_by(size).cloned().collect();
+                        let mut trainer = Trainer::new(config.clone(), units(), 5, 42).unwrap();
+                        trainer.set_collective(Arc::new(ThreadRanks { rank, size, shared }));
+                        let records = (0..2)
+                            .map(|_| trainer.run_epoch(&whole, &my_dev, &mut |_| {}).unwrap())
+                            .collect();
+                        let epoch_rng_batches = {
+                            let mut rng = epoch_rng(42, 1);
+                            let lengths: Vec<usize> =
+                                train.iter().map(|u| u.variants[0].nrows()).collect();
+                            bucketed_batches(&lengths, config.training.batch_frames, &mut rng)
+                        };
+                        let without_me = epoch_rng_batches
+                            .iter()
+                            .filter(|batch| batch.iter().all(|i| !share.contains(i)))
+                            .count();
+                        idle.fetch_add(without_me, std::sync::atomic::Ordering::Relaxed);
+                        (weights(&trainer), records)
+                    })
+                })
+                .collect();
+            handles.into_iter().map(|h| h.join().unwrap()).collect()
+        });
+        assert!(
+            idle.into_inner() > 0,
+            "some rank has no part in some batch of epoch 1"
+        );
+        let expected = weights(&alone);
+        for (rank, (weights, records)) in ranks.iter().enumerate() {
+            for ((name, a), (other, b)) in expected.iter().zip(weights) {
+                assert_eq!(name, other);
+                for (x, y) in a.iter().zip(b) {
+                    assert!(
+                        (x - y).abs() <= 1e-5 * x.abs().max(1.0),
+                        "rank {rank}, {name}: {x} vs {y}"
+                    );
+                }
+            }
+            for (one, many) in single.iter().zip(records) {
+                assert_eq!(one.updates, many.updates);
+                for (x, y) in [
+                    (one.train_loss, many.train_loss),
+                    (one.dev_loss, many.dev_loss),
+                    (one.dev_unit_error_rate, many.dev_unit_error_rate),
+                ] {
+                    assert!(
+                        (x - y).abs() <= 1e-5 * x.abs().max(1.0),
+                        "{one:?} vs {many:?}"
+                    );
+                }
+            }
+        }
+    }
+
     #[test]
     fn resuming_from_a_checkpoint_gives_identical_weights() {
         for normalization in [Normalization::Layer, Normalization::Batch] {
