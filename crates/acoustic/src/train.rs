@@ -1104,6 +1104,9 @@ mod tests {
         }
     }
 
+    /// A rank's weights by name and its epoch records.
+    type RankOutcome = (Vec<(String, Vec<f32>)>, Vec<EpochRecord>);
+
     /// Data parallelism at the level of the trainer, with ranks as threads: three ranks, each
     /// holding its length-balanced share of the training set and every third dev utterance,
     /// train two epochs of a batch-normalised network with dropout and reach the weights and
@@ -1126,7 +1129,7 @@ mod tests {
         ));
         let lengths: Vec<f64> = train.iter().map(|u| u.variants[0].nrows() as f64).collect();
         let idle = std::sync::atomic::AtomicUsize::new(0);
-        let ranks: Vec<(Vec<(String, Vec<f32>)>, Vec<EpochRecord>)> = std::thread::scope(|scope| {
+        let ranks: Vec<RankOutcome> = std::thread::scope(|scope| {
             let handles: Vec<_> = (0..size)
                 .map(|rank| {
                     let shared = Arc::clone(&shared);
