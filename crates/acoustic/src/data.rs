@@ -34,6 +34,94 @@ pub trait TrainingData: Sync {
         rng: &mut ChaCha8Rng,
         fits: &dyn Fn(usize) -> bool,
     ) -> Array2<f32>;
+    /// True when this process holds the utterance's features (always, except for a rank's view
+    /// of a data-parallel run's training set, [`ShardedSet`]).
+    fn is_local(&self, index: usize) -> bool {
+        let _ = index;
+        true
+    }
+}
+
+/// A rank's view of the training set of a data-parallel run: every utterance of the whole set
+/// by its index in it (the index a single process would give it: its ids and lengths, so that
+/// every rank cuts the same batches and keys the same random streams), features only for the
+/// rank's own share, held by `local` under its own indices.
+pub struct ShardedSet<'a> {
+    local: &'a dyn TrainingData,
+    ids: Vec<String>,
+    frames: Vec<usize>,
+    local_index: Vec<Option<usize>>,
+}
+
+impl<'a> ShardedSet<'a> {
+    /// The whole set's `ids` and `frames`; `local_index[i]` is utterance `i`'s index in `local`
+    /// when this rank holds it. The three lists must have the same length.
+    pub fn new(
+        local: &'a dyn TrainingData,
+        ids: Vec<String>,
+        frames: Vec<usize>,
+        local_index: Vec<Option<usize>>,
+    ) -> Result<Self, crate::AcousticError> {
+        if ids.len() != frames.len() || ids.len() != local_index.len() {
+            return Err(crate::AcousticError::Shape(format!(
+                "a sharded training set of {} ids, {} lengths and {} owner entries",
+                ids.len(),
+                frames.len(),
+                local_index.len()
+            )));
+        }
+        if local_index.iter().flatten().any(|&k| k >= local.len()) {
+            return Err(crate::AcousticError::Shape(format!(
+                "a sharded training set pointing past the {} utterances of its share",
+                local.len()
+            )));
+        }
+        Ok(ShardedSet {
+            local,
+            ids,
+            frames,
+            local_index,
+        })
+    }
+}
+
+impl TrainingData for ShardedSet<'_> {
+    fn len(&self) -> usize {
+        self.frames.len()
+    }
+
+    fn id(&self, index: usize) -> &str {
+        &self.ids[index]
+    }
+
+    fn labels(&self, index: usize) -> &[u32] {
+        match self.local_index[index] {
+            Some(k) => self.local.labels(k),
+            None => &[],
+        }
+    }
+
+    fn frames(&self, index: usize) -> usize {
+        self.frames[index]
+    }
+
+    /// Another rank's utterance has no features here: an empty matrix (the training loop
+    /// only asks for local ones).
+    fn features(
+        &self,
+        index: usize,
+        rng: &mut ChaCha8Rng,
+        fits: &dyn Fn(usize) -> bool,
+    ) -> Array2<f32> {
+        match self.local_index[index] {
+            Some(k) => self.local.features(k, rng, fits),
+            None => Array2::zeros((0, 0)),
+        }
+    }
+
+    fn is_local(&self, index: usize) -> bool {
+        self.local_index[index].is_some()
+    }
 }
 
 /// Augments a feature matrix in place (e.g. SpecAugment masks), with the utterance's generator.

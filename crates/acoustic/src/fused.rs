@@ -23,8 +23,16 @@
 //!
 //! Reductions over frames (bias, gain and shift gradients, batch statistics) are summed per
 //! utterance and then over utterances in order, so results do not depend on the thread count.
+//!
+//! In a data-parallel run ([`FusedLayer::with_collective`]) the operation sees one rank's part
+//! of the batch: batch normalisation sums its unit sums and frame count, then its squared
+//! deviations, over the ranks before normalising, and in the backward pass the batch terms
+//! `Σ g` and `Σ g·x̂`; the gain and shift gradients it returns stay the rank's own (the trainer
+//! sums every gradient over the ranks once).
 
 use std::sync::{Arc, Mutex};
+
+use crate::collective::Collective;
 
 use candle_core::{CpuStorage, CustomOp3, Layout, Shape, Storage, Tensor};
 use gemm::{gemm, Parallelism};
@@ -105,6 +113,9 @@ pub(crate) struct FusedLayer {
     /// Where the forward pass leaves the batch statistics (batch normalisation), for the caller:
     /// candle keeps the operation itself.
     statistics: Arc<Mutex<Option<UnitStatistics>>>,
+    /// The ranks of a data-parallel run, when there are several: batch normalisation then
+    /// sums its statistics and its gradient's batch terms over every rank's part of the batch.
+    collective: Option<Arc<dyn Collective>>,
 }
 
 /// The batch statistics a [`FusedLayer`] leaves behind.
@@ -270,7 +281,15 @@ impl FusedLayer {
             input_grad,
             saved: Mutex::new(None),
             statistics: StatisticsSlot::default(),
+            collective: None,
         }
+    }
+
+    /// Batch normalisation over the whole batch of a data-parallel run, of which this operation
+    /// sees this rank's part (see the module documentation).
+    pub fn with_collective(mut self, collective: Option<Arc<dyn Collective>>) -> Self {
+        self.collective = collective;
+        self
     }
 
     fn param_rows(&self) -> usize {
@@ -592,7 +611,7 @@ impl FusedLayer {
         inverse: &[f32],
         valid: &[usize],
         gz: &mut [f32],
-    ) -> Vec<f32> {
+    ) -> candle_core::Result<Vec<f32>> {
         let h = self.output_dims;
         let (gain, shift) = (&params[..h], &params[h..2 * h]);
         let mean = &statistics.mean;
@@ -632,9 +651,17 @@ impl FusedLayer {
                 dot[j] += f64::from(part_dot[j]);
             }
         }
+        // The parameter gradients stay this rank's (the trainer sums them over the ranks with
+        // every other gradient); the batch terms need the sums over the whole batch.
+        let mut batch_sums: Vec<f64> = sum.iter().chain(&dot).copied().collect();
+        if let Some(collective) = &self.collective {
+            collective
+                .sum_f64("the batch-norm gradient sums", &mut batch_sums)
+                .map_err(|e| candle_core::Error::Msg(e.to_string()))?;
+        }
         let n = statistics.frames as f64;
-        let mean_g: Vec<f32> = sum.iter().map(|v| (v / n) as f32).collect();
-        let mean_gx: Vec<f32> = dot.iter().map(|v| (v / n) as f32).collect();
+        let mean_g: Vec<f32> = batch_sums[..h].iter().map(|v| (v / n) as f32).collect();
+        let mean_gx: Vec<f32> = batch_sums[h..].iter().map(|v| (v / n) as f32).collect();
         // The batch-mean terms, on valid frames only.
         gz.par_chunks_mut(chunk).enumerate().for_each(|(b, gz_u)| {
             for t in 0..g.frames_out {
@@ -656,7 +683,7 @@ impl FusedLayer {
                 }
             }
         });
-        dot.iter().chain(&sum).map(|&v| v as f32).collect()
+        Ok(dot.iter().chain(&sum).map(|&v| v as f32).collect())
     }
 }
 
@@ -710,6 +737,7 @@ fn unit_statistics(
     z: &[f32],
     valid: &[usize],
     h: usize,
+    collective: Option<&dyn Collective>,
 ) -> candle_core::Result<UnitStatistics> {
     if valid.len() != g.batch || valid.iter().any(|&v| v > g.frames_out) {
         candle_core::bail!(
@@ -718,12 +746,7 @@ fn unit_statistics(
             g.frames_out
         )
     }
-    let frames: usize = valid.iter().sum();
-    if frames == 0 {
-        candle_core::bail!(
-            "fused TDNN layer: batch normalisation over a batch without valid frames"
-        )
-    }
+    let local_frames: usize = valid.iter().sum();
     // Sums per utterance in f32 (the loops vectorise), over utterances in f64.
     let total = |centre: Option<&[f32]>| -> Vec<f64> {
         let parts: Vec<Vec<f32>> = (0..g.batch)
@@ -756,9 +779,41 @@ fn unit_statistics(
         }
         sums
     };
+    let mut sums = total(None);
+    sums.push(local_frames as f64);
+    global_statistics(collective, sums, |mean| total(Some(mean)))
+}
+
+/// Mean and variance from this rank's unit sums (with its valid frame count appended), summed
+/// over the ranks when there are several; `centred(mean)` gives this rank's sums of squared
+/// deviations from the (global) mean. A rank with no part in the batch passes zeros.
+pub(crate) fn global_statistics(
+    collective: Option<&dyn Collective>,
+    mut sums: Vec<f64>,
+    centred: impl FnOnce(&[f32]) -> Vec<f64>,
+) -> candle_core::Result<UnitStatistics> {
+    let to_candle = |e: crate::AcousticError| candle_core::Error::Msg(e.to_string());
+    if let Some(collective) = collective {
+        collective
+            .sum_f64("the batch-norm means", &mut sums)
+            .map_err(to_candle)?;
+    }
+    let frames_sum = sums.pop().unwrap_or(0.0);
+    if frames_sum < 1.0 {
+        candle_core::bail!(
+            "fused TDNN layer: batch normalisation over a batch without valid frames"
+        )
+    }
+    let frames = frames_sum as usize;
     let n = frames as f64;
-    let mean: Vec<f32> = total(None).iter().map(|&s| (s / n) as f32).collect();
-    let variance: Vec<f32> = total(Some(&mean)).iter().map(|&s| (s / n) as f32).collect();
+    let mean: Vec<f32> = sums.iter().map(|&s| (s / n) as f32).collect();
+    let mut squares = centred(&mean);
+    if let Some(collective) = collective {
+        collective
+            .sum_f64("the batch-norm variances", &mut squares)
+            .map_err(to_candle)?;
+    }
+    let variance: Vec<f32> = squares.iter().map(|&s| (s / n) as f32).collect();
     Ok(UnitStatistics {
         mean,
         variance,
@@ -807,7 +862,7 @@ impl CustomOp3 for FusedLayer {
         let (out, saved) = match &self.transform {
             Transform::Bias | Transform::LayerNorm => self.frame_forward(&g, &z, params),
             Transform::BatchNorm { valid } => {
-                let statistics = unit_statistics(&g, &z, valid, h)?;
+                let statistics = unit_statistics(&g, &z, valid, h, self.collective.as_deref())?;
                 let inverse = inverse_deviations(&statistics.variance);
                 let out = self.unit_forward(&g, &z, [&statistics.mean, &inverse, rows(0), rows(1)]);
                 *self.statistics.lock().map_err(|_| {
@@ -875,9 +930,9 @@ impl CustomOp3 for FusedLayer {
                             statistics,
                             inverse,
                         },
-                    ) => Ok(self.unit_backward(
+                    ) => self.unit_backward(
                         &g, gout, params, z, statistics, inverse, valid, &mut gz,
-                    )),
+                    ),
                     (Transform::FixedNorm, _) => candle_core::bail!(
                         "fused TDNN layer: batch normalisation with running statistics is for inference; it has no backward pass"
                     ),

@@ -13,6 +13,9 @@
 //! * [`speaker_vectors`] — an online i-vector appended to every input frame, computed alike in
 //!   training and inference, and the extractor trained (or read from the cache) before the
 //!   network.
+//! * [`collective`] — sums over the ranks of a data-parallel run (one process, or MPI with the
+//!   `mpi` feature): the training loop, the batch-normalised layers and the dev pass reduce
+//!   through it, and each rank trains on its share of every batch.
 //! * [`model`] — `model.toml` + `model.safetensors`, [`AcousticModel::log_posteriors`] and
 //!   [`greedy_decode`].
 //!
@@ -48,6 +51,7 @@
 #![deny(missing_docs)]
 
 pub mod audio_set;
+pub mod collective;
 pub mod config;
 pub mod ctc;
 pub mod data;
@@ -148,6 +152,9 @@ pub enum AcousticError {
     /// utterance or file).
     #[error(transparent)]
     Speaker(#[from] isogloss_speaker::SpeakerError),
+    /// A data-parallel run whose ranks cannot work together (MPI unusable, ranks disagreeing).
+    #[error("data-parallel training: {0}")]
+    Collective(String),
     /// An error from the tensor library.
     #[error("tensor operation failed: {0}")]
     Tensor(#[from] candle_core::Error),

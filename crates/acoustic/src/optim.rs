@@ -121,11 +121,18 @@ impl AdamW {
         parameters: &BTreeMap<String, Var>,
         grads: &GradStore,
     ) -> Result<f64, AcousticError> {
+        Self::norm_of(
+            parameters
+                .values()
+                .filter_map(|var| grads.get(var.as_tensor())),
+        )
+    }
+
+    /// The global L2 norm of the given gradients.
+    pub fn norm_of<'a>(grads: impl Iterator<Item = &'a Tensor>) -> Result<f64, AcousticError> {
         let mut sum = 0f64;
-        for var in parameters.values() {
-            if let Some(grad) = grads.get(var.as_tensor()) {
-                sum += grad.sqr()?.sum_all()?.to_scalar::<f32>()? as f64;
-            }
+        for grad in grads {
+            sum += grad.sqr()?.sum_all()?.to_scalar::<f32>()? as f64;
         }
         Ok(sum.sqrt())
     }
@@ -148,10 +155,28 @@ impl AdamW {
         learning_rate: f64,
         grad_scale: f64,
     ) -> Result<(), AcousticError> {
+        self.update_with(
+            parameters,
+            |_, var| grads.get(var.as_tensor()).cloned(),
+            learning_rate,
+            grad_scale,
+        )
+    }
+
+    /// [`AdamW::update`] with the gradient of each parameter given by `grad(name, var)` (a
+    /// data-parallel run's gradients summed over the ranks); a parameter without one is left
+    /// alone.
+    pub fn update_with(
+        &mut self,
+        parameters: &BTreeMap<String, Var>,
+        grad: impl Fn(&str, &Var) -> Option<Tensor>,
+        learning_rate: f64,
+        grad_scale: f64,
+    ) -> Result<(), AcousticError> {
         self.step += 1;
         let t = self.step as i32;
         for (name, var) in parameters {
-            let Some(grad) = grads.get(var.as_tensor()) else {
+            let Some(grad) = grad(name, var) else {
                 continue;
             };
             let grad: Tensor = grad.contiguous()?;

@@ -7,9 +7,11 @@
 //! `MODEL_DIR/cache/<key>/dev/`. The key hashes the manifests, the sizes and modification times
 //! of their audio files and the front end; normalisation (CMVN) is applied in memory afterwards.
 
+use std::borrow::Cow;
 use std::collections::BTreeMap;
 use std::io::Write;
 use std::path::{Path, PathBuf};
+use std::sync::Arc;
 
 use isogloss_corpus::Manifest;
 use isogloss_features::{
@@ -22,8 +24,9 @@ use rayon::prelude::*;
 use sha2::{Digest, Sha256};
 
 use crate::audio_set::{AudioSet, AudioUtterance, PcmStore, Perturbation};
+use crate::collective::{balanced_share, Collective, SingleProcess};
 use crate::config::ModelConfig;
-use crate::data::TrainingData;
+use crate::data::{ShardedSet, TrainingData};
 use crate::model::{AcousticModel, ModelDescription, Provenance, MODEL_FORMAT};
 use crate::speaker_vectors::{
     cached_extractor, train_extractor, with_vectors, ExtractorOutcome, ExtractorProgress,
@@ -463,6 +466,8 @@ fn prepare_split(
 /// cannot fit their frames skipped, per-speaker statistics when the front end wants them.
 struct TrainingSet {
     set: AudioSet,
+    /// The manifest row of each utterance of `set`, in its order.
+    rows: Vec<usize>,
     failed: Vec<String>,
     skipped: Vec<(String, usize, usize)>,
 }
@@ -476,7 +481,7 @@ fn prepare_training_set(
     lexicon: Option<&BTreeMap<String, Vec<String>>>,
     config: &ModelConfig,
     trainer: &Trainer,
-    cache: &Path,
+    pcm_cache: &Path,
     on_event: &mut dyn FnMut(&PipelineEvent),
 ) -> Result<TrainingSet, AcousticError> {
     let mut failed = Vec::new();
@@ -490,16 +495,12 @@ fn prepare_training_set(
         on_event,
     )?;
     let progress = std::sync::Mutex::new((0usize, 0usize));
-    let (store, failures) = PcmStore::open_or_build(
-        &cache.join("train.pcm"),
-        manifest,
-        digest,
-        &|done, total| {
+    let (store, failures) =
+        PcmStore::open_or_build(pcm_cache, manifest, digest, &|done, total| {
             if let Ok(mut p) = progress.lock() {
                 *p = (done, total);
             }
-        },
-    )?;
+        })?;
     if let Ok(&(done, total)) = progress.lock().as_deref() {
         on_event(&PipelineEvent::Features {
             split: "train",
@@ -568,6 +569,7 @@ fn prepare_training_set(
         masks: (masks.time_masks > 0 || masks.frequency_masks > 0)
             .then(|| (masks.clone(), config.features.delta_order() + 1)),
     };
+    let rows = utterances.iter().map(|u| u.row).collect();
     let set = AudioSet::new(
         store,
         utterances,
@@ -577,9 +579,59 @@ fn prepare_training_set(
     )?;
     Ok(TrainingSet {
         set,
+        rows,
         failed,
         skipped,
     })
+}
+
+/// The rows of `manifest` at `rows` (in that order), as a manifest of their own: a rank's share.
+fn sub_manifest(manifest: &Manifest, rows: &[usize]) -> Manifest {
+    Manifest {
+        path: manifest.path.clone(),
+        transcript_columns: manifest.transcript_columns.clone(),
+        utterances: rows
+            .iter()
+            .map(|&i| manifest.utterances[i].clone())
+            .collect(),
+    }
+}
+
+/// Seconds of audio of every row of `manifest`, from its `start`/`end` or else the audio file's
+/// header (0 where the header cannot be read: the rank that decodes the row reports it). Each
+/// rank reads the headers of every `size`-th row and the ranks sum the lists.
+fn estimated_seconds(
+    manifest: &Manifest,
+    collective: &dyn Collective,
+) -> Result<Vec<f64>, AcousticError> {
+    let (rank, size) = (collective.rank(), collective.size());
+    let mine: Vec<usize> = (rank..manifest.utterances.len()).step_by(size).collect();
+    let files: std::collections::BTreeSet<&Path> = mine
+        .iter()
+        .map(|&i| &manifest.utterances[i])
+        .filter(|u| u.end.is_none())
+        .map(|u| u.audio.as_path())
+        .collect();
+    let files: Vec<&Path> = files.into_iter().collect();
+    let durations: BTreeMap<&Path, f64> = files
+        .par_iter()
+        .map(|&path| {
+            let seconds = isogloss_audio::probe(path).map_or(0.0, |info| info.duration_seconds);
+            (path, seconds)
+        })
+        .collect();
+    let mut seconds = vec![0f64; manifest.utterances.len()];
+    for i in mine {
+        let utterance = &manifest.utterances[i];
+        let start = utterance.start.unwrap_or(0.0);
+        let end = utterance
+            .end
+            .or_else(|| durations.get(utterance.audio.as_path()).copied())
+            .unwrap_or(start);
+        seconds[i] = (end - start).max(0.0);
+    }
+    collective.sum_f64("the lengths of the training manifest's rows", &mut seconds)?;
+    Ok(seconds)
 }
 
 /// The model a warm start reads, checked against the run's configuration: the network and the
@@ -612,6 +664,22 @@ pub fn train(
     options: &TrainOptions,
     on_event: &mut dyn FnMut(&PipelineEvent),
 ) -> Result<TrainSummary, AcousticError> {
+    train_with(options, Arc::new(SingleProcess), on_event)
+}
+
+/// [`train`] as one rank of a data-parallel run over `collective` (every rank calls it with
+/// the same options). Each rank decodes and caches only its share of the training manifest
+/// (balanced by length, [`balanced_share`]; `cache/<key>/train-R-of-N.pcm`) and of the dev
+/// manifest (every N-th row; `cache/<key>/dev-R-of-N/`); rank 0 alone writes the checkpoint,
+/// the log, the curve and the model. With one rank this is [`train`].
+pub fn train_with(
+    options: &TrainOptions,
+    collective: Arc<dyn Collective>,
+    on_event: &mut dyn FnMut(&PipelineEvent),
+) -> Result<TrainSummary, AcousticError> {
+    let (rank, size) = (collective.rank(), collective.size());
+    let distributed = size > 1;
+    let writer = rank == 0;
     let (train_manifest, train_column) = read_manifest(&options.train_manifest, &options.column)?;
     let (dev_manifest, dev_column) = read_manifest(&options.dev_manifest, &options.column)?;
     let checkpoint = checkpoint_path(&options.out);
@@ -670,7 +738,22 @@ pub fn train(
     if let Some(epochs) = options.epochs {
         trainer.set_epochs(epochs);
     }
+    trainer.set_collective(Arc::clone(&collective));
     let config = trainer.config().clone();
+    if distributed {
+        let refused = if config.features.cmvn == CmvnMode::Speaker {
+            Some("[features] cmvn = \"speaker\" (its statistics span the ranks' shares)")
+        } else if config.speaker_vectors.is_some() {
+            Some("[speaker_vectors] (the extractor is trained on the whole training set)")
+        } else {
+            None
+        };
+        if let Some(what) = refused {
+            return Err(AcousticError::Collective(format!(
+                "{what} is not supported with more than one rank yet; train it as one process"
+            )));
+        }
+    }
     let seed = trainer.progress().seed;
     if trainer.units().kind == UnitKind::Phones && lexicon.is_none() {
         return Err(AcousticError::Config(
@@ -688,25 +771,50 @@ pub fn train(
     let key = format!("{:x}", Sha256::digest(key_text.as_bytes()));
     let cache = options.out.join("cache").join(&key[..16]);
     let units = trainer.units().clone();
+    // A rank's share of each manifest, and where its caches live.
+    let (share_rows, train_share, dev_share, pcm_cache, dev_cache, share_digest) = if distributed {
+        let seconds = estimated_seconds(&train_manifest, collective.as_ref())?;
+        let share_rows = balanced_share(&seconds, rank, size);
+        let dev_rows: Vec<usize> = (rank..dev_manifest.utterances.len())
+            .step_by(size)
+            .collect();
+        (
+            share_rows.clone(),
+            Cow::Owned(sub_manifest(&train_manifest, &share_rows)),
+            Cow::Owned(sub_manifest(&dev_manifest, &dev_rows)),
+            cache.join(format!("train-{rank}-of-{size}.pcm")),
+            cache.join(format!("dev-{rank}-of-{size}")),
+            format!("{train_digest}:{rank}/{size}"),
+        )
+    } else {
+        (
+            Vec::new(),
+            Cow::Borrowed(&train_manifest),
+            Cow::Borrowed(&dev_manifest),
+            cache.join("train.pcm"),
+            cache.join("dev"),
+            train_digest.clone(),
+        )
+    };
     let mut training_set = prepare_training_set(
-        &train_manifest,
-        &train_digest,
+        &train_share,
+        &share_digest,
         train_column,
         &units,
         lexicon.as_ref(),
         &config,
         &trainer,
-        &cache,
+        &pcm_cache,
         on_event,
     )?;
     let mut dev_split = prepare_split(
         "dev",
-        &dev_manifest,
+        &dev_share,
         dev_column,
         &units,
         lexicon.as_ref(),
         &config,
-        &cache.join("dev"),
+        &dev_cache,
         on_event,
     )?;
     if let Some(vectors) = &config.speaker_vectors {
@@ -778,13 +886,54 @@ pub fn train(
             "skipped dev utterance {id}: needs {needed} output frames, has {available}"
         )));
     }
-    if dev_admission.kept.is_empty() {
+    // The whole set's counts (a rank may hold no dev utterance).
+    let mut counts = [
+        dev_admission.kept.len() as f64,
+        training_set.skipped.len() as f64,
+        (training_set.failed.len() + dev_split.failed.len()) as f64,
+    ];
+    if distributed {
+        collective.sum_f64("the counts of usable utterances", &mut counts)?;
+    }
+    let [dev_count, skipped_count, failed_count] = counts.map(|c| c as usize);
+    if dev_count == 0 {
         return Err(AcousticError::Input {
             path: options.dev_manifest.clone(),
             problem: "no dev utterance is usable (all failed or were skipped)".into(),
         });
     }
-    let train_set = &training_set.set;
+    let sharded;
+    let train_set: &dyn TrainingData = if distributed {
+        // Every rank learns every admitted row's length; the whole set is those rows in
+        // manifest order, as a single process admits them.
+        let mut frames = vec![0f64; train_manifest.utterances.len()];
+        for (k, &row) in training_set.rows.iter().enumerate() {
+            frames[share_rows[row]] = training_set.set.frames(k) as f64;
+        }
+        collective.sum_f64(
+            "the lengths of the admitted training utterances",
+            &mut frames,
+        )?;
+        let owner: BTreeMap<usize, usize> = training_set
+            .rows
+            .iter()
+            .enumerate()
+            .map(|(k, &row)| (share_rows[row], k))
+            .collect();
+        let admitted: Vec<usize> = (0..frames.len()).filter(|&r| frames[r] > 0.0).collect();
+        sharded = ShardedSet::new(
+            &training_set.set,
+            admitted
+                .iter()
+                .map(|&r| train_manifest.utterances[r].id.clone())
+                .collect(),
+            admitted.iter().map(|&r| frames[r] as usize).collect(),
+            admitted.iter().map(|r| owner.get(r).copied()).collect(),
+        )?;
+        &sharded
+    } else {
+        &training_set.set
+    };
     if train_set.is_empty() {
         return Err(AcousticError::Input {
             path: options.train_manifest.clone(),
@@ -792,21 +941,24 @@ pub fn train(
         });
     }
     let log_path = options.out.join("training.jsonl");
-    append_log(
-        &log_path,
-        &serde_json::json!({
-            "event": if options.resume { "resume" } else { "start" },
-            "epochs_done": trainer.progress().epochs_done,
-            "train_utterances": train_set.len(),
-            "skipped_utterances": training_set.skipped.len(),
-            "failed_utterances": training_set.failed.len() + dev_split.failed.len(),
-            "dev_utterances": dev_admission.kept.len(),
-            "units": units.len(),
-            "parameters": config.model.parameter_count(config.features.dims(), units.len()),
-            "seed": seed,
-            "minutes": options.minutes,
-        }),
-    )?;
+    if writer {
+        append_log(
+            &log_path,
+            &serde_json::json!({
+                "event": if options.resume { "resume" } else { "start" },
+                "epochs_done": trainer.progress().epochs_done,
+                "train_utterances": train_set.len(),
+                "skipped_utterances": skipped_count,
+                "failed_utterances": failed_count,
+                "dev_utterances": dev_count,
+                "units": units.len(),
+                "parameters": config.model.parameter_count(config.features.dims(), units.len()),
+                "seed": seed,
+                "minutes": options.minutes,
+                "ranks": size,
+            }),
+        )?;
+    }
     let mut summary = TrainSummary {
         skipped_utterances: training_set.skipped.clone(),
         failed_utterances: training_set
@@ -822,9 +974,9 @@ pub fn train(
         trainer.set_deadline(Some(std::time::Instant::now() + budget));
     }
     let mut log_error = None;
-    while !trainer.finished() {
+    while trainer.keep_going()? {
         let record = trainer.run_epoch(train_set, &dev_admission.kept, &mut |event| {
-            if let TrainingEvent::BatchSkipped { utterances, .. } = event {
+            if let (true, TrainingEvent::BatchSkipped { utterances, .. }) = (writer, event) {
                 let line = serde_json::json!({"event": "batch_skipped", "reason": "non-finite loss or gradient", "utterances": utterances});
                 if let Err(e) = append_log(&log_path, &line) {
                     log_error = Some(e);
@@ -835,7 +987,9 @@ pub fn train(
         if let Some(e) = log_error.take() {
             return Err(e);
         }
-        trainer.save_checkpoint(&checkpoint)?;
+        if writer {
+            trainer.save_checkpoint(&checkpoint)?;
+        }
         if record.improved {
             let description = ModelDescription {
                 format: MODEL_FORMAT,
@@ -850,7 +1004,7 @@ pub fn train(
                     dev_loss: record.dev_loss,
                     dev_unit_error_rate: record.dev_unit_error_rate,
                     train_utterances: train_set.len(),
-                    skipped_utterances: training_set.skipped.len(),
+                    skipped_utterances: skipped_count,
                     seed,
                     written_by: format!("isogloss-acoustic {}", env!("CARGO_PKG_VERSION")),
                     updates: trainer.updates(),
@@ -865,8 +1019,13 @@ pub fn train(
                 self_training: Vec::new(),
                 speaker_vectors: config.speaker_vectors.clone(),
             };
-            AcousticModel::save(&options.out, &description, &trainer.model_tensors())?;
+            if writer {
+                AcousticModel::save(&options.out, &description, &trainer.model_tensors())?;
+            }
             summary.best = Some(record.clone());
+        }
+        if !writer {
+            continue;
         }
         let mut line = serde_json::to_value(&record)
             .map_err(|e| AcousticError::Config(format!("epoch record does not serialise: {e}")))?;

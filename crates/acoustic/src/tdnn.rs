@@ -35,6 +35,7 @@
 //! `⌈frames / subsampling⌉` frames — see [`Tdnn::output_frames`].
 
 use std::collections::BTreeMap;
+use std::sync::Arc;
 
 use candle_core::{DType, Device, Tensor, Var};
 use candle_nn::VarBuilder;
@@ -42,10 +43,11 @@ use rand::{Rng, RngCore, SeedableRng};
 use rand_chacha::ChaCha8Rng;
 use rayon::prelude::*;
 
+use crate::collective::Collective;
 use crate::config::{Normalization, TdnnConfig};
 #[cfg(test)]
 use crate::fused::NORM_EPSILON;
-use crate::fused::{inverse_deviations, FusedLayer, Transform, UnitStatistics};
+use crate::fused::{global_statistics, inverse_deviations, FusedLayer, Transform, UnitStatistics};
 use crate::AcousticError;
 
 /// Weight of the newest batch in the running mean and variance of batch normalisation (common
@@ -76,6 +78,17 @@ enum Stage {
 /// What a training pass gives one layer: the valid output frames of each utterance, the dropout
 /// probability and the generator of the dropout masks.
 pub(crate) type LayerTraining<'a> = (&'a [usize], f32, &'a mut dyn RngCore);
+
+/// This rank's part of the batch of a data-parallel training pass: the position of each of its
+/// utterances in the whole batch (the stream of its dropout mask, as a single process drawing
+/// the whole batch would use) and the ranks over which batch normalisation sums.
+#[derive(Clone)]
+pub struct BatchPart<'a> {
+    /// Position in the whole batch of each utterance of the part, in the part's order.
+    pub positions: &'a [u64],
+    /// The ranks.
+    pub collective: Arc<dyn Collective>,
+}
 
 /// One spliced affine layer, optionally followed by ReLU, normalisation and dropout.
 ///
@@ -164,6 +177,7 @@ impl TdnnLayer {
         &self,
         input: &Tensor,
         training: Option<LayerTraining<'_>>,
+        part: Option<&BatchPart<'_>>,
     ) -> Result<(Tensor, Option<UnitStatistics>), AcousticError> {
         let (batch, frames, _) = input.dims3()?;
         let frames_out = self.check_frames(frames)?;
@@ -200,7 +214,14 @@ impl TdnnLayer {
         };
         let mask = match dropout {
             Some((p, rng)) if self.hidden && p > 0.0 => {
-                Some(dropout_mask(rng, p, batch, frames_out * self.output_dims))
+                let streams = part.map(|part| part.positions);
+                Some(dropout_mask(
+                    rng,
+                    p,
+                    batch,
+                    frames_out * self.output_dims,
+                    streams,
+                )?)
             }
             _ => None,
         };
@@ -217,7 +238,8 @@ impl TdnnLayer {
             transform,
             mask,
             input.track_op(),
-        );
+        )
+        .with_collective(part.map(|part| Arc::clone(&part.collective)));
         let slot = op.statistics_slot();
         let output = input.contiguous()?.apply_op3(&self.weight, &params, op)?;
         let statistics = slot
@@ -360,7 +382,7 @@ impl TdnnLayer {
         if let Some((p, rng)) = dropout {
             if p > 0.0 {
                 let (batch, frames_out, units) = output.dims3()?;
-                let mask = dropout_mask(rng, p, batch, frames_out * units);
+                let mask = dropout_mask(rng, p, batch, frames_out * units, None)?;
                 let mask = Tensor::from_vec(mask, output.shape(), output.device())?;
                 output = (output * mask)?;
             }
@@ -370,10 +392,25 @@ impl TdnnLayer {
 }
 
 /// A dropout mask of `batch` utterances of `per_utterance` values: `0` with probability `p`,
-/// else `1/(1−p)`. One generator per utterance (stream `b` of a seed drawn from `rng`), so the
-/// utterances are drawn in parallel and the mask does not depend on the thread count; a unit is
-/// dropped when a uniform 32-bit draw falls below `p·2³²`.
-fn dropout_mask(rng: &mut dyn RngCore, p: f32, batch: usize, per_utterance: usize) -> Vec<f32> {
+/// else `1/(1−p)`. One generator per utterance (stream `b` of a seed drawn from `rng`, or
+/// `streams[b]` for a rank's part of a data-parallel batch: its utterances' positions in the
+/// whole batch), so the utterances are drawn in parallel and the mask does not depend on the
+/// thread count or on how the batch is split over ranks (the first frames of a stream are the
+/// utterance's valid ones, whatever the padding); a unit is dropped when a uniform 32-bit draw
+/// falls below `p·2³²`.
+fn dropout_mask(
+    rng: &mut dyn RngCore,
+    p: f32,
+    batch: usize,
+    per_utterance: usize,
+    streams: Option<&[u64]>,
+) -> Result<Vec<f32>, AcousticError> {
+    if streams.is_some_and(|s| s.len() != batch) {
+        return Err(AcousticError::Shape(format!(
+            "{} batch positions for a part of {batch} utterances",
+            streams.map_or(0, <[u64]>::len)
+        )));
+    }
     let keep = 1.0 / (1.0 - p);
     let mut mask = vec![keep; batch * per_utterance];
     let seed = rng.next_u64();
@@ -383,7 +420,7 @@ fn dropout_mask(rng: &mut dyn RngCore, p: f32, batch: usize, per_utterance: usiz
             .enumerate()
             .for_each(|(b, chunk)| {
                 let mut draw = ChaCha8Rng::seed_from_u64(seed);
-                draw.set_stream(b as u64);
+                draw.set_stream(streams.map_or(b as u64, |s| s[b]));
                 for m in chunk {
                     if u64::from(draw.next_u32()) < drop_below {
                         *m = 0.0;
@@ -391,7 +428,7 @@ fn dropout_mask(rng: &mut dyn RngCore, p: f32, batch: usize, per_utterance: usiz
                 }
             });
     }
-    mask
+    Ok(mask)
 }
 
 /// The network: hidden [`TdnnLayer`]s and a final affine layer over the units (blank at 0).
@@ -463,7 +500,7 @@ impl Tdnn {
     pub fn forward(&self, input: &Tensor) -> Result<Tensor, AcousticError> {
         let mut x = input.clone();
         for layer in &self.layers {
-            x = layer.forward(&x, None)?.0;
+            x = layer.forward(&x, None, None)?.0;
         }
         Ok(x)
     }
@@ -479,19 +516,69 @@ impl Tdnn {
         frames: &[usize],
         rng: &mut dyn RngCore,
     ) -> Result<(Tensor, BatchStatistics), AcousticError> {
+        self.forward_train_part(input, frames, None, rng)
+    }
+
+    /// [`Tdnn::forward_train`] over this rank's `part` of a data-parallel batch (`None`: the
+    /// whole batch): dropout masks drawn as for the whole batch, batch normalisation with the
+    /// statistics of the whole batch (summed over the ranks in the forward pass, and the batch
+    /// terms of its gradient in the backward pass). The returned statistics are the whole
+    /// batch's, the same on every rank.
+    pub fn forward_train_part(
+        &self,
+        input: &Tensor,
+        frames: &[usize],
+        part: Option<&BatchPart<'_>>,
+        rng: &mut dyn RngCore,
+    ) -> Result<(Tensor, BatchStatistics), AcousticError> {
         let mut valid = self.input_valid_frames(input, frames)?;
         let mut statistics = BatchStatistics::default();
         let mut x = input.clone();
         for (index, layer) in self.layers.iter().enumerate() {
             valid.iter_mut().for_each(|v| *v = layer.output_frames(*v));
             let (output, unit_statistics) =
-                layer.forward(&x, Some((&valid, self.config.dropout, &mut *rng)))?;
+                layer.forward(&x, Some((&valid, self.config.dropout, &mut *rng)), part)?;
             if let Some(unit_statistics) = unit_statistics {
                 statistics.layers.push((index, unit_statistics));
             }
             x = output;
         }
         Ok((x, statistics))
+    }
+
+    /// The forward pass of a rank that has no utterance in a data-parallel batch: it draws
+    /// from `rng` what the other ranks draw (one dropout seed per hidden layer) and takes part
+    /// in the batch-norm sums with zeros. Returns the whole batch's statistics.
+    pub fn idle_forward(
+        &self,
+        collective: &dyn Collective,
+        rng: &mut dyn RngCore,
+    ) -> Result<BatchStatistics, AcousticError> {
+        let mut statistics = BatchStatistics::default();
+        for (index, layer) in self.layers.iter().enumerate() {
+            if layer.hidden && self.config.dropout > 0.0 {
+                rng.next_u64();
+            }
+            if let Stage::BatchNorm { .. } = layer.stage {
+                let h = layer.output_dims;
+                let unit_statistics =
+                    global_statistics(Some(collective), vec![0.0; h + 1], |_| vec![0.0; h])?;
+                statistics.layers.push((index, unit_statistics));
+            }
+        }
+        Ok(statistics)
+    }
+
+    /// The backward pass of a rank without utterances in the batch: the batch-norm gradient
+    /// sums with zeros, last layer first (the order of the other ranks' backward passes).
+    pub fn idle_backward(&self, collective: &dyn Collective) -> Result<(), AcousticError> {
+        for layer in self.layers.iter().rev() {
+            if let Stage::BatchNorm { .. } = layer.stage {
+                let mut sums = vec![0.0; 2 * layer.output_dims];
+                collective.sum_f64("the batch-norm gradient sums", &mut sums)?;
+            }
+        }
+        Ok(())
     }
 
     /// Folds the statistics of a training pass into the running mean and variance of every
@@ -704,9 +791,9 @@ mod tests {
         // Give the biases non-zero values so that they are checked too.
         let bias = Tensor::new(&[0.1f32, -0.2, 0.3, 0.4, -0.5], &Device::Cpu).unwrap();
         vars["layers.1.bias"].set(&bias).unwrap();
-        let first = net.layers[0].forward(&input, None).unwrap().0;
+        let first = net.layers[0].forward(&input, None, None).unwrap().0;
         let got: Vec<Vec<Vec<f32>>> = net.layers[1]
-            .forward(&first, None)
+            .forward(&first, None, None)
             .unwrap()
             .0
             .to_vec3()
@@ -1325,7 +1412,7 @@ mod tests {
         let x = input(&train["x"]);
         let valid = counts(&train["valid"]);
         let (y, _) = net
-            .forward(x.as_tensor(), Some((&valid, 0.0, &mut rng)))
+            .forward(x.as_tensor(), Some((&valid, 0.0, &mut rng)), None)
             .unwrap();
         let (batch, frames_out, _) = y.dims3().unwrap();
         let outputs: Vec<Vec<Vec<f32>>> = y.to_vec3().unwrap();
@@ -1370,7 +1457,7 @@ mod tests {
             let valid = counts(&pass["valid"]);
             let x = input(&pass["x"]);
             let (_, statistics) = net
-                .forward(x.as_tensor(), Some((&valid, 0.0, &mut rng)))
+                .forward(x.as_tensor(), Some((&valid, 0.0, &mut rng)), None)
                 .unwrap();
             net.update_running_statistics(&statistics.unwrap()).unwrap();
             for name in ["running_mean", "running_var"] {
@@ -1380,7 +1467,7 @@ mod tests {
         }
         let inference = &fixture["inference"];
         let (y, statistics) = net
-            .forward(input(&inference["x"]).as_tensor(), None)
+            .forward(input(&inference["x"]).as_tensor(), None, None)
             .unwrap();
         assert!(statistics.is_none());
         let ours: Vec<f32> = y.flatten_all().unwrap().to_vec1().unwrap();

@@ -16,9 +16,19 @@
 //! uninterrupted run would (for the same thread count: the matrix products split their work by
 //! thread count). A run under a wall-clock budget plans from measured times, so it is not
 //! repeatable to the bit.
+//!
+//! Data parallelism ([`Trainer::set_collective`] with several ranks): every rank holds the same
+//! weights and cuts the same batches from the lengths of the whole training set (a
+//! [`crate::data::ShardedSet`]); of each batch it computes its own utterances' features and
+//! gradient, the loss and frame counts and then one flat buffer of all gradients are summed over
+//! the ranks, and every rank makes the same update. With batch normalisation the layers sum
+//! their statistics over the ranks, so the whole batch is normalised as one; dropout masks are
+//! drawn by position in the whole batch. The result is the single process's up to the order of
+//! floating-point sums (docs/training.md, "Data-parallel training").
 
 use std::collections::BTreeMap;
 use std::path::{Path, PathBuf};
+use std::sync::Arc;
 use std::time::Instant;
 
 use candle_core::{Device, Tensor, Var};
@@ -29,12 +39,13 @@ use rand_chacha::ChaCha8Rng;
 use rayon::prelude::*;
 use serde::{Deserialize, Serialize};
 
+use crate::collective::{Collective, SingleProcess};
 use crate::config::{ModelConfig, Schedule};
 use crate::ctc::{min_frames_for, CtcLoss, CtcTargets};
 use crate::data::{utterance_rng, TrainingData};
 pub use crate::data::{Augment, PreparedUtterance};
 use crate::optim::{AdamW, Moments};
-use crate::tdnn::{initial_parameters, initial_statistics, var_builder, Tdnn};
+use crate::tdnn::{initial_parameters, initial_statistics, var_builder, BatchPart, Tdnn};
 use crate::units::UnitInventory;
 use crate::{greedy_path, AcousticError};
 
@@ -147,7 +158,13 @@ pub struct Trainer {
     optimizer: AdamW,
     progress: TrainingProgress,
     deadline: Option<Instant>,
+    /// The ranks of a data-parallel run ([`SingleProcess`] by default).
+    collective: Arc<dyn Collective>,
 }
+
+/// What one update of a data-parallel run gives: the per-frame loss of the whole batch and its
+/// output frames (`None` when it was not finite and no update was made), and its input frames.
+type PartOutcome = (Option<(f64, usize)>, usize);
 
 /// Updates of the first epoch timed before a budgeted run plans its schedule.
 const PROBE_UPDATES: usize = 8;
@@ -236,7 +253,34 @@ impl Trainer {
                 ..TrainingProgress::default()
             },
             deadline: None,
+            collective: Arc::new(SingleProcess),
         })
+    }
+
+    /// Trains as one rank of a data-parallel run over `collective` (see the module
+    /// documentation); with one rank, as a single process.
+    pub fn set_collective(&mut self, collective: Arc<dyn Collective>) {
+        self.collective = collective;
+    }
+
+    /// The ranks this trainer works with.
+    pub fn collective(&self) -> &Arc<dyn Collective> {
+        &self.collective
+    }
+
+    fn distributed(&self) -> bool {
+        self.collective.size() > 1
+    }
+
+    /// True while training should go on: not [`Trainer::finished`], as rank 0 sees it (a
+    /// wall-clock budget ends at slightly different moments on different machines).
+    pub fn keep_going(&self) -> Result<bool, AcousticError> {
+        let mut going = [f64::from(u8::from(!self.finished()))];
+        if self.distributed() {
+            self.collective
+                .broadcast_f64("the decision to train another epoch", &mut going)?;
+        }
+        Ok(going[0] > 0.5)
     }
 
     /// The network.
@@ -316,14 +360,21 @@ impl Trainer {
 
     /// Plans the schedule of a budgeted run: the updates that fit in the time left at
     /// `seconds_per_update` (dev passes included), on top of those done.
-    fn plan_for_deadline(&mut self, seconds_per_update: f64) {
+    /// In a data-parallel run rank 0's plan is every rank's.
+    fn plan_for_deadline(&mut self, seconds_per_update: f64) -> Result<(), AcousticError> {
         if let Some(deadline) = self.deadline {
             let left = deadline
                 .saturating_duration_since(Instant::now())
                 .as_secs_f64();
             let more = (left / seconds_per_update.max(1e-6)).floor() as u64;
-            self.progress.planned_updates = self.optimizer.step + more.max(1);
+            let mut planned = [(self.optimizer.step + more.max(1)) as f64];
+            if self.distributed() {
+                self.collective
+                    .broadcast_f64("the planned number of updates", &mut planned)?;
+            }
+            self.progress.planned_updates = planned[0] as u64;
         }
+        Ok(())
     }
 
     /// Keeps utterances whose labels fit their output frames; perturbed variants that do not
@@ -439,7 +490,106 @@ impl Trainer {
         Ok(Some((value, total_frames)))
     }
 
-    /// Per-frame CTC loss and greedy unit error rate on `dev` (no dropout, no augmentation).
+    /// One update of a data-parallel run from this rank's part of a batch (`positions`: the
+    /// part's places in the whole batch; empty when the rank has no utterance in it, in which
+    /// case it takes part in the sums with zeros). Every rank gets the same outcome and makes
+    /// the same update; `None` when the whole batch's loss or gradient was not finite.
+    fn train_part(
+        &mut self,
+        features: &[&Array2<f32>],
+        labels: Vec<Vec<u32>>,
+        positions: &[u64],
+        rng: &mut dyn RngCore,
+    ) -> Result<PartOutcome, AcousticError> {
+        let collective = Arc::clone(&self.collective);
+        let update = self.optimizer.step + 1;
+        let input_frames: usize = features.iter().map(|f| f.nrows()).sum();
+        let local = if features.is_empty() {
+            None
+        } else {
+            let (input, output_frames) = self.batch_input(features)?;
+            let frames: Vec<usize> = features.iter().map(|f| f.nrows()).collect();
+            let part = BatchPart {
+                positions,
+                collective: Arc::clone(&collective),
+            };
+            let (logits, statistics) =
+                self.network
+                    .forward_train_part(&input, &frames, Some(&part), rng)?;
+            let total_frames: usize = output_frames.iter().sum();
+            let targets = CtcTargets {
+                frame_lengths: output_frames,
+                labels,
+                blank: 0,
+            };
+            let sum = CtcLoss::apply(&logits, targets)?.sum_all()?;
+            Some((sum, statistics, total_frames))
+        };
+        let statistics = match &local {
+            Some((_, statistics, _)) => statistics.clone(),
+            None => self.network.idle_forward(collective.as_ref(), rng)?,
+        };
+        let mut totals = [
+            match &local {
+                Some((sum, _, _)) => f64::from(sum.to_scalar::<f32>()?),
+                None => 0.0,
+            },
+            local.as_ref().map_or(0, |(_, _, frames)| *frames) as f64,
+            input_frames as f64,
+        ];
+        collective.sum_f64(&format!("the loss of update {update}"), &mut totals)?;
+        let [loss_sum, output_frames, input_frames] = totals;
+        let input_frames = input_frames as usize;
+        let loss = loss_sum / output_frames.max(1.0);
+        if !loss.is_finite() {
+            return Ok((None, input_frames));
+        }
+        let sizes: Vec<usize> = self.parameters.values().map(|v| v.elem_count()).collect();
+        let mut flat = vec![0f32; sizes.iter().sum()];
+        match local {
+            Some((sum, _, _)) => {
+                let grads = (sum / output_frames.max(1.0))?.backward()?;
+                let mut offset = 0;
+                for (var, &size) in self.parameters.values().zip(&sizes) {
+                    if let Some(grad) = grads.get(var.as_tensor()) {
+                        let values: Vec<f32> = grad.flatten_all()?.to_vec1()?;
+                        flat[offset..offset + size].copy_from_slice(&values);
+                    }
+                    offset += size;
+                }
+            }
+            None => self.network.idle_backward(collective.as_ref())?,
+        }
+        collective.sum_f32(&format!("the gradient of update {update}"), &mut flat)?;
+        let mut grads: BTreeMap<&str, Tensor> = BTreeMap::new();
+        let mut offset = 0;
+        for ((name, var), &size) in self.parameters.iter().zip(&sizes) {
+            let values = &flat[offset..offset + size];
+            grads.insert(
+                name.as_str(),
+                Tensor::from_slice(values, var.shape(), &Device::Cpu)?,
+            );
+            offset += size;
+        }
+        let norm = AdamW::norm_of(grads.values())?;
+        if !norm.is_finite() {
+            return Ok((None, input_frames));
+        }
+        let scale = AdamW::clip_scale(norm, self.config.training.clip_norm);
+        let rate = self.learning_rate(update);
+        self.optimizer.update_with(
+            &self.parameters,
+            |name, _| grads.get(name).cloned(),
+            rate,
+            scale,
+        )?;
+        self.network.update_running_statistics(&statistics)?;
+        Ok((Some((loss, output_frames as usize)), input_frames))
+    }
+
+    /// Per-frame CTC loss and greedy unit error rate on `dev` (no dropout, no augmentation);
+    /// in a data-parallel run `dev` is this rank's share and the figures are the whole dev
+    /// set's, summed over the ranks.
     pub fn evaluate(&self, dev: &[PreparedUtterance]) -> Result<(f64, f64), AcousticError> {
         let lengths: Vec<usize> = dev.iter().map(|u| u.variants[0].nrows()).collect();
         let mut rng = ChaCha8Rng::seed_from_u64(0);
@@ -466,10 +616,13 @@ impl Trainer {
                 reference += dev[i].labels.len();
             }
         }
-        Ok((
-            loss_sum / frames.max(1) as f64,
-            errors as f64 / reference.max(1) as f64,
-        ))
+        let mut totals = [loss_sum, frames as f64, errors as f64, reference as f64];
+        if self.distributed() {
+            self.collective
+                .sum_f64("the dev loss and errors", &mut totals)?;
+        }
+        let [loss_sum, frames, errors, reference] = totals;
+        Ok((loss_sum / frames.max(1.0), errors / reference.max(1.0)))
     }
 
     /// Trains one epoch over `train` (admitted utterances), then evaluates on `dev`. Under a
@@ -514,18 +667,31 @@ impl Trainer {
         for (done, batch) in batches.iter().enumerate() {
             if let Some(deadline) = self.deadline {
                 let planned = self.progress.planned_updates;
-                if Instant::now() >= deadline || (planned > 0 && self.optimizer.step >= planned) {
+                let mut spent = [f64::from(u8::from(Instant::now() >= deadline))];
+                if self.distributed() {
+                    self.collective
+                        .broadcast_f64("the end-of-budget check", &mut spent)?;
+                }
+                if spent[0] > 0.5 || (planned > 0 && self.optimizer.step >= planned) {
                     break;
                 }
                 if planned == 0 && done == PROBE_UPDATES {
                     // A forward-only dev pass costs about a third of a training pass per frame.
                     let per_update = started.elapsed().as_secs_f64() / done as f64;
-                    self.plan_for_deadline(per_update * (1.0 + dev_share / 3.0));
+                    self.plan_for_deadline(per_update * (1.0 + dev_share / 3.0))?;
                 }
             }
             let feature_start = Instant::now();
             let network = &self.network;
-            let features: Vec<Array2<f32>> = batch
+            // This rank's utterances of the batch, with their places in it (all of them in a
+            // single process).
+            let (positions, mine): (Vec<u64>, Vec<usize>) = batch
+                .iter()
+                .enumerate()
+                .filter(|(_, &i)| train.is_local(i))
+                .map(|(position, &i)| (position as u64, i))
+                .unzip();
+            let features: Vec<Array2<f32>> = mine
                 .par_iter()
                 .map(|&i| {
                     let labels = train.labels(i);
@@ -537,10 +703,15 @@ impl Trainer {
                 .collect();
             feature_seconds += feature_start.elapsed().as_secs_f64();
             let refs: Vec<&Array2<f32>> = features.iter().collect();
-            let labels: Vec<Vec<u32>> = batch.iter().map(|&i| train.labels(i).to_vec()).collect();
-            let batch_frames: usize = refs.iter().map(|f| f.nrows()).sum();
+            let labels: Vec<Vec<u32>> = mine.iter().map(|&i| train.labels(i).to_vec()).collect();
+            let (outcome, batch_frames) = if self.distributed() {
+                self.train_part(&refs, labels, &positions, &mut rng)?
+            } else {
+                let input_frames = refs.iter().map(|f| f.nrows()).sum();
+                (self.train_batch(&refs, labels, &mut rng)?, input_frames)
+            };
             epoch_frames += batch_frames;
-            let Some((value, total_frames)) = self.train_batch(&refs, labels, &mut rng)? else {
+            let Some((value, total_frames)) = outcome else {
                 skipped += 1;
                 on_event(&TrainingEvent::BatchSkipped {
                     done: done + 1,
@@ -564,7 +735,7 @@ impl Trainer {
         let dev_seconds = dev_started.elapsed().as_secs_f64();
         let updates = self.optimizer.step - updates_before;
         if self.deadline.is_some() && updates > 0 {
-            self.plan_for_deadline((train_seconds + dev_seconds) / updates as f64);
+            self.plan_for_deadline((train_seconds + dev_seconds) / updates as f64)?;
         }
         let improved = self
             .progress
@@ -878,6 +1049,161 @@ mod tests {
                 (name.clone(), values)
             })
             .collect()
+    }
+
+    /// Ranks as threads of one process: every sum goes through one shared buffer between
+    /// barriers (the order in which the ranks add is whatever the threads' timing makes it).
+    struct ThreadRanks {
+        rank: usize,
+        size: usize,
+        shared: Arc<(std::sync::Mutex<Vec<f64>>, std::sync::Barrier)>,
+    }
+
+    impl ThreadRanks {
+        fn sum(&self, values: &mut [f64]) {
+            let (buffer, barrier) = &*self.shared;
+            barrier.wait();
+            if self.rank == 0 {
+                *buffer.lock().unwrap() = vec![0.0; values.len()];
+            }
+            barrier.wait();
+            for (total, v) in buffer.lock().unwrap().iter_mut().zip(values.iter()) {
+                *total += *v;
+            }
+            barrier.wait();
+            values.copy_from_slice(&buffer.lock().unwrap());
+            barrier.wait();
+        }
+    }
+
+    impl Collective for ThreadRanks {
+        fn rank(&self) -> usize {
+            self.rank
+        }
+
+        fn size(&self) -> usize {
+            self.size
+        }
+
+        fn sum_f64(&self, _what: &str, values: &mut [f64]) -> Result<(), AcousticError> {
+            self.sum(values);
+            Ok(())
+        }
+
+        fn sum_f32(&self, _what: &str, values: &mut [f32]) -> Result<(), AcousticError> {
+            let mut wide: Vec<f64> = values.iter().map(|&v| f64::from(v)).collect();
+            self.sum(&mut wide);
+            for (v, w) in values.iter_mut().zip(wide) {
+                *v = w as f32;
+            }
+            Ok(())
+        }
+
+        fn abort(&self, code: i32) -> ! {
+            panic!("rank {} aborted with {code}", self.rank)
+        }
+    }
+
+    /// A rank's weights by name and its epoch records.
+    type RankOutcome = (Vec<(String, Vec<f32>)>, Vec<EpochRecord>);
+
+    /// Data parallelism at the level of the trainer, with ranks as threads: three ranks, each
+    /// holding its length-balanced share of the training set and every third dev utterance,
+    /// train two epochs of a batch-normalised network with dropout and reach the weights and
+    /// the epoch records of one process (up to the order of sums). Small batches leave some
+    /// ranks without a part in some batches.
+    #[test]
+    fn ranks_train_the_weights_of_one_process() {
+        let mut config = config_with(Normalization::Batch);
+        config.training.batch_frames = 90;
+        let train = synthetic(14, 1);
+        let dev = synthetic(5, 2);
+        let mut alone = Trainer::new(config.clone(), units(), 5, 42).unwrap();
+        let single: Vec<EpochRecord> = (0..2)
+            .map(|_| alone.run_epoch(&set(&train), &dev, &mut |_| {}).unwrap())
+            .collect();
+        let size = 3;
+        let shared = Arc::new((
+            std::sync::Mutex::new(Vec::new()),
+            std::sync::Barrier::new(size),
+        ));
+        let lengths: Vec<f64> = train.iter().map(|u| u.variants[0].nrows() as f64).collect();
+        let idle = std::sync::atomic::AtomicUsize::new(0);
+        let ranks: Vec<RankOutcome> = std::thread::scope(|scope| {
+            let handles: Vec<_> = (0..size)
+                .map(|rank| {
+                    let shared = Arc::clone(&shared);
+                    let (config, train, dev, lengths, idle) =
+                        (&config, &train, &dev, &lengths, &idle);
+                    scope.spawn(move || {
+                        let share = crate::collective::balanced_share(lengths, rank, size);
+                        let local: Vec<PreparedUtterance> =
+                            share.iter().map(|&i| train[i].clone()).collect();
+                        let mut local_index = vec![None; train.len()];
+                        for (k, &i) in share.iter().enumerate() {
+                            local_index[i] = Some(k);
+                        }
+                        let local_set = set(&local);
+                        let whole = crate::data::ShardedSet::new(
+                            &local_set,
+                            train.iter().map(|u| u.id.clone()).collect(),
+                            train.iter().map(|u| u.variants[0].nrows()).collect(),
+                            local_index,
+                        )
+                        .unwrap();
+                        let my_dev: Vec<PreparedUtterance> =
+                            dev.iter().skip(rank).step_by(size).cloned().collect();
+                        let mut trainer = Trainer::new(config.clone(), units(), 5, 42).unwrap();
+                        trainer.set_collective(Arc::new(ThreadRanks { rank, size, shared }));
+                        let records = (0..2)
+                            .map(|_| trainer.run_epoch(&whole, &my_dev, &mut |_| {}).unwrap())
+                            .collect();
+                        let epoch_rng_batches = {
+                            let mut rng = epoch_rng(42, 1);
+                            let lengths: Vec<usize> =
+                                train.iter().map(|u| u.variants[0].nrows()).collect();
+                            bucketed_batches(&lengths, config.training.batch_frames, &mut rng)
+                        };
+                        let without_me = epoch_rng_batches
+                            .iter()
+                            .filter(|batch| batch.iter().all(|i| !share.contains(i)))
+                            .count();
+                        idle.fetch_add(without_me, std::sync::atomic::Ordering::Relaxed);
+                        (weights(&trainer), records)
+                    })
+                })
+                .collect();
+            handles.into_iter().map(|h| h.join().unwrap()).collect()
+        });
+        assert!(
+            idle.into_inner() > 0,
+            "some rank has no part in some batch of epoch 1"
+        );
+        let expected = weights(&alone);
+        for (rank, (weights, records)) in ranks.iter().enumerate() {
+            for ((name, a), (other, b)) in expected.iter().zip(weights) {
+                assert_eq!(name, other);
+                for (x, y) in a.iter().zip(b) {
+                    assert!(
+                        (x - y).abs() <= 1e-5 * x.abs().max(1.0),
+                        "rank {rank}, {name}: {x} vs {y}"
+                    );
+                }
+            }
+            for (one, many) in single.iter().zip(records) {
+                assert_eq!(one.updates, many.updates);
+                for (x, y) in [
+                    (one.train_loss, many.train_loss),
+                    (one.dev_loss, many.dev_loss),
+                    (one.dev_unit_error_rate, many.dev_unit_error_rate),
+                ] {
+                    assert!(
+                        (x - y).abs() <= 1e-5 * x.abs().max(1.0),
+                        "{one:?} vs {many:?}"
+                    );
+                }
+            }
+        }
     }
 
     #[test]

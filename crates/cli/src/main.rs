@@ -2,7 +2,8 @@
 //! crates together; no algorithm lives here.
 //!
 //! Exit codes (`docs/exit-codes.md`): 0 success; 1 bad input or usage, with a message naming the file and
-//! line; 2 a batch finished but some items failed (they are listed on stderr).
+//! line; 2 a batch finished but some items failed (they are listed on stderr); 3 a data-parallel
+//! `train` job ended because a rank stopped answering (set by the rank that timed out).
 
 mod commands;
 mod progress;
@@ -108,7 +109,7 @@ fn main() -> ExitCode {
 /// usually print their cause too (`x.tsv: No such file or directory (os error 2)`), and the
 /// cause is also their `source`; printing the chain blindly would repeat it. A cause whose text
 /// the message already holds is left out.
-fn said_once(error: &anyhow::Error) -> String {
+pub(crate) fn said_once(error: &anyhow::Error) -> String {
     let mut text = error.to_string();
     for cause in error.chain().skip(1) {
         let cause = cause.to_string();

@@ -1,10 +1,18 @@
 //! `isogloss train`: flags in, progress bars out; the work is `isogloss_acoustic::pipeline::train`.
+//!
+//! Started by an MPI launcher (`mpirun -np N`, a scheduler's launcher) from a build with the
+//! `mpi` feature, the process is one of N data-parallel ranks
+//! (`isogloss_acoustic::collective`): rank 0 draws the progress and prints the epochs, every
+//! rank prints its own warnings and errors with its rank, and a rank whose run fails ends the
+//! whole job.
 
 use std::path::PathBuf;
+use std::sync::Arc;
 
 use anyhow::Context;
 use clap::Args;
 use indicatif::ProgressBar;
+use isogloss_acoustic::collective::{Collective, SingleProcess};
 use isogloss_acoustic::config::ModelConfig;
 use isogloss_acoustic::pipeline::{self, PipelineEvent, TrainOptions};
 use isogloss_acoustic::train::TrainingEvent;
@@ -85,6 +93,84 @@ pub struct TrainArgs {
     /// Score added per word in that decoding (as `transcribe --word-bonus`).
     #[arg(long, default_value_t = isogloss_decoder::DEFAULT_WORD_BONUS)]
     word_bonus: f32,
+    /// Worker threads of this process (of each rank under an MPI launcher); default: the
+    /// RAYON_NUM_THREADS environment variable, else every core, shared among the ranks started
+    /// on the same machine.
+    #[arg(long, value_parser = clap::value_parser!(u16).range(1..))]
+    threads: Option<u16>,
+    /// Under an MPI launcher: seconds a rank waits for the others at an exchange before it
+    /// decides a rank has failed and ends the job (exit code 3).
+    #[arg(long, default_value_t = 600.0, value_parser = parse_timeout)]
+    rank_timeout: f64,
+}
+
+/// A rank timeout: a positive number of seconds up to a day.
+fn parse_timeout(text: &str) -> Result<f64, String> {
+    match text.parse::<f64>() {
+        Ok(seconds) if seconds.is_finite() && seconds > 0.0 && seconds <= 86_400.0 => Ok(seconds),
+        _ => Err(format!(
+            "expected seconds above 0 and at most 86400 (a day), found {text:?}"
+        )),
+    }
+}
+
+/// Environment variables by which MPI launchers tell a process how many ranks the job has.
+#[cfg(not(feature = "mpi"))]
+const LAUNCHER_SIZE_VARIABLES: [&str; 2] = ["OMPI_COMM_WORLD_SIZE", "PMI_SIZE"];
+
+/// Ranks of this job that run on this machine, as the launcher says (1 when not launched).
+fn local_ranks() -> usize {
+    ["OMPI_COMM_WORLD_LOCAL_SIZE", "MPI_LOCALNRANKS"]
+        .iter()
+        .find_map(|name| std::env::var(name).ok()?.parse::<usize>().ok())
+        .unwrap_or(1)
+        .max(1)
+}
+
+/// Sets the thread count of this process before any pool starts: `--threads`, else
+/// RAYON_NUM_THREADS as given, else under a launcher the cores divided among the local ranks.
+fn set_threads(threads: Option<u16>) {
+    let count = match threads {
+        Some(n) => usize::from(n),
+        None if std::env::var_os("RAYON_NUM_THREADS").is_some() => return,
+        None if local_ranks() > 1 => {
+            let cores = std::thread::available_parallelism().map_or(1, |n| n.get());
+            (cores / local_ranks()).max(1)
+        }
+        None => return,
+    };
+    // Read by rayon's global pool and by candle's matrix products alike; set before either
+    // starts a thread.
+    std::env::set_var("RAYON_NUM_THREADS", count.to_string());
+}
+
+/// The ranks of this run: MPI's world when a launcher started the process (build with the
+/// `mpi` feature), else this process alone.
+#[cfg(feature = "mpi")]
+fn ranks(timeout: f64) -> anyhow::Result<Arc<dyn Collective>> {
+    let timeout = std::time::Duration::from_secs_f64(timeout);
+    Ok(
+        match isogloss_acoustic::collective::MpiCollective::from_launcher(timeout)? {
+            Some(world) => Arc::new(world),
+            None => Arc::new(SingleProcess),
+        },
+    )
+}
+
+/// This process alone; a launcher's job of several processes is refused (each would train on
+/// its own into the same directory).
+#[cfg(not(feature = "mpi"))]
+fn ranks(_timeout: f64) -> anyhow::Result<Arc<dyn Collective>> {
+    let launched = LAUNCHER_SIZE_VARIABLES.iter().find_map(|name| {
+        let size = std::env::var(name).ok()?.parse::<usize>().ok()?;
+        (size > 1).then_some((name, size))
+    });
+    if let Some((name, size)) = launched {
+        anyhow::bail!(
+            "started by an MPI launcher as one of {size} processes ({name}), but this isogloss was built without the `mpi` feature: build it with `--features mpi` (README, \"Training on a cluster\") or run one process"
+        );
+    }
+    Ok(Arc::new(SingleProcess))
 }
 
 /// A training budget: a positive number of minutes up to a year.
@@ -103,6 +189,34 @@ fn parse_minutes(text: &str) -> Result<f64, String> {
 
 /// Runs `isogloss train`.
 pub fn run(args: TrainArgs) -> anyhow::Result<Outcome> {
+    set_threads(args.threads);
+    let collective = ranks(args.rank_timeout)?;
+    if collective.size() == 1 {
+        return run_ranks(args, collective);
+    }
+    // A rank whose run fails says why and ends the job: the others would otherwise wait at the
+    // next exchange until their timeout.
+    let (rank, size) = (collective.rank(), collective.size());
+    match run_ranks(args, Arc::clone(&collective)) {
+        Ok(outcome) => Ok(outcome),
+        Err(error) => {
+            eprintln!(
+                "error: rank {rank} of {size}: {}; ending the job",
+                crate::said_once(&error)
+            );
+            collective.abort(1)
+        }
+    }
+}
+
+fn run_ranks(args: TrainArgs, collective: Arc<dyn Collective>) -> anyhow::Result<Outcome> {
+    let (rank, size) = (collective.rank(), collective.size());
+    if rank == 0 && size > 1 {
+        eprintln!(
+            "data-parallel training: {size} ranks, threads per rank: {}",
+            std::env::var("RAYON_NUM_THREADS").unwrap_or_else(|_| "every core".into())
+        );
+    }
     let config = match &args.config {
         Some(path) => ModelConfig::read(path)?,
         None => ModelConfig::small(),
@@ -130,6 +244,11 @@ pub fn run(args: TrainArgs) -> anyhow::Result<Outcome> {
         start_from: args.from.clone(),
     };
     if let Some(untranscribed) = args.untranscribed {
+        if size > 1 {
+            anyhow::bail!(
+                "--untranscribed (self-training) runs as one process; it is not supported with {size} ranks yet"
+            );
+        }
         let rule = match args.pseudo_threshold {
             Some(t) if (0.0..=1.0).contains(&t) => ThresholdRule::Fixed(t),
             Some(t) => anyhow::bail!("--pseudo-threshold: expected from 0 to 1, found {t}"),
@@ -178,8 +297,21 @@ pub fn run(args: TrainArgs) -> anyhow::Result<Outcome> {
         );
         return Ok(Outcome::Done);
     }
-    let summary = train_with_progress(&options)
+    let summary = train_ranks(&options, Arc::clone(&collective))
         .with_context(|| format!("training into {}", args.out.display()))?;
+    if rank > 0 {
+        if !summary.failed_utterances.is_empty() {
+            eprintln!(
+                "rank {rank}: {} utterances of this rank's share could not be used:",
+                summary.failed_utterances.len()
+            );
+            for failure in &summary.failed_utterances {
+                eprintln!("  {failure}");
+            }
+            return Ok(Outcome::SomeItemsFailed);
+        }
+        return Ok(Outcome::Done);
+    }
     if !summary.skipped_utterances.is_empty() {
         eprintln!(
             "{} training utterances were skipped: their labels do not fit their frames",
@@ -218,8 +350,26 @@ pub fn run(args: TrainArgs) -> anyhow::Result<Outcome> {
 /// Runs a training with progress bars and one line per epoch on stderr (shared by `train` and
 /// `demo --train`).
 pub fn train_with_progress(options: &TrainOptions) -> anyhow::Result<pipeline::TrainSummary> {
+    train_ranks(options, Arc::new(SingleProcess))
+}
+
+/// [`train_with_progress`] as one rank of a data-parallel run: rank 0 draws the progress, the
+/// other ranks print only their warnings, each with its rank.
+fn train_ranks(
+    options: &TrainOptions,
+    collective: Arc<dyn Collective>,
+) -> anyhow::Result<pipeline::TrainSummary> {
+    let rank = collective.rank();
+    if rank > 0 {
+        return pipeline::train_with(options, collective, &mut |event| {
+            if let PipelineEvent::Warning(message) = event {
+                eprintln!("warning: rank {rank}: {message}");
+            }
+        })
+        .map_err(anyhow::Error::from);
+    }
     let mut bar: Option<ProgressBar> = None;
-    pipeline::train(options, &mut |event| match event {
+    pipeline::train_with(options, collective, &mut |event| match event {
         PipelineEvent::Features { split, done, total } => {
             eprintln!("features: {split}: {done}/{total} audio files");
         }

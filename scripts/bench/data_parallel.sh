@@ -1,0 +1,73 @@
+#!/usr/bin/env bash
+# Data-parallel training speed on one machine: epochs of the same training run, alternating
+# between arms, each arm resuming the checkpoint the previous one left (so every arm trains the
+# same model at the same stage, and each decodes its audio cache once, before round 1):
+#
+#   one-2t   the feature build, one process, 2 threads
+#   ranks-2  the feature build, mpirun -np 2, 1 thread per rank
+#   plain-2t a build without the `mpi` feature, one process, 2 threads
+#
+# Prints each epoch's input frames per second of wall time (feature work included, dev pass
+# excluded: `frames_per_second` of training.jsonl) and the median per arm.
+#
+# usage: scripts/bench/data_parallel.sh MPI_BINARY PLAIN_BINARY [ROUNDS] [UTTERANCES]
+# Build the two binaries first, e.g.
+#   cargo build --release -p isogloss && cp target/release/isogloss /tmp/isogloss-plain
+#   cargo build --release -p isogloss --features mpi && cp target/release/isogloss /tmp/isogloss-mpi
+set -euo pipefail
+cd "$(dirname "$0")/../.."
+MPI_BIN=$1
+PLAIN_BIN=$2
+ROUNDS=${3:-3}
+UTTERANCES=${4:-600}
+WORK=$(mktemp -d)
+trap 'rm -rf "$WORK"' EXIT
+# A prefix of the demo training split, audio paths made absolute.
+DEMO=$(pwd)/tests/data/demo
+awk -F'\t' -v OFS='\t' -v demo="$DEMO" -v n="$UTTERANCES" \
+    'NR == 1 { print; next } NR <= n + 1 { $2 = demo "/" $2; print }' \
+    "$DEMO/train.tsv" > "$WORK/train.tsv"
+awk -F'\t' -v OFS='\t' -v demo="$DEMO" 'NR == 1 { print; next } { $2 = demo "/" $2; print }' \
+    "$DEMO/dev.tsv" > "$WORK/dev.tsv"
+OUT=$WORK/model
+COMMON=(train --manifest "$WORK/train.tsv" --dev "$WORK/dev.tsv" --column dialectal
+    --config configs/tdnn-demo.toml --out "$OUT")
+export OMPI_ALLOW_RUN_AS_ROOT=1 OMPI_ALLOW_RUN_AS_ROOT_CONFIRM=1
+unset RAYON_NUM_THREADS
+epoch=0
+run() { # arm, threads per process, then the command before "train"
+    local arm=$1 threads=$2
+    shift 2
+    epoch=$((epoch + 1))
+    local resume=()
+    [ -f "$OUT/checkpoint.safetensors" ] && resume=(--resume)
+    # Exit code 2: some utterances could not be used (a dev row whose letters the training
+    # prefix lacks), the run itself went through.
+    local status=0
+    "$@" "${COMMON[@]}" "${resume[@]}" --epochs "$epoch" --threads "$threads" >/dev/null 2>"$WORK/stderr" || status=$?
+    if [ "$status" -ne 0 ] && [ "$status" -ne 2 ]; then
+        cat "$WORK/stderr" >&2
+        exit 1
+    fi
+    local fps
+    fps=$(grep '"event":"epoch"' "$OUT/training.jsonl" | tail -n 1 |
+        sed 's/.*"frames_per_second":\([0-9.e+-]*\).*/\1/')
+    echo "$arm $fps" | tee -a "$WORK/results"
+}
+MPIRUN=(mpirun --oversubscribe --bind-to none -np 2 --mca btl_vader_single_copy_mechanism none)
+# Warm-up: each arm decodes its cache (not timed: the first epoch of each is discarded).
+run warm-one 2 "$MPI_BIN" >/dev/null
+run warm-ranks 1 "${MPIRUN[@]}" "$MPI_BIN" >/dev/null
+run warm-plain 2 "$PLAIN_BIN" >/dev/null
+: > "$WORK/results"
+for round in $(seq "$ROUNDS"); do
+    echo "round $round (load average $(cut -d' ' -f1 /proc/loadavg))"
+    run one-2t 2 "$MPI_BIN"
+    run ranks-2 1 "${MPIRUN[@]}" "$MPI_BIN"
+    run plain-2t 2 "$PLAIN_BIN"
+done
+echo "medians (frames/s):"
+for arm in one-2t ranks-2 plain-2t; do
+    grep "^$arm " "$WORK/results" | cut -d' ' -f2 | sort -g |
+        awk -v arm="$arm" '{ v[NR] = $1 } END { m = (NR % 2) ? v[(NR + 1) / 2] : (v[NR / 2] + v[NR / 2 + 1]) / 2; printf "%s %.0f\n", arm, m }'
+done
