@@ -31,7 +31,7 @@ awk -F'\t' -v OFS='\t' -v demo="$DEMO" 'NR == 1 { print; next } { $2 = demo "/" 
     "$DEMO/dev.tsv" > "$WORK/dev.tsv"
 OUT=$WORK/model
 COMMON=(train --manifest "$WORK/train.tsv" --dev "$WORK/dev.tsv" --column dialectal
-    --config configs/tdnn-demo.toml --out "$OUT")
+    --config configs/tdnn-narrow.toml --out "$OUT")
 export OMPI_ALLOW_RUN_AS_ROOT=1 OMPI_ALLOW_RUN_AS_ROOT_CONFIRM=1
 unset RAYON_NUM_THREADS
 epoch=0
