@@ -236,3 +236,53 @@ fn a_long_interview_comes_back_as_the_words_of_its_turns_at_their_times() {
         "interview WER {wer:.3} / flexible {flexible:.3} above {MAX_INTERVIEW_WER} / {MAX_INTERVIEW_FLEXIBLE_WER}"
     );
 }
+
+/// A model trained with per-speaker CMVN is decoded with per-segment statistics (transcribe
+/// does not know a recording's speakers): transcribe still runs, and says so once, naming the
+/// model's description; the shipped per-utterance model gets no such warning.
+#[test]
+fn a_speaker_normalized_model_is_transcribed_with_a_warning() {
+    let dir = tempfile::tempdir().unwrap();
+    let model = dir.path().join("speaker-cmvn");
+    std::fs::create_dir(&model).unwrap();
+    let shipped = repo("models/demo");
+    std::fs::copy(
+        shipped.join("model.safetensors"),
+        model.join("model.safetensors"),
+    )
+    .unwrap();
+    let description = std::fs::read_to_string(shipped.join("model.toml")).unwrap();
+    assert_eq!(description.matches("cmvn = \"utterance\"").count(), 1);
+    std::fs::write(
+        model.join("model.toml"),
+        description.replace("cmvn = \"utterance\"", "cmvn = \"speaker\""),
+    )
+    .unwrap();
+    let speech = repo("tests/fixtures/audio/speech.wav");
+    let warning = "the model was trained with cmvn = \"speaker\"";
+    for (model, warned) in [(model.clone(), true), (shipped, false)] {
+        let out = dir.path().join(format!("{warned}.tsv"));
+        let output = isogloss(&[
+            "transcribe",
+            "--model",
+            &text(&model),
+            "--greedy",
+            &text(&speech),
+            "--out",
+            &text(&out),
+        ]);
+        let stderr = String::from_utf8_lossy(&output.stderr);
+        assert_eq!(
+            stderr.matches(warning).count(),
+            usize::from(warned),
+            "{stderr}"
+        );
+        if warned {
+            assert!(
+                stderr.contains(&text(&model.join("model.toml"))),
+                "{stderr}"
+            );
+        }
+        assert!(out.exists());
+    }
+}

@@ -237,6 +237,12 @@ pub fn run(args: TranscribeArgs) -> anyhow::Result<Outcome> {
     };
     let items = batch_items(&source, args.shard)?;
     let recognizer = ModelRecognizer::load(&args.model)?;
+    if recognizer.model.feature_config().cmvn == CmvnMode::Speaker {
+        eprintln!(
+            "warning: {}: the model was trained with cmvn = \"speaker\", but transcribe normalizes each segment by its own statistics (the speakers of a recording are unknown); expect error rates other than those measured with speaker normalization (isogloss sweep on a speaker-labelled manifest). Train with cmvn = \"utterance\" for transcription.",
+            args.model.join("model.toml").display()
+        );
+    }
     let mut bar: Option<ProgressBar> = None;
     let mut events = |event: Event| match event {
         Event::Warning(message) => eprintln!("warning: {message}"),
