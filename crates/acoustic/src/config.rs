@@ -1,7 +1,7 @@
 //! Architecture and training settings, read from TOML (`configs/tdnn-*.toml`).
 
 use isogloss_audio::augment::{
-    AugmentConfig, BandLimitConfig, GainConfig, NoiseConfig, ReverbConfig,
+    AugmentConfig, BandLimitConfig, CodecConfig, GainConfig, NoiseConfig, ReverbConfig,
 };
 use isogloss_features::{deprecated_spellings, CmvnMode, FeatureConfig, SpecAugment, VtlpConfig};
 use isogloss_speaker::{ExtractionMode, ExtractorConfig};
@@ -355,6 +355,10 @@ pub struct Augmentation {
     pub band_limit: BandLimitConfig,
     /// Gain.
     pub gain: GainConfig,
+    /// A simulated low-bit-rate re-encode. Without an `[augmentation.codec]` table it is off, so
+    /// configurations and `model.toml` files written before it existed keep their meaning.
+    #[serde(default = "CodecConfig::off")]
+    pub codec: CodecConfig,
     /// SpecAugment time and frequency masks on the normalised features (zero masks disable).
     pub masks: SpecAugment,
 }
@@ -374,6 +378,7 @@ impl Default for Augmentation {
             noise: waveform.noise,
             band_limit: waveform.band_limit,
             gain: waveform.gain,
+            codec: CodecConfig::off(),
             masks: SpecAugment::default(),
         };
         augmentation.vtlp.probability = 0.5;
@@ -405,6 +410,7 @@ impl Augmentation {
         none.noise.probability = 0.0;
         none.band_limit.probability = 0.0;
         none.gain.probability = 0.0;
+        none.codec.probability = 0.0;
         none
     }
 
@@ -415,6 +421,7 @@ impl Augmentation {
             reverb: self.reverb.clone(),
             band_limit: self.band_limit.clone(),
             gain: self.gain.clone(),
+            codec: self.codec.clone(),
         }
     }
 
@@ -425,6 +432,7 @@ impl Augmentation {
             self.noise.probability,
             self.band_limit.probability,
             self.gain.probability,
+            self.codec.probability,
         ]
         .iter()
         .any(|&p| p > 0.0)

@@ -15,8 +15,8 @@ use std::hint::black_box;
 use std::time::Instant;
 
 use isogloss_audio::augment::{
-    babble, band_limit, coloured_noise, mix_at_snr, reverberate, AugmentConfig, Augmenter,
-    ReverbConfig, RirBank,
+    babble, band_limit, coloured_noise, mix_at_snr, reverberate, simulate_codec, AugmentConfig,
+    Augmenter, CodecSettings, ReverbConfig, RirBank,
 };
 use isogloss_audio::volume_perturb;
 use isogloss_features::mel::MelFilterbank;
@@ -150,6 +150,22 @@ fn main() {
         black_box(samples);
     });
     report("gain", cost, seconds, mfcc);
+    let codec = CodecSettings {
+        cutoff_hz: 5_500.0,
+        band_snr_db: 12.0,
+        floor_db: 30.0,
+    };
+    let cost = time(runs, || {
+        let mut samples = speech.clone();
+        simulate_codec(&mut samples, &codec, plans);
+        black_box(samples);
+    });
+    report(
+        "codec (5.5 kHz cut-off, 12 dB band SNR)",
+        cost,
+        seconds,
+        mfcc,
+    );
     let copy = time(runs, || {
         black_box(speech.clone());
     });
