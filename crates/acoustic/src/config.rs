@@ -825,4 +825,35 @@ mod tests {
         assert_eq!(config.augmentation.masks.time_masks, 0);
         assert_eq!(config.training.warmup_steps, None);
     }
+
+    /// A configuration (or a `model.toml`) without an `[augmentation.codec]` table never draws the
+    /// codec; a table with only some keys takes the library's defaults for the others; bad values
+    /// name their key.
+    #[test]
+    fn the_codec_is_off_without_its_table() {
+        let layers = "[model]\nnormalization = \"batch\"\ndropout = 0.0\nlayers = [{ taps = [0], width = 8 }]\n";
+        let without = ModelConfig::parse(&format!(
+            "{layers}[augmentation.noise]\nprobability = 0.2\n"
+        ))
+        .unwrap();
+        assert_eq!(without.augmentation.codec.probability, 0.0);
+        assert!(!Augmentation::none().has_waveform_steps());
+        let with = ModelConfig::parse(&format!(
+            "{layers}[augmentation.codec]\nband_snr_db = [10.0, 12.0]\n"
+        ))
+        .unwrap();
+        assert_eq!(with.augmentation.codec.probability, 0.2);
+        assert_eq!(with.augmentation.codec.band_snr_db, [10.0, 12.0]);
+        assert_eq!(with.augmentation.codec.cutoff_hz, [4_000.0, 7_000.0]);
+        assert_eq!(with.augmentation.waveform().codec, with.augmentation.codec);
+        let message = ModelConfig::parse(&format!(
+            "{layers}[augmentation.codec]\ncutoff_hz = [7000.0, 4000.0]\n"
+        ))
+        .unwrap_err()
+        .to_string();
+        assert!(
+            message.contains("augmentation.codec.cutoff_hz"),
+            "{message}"
+        );
+    }
 }
