@@ -1,20 +1,27 @@
 //! The augmentations against general-purpose reference libraries: room impulse responses
 //! against pyroomacoustics' image-source `ShoeBox`, Sabine absorption against
 //! `pyroomacoustics.inverse_sabine`, the band-limiting filters against scipy's Butterworth
-//! design. Values computed by `scripts/reference/augment_reference.py` and committed in
-//! `tests/fixtures/audio/augment_reference.json`.
+//! design; the simulated codec's window and frame spectra against `scipy.signal.stft`. Values
+//! computed by `scripts/reference/augment_reference.py` and `scripts/reference/codec_reference.py`
+//! and committed in `tests/fixtures/audio/augment_reference.json` and `codec_reference.json`.
 
 use std::path::PathBuf;
 
 use isogloss_audio::augment::{
-    band_limit_gain, image_source_rir, sabine_absorption, ImageSourceSettings, Room,
+    band_limit_gain, codec_window, frame_spectra, image_source_rir, sabine_absorption, FftPlans,
+    ImageSourceSettings, Room, CODEC_FRAME, CODEC_HOP,
 };
 use serde_json::Value;
 
-fn reference() -> Value {
+fn fixture(name: &str) -> Value {
     let path = PathBuf::from(env!("CARGO_MANIFEST_DIR"))
-        .join("../../tests/fixtures/audio/augment_reference.json");
+        .join("../../tests/fixtures/audio")
+        .join(name);
     serde_json::from_str(&std::fs::read_to_string(path).unwrap()).unwrap()
+}
+
+fn reference() -> Value {
+    fixture("augment_reference.json")
 }
 
 fn numbers(value: &Value) -> Vec<f64> {
@@ -122,6 +129,52 @@ fn band_limit_gain_equals_scipy_butterworth_forward_backward() {
                 (ours - expected).abs() <= 1e-9 * expected + 1e-15,
                 "{cut} Hz {:?} at {frequency} Hz: {ours} vs {expected}",
                 case["type"]
+            );
+        }
+    }
+}
+
+#[test]
+fn the_window_is_the_square_root_of_scipys_periodic_hann() {
+    let reference = fixture("codec_reference.json");
+    assert_eq!(reference["frame"].as_u64(), Some(CODEC_FRAME as u64));
+    assert_eq!(reference["hop"].as_u64(), Some(CODEC_HOP as u64));
+    let want = numbers(&reference["window"]);
+    let got = codec_window();
+    assert_eq!(got.len(), want.len());
+    for (n, (&g, &w)) in got.iter().zip(&want).enumerate() {
+        assert!((f64::from(g) - w).abs() < 1e-6, "sample {n}: {g} vs {w}");
+    }
+}
+
+#[test]
+fn frame_spectra_equal_scipy_stft() {
+    let reference = fixture("codec_reference.json");
+    let signal: Vec<f32> = numbers(&reference["signal"])
+        .into_iter()
+        .map(|v| v as f32)
+        .collect();
+    let spectra = frame_spectra(&signal, &FftPlans::new());
+    let want_re = reference["spectra_re"].as_array().unwrap();
+    let want_im = reference["spectra_im"].as_array().unwrap();
+    assert_eq!(spectra.len(), want_re.len());
+    // The largest bin is about 0.4·Σw/2 ≈ 65; f32 FFTs of 512 points keep ~1e-5 of it.
+    let scale = spectra
+        .iter()
+        .flatten()
+        .fold(0.0f64, |m, c| m.max(f64::from(c.norm())));
+    for (t, frame) in spectra.iter().enumerate() {
+        let (re, im) = (numbers(&want_re[t]), numbers(&want_im[t]));
+        assert_eq!(frame.len(), CODEC_FRAME / 2 + 1);
+        for (k, value) in frame.iter().enumerate() {
+            let error = (f64::from(value.re) - re[k]).hypot(f64::from(value.im) - im[k]);
+            assert!(
+                error < 2e-5 * scale,
+                "frame {t}, bin {k}: ({}, {}) vs ({}, {})",
+                value.re,
+                value.im,
+                re[k],
+                im[k]
             );
         }
     }
