@@ -152,8 +152,14 @@ impl TdnnConfig {
 
     /// Checks that the network for `input_dims` features and `units` outputs has at most
     /// [`MAX_PARAMETERS`] parameters (call after [`TdnnConfig::validate`]).
-    pub fn check_size(&self, input_dims: usize, units: usize) -> Result<(), AcousticError> {
-        let count = self.parameter_count(input_dims, units) as u64;
+    pub fn check_size(
+        &self,
+        input: impl Into<NetworkInput>,
+        units: usize,
+    ) -> Result<(), AcousticError> {
+        let input = input.into();
+        let input_dims = input.frame_dims;
+        let count = self.parameter_count(input, units) as u64;
         if count > MAX_PARAMETERS {
             return Err(AcousticError::Config(format!(
                 "the network would have {count} parameters for {input_dims} input dimensions and {units} units; at most {MAX_PARAMETERS} are supported"
@@ -182,13 +188,18 @@ impl TdnnConfig {
         (left, right)
     }
 
-    /// Number of trainable parameters for `input_dims` features and `units` outputs (the
-    /// running statistics of batch normalisation are not trained and not counted).
-    pub fn parameter_count(&self, input_dims: usize, units: usize) -> usize {
+    /// Number of trainable parameters for `input` (features per frame, vectors per layer) and
+    /// `units` outputs (the running statistics of batch normalisation are not trained and not
+    /// counted).
+    pub fn parameter_count(&self, input: impl Into<NetworkInput>, units: usize) -> usize {
         // Saturating: a description read from a file may ask for more than a usize holds.
+        let input = input.into();
         let mut count = 0usize;
-        let mut dims = input_dims;
-        for layer in &self.layers {
+        let mut dims = input.frame_dims;
+        for (i, layer) in self.layers.iter().enumerate() {
+            if i > 0 {
+                dims = dims.saturating_add(input.layer_vector_dims);
+            }
             let weights = layer
                 .taps
                 .len()
@@ -491,7 +502,7 @@ pub struct ModelConfig {
     pub speaker_vectors: Option<SpeakerVectors>,
 }
 
-/// How the speaker vector enters the network (`input = "frames"`).
+/// How the speaker vector enters the network (`input = "frames"` or `"layers"`).
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize, Default)]
 #[serde(rename_all = "lowercase")]
 pub enum VectorInput {
@@ -499,6 +510,11 @@ pub enum VectorInput {
     /// each of its taps.
     #[default]
     Frames,
+    /// As `frames`, and appended again to the input of every later hidden layer (at that
+    /// layer's frame rate), so that each layer has a learned map of the vector of its own: the
+    /// vector changes only every `period` frames, so across a layer's taps it acts as a per-layer
+    /// bias `B·v` (the taps' blocks sum to `B`).
+    Layers,
 }
 
 /// The `[speaker_vectors]` table: an i-vector extractor trained before the network, whose online
@@ -534,6 +550,40 @@ impl SpeakerVectors {
     /// Dimension of the vector appended to each frame.
     pub fn dimension(&self) -> usize {
         self.extractor.output_dimension()
+    }
+
+    /// What the network reads: `feature_dims` plus the vector per frame, and the vector again
+    /// at every later hidden layer when `input = "layers"`.
+    pub fn network_input(&self, feature_dims: usize) -> NetworkInput {
+        NetworkInput {
+            frame_dims: feature_dims + self.dimension(),
+            layer_vector_dims: match self.input {
+                VectorInput::Frames => 0,
+                VectorInput::Layers => self.dimension(),
+            },
+        }
+    }
+}
+
+/// The inputs of a network: the dimensions of each input frame (features, and the speaker
+/// vector when there is one), and the dimensions of the speaker vector appended to the input of
+/// every hidden layer after the first (0: none; `[speaker_vectors] input = "layers"`). A plain
+/// `usize` converts to frames of that many dimensions and no layer vectors.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub struct NetworkInput {
+    /// Dimensions of each input frame.
+    pub frame_dims: usize,
+    /// Dimensions of the vector each later hidden layer reads beside its input (the last
+    /// `layer_vector_dims` columns of every input frame).
+    pub layer_vector_dims: usize,
+}
+
+impl From<usize> for NetworkInput {
+    fn from(frame_dims: usize) -> Self {
+        NetworkInput {
+            frame_dims,
+            layer_vector_dims: 0,
+        }
     }
 }
 
@@ -650,6 +700,15 @@ impl ModelConfig {
                 .speaker_vectors
                 .as_ref()
                 .map_or(0, SpeakerVectors::dimension)
+    }
+
+    /// What the network reads: [`ModelConfig::input_dims`] per frame, and the speaker vector
+    /// at every later hidden layer when the vectors enter every layer.
+    pub fn network_input(&self) -> NetworkInput {
+        match &self.speaker_vectors {
+            Some(vectors) => vectors.network_input(self.features.dims()),
+            None => self.features.dims().into(),
+        }
     }
 
     /// The built-in small configuration (`configs/tdnn-small.toml`).

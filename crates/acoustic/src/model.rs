@@ -132,6 +132,15 @@ impl ModelDescription {
                 .as_ref()
                 .map_or(0, crate::config::SpeakerVectors::dimension)
     }
+
+    /// What the network reads: [`ModelDescription::input_dims`] per frame, and the speaker
+    /// vector at every later hidden layer when the vectors enter every layer.
+    pub fn network_input(&self) -> crate::config::NetworkInput {
+        match &self.speaker_vectors {
+            Some(vectors) => vectors.network_input(self.features.dims()),
+            None => self.features.dims().into(),
+        }
+    }
 }
 
 /// Reads a `model.toml` of the previous release: its keys are read by their old spellings
@@ -238,7 +247,7 @@ impl AcousticModel {
         }
         description
             .architecture
-            .check_size(description.input_dims(), description.units.len())
+            .check_size(description.network_input(), description.units.len())
             .map_err(invalid)?;
         // The extractor is checked before the weights, so that a mismatch is blamed on it.
         let extractor = match &description.speaker_vectors {
@@ -257,7 +266,7 @@ impl AcousticModel {
         let network = Tdnn::new(
             vb,
             &description.architecture,
-            description.input_dims(),
+            description.network_input(),
             description.units.len(),
         )
         .map_err(|e| AcousticError::Model {
@@ -326,7 +335,7 @@ impl AcousticModel {
         let network = Tdnn::new(
             var_builder(tensors),
             &description.architecture,
-            description.input_dims(),
+            description.network_input(),
             description.units.len(),
         )?;
         Ok(AcousticModel {

@@ -952,7 +952,7 @@ pub fn train_with(
                 "failed_utterances": failed_count,
                 "dev_utterances": dev_count,
                 "units": units.len(),
-                "parameters": config.model.parameter_count(config.features.dims(), units.len()),
+                "parameters": config.model.parameter_count(config.network_input(), units.len()),
                 "seed": seed,
                 "minutes": options.minutes,
                 "ranks": size,

@@ -33,6 +33,14 @@
 //! Every layer is "valid" in time (no padding inside the network); callers pad each utterance by
 //! [`TdnnConfig::context`] frames (edge frames repeated) so that the output has
 //! `⌈frames / subsampling⌉` frames — see [`Tdnn::output_frames`].
+//!
+//! Speaker vectors at every layer ([`NetworkInput::layer_vector_dims`] > 0, the
+//! `[speaker_vectors] input = "layers"` setting): the last `R` columns of each input frame are
+//! the speaker vector, and every hidden layer after the first reads, beside each row of its
+//! input, the vector of the input frame that row is centred on. Row `t` of a layer's output is
+//! centred on its input row `s·t − o_1` (where its tap 0 reads; row 0 when every tap is
+//! positive), so the centre of every row is followed back to a row of the padded input
+//! ([`TdnnLayer::centre_rows`]). The vector is not trained and gets no gradient.
 
 use std::collections::BTreeMap;
 use std::sync::Arc;
@@ -44,7 +52,7 @@ use rand_chacha::ChaCha8Rng;
 use rayon::prelude::*;
 
 use crate::collective::Collective;
-use crate::config::{Normalization, TdnnConfig};
+use crate::config::{NetworkInput, Normalization, TdnnConfig};
 #[cfg(test)]
 use crate::fused::NORM_EPSILON;
 use crate::fused::{global_statistics, inverse_deviations, FusedLayer, Transform, UnitStatistics};
@@ -147,6 +155,17 @@ impl TdnnLayer {
 
     fn span(&self) -> usize {
         (self.offsets[self.offsets.len() - 1] - self.offsets[0]) as usize
+    }
+
+    /// For input rows that are centred on the padded-input rows `rows`, the padded-input row
+    /// each output row is centred on: output row `t` on input row `s·t − o_1` (clamped to the
+    /// input; `o_1 > 0` counts as 0).
+    fn centre_rows(&self, rows: &[u32]) -> Vec<u32> {
+        let centre = (-i64::from(self.offsets[0])).max(0) as usize;
+        let last = rows.len().saturating_sub(1);
+        (0..self.output_frames(rows.len()))
+            .map(|t| rows[(self.subsample * t + centre).min(last)])
+            .collect()
     }
 
     /// Output frames for `frames` input frames (0 when the input is shorter than the span).
@@ -439,6 +458,7 @@ fn dropout_mask(
 pub struct Tdnn {
     layers: Vec<TdnnLayer>,
     config: TdnnConfig,
+    input: NetworkInput,
 }
 
 impl Tdnn {
@@ -448,16 +468,28 @@ impl Tdnn {
     /// `layers.{i}.norm.running_var` (batch normalisation); the output layer is
     /// `layers.{hidden_count}` (weight and bias). The running statistics share the builder's
     /// storage when it holds variables, so [`Tdnn::update_running_statistics`] updates those.
+    /// `input`: the dimensions of each input frame, and of the speaker vector every later
+    /// hidden layer reads again (a plain `usize`: frames only).
     pub fn new(
         vb: VarBuilder,
         config: &TdnnConfig,
-        input_dims: usize,
+        input: impl Into<NetworkInput>,
         units: usize,
     ) -> Result<Self, AcousticError> {
         config.validate()?;
+        let input = input.into();
+        if input.layer_vector_dims > input.frame_dims {
+            return Err(AcousticError::Shape(format!(
+                "a speaker vector of {} dimensions in input frames of {}",
+                input.layer_vector_dims, input.frame_dims
+            )));
+        }
         let mut layers = Vec::with_capacity(config.layers.len() + 1);
-        let mut dims = input_dims;
+        let mut dims = input.frame_dims;
         for (i, layer) in config.layers.iter().enumerate() {
+            if i > 0 {
+                dims += input.layer_vector_dims;
+            }
             layers.push(TdnnLayer::new(
                 vb.pp("layers").pp(i),
                 dims,
@@ -479,7 +511,49 @@ impl Tdnn {
         Ok(Tdnn {
             layers,
             config: config.clone(),
+            input,
         })
+    }
+
+    /// The speaker vectors of a padded input `[batch, frames, dims]` (its last columns) when the
+    /// later layers read them, with the padded-input row each input row is centred on.
+    fn layer_vectors(&self, input: &Tensor) -> Result<Option<(Tensor, Vec<u32>)>, AcousticError> {
+        let r = self.input.layer_vector_dims;
+        if r == 0 {
+            return Ok(None);
+        }
+        let (_, frames, dims) = input.dims3()?;
+        if dims != self.input.frame_dims {
+            return Err(AcousticError::Shape(format!(
+                "input frames of {dims} dimensions, the network takes {}",
+                self.input.frame_dims
+            )));
+        }
+        let vectors = input.narrow(2, dims - r, r)?.contiguous()?.detach();
+        Ok(Some((vectors, (0..frames as u32).collect())))
+    }
+
+    /// The input of hidden layer `index`: `x`, with the speaker vector of the row each of its
+    /// rows is centred on appended when the later layers read the vectors. Then moves `rows`
+    /// on to the rows the layer's output is centred on.
+    fn layer_input(
+        &self,
+        index: usize,
+        x: Tensor,
+        vectors: &mut Option<(Tensor, Vec<u32>)>,
+    ) -> Result<Tensor, AcousticError> {
+        let Some((all, rows)) = vectors else {
+            return Ok(x);
+        };
+        let layer = &self.layers[index];
+        let x = if index > 0 && layer.hidden {
+            let picked = Tensor::from_slice(rows, rows.len(), all.device())?;
+            Tensor::cat(&[&x, &all.index_select(&picked, 1)?], 2)?
+        } else {
+            x
+        };
+        *rows = layer.centre_rows(rows);
+        Ok(x)
     }
 
     /// Output frames for an utterance of `frames` feature frames padded by the context.
@@ -498,8 +572,10 @@ impl Tdnn {
     /// Logits `[batch, output_frames, units]` for inference: no dropout, batch normalisation
     /// with the running statistics (so each frame's logits depend on its own context only).
     pub fn forward(&self, input: &Tensor) -> Result<Tensor, AcousticError> {
+        let mut vectors = self.layer_vectors(input)?;
         let mut x = input.clone();
-        for layer in &self.layers {
+        for (index, layer) in self.layers.iter().enumerate() {
+            x = self.layer_input(index, x, &mut vectors)?;
             x = layer.forward(&x, None, None)?.0;
         }
         Ok(x)
@@ -533,8 +609,10 @@ impl Tdnn {
     ) -> Result<(Tensor, BatchStatistics), AcousticError> {
         let mut valid = self.input_valid_frames(input, frames)?;
         let mut statistics = BatchStatistics::default();
+        let mut vectors = self.layer_vectors(input)?;
         let mut x = input.clone();
         for (index, layer) in self.layers.iter().enumerate() {
+            x = self.layer_input(index, x, &mut vectors)?;
             valid.iter_mut().for_each(|v| *v = layer.output_frames(*v));
             let (output, unit_statistics) =
                 layer.forward(&x, Some((&valid, self.config.dropout, &mut *rng)), part)?;
@@ -645,16 +723,19 @@ impl Tdnn {
         input: &Tensor,
         training: Option<(&[usize], &mut dyn RngCore)>,
     ) -> Result<Tensor, AcousticError> {
+        let mut vectors = self.layer_vectors(input)?;
         let mut x = input.clone();
         match training {
             None => {
-                for layer in &self.layers {
+                for (index, layer) in self.layers.iter().enumerate() {
+                    x = self.layer_input(index, x, &mut vectors)?;
                     x = layer.forward_reference(&x, None)?;
                 }
             }
             Some((frames, rng)) => {
                 let mut valid = self.input_valid_frames(input, frames)?;
-                for layer in &self.layers {
+                for (index, layer) in self.layers.iter().enumerate() {
+                    x = self.layer_input(index, x, &mut vectors)?;
                     valid.iter_mut().for_each(|v| *v = layer.output_frames(*v));
                     x = layer
                         .forward_reference(&x, Some((&valid, self.config.dropout, &mut *rng)))?;
@@ -671,15 +752,19 @@ impl Tdnn {
 /// [`initial_statistics`].
 pub fn initial_parameters(
     config: &TdnnConfig,
-    input_dims: usize,
+    input: impl Into<NetworkInput>,
     units: usize,
     rng: &mut impl Rng,
 ) -> Result<BTreeMap<String, Var>, AcousticError> {
     let device = Device::Cpu;
+    let input = input.into();
     let mut vars = BTreeMap::new();
-    let mut dims = input_dims;
+    let mut dims = input.frame_dims;
     let mut shapes: Vec<(usize, usize, usize, bool)> = Vec::new();
-    for layer in &config.layers {
+    for (i, layer) in config.layers.iter().enumerate() {
+        if i > 0 {
+            dims += input.layer_vector_dims;
+        }
         shapes.push((dims, layer.taps.len(), layer.width, true));
         dims = layer.width;
     }
@@ -892,10 +977,11 @@ mod tests {
     /// the parameters, the running statistics and the network over both.
     fn network(
         config: &TdnnConfig,
-        dims: usize,
+        dims: impl Into<NetworkInput>,
         units: usize,
         rng: &mut ChaCha8Rng,
     ) -> (BTreeMap<String, Var>, BTreeMap<String, Var>, Tdnn) {
+        let dims = dims.into();
         let vars = initial_parameters(config, dims, units, rng).unwrap();
         let statistics = initial_statistics(config).unwrap();
         for (name, var) in vars.iter().chain(&statistics) {
@@ -1187,6 +1273,174 @@ mod tests {
                         "{normalization:?} utterance {b}, entry {j}: finite difference {numeric}, backward {analytic}"
                     );
                 }
+            }
+        }
+    }
+
+    /// Where a later layer's vector comes from, worked by hand for `configs/tdnn-small.toml`:
+    /// output row t of layer 0 (taps −2…2, every third frame kept) is centred on padded row
+    /// 3t + 2; layers 1 and 2 (taps ±1) move the centre by one row of their input, i.e. 3
+    /// padded rows; layers 3 and 4 (taps ±3) by 9; layer 5 (tap 0) not at all. So the output
+    /// row t is centred on padded row 3t + 26, and 26 is the network's left context: output
+    /// frame t sits on feature frame 3t, as the padding by the context intends.
+    #[test]
+    fn each_layer_output_row_is_centred_where_the_context_says() {
+        let config = ModelConfig::small().model;
+        let net = Tdnn::new(
+            var_builder(&merged(
+                &initial_parameters(&config, 39, 30, &mut ChaCha8Rng::seed_from_u64(1)).unwrap(),
+                &initial_statistics(&config).unwrap(),
+            )),
+            &config,
+            39,
+            30,
+        )
+        .unwrap();
+        let padded = 200u32;
+        let mut rows: Vec<u32> = (0..padded).collect();
+        let expected_shift = [2u32, 5, 8, 17, 26, 26];
+        for (layer, shift) in net.layers.iter().zip(expected_shift) {
+            rows = layer.centre_rows(&rows);
+            let want: Vec<u32> = (0..rows.len() as u32).map(|t| 3 * t + shift).collect();
+            assert_eq!(rows, want);
+        }
+        assert_eq!(config.context().0, 26);
+        assert_eq!(
+            rows.len(),
+            net.output_frames(padded as usize - 26 - config.context().1)
+        );
+    }
+
+    /// `[speaker_vectors] input = "layers"`: every hidden layer after the first reads the
+    /// vector columns of the padded input row its rows are centred on. The network's output
+    /// (inference and a training pass with batch normalisation) equals the layers run one by
+    /// one on inputs extended by explicit loops over those rows, with a vector that differs on
+    /// every frame so that a wrong row shows; the parameter count includes the vector's rows,
+    /// and a finite difference on a weight of the vector confirms its gradient.
+    #[test]
+    fn later_layers_read_the_vector_of_the_row_they_are_centred_on() {
+        let (feature_dims, vector_dims, frames) = (3, 2, 20);
+        let dims = feature_dims + vector_dims;
+        let input_spec = NetworkInput {
+            frame_dims: dims,
+            layer_vector_dims: vector_dims,
+        };
+        for normalization in [Normalization::None, Normalization::Batch] {
+            let config = with_norm(tiny(), normalization, 0.0);
+            let mut rng = ChaCha8Rng::seed_from_u64(21);
+            let (vars, _, net) = network(&config, input_spec, 4, &mut rng);
+            assert_eq!(
+                vars.values().map(|v| v.elem_count()).sum::<usize>(),
+                config.parameter_count(input_spec, 4)
+            );
+            assert_eq!(vars["layers.1.weight"].dims(), &[4 + vector_dims, 3 * 5]);
+            let values: Vec<f32> = (0..2 * frames * dims)
+                .map(|_| rng.random_range(-1.0..1.0))
+                .collect();
+            let input = Tensor::from_vec(values.clone(), (2, frames, dims), &Device::Cpu).unwrap();
+            let lengths = [frames - net.config.context().0 - net.config.context().1, 9];
+            // Layer 0: taps −1, 0, 2 at every frame, so output row t is centred on input row
+            // t + 1; layer 1 reads the vector of padded row t + 1 beside its row t.
+            let by_hand = |training: bool| -> Tensor {
+                let mut rng = ChaCha8Rng::seed_from_u64(5);
+                let mut valid: Vec<usize> = lengths
+                    .iter()
+                    .map(|&f| f + net.config.context().0 + net.config.context().1)
+                    .collect();
+                let mut x = input.clone();
+                for (index, layer) in net.layers.iter().enumerate() {
+                    if index == 1 {
+                        let (batch, rows, width) = x.dims3().unwrap();
+                        let before: Vec<f32> = x.flatten_all().unwrap().to_vec1().unwrap();
+                        let mut extended = Vec::new();
+                        for b in 0..batch {
+                            for j in 0..rows {
+                                extended.extend_from_slice(
+                                    &before[(b * rows + j) * width..(b * rows + j + 1) * width],
+                                );
+                                let source = (b * frames + j + 1) * dims + feature_dims;
+                                extended.extend_from_slice(&values[source..source + vector_dims]);
+                            }
+                        }
+                        x = Tensor::from_vec(
+                            extended,
+                            (batch, rows, width + vector_dims),
+                            &Device::Cpu,
+                        )
+                        .unwrap();
+                    }
+                    if training {
+                        valid.iter_mut().for_each(|v| *v = layer.output_frames(*v));
+                        x = layer
+                            .forward(&x, Some((&valid, 0.0, &mut rng)), None)
+                            .unwrap()
+                            .0;
+                    } else {
+                        x = layer.forward(&x, None, None).unwrap().0;
+                    }
+                }
+                x
+            };
+            let inference = net.forward(&input).unwrap();
+            assert!(
+                max_difference(&inference, &by_hand(false)) < 1e-6,
+                "{normalization:?}"
+            );
+            let trained = net
+                .forward_train(&input, &lengths, &mut ChaCha8Rng::seed_from_u64(5))
+                .unwrap()
+                .0;
+            assert!(
+                max_difference(&trained, &by_hand(true)) < 1e-6,
+                "{normalization:?}"
+            );
+            // The gradient of a weight that multiplies the vector in layer 1.
+            let weight = &vars["layers.1.weight"];
+            let probe = Tensor::randn(0f32, 1.0, trained.shape(), &Device::Cpu).unwrap();
+            let loss = || -> f64 {
+                let out = net
+                    .forward_train(&input, &lengths, &mut ChaCha8Rng::seed_from_u64(5))
+                    .unwrap()
+                    .0;
+                f64::from(
+                    (out * &probe)
+                        .unwrap()
+                        .sum_all()
+                        .unwrap()
+                        .to_scalar::<f32>()
+                        .unwrap(),
+                )
+            };
+            let out = net
+                .forward_train(&input, &lengths, &mut ChaCha8Rng::seed_from_u64(5))
+                .unwrap()
+                .0;
+            let grads = (out * &probe)
+                .unwrap()
+                .sum_all()
+                .unwrap()
+                .backward()
+                .unwrap();
+            let gradient: Vec<Vec<f32>> = grads.get(weight.as_tensor()).unwrap().to_vec2().unwrap();
+            let original: Vec<Vec<f32>> = weight.as_tensor().to_vec2().unwrap();
+            for (row, column) in [(4, 0), (5, 7), (4, 14)] {
+                let step = 1e-2f32;
+                let mut moved = original.clone();
+                let mut at = |delta: f32| {
+                    moved[row][column] = original[row][column] + delta;
+                    let flat: Vec<f32> = moved.iter().flatten().copied().collect();
+                    weight
+                        .set(&Tensor::from_vec(flat, weight.shape(), &Device::Cpu).unwrap())
+                        .unwrap();
+                    loss()
+                };
+                let numeric = (at(step) - at(-step)) / (2.0 * f64::from(step));
+                at(0.0);
+                let analytic = f64::from(gradient[row][column]);
+                assert!(
+                    (numeric - analytic).abs() < 2e-2 * numeric.abs().max(analytic.abs()).max(0.1),
+                    "{normalization:?} weight ({row}, {column}): finite difference {numeric}, backward {analytic}"
+                );
             }
         }
     }

@@ -40,7 +40,7 @@ use rayon::prelude::*;
 use serde::{Deserialize, Serialize};
 
 use crate::collective::{Collective, SingleProcess};
-use crate::config::{ModelConfig, Schedule};
+use crate::config::{ModelConfig, NetworkInput, Schedule};
 use crate::ctc::{min_frames_for, CtcLoss, CtcTargets};
 use crate::data::{utterance_rng, TrainingData};
 pub use crate::data::{Augment, PreparedUtterance};
@@ -229,14 +229,18 @@ impl Trainer {
     ) -> Result<Self, AcousticError> {
         units.validate()?;
         config.model.validate()?;
-        config.model.check_size(input_dims, units.len())?;
+        let input = NetworkInput {
+            frame_dims: input_dims,
+            layer_vector_dims: config.network_input().layer_vector_dims,
+        };
+        config.model.check_size(input, units.len())?;
         let mut rng = epoch_rng(seed, usize::MAX - 1);
-        let parameters = initial_parameters(&config.model, input_dims, units.len(), &mut rng)?;
+        let parameters = initial_parameters(&config.model, input, units.len(), &mut rng)?;
         let statistics = initial_statistics(&config.model)?;
         let network = Tdnn::new(
             var_builder(&model_tensors(&parameters, &statistics)),
             &config.model,
-            input_dims,
+            input,
             units.len(),
         )?;
         let optimizer = AdamW::new(config.training.weight_decay);

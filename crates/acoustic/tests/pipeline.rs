@@ -385,6 +385,51 @@ fn a_model_with_speaker_vectors_trains_and_transcribes_from_its_directory_alone(
     assert!(message.contains("ivector.safetensors"), "{message}");
 }
 
+/// Issue 15, the per-layer variant (`input = "layers"`): the vector also enters every later
+/// hidden layer. Such a model trains, and transcribes from its directory alone, its
+/// description recording where the vector enters; the weights of those layers have the
+/// vector's rows.
+#[test]
+fn a_model_with_speaker_vectors_at_every_layer_trains_and_transcribes() {
+    let dir = tempfile::tempdir().unwrap();
+    let ids = [
+        "larch01-0006",
+        "vale02-0008",
+        "corran01-0003",
+        "quays01-0019",
+    ];
+    let path = manifest(dir.path(), "few.tsv", &ids);
+    let mut options = options(dir.path(), path.clone(), path.clone(), "normalized");
+    let layers = SPEAKER_VECTORS.replace(r#"input = "frames""#, r#"input = "layers""#);
+    options.config = ModelConfig::parse(&format!("{TINY}{layers}")).unwrap();
+    let summary = train(&options, &mut |_| {}).expect("training runs");
+    let best = summary.best.expect("some epoch improved");
+    assert!(
+        best.dev_unit_error_rate < 0.05,
+        "greedy unit error rate {best:?}"
+    );
+    let model = AcousticModel::load(&dir.path().join("model")).unwrap();
+    let vectors = model.description().speaker_vectors.clone().unwrap();
+    assert_eq!(
+        vectors.input,
+        isogloss_acoustic::config::VectorInput::Layers
+    );
+    let input = model.description().network_input();
+    assert_eq!((input.frame_dims, input.layer_vector_dims), (39 + 4, 4));
+    let tensors = candle_core::safetensors::load(
+        dir.path().join("model").join("model.safetensors"),
+        &candle_core::Device::Cpu,
+    )
+    .unwrap();
+    let first_width = options.config.model.layers[0].width;
+    assert_eq!(tensors["layers.1.weight"].dims()[0], first_width + 4);
+    let correct = exact_transcripts(&model, &path);
+    assert!(
+        correct >= 3,
+        "{correct} of 4 transcripts reproduced exactly"
+    );
+}
+
 /// Issue 15: the network reads in training what it reads in transcription. For the same audio,
 /// an epoch's training features (here without perturbation) equal the network input the model
 /// computes from the features `isogloss transcribe` computes (extraction, then per-utterance
