@@ -238,6 +238,13 @@ fn two_ranks_give_the_weights_of_one_process() {
     for (x, y) in one.iter().zip(&two) {
         assert_eq!(x["updates"], y["updates"]);
         assert_eq!(x["skipped_batches"], y["skipped_batches"]);
+        // The time in exchanges: none alone; some, and less than the pass, for the ranks.
+        assert_eq!(x["exchange_seconds"], 0.0);
+        let (exchange, pass) = (
+            y["exchange_seconds"].as_f64().unwrap(),
+            y["train_seconds"].as_f64().unwrap(),
+        );
+        assert!(exchange > 0.0 && exchange < pass, "{exchange} of {pass} s");
         for key in ["train_loss", "dev_loss", "dev_unit_error_rate"] {
             let (u, v) = (x[key].as_f64().unwrap(), y[key].as_f64().unwrap());
             println!("{key}: {u} vs {v}");

@@ -8,7 +8,9 @@
 #   plain-2t a build without the `mpi` feature, one process, 2 threads
 #
 # Prints each epoch's input frames per second of wall time (feature work included, dev pass
-# excluded: `frames_per_second` of training.jsonl) and the median per arm.
+# excluded: `frames_per_second` of training.jsonl) and the share of the training pass rank 0
+# spent in sums over the ranks (`exchange_seconds` / `train_seconds`; 0 in one process), and
+# the median per arm.
 #
 # usage: scripts/bench/data_parallel.sh MPI_BINARY PLAIN_BINARY [ROUNDS] [UTTERANCES]
 # Build the two binaries first, e.g.
@@ -49,10 +51,14 @@ run() { # arm, threads per process, then the command before "train"
         cat "$WORK/stderr" >&2
         exit 1
     fi
-    local fps
-    fps=$(grep '"event":"epoch"' "$OUT/training.jsonl" | tail -n 1 |
-        sed 's/.*"frames_per_second":\([0-9.e+-]*\).*/\1/')
-    echo "$arm $fps" | tee -a "$WORK/results"
+    local line fps exchange train
+    line=$(grep '"event":"epoch"' "$OUT/training.jsonl" | tail -n 1)
+    fps=$(echo "$line" | sed 's/.*"frames_per_second":\([0-9.e+-]*\).*/\1/')
+    exchange=$(echo "$line" | sed -n 's/.*"exchange_seconds":\([0-9.e+-]*\).*/\1/p')
+    train=$(echo "$line" | sed 's/.*"train_seconds":\([0-9.e+-]*\).*/\1/')
+    # Share of rank 0's training pass spent in sums over the ranks (waits included).
+    echo "$arm $fps $(awk -v e="${exchange:-0}" -v t="$train" 'BEGIN { printf "%.3f", e / t }')" |
+        tee -a "$WORK/results"
 }
 MPIRUN=(mpirun --oversubscribe --bind-to none -np 2 --mca btl_vader_single_copy_mechanism none)
 # Warm-up: each arm decodes its cache (not timed: the first epoch of each is discarded).
@@ -66,8 +72,10 @@ for round in $(seq "$ROUNDS"); do
     run ranks-2 1 "${MPIRUN[@]}" "$MPI_BIN"
     run plain-2t 2 "$PLAIN_BIN"
 done
-echo "medians (frames/s):"
+median() { sort -g | awk '{ v[NR] = $1 } END { printf "%s", (NR % 2) ? v[(NR + 1) / 2] : (v[NR / 2] + v[NR / 2 + 1]) / 2 }'; }
+echo "medians (frames/s; for the ranks, the share of the training pass spent in exchanges):"
 for arm in one-2t ranks-2 plain-2t; do
-    grep "^$arm " "$WORK/results" | cut -d' ' -f2 | sort -g |
-        awk -v arm="$arm" '{ v[NR] = $1 } END { m = (NR % 2) ? v[(NR + 1) / 2] : (v[NR / 2] + v[NR / 2 + 1]) / 2; printf "%s %.0f\n", arm, m }'
+    printf '%s %.0f' "$arm" "$(grep "^$arm " "$WORK/results" | cut -d' ' -f2 | median)"
+    [ "$arm" = ranks-2 ] && printf ' %.3f' "$(grep "^$arm " "$WORK/results" | cut -d' ' -f3 | median)"
+    echo
 done

@@ -43,6 +43,11 @@ pub trait Collective: Send + Sync {
     }
     /// Ends every rank of the job with `code` (after this rank printed why).
     fn abort(&self, code: i32) -> !;
+    /// Wall seconds this rank has spent in sums so far (waiting for the slowest rank
+    /// included): what data parallelism costs on top of the work. 0 for one process.
+    fn exchange_seconds(&self) -> f64 {
+        0.0
+    }
 }
 
 /// The one-rank "collective": sums over one rank leave the values as they are.
@@ -105,6 +110,7 @@ pub use self::mpi_world::MpiCollective;
 
 #[cfg(feature = "mpi")]
 mod mpi_world {
+    use std::sync::atomic::{AtomicU64, Ordering};
     use std::thread::ThreadId;
     use std::time::{Duration, Instant};
 
@@ -137,6 +143,8 @@ mod mpi_world {
         timeout: Duration,
         thread: ThreadId,
         host: String,
+        // Nanoseconds spent in sums (only the communicating thread adds to it).
+        spent: AtomicU64,
         // Finalises MPI when dropped, after `world`.
         _universe: Universe,
     }
@@ -192,6 +200,7 @@ mod mpi_world {
                 timeout,
                 thread: std::thread::current().id(),
                 host: mpi::environment::processor_name().unwrap_or_else(|_| "?".into()),
+                spent: AtomicU64::new(0),
                 _universe: universe,
             }))
         }
@@ -242,6 +251,8 @@ mod mpi_world {
                     }
                 }
             });
+            let nanos = u64::try_from(started.elapsed().as_nanos()).unwrap_or(u64::MAX);
+            self.spent.fetch_add(nanos, Ordering::Relaxed);
             Ok(())
         }
     }
@@ -265,6 +276,10 @@ mod mpi_world {
 
         fn abort(&self, code: i32) -> ! {
             self.world.abort(code)
+        }
+
+        fn exchange_seconds(&self) -> f64 {
+            self.spent.load(Ordering::Relaxed) as f64 * 1e-9
         }
     }
 }

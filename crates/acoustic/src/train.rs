@@ -114,6 +114,10 @@ pub struct EpochRecord {
     /// Wall time of the dev pass, seconds.
     #[serde(default)]
     pub dev_seconds: f64,
+    /// Wall time this rank spent in sums over the ranks during the training pass, waiting for
+    /// the slowest rank included (0 in a single process).
+    #[serde(default)]
+    pub exchange_seconds: f64,
 }
 
 /// Counters that survive a resume.
@@ -662,6 +666,7 @@ impl Trainer {
             frames: lengths.iter().sum(),
         });
         let started = Instant::now();
+        let exchange_before = self.collective.exchange_seconds();
         let updates_before = self.optimizer.step;
         let (mut loss_sum, mut loss_frames, mut epoch_frames, mut skipped) =
             (0f64, 0usize, 0usize, 0);
@@ -734,6 +739,7 @@ impl Trainer {
         }
         let train_seconds = started.elapsed().as_secs_f64();
         let frames_per_second = epoch_frames as f64 / train_seconds.max(1e-9);
+        let exchange_seconds = self.collective.exchange_seconds() - exchange_before;
         let dev_started = Instant::now();
         let (dev_loss, dev_unit_error_rate) = self.evaluate(dev)?;
         let dev_seconds = dev_started.elapsed().as_secs_f64();
@@ -764,6 +770,7 @@ impl Trainer {
             train_seconds,
             feature_seconds,
             dev_seconds,
+            exchange_seconds,
         };
         self.progress.epochs_done = epoch;
         self.progress.history.push(record.clone());
