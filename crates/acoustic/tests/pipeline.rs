@@ -58,6 +58,14 @@ fn manifest(dir: &Path, name: &str, ids: &[&str]) -> PathBuf {
     path
 }
 
+/// Four demo utterances, one each of four speakers and dialects.
+const FEW: [&str; 4] = [
+    "larch01-0006",
+    "vale02-0008",
+    "corran01-0003",
+    "quays01-0019",
+];
+
 const TINY: &str = r#"
 [model]
 normalization = "layer"
@@ -109,13 +117,7 @@ fn options(
 #[test]
 fn overfits_a_handful_of_demo_utterances() {
     let dir = tempfile::tempdir().unwrap();
-    let ids = [
-        "larch01-0006",
-        "vale02-0008",
-        "corran01-0003",
-        "quays01-0019",
-    ];
-    let path = manifest(dir.path(), "few.tsv", &ids);
+    let path = manifest(dir.path(), "few.tsv", &FEW);
     let summary = train(
         &options(dir.path(), path.clone(), path.clone(), "normalized"),
         &mut |_| {},
@@ -223,13 +225,7 @@ fn bad_input_gets_errors_naming_the_file_and_item() {
 #[test]
 fn a_warm_start_begins_from_the_model_and_refuses_another_network() {
     let dir = tempfile::tempdir().unwrap();
-    let ids = [
-        "larch01-0006",
-        "vale02-0008",
-        "corran01-0003",
-        "quays01-0019",
-    ];
-    let path = manifest(dir.path(), "few.tsv", &ids);
+    let path = manifest(dir.path(), "few.tsv", &FEW);
     let shipped = Path::new(env!("CARGO_MANIFEST_DIR")).join("../../models/demo");
     let demo_config = ModelConfig::read(
         &Path::new(env!("CARGO_MANIFEST_DIR")).join("../../configs/tdnn-small.toml"),
@@ -283,6 +279,15 @@ gaussians = 8
 iterations = 2
 "#;
 
+/// Options that train the tiny network with the `[speaker_vectors]` table `vectors` on four
+/// demo utterances (training and dev alike), and the manifest of those utterances.
+fn speaker_vector_run(dir: &Path, vectors: &str) -> (TrainOptions, PathBuf) {
+    let path = manifest(dir, "few.tsv", &FEW);
+    let mut options = options(dir, path.clone(), path.clone(), "normalized");
+    options.config = ModelConfig::parse(&format!("{TINY}{vectors}")).unwrap();
+    (options, path)
+}
+
 /// Issue 15: a model with speaker vectors trains its extractor first, keeps it in the model
 /// directory, and transcribes from the directory alone; a resumed run reads the extractor from
 /// the cache instead of training it again; an extractor that does not fit the model is refused
@@ -290,15 +295,7 @@ iterations = 2
 #[test]
 fn a_model_with_speaker_vectors_trains_and_transcribes_from_its_directory_alone() {
     let dir = tempfile::tempdir().unwrap();
-    let ids = [
-        "larch01-0006",
-        "vale02-0008",
-        "corran01-0003",
-        "quays01-0019",
-    ];
-    let path = manifest(dir.path(), "few.tsv", &ids);
-    let mut options = options(dir.path(), path.clone(), path.clone(), "normalized");
-    options.config = ModelConfig::parse(&format!("{TINY}{SPEAKER_VECTORS}")).unwrap();
+    let (mut options, path) = speaker_vector_run(dir.path(), SPEAKER_VECTORS);
     let mut extractor_steps = 0;
     let summary = train(&options, &mut |event| {
         if let PipelineEvent::SpeakerVectors(_) = event {
@@ -392,16 +389,8 @@ fn a_model_with_speaker_vectors_trains_and_transcribes_from_its_directory_alone(
 #[test]
 fn a_model_with_speaker_vectors_at_every_layer_trains_and_transcribes() {
     let dir = tempfile::tempdir().unwrap();
-    let ids = [
-        "larch01-0006",
-        "vale02-0008",
-        "corran01-0003",
-        "quays01-0019",
-    ];
-    let path = manifest(dir.path(), "few.tsv", &ids);
-    let mut options = options(dir.path(), path.clone(), path.clone(), "normalized");
     let layers = SPEAKER_VECTORS.replace(r#"input = "frames""#, r#"input = "layers""#);
-    options.config = ModelConfig::parse(&format!("{TINY}{layers}")).unwrap();
+    let (options, path) = speaker_vector_run(dir.path(), &layers);
     let summary = train(&options, &mut |_| {}).expect("training runs");
     let best = summary.best.expect("some epoch improved");
     assert!(
@@ -438,8 +427,8 @@ fn a_model_with_speaker_vectors_at_every_layer_trains_and_transcribes() {
 #[test]
 fn training_and_transcription_give_the_network_the_same_speaker_vectors() {
     let dir = tempfile::tempdir().unwrap();
-    let ids = ["larch01-0006", "vale02-0008", "corran01-0003"];
-    let path = manifest(dir.path(), "few.tsv", &ids);
+    let ids = &FEW[..3];
+    let path = manifest(dir.path(), "few.tsv", ids);
     let manifest = Manifest::read(&path).unwrap();
     let mut config = ModelConfig::parse(&format!(
         "{TINY}{SPEAKER_VECTORS}\n[features]\ncmvn = \"utterance\"\n"
