@@ -13,12 +13,13 @@ use isogloss_score::{align, tokenize, TokenRules, VariantMap};
 use isogloss_sweep::resources::lm_words;
 
 /// WER and flexible WER of the first interview with the shipped model, LM and lexicon at the
-/// default decoder settings, measured 28.3 % and 25.0 % (272 reference words; the interviewer's
-/// questions are not in the LM's text; 28.3 % / 25.4 % with the narrow-context model before it,
+/// default decoder settings, measured 32.7 % and 29.4 % (272 reference words; the interviewer's
+/// questions are not in the LM's text; 28.3 % / 25.0 % with the light-dose model before it,
+/// which did worse on every degraded channel; 28.3 % / 25.4 % with the narrow-context model,
 /// 36.8 % / 33.5 % with the model of the recipe before that), plus about two points
 /// (DEVELOPERS.md).
-const MAX_INTERVIEW_WER: f64 = 0.305;
-const MAX_INTERVIEW_FLEXIBLE_WER: f64 = 0.27;
+const MAX_INTERVIEW_WER: f64 = 0.347;
+const MAX_INTERVIEW_FLEXIBLE_WER: f64 = 0.314;
 
 fn repo(path: &str) -> PathBuf {
     Path::new(env!("CARGO_MANIFEST_DIR"))
@@ -121,10 +122,10 @@ fn lm_and_lexicon_decoding_beats_greedy_on_the_test_split() {
         "LM + lexicon WER {wer} should be below greedy WER {greedy_wer}"
     );
     // The same LM and lexicon as `isogloss demo` at the default settings: the demo's measured
-    // 11.4 % / 7.3 % (README) plus about two points, as in tests/demo_cli.rs.
+    // 12.7 % / 8.8 % (README) plus about two points, as in tests/demo_cli.rs.
     assert!(
-        wer <= 0.134 && flexible_wer <= 0.093,
-        "LM + lexicon WER {wer:.3} / flexible {flexible_wer:.3} above 0.134 / 0.093"
+        wer <= 0.147 && flexible_wer <= 0.108,
+        "LM + lexicon WER {wer:.3} / flexible {flexible_wer:.3} above 0.147 / 0.108"
     );
     assert!(
         flexible_wer < wer,

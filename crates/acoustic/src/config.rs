@@ -727,6 +727,7 @@ mod tests {
     fn the_shipped_configs_are_within_the_limits() {
         for text in [
             include_str!("../../../configs/tdnn-small.toml"),
+            include_str!("../../../configs/tdnn-small-robust.toml"),
             include_str!("../../../configs/tdnn-medium.toml"),
             include_str!("../../../configs/tdnn-narrow.toml"),
             include_str!("../../../configs/tdnn-small-ivector.toml"),
