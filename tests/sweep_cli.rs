@@ -523,6 +523,99 @@ word_bonus = [1.5]
     assert_eq!(again["cells"][0]["overall"], cells[0]["overall"]);
 }
 
+/// Issue 16: a cell whose lexicon file is damaged (a line without the tab) fails alone, with
+/// the file and the line in its reason; the other cell is decoded and written, the failure is
+/// listed at the end, marked in `results.csv`, and the exit code is 2.
+#[test]
+fn a_cell_with_a_damaged_lexicon_fails_alone_naming_the_line() {
+    let dir = tempfile::tempdir().unwrap();
+    let dir = dir.path();
+    let (manifest, _) = slice_of_test_split(dir);
+    let broken = dir.join("broken.tsv");
+    std::fs::write(&broken, "hens\th e n s\nbroken line without a tab\n").unwrap();
+    let config = dir.join("sweep.toml");
+    std::fs::write(
+        &config,
+        format!(
+            r#"out_dir = "{out}"
+models = ["{model}"]
+test = "{manifest}"
+columns = ["dialectal"]
+resamples = 100
+
+[[lm]]
+name = "two"
+order = 2
+text = ["{train}"]
+
+[[lexicon]]
+name = "letters"
+kind = "grapheme"
+
+[[lexicon]]
+name = "broken"
+kind = "file"
+path = "{broken}"
+
+[decoder]
+beam = [16]
+lm_weight = [0.8]
+word_bonus = [1.5]
+"#,
+            out = text(&dir.join("out")),
+            model = text(&repo("models/demo")),
+            manifest = text(&manifest),
+            train = text(&repo("tests/data/demo/train.{column}.txt")),
+            broken = text(&broken),
+        ),
+    )
+    .unwrap();
+    let output = Command::new(env!("CARGO_BIN_EXE_isogloss"))
+        .args(["sweep", "--config", &text(&config), "--json"])
+        .output()
+        .expect("the isogloss binary runs");
+    let stderr = String::from_utf8_lossy(&output.stderr).into_owned();
+    assert_eq!(output.status.code(), Some(2), "{stderr}");
+    let reason = format!(
+        "lexicon broken: {}, line 2: expected at least 2 tab-separated fields, found 1",
+        text(&broken)
+    );
+    let listed = stderr
+        .split_once("1 of 2 cells failed")
+        .unwrap_or_else(|| panic!("no list of failures:\n{stderr}"))
+        .1;
+    assert!(
+        listed.contains(&format!(
+            "  demo dialectal lm=two lexicon=broken beam=16 lm-weight=0.8 word-bonus=1.5: {reason}"
+        )),
+        "{stderr}"
+    );
+    let results: serde_json::Value = serde_json::from_slice(&output.stdout).unwrap();
+    let cells = results["cells"].as_array().unwrap();
+    assert_eq!(cells.len(), 1);
+    assert_eq!(cells[0]["lexicon"], "letters");
+    assert!(cells[0]["overall"]["wer"].is_number());
+    let failed = results["failed"].as_array().unwrap();
+    assert_eq!(failed.len(), 1);
+    assert_eq!(failed[0]["lexicon"], "broken");
+    assert_eq!(failed[0]["reason"], reason.as_str());
+    let csv = std::fs::read_to_string(dir.join("out/results.csv")).unwrap();
+    let mut lines = csv.lines();
+    let header: Vec<&str> = lines.next().unwrap().split(',').collect();
+    let (lexicon, failure) = (
+        header.iter().position(|h| *h == "lexicon").unwrap(),
+        header.iter().position(|h| *h == "failure").unwrap(),
+    );
+    let rows: Vec<Vec<String>> = lines.map(split_csv).collect();
+    let broken_rows: Vec<&Vec<String>> = rows.iter().filter(|r| r[lexicon] == "broken").collect();
+    assert_eq!(broken_rows.len(), 1, "{csv}");
+    assert_eq!(broken_rows[0][failure], reason);
+    assert!(rows
+        .iter()
+        .filter(|r| r[lexicon] == "letters")
+        .all(|r| r[failure].is_empty()));
+}
+
 /// One CSV line split into fields (quoted fields may hold commas and doubled quotes).
 fn split_csv(line: &str) -> Vec<String> {
     let mut fields = vec![String::new()];
