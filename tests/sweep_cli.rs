@@ -370,6 +370,53 @@ fn the_shipped_demo_sweep_reads_and_pairs_each_model_with_its_lexicon() {
     }
 }
 
+/// A sweep of the shipped model over `manifest` with one good cell (LM `two`, lexicon
+/// `letters`, one decoder setting) and whatever `extra` adds (another `[[lm]]` or
+/// `[[lexicon]]`), into `dir/out`. Returns the sweep file.
+fn sweep_beside_a_good_cell(dir: &Path, manifest: &Path, extra: &str) -> PathBuf {
+    let config = dir.join("sweep.toml");
+    std::fs::write(
+        &config,
+        format!(
+            r#"out_dir = "{out}"
+models = ["{model}"]
+test = "{manifest}"
+columns = ["dialectal"]
+resamples = 100
+
+[[lm]]
+name = "two"
+order = 2
+text = ["{train}"]
+
+[[lexicon]]
+name = "letters"
+kind = "grapheme"
+
+{extra}
+[decoder]
+beam = [16]
+lm_weight = [0.8]
+word_bonus = [1.5]
+"#,
+            out = text(&dir.join("out")),
+            model = text(&repo("models/demo")),
+            manifest = text(manifest),
+            train = text(&repo("tests/data/demo/train.{column}.txt")),
+        ),
+    )
+    .unwrap();
+    config
+}
+
+/// `isogloss sweep --config CONFIG --json`, whatever its exit code.
+fn sweep_output(config: &Path) -> Output {
+    Command::new(env!("CARGO_BIN_EXE_isogloss"))
+        .args(["sweep", "--config", &text(config), "--json"])
+        .output()
+        .expect("the isogloss binary runs")
+}
+
 /// Issue 16: a cell whose LM file is damaged fails alone. The other cell is decoded, scored and
 /// written; every output marks the failed cell with its reason (naming the file); the failures
 /// are listed at the end and the exit code is 2 (docs/exit-codes.md). Once the file is repaired,
@@ -386,48 +433,12 @@ fn a_cell_with_a_damaged_lm_fails_alone_and_the_others_are_written() {
         "\\data\\\nngram 1=99999999999\n\n\\1-grams:\n-1.0\ta\n\n\\end\\\n",
     )
     .unwrap();
-    let config = dir.join("sweep.toml");
-    std::fs::write(
-        &config,
-        format!(
-            r#"out_dir = "{out}"
-models = ["{model}"]
-test = "{manifest}"
-columns = ["dialectal"]
-resamples = 100
-
-[[lm]]
-name = "two"
-order = 2
-text = ["{train}"]
-
-[[lm]]
-name = "broken"
-file = "{broken}"
-
-[[lexicon]]
-name = "letters"
-kind = "grapheme"
-
-[decoder]
-beam = [16]
-lm_weight = [0.8]
-word_bonus = [1.5]
-"#,
-            out = text(&dir.join("out")),
-            model = text(&repo("models/demo")),
-            manifest = text(&manifest),
-            train = text(&repo("tests/data/demo/train.{column}.txt")),
-            broken = text(&broken),
-        ),
-    )
-    .unwrap();
-    let sweep = || {
-        Command::new(env!("CARGO_BIN_EXE_isogloss"))
-            .args(["sweep", "--config", &text(&config), "--json"])
-            .output()
-            .expect("the isogloss binary runs")
-    };
+    let config = sweep_beside_a_good_cell(
+        dir,
+        &manifest,
+        &format!("[[lm]]\nname = \"broken\"\nfile = \"{}\"\n", text(&broken)),
+    );
+    let sweep = || sweep_output(&config);
 
     let output = sweep();
     let stderr = String::from_utf8_lossy(&output.stderr).into_owned();
@@ -533,47 +544,15 @@ fn a_cell_with_a_damaged_lexicon_fails_alone_naming_the_line() {
     let (manifest, _) = slice_of_test_split(dir);
     let broken = dir.join("broken.tsv");
     std::fs::write(&broken, "hens\th e n s\nbroken line without a tab\n").unwrap();
-    let config = dir.join("sweep.toml");
-    std::fs::write(
-        &config,
-        format!(
-            r#"out_dir = "{out}"
-models = ["{model}"]
-test = "{manifest}"
-columns = ["dialectal"]
-resamples = 100
-
-[[lm]]
-name = "two"
-order = 2
-text = ["{train}"]
-
-[[lexicon]]
-name = "letters"
-kind = "grapheme"
-
-[[lexicon]]
-name = "broken"
-kind = "file"
-path = "{broken}"
-
-[decoder]
-beam = [16]
-lm_weight = [0.8]
-word_bonus = [1.5]
-"#,
-            out = text(&dir.join("out")),
-            model = text(&repo("models/demo")),
-            manifest = text(&manifest),
-            train = text(&repo("tests/data/demo/train.{column}.txt")),
-            broken = text(&broken),
+    let config = sweep_beside_a_good_cell(
+        dir,
+        &manifest,
+        &format!(
+            "[[lexicon]]\nname = \"broken\"\nkind = \"file\"\npath = \"{}\"\n",
+            text(&broken)
         ),
-    )
-    .unwrap();
-    let output = Command::new(env!("CARGO_BIN_EXE_isogloss"))
-        .args(["sweep", "--config", &text(&config), "--json"])
-        .output()
-        .expect("the isogloss binary runs");
+    );
+    let output = sweep_output(&config);
     let stderr = String::from_utf8_lossy(&output.stderr).into_owned();
     assert_eq!(output.status.code(), Some(2), "{stderr}");
     let reason = format!(
