@@ -59,8 +59,8 @@ pub use codec::{
 pub use filter::{band_limit, band_limit_gain, BUTTERWORTH_ORDER};
 pub use fourier::{convolve, FftPlans};
 pub use noise::{
-    babble, coloured_noise, loop_to_length, mean_power, mix_at_snr, BabbleSource, NoiseKind,
-    COLOURED_NOISE_LOW_HZ, LOOP_CROSSFADE_SAMPLES,
+    babble, coloured_noise, hum, loop_to_length, mean_power, mix_at_snr, BabbleSource, HumSettings,
+    NoiseKind, COLOURED_NOISE_LOW_HZ, HUM_HARMONICS, HUM_HISS_DB, LOOP_CROSSFADE_SAMPLES, MAINS_HZ,
 };
 pub use room::{
     image_source_rir, reverberate, sabine_absorption, ImageSourceSettings, RirBank, Room,
@@ -663,6 +663,13 @@ impl Augmenter {
                 )),
                 Vec::new(),
             ),
+            None if kind == NoiseKind::Hum => {
+                let settings = HumSettings::draw(SAMPLE_RATE, rng);
+                (
+                    Some(hum(samples.len(), SAMPLE_RATE, &settings, rng)),
+                    Vec::new(),
+                )
+            }
             None => {
                 let source = babble_source
                     .filter(|source| source.utterance_count() > 0)
@@ -894,6 +901,31 @@ mod tests {
         assert!((25.0..=40.0).contains(&codec.floor_db));
         assert_eq!(first.len(), 24_000);
         assert!(first.iter().all(|x| x.is_finite()));
+    }
+
+    #[test]
+    fn hum_is_a_noise_kind_of_the_config_file_and_needs_no_source() {
+        let config = parse("[noise]\nprobability = 1.0\nkinds = [\"hum\"]").unwrap();
+        assert_eq!(config.noise.kinds, [NoiseKind::Hum]);
+        let mut only_noise = config;
+        only_noise.reverb.probability = 0.0;
+        only_noise.band_limit.probability = 0.0;
+        only_noise.gain.probability = 0.0;
+        only_noise.codec.probability = 0.0;
+        let augmenter = Augmenter::new(only_noise).unwrap();
+        let clean = utterance(0);
+        let mut samples = clean.clone();
+        let mut rng = ChaCha8Rng::seed_from_u64(2);
+        let applied = augmenter.apply(&mut samples, &mut rng, None).unwrap();
+        let noise = applied.noise.unwrap();
+        assert_eq!(noise.kind, NoiseKind::Hum);
+        // What was added is at the drawn SNR, over the whole utterance.
+        let added: Vec<f32> = samples.iter().zip(&clean).map(|(a, b)| a - b).collect();
+        let measured = 10.0 * (mean_power(&clean) / mean_power(&added)).log10();
+        assert!(
+            (measured - noise.snr_db).abs() < 1e-3,
+            "{measured} {noise:?}"
+        );
     }
 
     #[test]

@@ -1,5 +1,5 @@
-//! Additive noise: generated coloured noise, babble, looping with a cross-fade, mixing at an
-//! exact signal-to-noise ratio.
+//! Additive noise: generated coloured noise, mains hum, babble, looping with a cross-fade,
+//! mixing at an exact signal-to-noise ratio.
 
 use std::borrow::Cow;
 
@@ -30,18 +30,117 @@ pub enum NoiseKind {
     Brown,
     /// A sum of other utterances, supplied by the caller through a [`BabbleSource`].
     Babble,
+    /// Mains hum: a 50 or 60 Hz tone and its harmonics over a broadband hiss ([`hum`]), as a
+    /// ground loop or an unshielded tape recorder leaves on a transfer.
+    Hum,
 }
 
 impl NoiseKind {
-    /// The exponent β of the power spectrum 1/f^β of a generated noise; `None` for babble.
+    /// The exponent β of the power spectrum 1/f^β of a coloured noise; `None` for babble and
+    /// hum.
     pub fn spectral_exponent(self) -> Option<f64> {
         match self {
             NoiseKind::White => Some(0.0),
             NoiseKind::Pink => Some(1.0),
             NoiseKind::Brown => Some(2.0),
-            NoiseKind::Babble => None,
+            NoiseKind::Babble | NoiseKind::Hum => None,
         }
     }
+}
+
+/// The nominal frequencies of public mains supplies (Hz); a hum draws one of them.
+pub const MAINS_HZ: [f64; 2] = [50.0, 60.0];
+
+/// How many harmonics of the mains frequency a hum has (the fundamental counts as the first),
+/// [low, high], drawn uniformly.
+pub const HUM_HARMONICS: [usize; 2] = [3, 12];
+
+/// The level of the white hiss under a hum, relative to the hum's tones (dB), [low, high],
+/// drawn uniformly.
+pub const HUM_HISS_DB: [f64; 2] = [-20.0, -3.0];
+
+/// What a hum is made of.
+#[derive(Debug, Clone, PartialEq)]
+pub struct HumSettings {
+    /// The mains frequency (Hz).
+    pub mains_hz: f64,
+    /// Amplitude of each harmonic, the fundamental first (harmonic h is at h·`mains_hz`).
+    pub amplitudes: Vec<f64>,
+    /// Phase of each harmonic (radians), as many as `amplitudes`.
+    pub phases: Vec<f64>,
+    /// Power of the white hiss relative to the power of the tones (dB); `None`: no hiss.
+    pub hiss_db: Option<f64>,
+}
+
+impl HumSettings {
+    /// Draws a hum: a mains frequency from [`MAINS_HZ`], a number of harmonics in
+    /// [`HUM_HARMONICS`] (those below the Nyquist frequency), amplitude u/h for harmonic h with
+    /// u uniform in [0.25, 1], uniform phases, and hiss at a level in [`HUM_HISS_DB`].
+    pub fn draw<R: Rng + ?Sized>(sample_rate: u32, rng: &mut R) -> Self {
+        let mains_hz = MAINS_HZ[rng.random_range(0..MAINS_HZ.len())];
+        let count = rng.random_range(HUM_HARMONICS[0]..=HUM_HARMONICS[1]);
+        let nyquist = f64::from(sample_rate) / 2.0;
+        let count = count.min((nyquist / mains_hz).ceil() as usize - 1).max(1);
+        let amplitudes = (1..=count)
+            .map(|h| rng.random_range(0.25..=1.0) / h as f64)
+            .collect();
+        let phases = (0..count)
+            .map(|_| rng.random_range(0.0..std::f64::consts::TAU))
+            .collect();
+        let hiss_db = Some(rng.random_range(HUM_HISS_DB[0]..=HUM_HISS_DB[1]));
+        HumSettings {
+            mains_hz,
+            amplitudes,
+            phases,
+            hiss_db,
+        }
+    }
+}
+
+/// `length` samples of the hum `settings` describe, with unit mean power:
+///
+/// t[n] = Σ_h a_h·sin(2π·h·f·n/fs + φ_h), then white Gaussian hiss w[n] scaled so that its
+/// power is 10^(hiss/10) times the tones' (mean powers over the `length` samples), and the sum
+/// scaled to unit mean power.
+pub fn hum<R: Rng + ?Sized>(
+    length: usize,
+    sample_rate: u32,
+    settings: &HumSettings,
+    rng: &mut R,
+) -> Vec<f32> {
+    let step = std::f64::consts::TAU * settings.mains_hz / f64::from(sample_rate);
+    let mut tones: Vec<f64> = (0..length)
+        .map(|n| {
+            let angle = step * n as f64;
+            settings
+                .amplitudes
+                .iter()
+                .zip(&settings.phases)
+                .enumerate()
+                .map(|(k, (&a, &phase))| a * ((k + 1) as f64 * angle + phase).sin())
+                .sum()
+        })
+        .collect();
+    let tone_power = tones.iter().map(|x| x * x).sum::<f64>() / length.max(1) as f64;
+    if let Some(hiss_db) = settings.hiss_db {
+        let hiss: Vec<f64> = (0..length)
+            .map(|_| f64::from(rng.sample::<f32, _>(StandardNormal)))
+            .collect();
+        let hiss_power = hiss.iter().map(|x| x * x).sum::<f64>() / length.max(1) as f64;
+        if hiss_power > 0.0 {
+            let scale = (tone_power * 10f64.powf(hiss_db / 10.0) / hiss_power).sqrt();
+            for (tone, noise) in tones.iter_mut().zip(hiss) {
+                *tone += scale * noise;
+            }
+        }
+    }
+    let power = tones.iter().map(|x| x * x).sum::<f64>() / length.max(1) as f64;
+    let scale = if power > 0.0 {
+        power.sqrt().recip()
+    } else {
+        0.0
+    };
+    tones.into_iter().map(|x| (x * scale) as f32).collect()
 }
 
 /// Where babble comes from: other utterances of the training set, by index. The training loop
@@ -264,9 +363,14 @@ mod tests {
             NoiseKind::Pink,
             NoiseKind::Brown,
             NoiseKind::Babble,
+            NoiseKind::Hum,
         ] {
             let noise = match kind.spectral_exponent() {
                 Some(exponent) => coloured_noise(clean.len(), exponent, 16_000, &mut rng, &plans),
+                None if kind == NoiseKind::Hum => {
+                    let settings = HumSettings::draw(16_000, &mut rng);
+                    hum(clean.len(), 16_000, &settings, &mut rng)
+                }
                 None => babble(&talkers, clean.len(), &mut rng).unwrap(),
             };
             for snr in [0.0, 5.0, 12.5, 20.0, 40.0] {
@@ -313,6 +417,68 @@ mod tests {
         // A one-sample source repeats (no room for a fade).
         assert_eq!(loop_to_length(&[0.5], 3, 0), [0.5, 0.5, 0.5]);
         assert_eq!(loop_to_length(&[], 2, 0), [0.0, 0.0]);
+    }
+
+    /// Power of each whole-hertz bin of a one-second signal at 16 kHz (an exact number of
+    /// periods of every harmonic of 50 and 60 Hz, so a tone falls in one bin, no leakage).
+    fn one_hertz_power(signal: &[f32], plans: &FftPlans) -> Vec<f64> {
+        assert_eq!(signal.len(), 16_000);
+        let mut buffer: Vec<Complex<f32>> = signal.iter().map(|&x| Complex::new(x, 0.0)).collect();
+        plans.forward(16_000).process(&mut buffer);
+        buffer[..8_000]
+            .iter()
+            .map(|c| f64::from(c.norm_sqr()))
+            .collect()
+    }
+
+    #[test]
+    fn hum_is_its_harmonics_over_hiss_at_the_drawn_level() {
+        let plans = FftPlans::new();
+        let mut rng = ChaCha8Rng::seed_from_u64(11);
+        // Tones only: every bit of power sits on the harmonics of the mains frequency, in the
+        // proportions a_h² (Parseval: a sine of amplitude a has power a²/2).
+        let settings = HumSettings {
+            mains_hz: 60.0,
+            amplitudes: vec![1.0, 0.5, 0.25],
+            phases: vec![0.3, 2.0, 4.0],
+            hiss_db: None,
+        };
+        let tones = hum(16_000, 16_000, &settings, &mut rng);
+        assert!((mean_power(&tones) - 1.0).abs() < 1e-5);
+        let power = one_hertz_power(&tones, &plans);
+        let total: f64 = power.iter().sum();
+        let share = |hz: usize| power[hz] / total;
+        let expected = [1.0, 0.25, 0.0625].map(|a2| a2 / 1.3125);
+        for (h, want) in expected.iter().enumerate() {
+            let got = share(60 * (h + 1));
+            assert!((got - want).abs() < 1e-4, "harmonic {}: {got}", h + 1);
+        }
+        // With hiss 10 dB under the tones, the tones keep 1/(1 + 0.1) of the power; the hiss
+        // spreads the rest over all 8 000 bins, 3 of which are the tones'.
+        let with_hiss = HumSettings {
+            hiss_db: Some(-10.0),
+            ..settings
+        };
+        let noisy = hum(16_000, 16_000, &with_hiss, &mut rng);
+        assert!((mean_power(&noisy) - 1.0).abs() < 1e-5);
+        let power = one_hertz_power(&noisy, &plans);
+        let tonal: f64 = [60, 120, 180].iter().map(|&hz| power[hz]).sum();
+        let share = tonal / power.iter().sum::<f64>();
+        assert!((share - 1.0 / 1.1).abs() < 0.01, "{share}");
+        // Drawn hums stay within their documented ranges, at a mains frequency of the list.
+        for _ in 0..50 {
+            let drawn = HumSettings::draw(16_000, &mut rng);
+            assert!(MAINS_HZ.contains(&drawn.mains_hz));
+            assert!((HUM_HARMONICS[0]..=HUM_HARMONICS[1]).contains(&drawn.amplitudes.len()));
+            assert_eq!(drawn.amplitudes.len(), drawn.phases.len());
+            for (h, a) in drawn.amplitudes.iter().enumerate() {
+                let h = (h + 1) as f64;
+                assert!((0.25 / h..=1.0 / h).contains(a), "{a} at harmonic {h}");
+            }
+            let hiss = drawn.hiss_db.unwrap();
+            assert!((HUM_HISS_DB[0]..=HUM_HISS_DB[1]).contains(&hiss));
+        }
+        assert!(hum(0, 16_000, &with_hiss, &mut rng).is_empty());
     }
 
     #[test]
