@@ -19,6 +19,23 @@ fn path(p: &Path) -> &str {
     p.to_str().unwrap()
 }
 
+/// `isogloss lexicon COMMAND --option value …`.
+fn lexicon_command(command: &str, options: &[(&str, &str)]) -> Output {
+    let mut args = vec!["lexicon", command];
+    for (option, value) in options {
+        args.extend([*option, *value]);
+    }
+    isogloss(&args)
+}
+
+fn stderr_of(output: &Output) -> String {
+    String::from_utf8_lossy(&output.stderr).into_owned()
+}
+
+fn assert_succeeded(output: &Output) {
+    assert!(output.status.success(), "{}", stderr_of(output));
+}
+
 /// The dialectal words of a demo manifest, split on white space (the demo transcripts are
 /// lower case without punctuation, so this is an independent tokenization for them).
 fn dialectal_words(manifest: &str) -> Vec<String> {
@@ -47,21 +64,15 @@ fn coverage_of_the_demo_test_split_by_a_training_lexicon_equals_an_independent_c
     std::fs::write(&words, train_words.join("\n")).unwrap();
     let lexicon = dir.path().join("train.tsv");
     let rules = root().join("configs/rules-demo-dialectal.toml");
-    let output = isogloss(&[
-        "lexicon",
+    let output = lexicon_command(
         "rules",
-        "--words",
-        path(&words),
-        "--rules",
-        path(&rules),
-        "--out",
-        path(&lexicon),
-    ]);
-    assert!(
-        output.status.success(),
-        "{}",
-        String::from_utf8_lossy(&output.stderr)
+        &[
+            ("--words", path(&words)),
+            ("--rules", path(&rules)),
+            ("--out", path(&lexicon)),
+        ],
     );
+    assert_succeeded(&output);
 
     let manifest = root().join("tests/data/demo/test.tsv");
     let output = isogloss(&[
@@ -75,11 +86,7 @@ fn coverage_of_the_demo_test_split_by_a_training_lexicon_equals_an_independent_c
         "dialectal",
         "--json",
     ]);
-    assert!(
-        output.status.success(),
-        "{}",
-        String::from_utf8_lossy(&output.stderr)
-    );
+    assert_succeeded(&output);
     let report: serde_json::Value = serde_json::from_slice(&output.stdout).unwrap();
 
     // Independent count: a set of training words against the test tokens.
@@ -109,16 +116,14 @@ fn coverage_of_the_demo_test_split_by_a_training_lexicon_equals_an_independent_c
     // Held-out words exist in the demo (its README says so), so coverage is below 100%.
     assert!(!oov.is_empty());
 
-    let text = isogloss(&[
-        "lexicon",
+    let text = lexicon_command(
         "coverage",
-        "--lexicon",
-        path(&lexicon),
-        "--manifest",
-        path(&manifest),
-        "--column",
-        "dialectal",
-    ]);
+        &[
+            ("--lexicon", path(&lexicon)),
+            ("--manifest", path(&manifest)),
+            ("--column", "dialectal"),
+        ],
+    );
     let text = String::from_utf8_lossy(&text.stdout);
     assert!(text.contains("around 80% on held-out"), "{text}");
 }
@@ -135,18 +140,16 @@ fn rule_file_syntax_error_names_the_line() {
     let words = dir.path().join("words.txt");
     std::fs::write(&words, "ab\n").unwrap();
     let out = dir.path().join("out.tsv");
-    let output = isogloss(&[
-        "lexicon",
+    let output = lexicon_command(
         "rules",
-        "--words",
-        path(&words),
-        "--rules",
-        path(&rules),
-        "--out",
-        path(&out),
-    ]);
+        &[
+            ("--words", path(&words)),
+            ("--rules", path(&rules)),
+            ("--out", path(&out)),
+        ],
+    );
     assert_eq!(output.status.code(), Some(1));
-    let stderr = String::from_utf8_lossy(&output.stderr);
+    let stderr = stderr_of(&output);
     assert!(stderr.contains("broken.toml, line 6"), "{stderr}");
 }
 
@@ -158,18 +161,16 @@ fn unknown_graphemes_and_letterless_words_are_listed_and_the_rest_is_written() {
     let words = dir.path().join("words.txt");
     std::fs::write(&words, "ab\nabc\n'\nba\n").unwrap();
     let out = dir.path().join("out.tsv");
-    let output = isogloss(&[
-        "lexicon",
+    let output = lexicon_command(
         "rules",
-        "--words",
-        path(&words),
-        "--rules",
-        path(&rules),
-        "--out",
-        path(&out),
-    ]);
+        &[
+            ("--words", path(&words)),
+            ("--rules", path(&rules)),
+            ("--out", path(&out)),
+        ],
+    );
     assert_eq!(output.status.code(), Some(2));
-    let stderr = String::from_utf8_lossy(&output.stderr);
+    let stderr = stderr_of(&output);
     assert!(
         stderr.contains("abc: no rule covers `c` at letter 3"),
         "{stderr}"
@@ -190,61 +191,47 @@ fn g2p_train_apply_and_bad_dictionaries() {
     let empty = dir.path().join("empty.tsv");
     std::fs::write(&empty, "\n").unwrap();
     let model = dir.path().join("model.g2p");
-    let output = isogloss(&[
-        "lexicon",
+    let output = lexicon_command(
         "train-g2p",
-        "--lexicon",
-        path(&empty),
-        "--out",
-        path(&model),
-    ]);
+        &[("--lexicon", path(&empty)), ("--out", path(&model))],
+    );
     assert_eq!(output.status.code(), Some(1));
-    let stderr = String::from_utf8_lossy(&output.stderr);
+    let stderr = stderr_of(&output);
     assert!(
         stderr.contains("empty.tsv: expected at least one"),
         "{stderr}"
     );
 
     let dict = root().join("tests/fixtures/lexicon/cmudict-subset.tsv");
-    let output = isogloss(&[
-        "lexicon",
+    let output = lexicon_command(
         "train-g2p",
-        "--lexicon",
-        path(&dict),
-        "--out",
-        path(&model),
-        "--order",
-        "3",
-    ]);
-    assert!(
-        output.status.success(),
-        "{}",
-        String::from_utf8_lossy(&output.stderr)
+        &[
+            ("--lexicon", path(&dict)),
+            ("--out", path(&model)),
+            ("--order", "3"),
+        ],
     );
+    assert_succeeded(&output);
     let words = dir.path().join("words.txt");
     std::fs::write(&words, "mother\n'\nwater\n").unwrap();
     let out = dir.path().join("out.tsv");
     let scores = dir.path().join("scores.tsv");
-    let output = isogloss(&[
-        "lexicon",
+    let output = lexicon_command(
         "apply-g2p",
-        "--model",
-        path(&model),
-        "--words",
-        path(&words),
-        "--out",
-        path(&out),
-        "--nbest",
-        "2",
-        "--scores",
-        path(&scores),
-    ]);
+        &[
+            ("--model", path(&model)),
+            ("--words", path(&words)),
+            ("--out", path(&out)),
+            ("--nbest", "2"),
+            ("--scores", path(&scores)),
+        ],
+    );
     assert_eq!(
         output.status.code(),
         Some(2),
         "the letterless word fails, the rest is done"
     );
-    let stderr = String::from_utf8_lossy(&output.stderr);
+    let stderr = stderr_of(&output);
     assert!(
         stderr.contains("': expected at least one letter"),
         "{stderr}"
@@ -307,19 +294,11 @@ fn apply_g2p_gives_the_dictionary_pronunciations_of_training_words() {
     let dir = tempfile::tempdir().unwrap();
     let dict = root().join("tests/fixtures/lexicon/cmudict-subset.tsv");
     let model = dir.path().join("model.g2p");
-    let output = isogloss(&[
-        "lexicon",
+    let output = lexicon_command(
         "train-g2p",
-        "--lexicon",
-        path(&dict),
-        "--out",
-        path(&model),
-    ]);
-    assert!(
-        output.status.success(),
-        "{}",
-        String::from_utf8_lossy(&output.stderr)
+        &[("--lexicon", path(&dict)), ("--out", path(&model))],
     );
+    assert_succeeded(&output);
     // Every 40th word with a single pronunciation in the dictionary.
     let text = std::fs::read_to_string(&dict).unwrap();
     let mut pronunciations: std::collections::BTreeMap<&str, Vec<&str>> = Default::default();
@@ -337,25 +316,17 @@ fn apply_g2p_gives_the_dictionary_pronunciations_of_training_words() {
     let list: Vec<&str> = chosen.iter().map(|(w, _)| *w).collect();
     std::fs::write(&words, list.join("\n")).unwrap();
     let (out, scores) = (dir.path().join("out.tsv"), dir.path().join("scores.tsv"));
-    let output = isogloss(&[
-        "lexicon",
+    let output = lexicon_command(
         "apply-g2p",
-        "--model",
-        path(&model),
-        "--words",
-        path(&words),
-        "--out",
-        path(&out),
-        "--nbest",
-        "2",
-        "--scores",
-        path(&scores),
-    ]);
-    assert!(
-        output.status.success(),
-        "{}",
-        String::from_utf8_lossy(&output.stderr)
+        &[
+            ("--model", path(&model)),
+            ("--words", path(&words)),
+            ("--out", path(&out)),
+            ("--nbest", "2"),
+            ("--scores", path(&scores)),
+        ],
     );
+    assert_succeeded(&output);
     let lexicon: Vec<(String, String)> = std::fs::read_to_string(&out)
         .unwrap()
         .lines()
