@@ -977,6 +977,35 @@ mod tests {
     }
 
     #[test]
+    fn a_panic_inside_a_piece_of_work_becomes_its_reason_and_the_caller_goes_on() {
+        // Work of a cell that panics with a formatted message, as an indexing defect would.
+        let index = 7;
+        let panicked: Result<u32, String> = contained(|| {
+            let empty: Vec<u32> = Vec::new();
+            if index >= empty.len() {
+                panic!("index {index} out of range for a grid of {}", empty.len());
+            }
+            Ok(empty[index])
+        });
+        let reason = panicked.unwrap_err();
+        assert!(
+            reason.starts_with("processing failed inside isogloss (a defect"),
+            "{reason}"
+        );
+        assert!(
+            reason.ends_with("index 7 out of range for a grid of 0"),
+            "{reason}"
+        );
+        // A literal message, an error and a success, one after the other: the panic above left
+        // nothing behind.
+        let literal: Result<(), String> = contained(|| panic!("no lexicon"));
+        assert!(literal.unwrap_err().ends_with(": no lexicon"));
+        let failed: Result<(), String> = contained(|| Err(SweepError::Build("bad LM".into())));
+        assert!(failed.unwrap_err().contains("bad LM"));
+        assert_eq!(contained(|| Ok(3)), Ok(3));
+    }
+
+    #[test]
     fn an_error_while_tuning_is_passed_on() {
         let result = tune(Tuning::Coordinate, &[1.0], &[1.0], &mut |_, _| {
             Err(SweepError::Build("dev decoding failed".into()))
