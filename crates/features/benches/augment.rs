@@ -15,8 +15,8 @@ use std::hint::black_box;
 use std::time::Instant;
 
 use isogloss_audio::augment::{
-    babble, band_limit, coloured_noise, mix_at_snr, reverberate, simulate_codec, AugmentConfig,
-    Augmenter, CodecSettings, ReverbConfig, RirBank,
+    babble, band_limit, coloured_noise, hum, mix_at_snr, reverberate, simulate_codec,
+    AugmentConfig, Augmenter, CodecSettings, HumSettings, ReverbConfig, RirBank,
 };
 use isogloss_audio::volume_perturb;
 use isogloss_features::mel::MelFilterbank;
@@ -125,6 +125,13 @@ fn main() {
         black_box(mix_at_snr(&mut samples, &noise, 10.0));
     });
     report("noise: babble of 4 talkers, mixed", cost, seconds, mfcc);
+    let cost = time(runs, || {
+        let mut samples = speech.clone();
+        let settings = HumSettings::draw(16_000, &mut rng);
+        let noise = hum(samples.len(), 16_000, &settings, &mut rng);
+        black_box(mix_at_snr(&mut samples, &noise, 10.0));
+    });
+    report("noise: mains hum, drawn and mixed", cost, seconds, mfcc);
     let mut index = 0;
     let cost = time(runs, || {
         let mut samples = speech.clone();
