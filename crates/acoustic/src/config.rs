@@ -233,6 +233,18 @@ pub enum Schedule {
     Constant,
 }
 
+/// Which epoch's weights the model directory holds (`[training] keep`).
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize, Default)]
+#[serde(rename_all = "kebab-case")]
+pub enum Keep {
+    /// The latest epoch's: at the end of a run with the cosine schedule, the weights annealed to
+    /// `final_rate`.
+    #[default]
+    Last,
+    /// The epoch with the lowest dev loss so far.
+    BestDevLoss,
+}
+
 /// Optimisation settings.
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 #[serde(deny_unknown_fields, default)]
@@ -256,6 +268,8 @@ pub struct TrainingConfig {
     pub clip_norm: f64,
     /// Stop after this many epochs without a better dev loss (0: never stop early).
     pub patience: usize,
+    /// Which epoch the model directory holds: the last (default) or the best dev loss.
+    pub keep: Keep,
     /// Deprecated spelling of `augmentation.speed_factors` (read for one release).
     #[serde(default, skip_serializing)]
     pub speed_factors: Option<Vec<f32>>,
@@ -283,6 +297,7 @@ impl Default for TrainingConfig {
             weight_decay: 1e-2,
             clip_norm: 5.0,
             patience: 0,
+            keep: Keep::Last,
             speed_factors: None,
             volume_range: None,
             spec_augment: None,
@@ -735,6 +750,29 @@ mod tests {
             let config = ModelConfig::parse(text).unwrap();
             config.model.check_size(config.input_dims(), 100).unwrap();
         }
+    }
+
+    /// `[training] keep`: the last epoch unless written; the early-stopping config keeps the
+    /// best dev loss; a misspelt value is named.
+    #[test]
+    fn keep_is_the_last_epoch_by_default_and_reads_both_values() {
+        assert_eq!(TrainingConfig::default().keep, Keep::Last);
+        let small = include_str!("../../../configs/tdnn-small.toml");
+        assert_eq!(ModelConfig::parse(small).unwrap().training.keep, Keep::Last);
+        let medium = ModelConfig::parse(include_str!("../../../configs/tdnn-medium.toml")).unwrap();
+        assert_eq!(medium.training.keep, Keep::BestDevLoss);
+        let best = small.replacen("patience = 0", "patience = 0\nkeep = \"best-dev-loss\"", 1);
+        let config = ModelConfig::parse(&best).unwrap();
+        assert_eq!(config.training.keep, Keep::BestDevLoss);
+        // Written into model.toml and read back.
+        let text = toml::to_string(&config.training).unwrap();
+        assert!(text.contains("keep = \"best-dev-loss\""), "{text}");
+        let wrong = small.replacen("patience = 0", "patience = 0\nkeep = \"best\"", 1);
+        let error = ModelConfig::parse(&wrong).unwrap_err().to_string();
+        assert!(
+            error.contains("keep") && error.contains("best-dev-loss"),
+            "{error}"
+        );
     }
 
     /// `[speaker_vectors]`: off unless written; the shipped table is the extractor's defaults;

@@ -31,9 +31,20 @@ pub struct LoggedEpoch {
     /// Greedy dev unit error rate, as a fraction.
     #[serde(deserialize_with = "number_or_nan")]
     pub dev_unit_error_rate: f64,
-    /// Whether the model directory was updated with this epoch.
+    /// Whether the dev loss was the best so far.
     #[serde(default)]
     pub improved: bool,
+    /// Whether the model directory was written with this epoch; `None` in logs from before
+    /// `[training] keep`, where that was `improved`.
+    #[serde(default)]
+    pub saved: Option<bool>,
+}
+
+impl LoggedEpoch {
+    /// Whether the model directory was written with this epoch.
+    pub fn saved(&self) -> bool {
+        self.saved.unwrap_or(self.improved)
+    }
 }
 
 fn number_or_nan<'de, D: serde::Deserializer<'de>>(deserializer: D) -> Result<f64, D::Error> {
@@ -93,13 +104,13 @@ pub fn read_epochs(path: &Path) -> Result<Vec<LoggedEpoch>, AcousticError> {
 }
 
 /// The training curve of `epochs` as SVG, titled with the model's `name`; the kept epoch is
-/// the last that improved (the one the model directory holds).
+/// the last one saved (the one the model directory holds).
 pub fn training_curve(name: &str, epochs: &[LoggedEpoch]) -> String {
-    let kept = epochs.iter().rfind(|e| e.improved).map(|e| e.epoch);
+    let kept = epochs.iter().rfind(|e| e.saved()).map(|e| e.epoch);
     TrainingCurve {
         title: format!("Training curve: {name}"),
         notes: vec![
-            "Loss per frame (CTC) on the training batches and on dev; greedy unit error rate on dev. The model directory holds the epoch with the lowest dev loss so far (dashed line).".into(),
+            "Loss per frame (CTC) on the training batches and on dev; greedy unit error rate on dev. The dashed line marks the epoch the model directory holds (the last, or with keep = \"best-dev-loss\" the lowest dev loss).".into(),
         ],
         epochs: epochs
             .iter()
@@ -151,6 +162,33 @@ mod tests {
         assert_eq!(epochs[2].dev_loss, 1.3);
         let svg = training_curve("mine", &epochs);
         assert!(svg.contains("Training curve: mine") && svg.contains("kept: epoch 3"));
+    }
+
+    #[test]
+    fn the_kept_epoch_is_the_last_saved_and_old_logs_count_improved_as_saved() {
+        // keep = "last": epoch 3 did not improve but was saved, and is the one kept.
+        let (_dir, path) = log(&[
+            r#"{"event":"start","epochs_done":0}"#,
+            r#"{"event":"epoch","epoch":1,"train_loss":2.0,"dev_loss":1.5,"dev_unit_error_rate":0.8,"improved":true,"saved":true}"#,
+            r#"{"event":"epoch","epoch":2,"train_loss":1.5,"dev_loss":1.2,"dev_unit_error_rate":0.7,"improved":true,"saved":true}"#,
+            r#"{"event":"epoch","epoch":3,"train_loss":1.2,"dev_loss":1.3,"dev_unit_error_rate":0.6,"improved":false,"saved":true}"#,
+        ]);
+        let epochs = read_epochs(&path).unwrap();
+        assert!(epochs.iter().all(LoggedEpoch::saved));
+        assert!(training_curve("last", &epochs).contains("kept: epoch 3"));
+        // A log from before `saved`: the improved epochs were the saved ones.
+        let (_dir, path) = log(&[
+            r#"{"event":"start","epochs_done":0}"#,
+            r#"{"event":"epoch","epoch":1,"train_loss":2.0,"dev_loss":1.5,"dev_unit_error_rate":0.8,"improved":true}"#,
+            r#"{"event":"epoch","epoch":2,"train_loss":1.5,"dev_loss":1.2,"dev_unit_error_rate":0.7,"improved":true}"#,
+            r#"{"event":"epoch","epoch":3,"train_loss":1.2,"dev_loss":1.3,"dev_unit_error_rate":0.6,"improved":false}"#,
+        ]);
+        let epochs = read_epochs(&path).unwrap();
+        assert_eq!(
+            epochs.iter().map(LoggedEpoch::saved).collect::<Vec<_>>(),
+            [true, true, false]
+        );
+        assert!(training_curve("old", &epochs).contains("kept: epoch 2"));
     }
 
     #[test]

@@ -101,8 +101,8 @@ pub enum PipelineEvent {
 pub struct TrainSummary {
     /// Epochs completed in total (including earlier runs when resuming).
     pub epochs_done: usize,
-    /// The epoch whose weights are in the model directory.
-    pub best: Option<EpochRecord>,
+    /// The epoch whose weights are in the model directory (`[training] keep` chooses it).
+    pub kept: Option<EpochRecord>,
     /// Training utterances skipped because their labels do not fit the frames (id, available
     /// output frames, needed).
     pub skipped_utterances: Vec<(String, usize, usize)>,
@@ -990,7 +990,7 @@ pub fn train_with(
         if writer {
             trainer.save_checkpoint(&checkpoint)?;
         }
-        if record.improved {
+        if record.saved {
             let description = ModelDescription {
                 format: MODEL_FORMAT,
                 units: units.clone(),
@@ -1022,7 +1022,7 @@ pub fn train_with(
             if writer {
                 AcousticModel::save(&options.out, &description, &trainer.model_tensors())?;
             }
-            summary.best = Some(record.clone());
+            summary.kept = Some(record.clone());
         }
         if !writer {
             continue;
@@ -1053,12 +1053,14 @@ pub fn train_with(
     summary.epochs_done = trainer.progress().epochs_done;
     summary.stopped_early =
         options.minutes.is_none() && summary.epochs_done < config.training.epochs;
-    if summary.best.is_none() {
-        summary.best = trainer
+    if summary.kept.is_none() {
+        // Nothing was written in this call (a resumed run with no epoch left): the epoch the
+        // directory already holds. Checkpoints from before `saved` existed record `improved`.
+        summary.kept = trainer
             .progress()
             .history
             .iter()
-            .rfind(|r| r.improved)
+            .rfind(|r| r.saved || r.improved)
             .cloned();
     }
     Ok(summary)

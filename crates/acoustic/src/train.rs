@@ -40,7 +40,7 @@ use rayon::prelude::*;
 use serde::{Deserialize, Serialize};
 
 use crate::collective::{Collective, SingleProcess};
-use crate::config::{ModelConfig, NetworkInput, Schedule};
+use crate::config::{Keep, ModelConfig, NetworkInput, Schedule};
 use crate::ctc::{min_frames_for, CtcLoss, CtcTargets};
 use crate::data::{utterance_rng, TrainingData};
 pub use crate::data::{Augment, PreparedUtterance};
@@ -100,8 +100,13 @@ pub struct EpochRecord {
     pub frames_per_second: f64,
     /// Learning rate at the end of the epoch.
     pub learning_rate: f64,
-    /// True when the dev loss was the best so far (the model directory was updated).
+    /// True when the dev loss was the best so far.
     pub improved: bool,
+    /// True when the model directory was written with this epoch's weights (every epoch with
+    /// `keep = "last"`, the improved ones with `keep = "best-dev-loss"`). Logs written before
+    /// the key existed lack it: there it was `improved`.
+    #[serde(default)]
+    pub saved: bool,
     /// Updates done in this epoch.
     #[serde(default)]
     pub updates: u64,
@@ -766,6 +771,7 @@ impl Trainer {
             frames_per_second,
             learning_rate: self.learning_rate(self.optimizer.step),
             improved,
+            saved: improved || self.config.training.keep == Keep::Last,
             updates,
             train_seconds,
             feature_seconds,

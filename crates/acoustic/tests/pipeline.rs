@@ -123,7 +123,7 @@ fn overfits_a_handful_of_demo_utterances() {
         &mut |_| {},
     )
     .expect("training runs");
-    let best = summary.best.expect("some epoch improved");
+    let best = summary.kept.expect("an epoch is kept");
     assert!(
         best.dev_unit_error_rate < 0.05,
         "greedy unit error rate {best:?}"
@@ -142,6 +142,9 @@ fn overfits_a_handful_of_demo_utterances() {
     // marks the epoch the model directory holds.
     let epochs = read_epochs(&dir.path().join("model/training.jsonl")).unwrap();
     assert_eq!(epochs.len(), summary.epochs_done);
+    // `keep = "last"` (the default): every epoch was written, and the directory holds the last.
+    assert!(epochs.iter().all(|e| e.saved()));
+    assert_eq!(best.epoch, summary.epochs_done);
     let svg = std::fs::read_to_string(dir.path().join("model").join(CURVE_FILE)).unwrap();
     let points = geometry::curve_points(&svg);
     for (series, value) in [
@@ -241,8 +244,8 @@ fn a_warm_start_begins_from_the_model_and_refuses_another_network() {
     };
     let warm = run("warm", Some(shipped.clone()));
     let scratch = run("scratch", None);
-    let warm_rate = warm.best.unwrap().dev_unit_error_rate;
-    let scratch_rate = scratch.best.unwrap().dev_unit_error_rate;
+    let warm_rate = warm.kept.unwrap().dev_unit_error_rate;
+    let scratch_rate = scratch.kept.unwrap().dev_unit_error_rate;
     assert!(
         warm_rate < 0.2 && scratch_rate > 0.5,
         "unit error rate after one epoch: warm {warm_rate}, from scratch {scratch_rate}"
@@ -308,7 +311,7 @@ fn a_model_with_speaker_vectors_trains_and_transcribes_from_its_directory_alone(
         extractor_steps,
         isogloss_speaker::training_steps(&vectors.extractor)
     );
-    let best = summary.best.expect("some epoch improved");
+    let best = summary.kept.expect("an epoch is kept");
     assert!(
         best.dev_unit_error_rate < 0.05,
         "greedy unit error rate {best:?}"
@@ -392,7 +395,7 @@ fn a_model_with_speaker_vectors_at_every_layer_trains_and_transcribes() {
     let layers = SPEAKER_VECTORS.replace(r#"input = "frames""#, r#"input = "layers""#);
     let (options, path) = speaker_vector_run(dir.path(), &layers);
     let summary = train(&options, &mut |_| {}).expect("training runs");
-    let best = summary.best.expect("some epoch improved");
+    let best = summary.kept.expect("an epoch is kept");
     assert!(
         best.dev_unit_error_rate < 0.05,
         "greedy unit error rate {best:?}"

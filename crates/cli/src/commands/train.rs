@@ -321,7 +321,7 @@ fn run_ranks(args: TrainArgs, collective: Arc<dyn Collective>) -> anyhow::Result
     if summary.stopped_early {
         eprintln!("stopped early: the dev loss stopped improving");
     }
-    match &summary.best {
+    match &summary.kept {
         Some(best) => eprintln!(
             "model: {} (epoch {}, dev unit error rate {:.2}%)",
             args.out.display(),
@@ -329,7 +329,7 @@ fn run_ranks(args: TrainArgs, collective: Arc<dyn Collective>) -> anyhow::Result
             100.0 * best.dev_unit_error_rate
         ),
         None => eprintln!(
-            "no epoch improved on the checkpointed model; {} unchanged",
+            "no epoch was kept (none improved on the checkpointed model); {} unchanged",
             args.out.display()
         ),
     }
@@ -430,7 +430,12 @@ fn train_ranks(
                 record.dev_loss,
                 100.0 * record.dev_unit_error_rate,
                 record.frames_per_second,
-                if record.improved { "  (saved)" } else { "" }
+                match (record.saved, record.improved) {
+                    (true, true) => "  (saved; best dev loss so far)",
+                    (true, false) => "  (saved)",
+                    (false, true) => "  (best dev loss so far)",
+                    (false, false) => "",
+                }
             );
         }
     })
