@@ -120,6 +120,10 @@ pub(crate) fn check_frames(
             found: features.ncols(),
         });
     }
+    // The common case, every value finite, in one cheap pass; the position only on failure.
+    if features.iter().all(|v| v.is_finite()) {
+        return Ok(());
+    }
     if let Some(((frame, dim), value)) = features.indexed_iter().find(|(_, v)| !v.is_finite()) {
         return Err(SpeakerError::NonFinite {
             item: item.to_string(),
