@@ -17,7 +17,8 @@
 //! The window's statistics are running sums in f64: a frame's posteriors and values are added
 //! when it arrives and subtracted when it leaves the window (they are kept for that, W frames of
 //! them). The i-vectors of all recomputation points of a block of frames are solved together
-//! (two matrix products and one R×R Cholesky factorisation per point).
+//! (two matrix products, in single precision, and one R×R Cholesky factorisation in f64 per
+//! point; see [`crate::total_variability::TotalVariability::posterior_means_single`]).
 
 use ndarray::{Array1, Array2, ArrayView1, ArrayView2, Axis};
 
@@ -101,8 +102,9 @@ impl<'a> OnlineIvectors<'a> {
             let chunk_end = (chunk_start + chunk).min(rows);
             // (row in the piece) of every recomputation point in this chunk, and its statistics.
             let mut points: Vec<usize> = Vec::new();
-            let mut snapshot_occupancy: Vec<f64> = Vec::new();
-            let mut snapshot_centred: Vec<f64> = Vec::new();
+            // In f32: the solve's products are in single precision.
+            let mut snapshot_occupancy: Vec<f32> = Vec::new();
+            let mut snapshot_centred: Vec<f32> = Vec::new();
             for start in (chunk_start..chunk_end).step_by(BLOCK_FRAMES) {
                 let end = (start + BLOCK_FRAMES).min(chunk_end);
                 // Only frames on the stride grid (stream index a multiple of s) enter the
@@ -128,12 +130,15 @@ impl<'a> OnlineIvectors<'a> {
                     }
                     if frame % self.period == 0 {
                         points.push(i);
-                        snapshot_occupancy.extend(self.occupancy.iter());
-                        for c in 0..gaussians {
-                            let n = self.occupancy[c];
-                            for d in 0..dims {
-                                snapshot_centred.push(self.first_order[(c, d)] - n * means[(c, d)]);
-                            }
+                        snapshot_occupancy.extend(self.occupancy.iter().map(|&n| n as f32));
+                        for ((&n, sums), mean) in self
+                            .occupancy
+                            .iter()
+                            .zip(self.first_order.rows())
+                            .zip(means.rows())
+                        {
+                            snapshot_centred
+                                .extend(sums.iter().zip(mean).map(|(&f, &m)| (f - n * m) as f32));
                         }
                     }
                     self.frames_seen += 1;
@@ -185,8 +190,11 @@ impl<'a> OnlineIvectors<'a> {
         }
         let mut k = slot * kept;
         posteriors.for_each(i, |c, gamma| {
-            self.occupancy[c] += gamma;
-            self.first_order.row_mut(c).scaled_add(gamma, &frame);
+            // A posterior of 0 (a Gaussian far below the frame's best) adds nothing.
+            if gamma > 0.0 {
+                self.occupancy[c] += gamma;
+                self.first_order.row_mut(c).scaled_add(gamma, &frame);
+            }
             self.ring_gaussians[k] = c;
             self.ring_posteriors[k] = gamma;
             k += 1;
@@ -199,6 +207,9 @@ impl<'a> OnlineIvectors<'a> {
         let frame = ArrayView1::from(&self.ring_frames[slot * dims..(slot + 1) * dims]);
         for k in slot * kept..(slot + 1) * kept {
             let (c, gamma) = (self.ring_gaussians[k], self.ring_posteriors[k]);
+            if gamma == 0.0 {
+                continue;
+            }
             self.occupancy[c] -= gamma;
             self.first_order.row_mut(c).scaled_add(-gamma, &frame);
         }
