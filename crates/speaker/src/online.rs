@@ -41,6 +41,10 @@ pub struct OnlineIvectors<'a> {
     frames_seen: usize,
     occupancy: Array1<f64>,
     first_order: Array2<f64>,
+    /// Entries with a non-zero posterior in the window, per Gaussian: where it drops to 0 the
+    /// Gaussian's sums are set to exactly 0 (what subtraction leaves is rounding residue), so
+    /// that the solve can skip it.
+    entries: Vec<usize>,
     /// Gaussian index and posterior of the kept entries of the frames in the window, by slot
     /// (frame t lives in slot t mod W).
     ring_gaussians: Vec<usize>,
@@ -64,6 +68,7 @@ impl<'a> OnlineIvectors<'a> {
             frames_seen: 0,
             occupancy: Array1::zeros(gaussians),
             first_order: Array2::zeros((gaussians, dims)),
+            entries: vec![0; gaussians],
             ring_gaussians: Vec::new(),
             ring_posteriors: Vec::new(),
             ring_frames: Vec::new(),
@@ -131,14 +136,18 @@ impl<'a> OnlineIvectors<'a> {
                     if frame % self.period == 0 {
                         points.push(i);
                         snapshot_occupancy.extend(self.occupancy.iter().map(|&n| n as f32));
-                        for ((&n, sums), mean) in self
-                            .occupancy
-                            .iter()
+                        // F̃_c = F_c − N_c·μ_c, in f64, rounded once.
+                        let offset = snapshot_centred.len();
+                        snapshot_centred.resize(offset + gaussians * dims, 0.0);
+                        for (((out, sums), mean), &n) in snapshot_centred[offset..]
+                            .chunks_exact_mut(dims)
                             .zip(self.first_order.rows())
                             .zip(means.rows())
+                            .zip(&self.occupancy)
                         {
-                            snapshot_centred
-                                .extend(sums.iter().zip(mean).map(|(&f, &m)| (f - n * m) as f32));
+                            for ((o, &f), &m) in out.iter_mut().zip(&sums).zip(&mean) {
+                                *o = (f - n * m) as f32;
+                            }
                         }
                     }
                     self.frames_seen += 1;
@@ -194,6 +203,7 @@ impl<'a> OnlineIvectors<'a> {
             if gamma > 0.0 {
                 self.occupancy[c] += gamma;
                 self.first_order.row_mut(c).scaled_add(gamma, &frame);
+                self.entries[c] += 1;
             }
             self.ring_gaussians[k] = c;
             self.ring_posteriors[k] = gamma;
@@ -210,8 +220,14 @@ impl<'a> OnlineIvectors<'a> {
             if gamma == 0.0 {
                 continue;
             }
-            self.occupancy[c] -= gamma;
-            self.first_order.row_mut(c).scaled_add(-gamma, &frame);
+            self.entries[c] -= 1;
+            if self.entries[c] == 0 {
+                self.occupancy[c] = 0.0;
+                self.first_order.row_mut(c).fill(0.0);
+            } else {
+                self.occupancy[c] -= gamma;
+                self.first_order.row_mut(c).scaled_add(-gamma, &frame);
+            }
         }
     }
 }

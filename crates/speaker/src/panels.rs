@@ -24,14 +24,24 @@ const SPLIT: usize = 4;
 pub(crate) struct PanelMatrix {
     rows: usize,
     columns: usize,
+    /// Rows of B per block for skipping: a block whose entries of a are all zero (in every
+    /// row of a group) is left out of the sums, which leaves them unchanged.
+    block: usize,
     /// Panel p holds columns p·WIDTH.. (zero-padded to WIDTH), row after row:
     /// `values[(p·rows + k)·WIDTH + j]` = B[k, p·WIDTH + j].
     values: Vec<f32>,
 }
 
 impl PanelMatrix {
-    /// B from a function of (row, column), rounded to f32.
-    pub(crate) fn from_fn(rows: usize, columns: usize, b: impl Fn(usize, usize) -> f64) -> Self {
+    /// B from a function of (row, column), rounded to f32; `block` rows of B (at least 1) are
+    /// skipped together where a is zero on all of them (a Gaussian's rows: a Gaussian no frame
+    /// of a window falls on has zero statistics).
+    pub(crate) fn from_fn(
+        rows: usize,
+        columns: usize,
+        block: usize,
+        b: impl Fn(usize, usize) -> f64,
+    ) -> Self {
         let panels = columns.div_ceil(WIDTH);
         let mut values = vec![0.0f32; panels * rows * WIDTH];
         for p in 0..panels {
@@ -44,6 +54,7 @@ impl PanelMatrix {
         PanelMatrix {
             rows,
             columns,
+            block: block.max(1),
             values,
         }
     }
@@ -88,6 +99,9 @@ fn left_multiply_portable(b: &PanelMatrix, a: &[f32], out: &mut [f32]) {
         for (p, panel) in b.values.chunks_exact(b.rows * WIDTH).enumerate() {
             let mut sums = [0.0f32; WIDTH];
             for (&weight, b_row) in a_row.iter().zip(panel.chunks_exact(WIDTH)) {
+                if weight == 0.0 {
+                    continue;
+                }
                 for j in 0..WIDTH {
                     sums[j] += weight * b_row[j];
                 }
@@ -109,17 +123,34 @@ unsafe fn left_multiply_avx2(b: &PanelMatrix, a: &[f32], out: &mut [f32]) {
         return;
     }
     let mut pairs: Vec<(&[f32], &mut [f32])> = row_pairs(b, a, out).collect();
+    let mut ranges: Vec<(usize, usize)> = Vec::new();
     for group in pairs.chunks_mut(GROUP) {
+        // The runs of blocks where some row of the group is non-zero.
+        ranges.clear();
+        for start in (0..b.rows).step_by(b.block) {
+            let end = (start + b.block).min(b.rows);
+            if group
+                .iter()
+                .any(|(row, _)| row[start..end].iter().any(|&v| v != 0.0))
+            {
+                match ranges.last_mut() {
+                    Some(last) if last.1 == start => last.1 = end,
+                    _ => ranges.push((start, end)),
+                }
+            }
+        }
         for (p, panel) in b.values.chunks_exact(b.rows * WIDTH).enumerate() {
             // SAFETY: AVX2 and FMA are enabled for this function; the panel holds b.rows rows
             // of WIDTH values and every row of a has b.rows values.
             let sums: Vec<[f32; WIDTH]> = unsafe {
                 match group.len() {
-                    1 => panel_sums_avx2::<1>(panel, b.rows, [group[0].0]).to_vec(),
-                    2 => panel_sums_avx2::<2>(panel, b.rows, [group[0].0, group[1].0]).to_vec(),
+                    1 => panel_sums_avx2::<1>(panel, b.rows, &ranges, [group[0].0]).to_vec(),
+                    2 => panel_sums_avx2::<2>(panel, b.rows, &ranges, [group[0].0, group[1].0])
+                        .to_vec(),
                     _ => panel_sums_avx2::<GROUP>(
                         panel,
                         b.rows,
+                        &ranges,
                         [group[0].0, group[1].0, group[2].0],
                     )
                     .to_vec(),
@@ -139,8 +170,9 @@ fn store(sums: &[f32; WIDTH], p: usize, columns: usize, out_row: &mut [f32]) {
     out_row[start..start + width].copy_from_slice(&sums[..width]);
 }
 
-/// Σ_k a_i[k]·panel[k] for M rows a_i, each sum split into SPLIT partial sums over k mod SPLIT
-/// (the order of the arithmetic of one row does not depend on M).
+/// Σ_k a_i[k]·panel[k] over the k of `ranges` (sorted, disjoint, within `rows`) for M rows
+/// a_i, each sum split into SPLIT partial sums by k mod SPLIT, so that the order of the
+/// arithmetic of one row depends neither on M nor on which zero blocks are skipped.
 ///
 /// # Safety
 /// The caller must have AVX2 and FMA; `panel` must hold `rows · WIDTH` values and every a_i at
@@ -150,33 +182,55 @@ fn store(sums: &[f32; WIDTH], p: usize, columns: usize, out_row: &mut [f32]) {
 unsafe fn panel_sums_avx2<const M: usize>(
     panel: &[f32],
     rows: usize,
+    ranges: &[(usize, usize)],
     a: [&[f32]; M],
 ) -> [[f32; WIDTH]; M] {
     use std::arch::x86_64::*;
-    assert!(panel.len() >= rows * WIDTH && a.iter().all(|row| row.len() >= rows));
+    assert!(
+        panel.len() >= rows * WIDTH
+            && a.iter().all(|row| row.len() >= rows)
+            && ranges.iter().all(|&(start, end)| start <= end && end <= rows)
+    );
     let b = panel.as_ptr();
     let mut sums = [[_mm256_setzero_ps(); SPLIT]; M];
-    let whole = rows / SPLIT * SPLIT;
-    let mut k = 0;
-    while k < whole {
-        for u in 0..SPLIT {
-            // SAFETY: k + u < rows, so both reads are in bounds (asserted above).
-            let b_row = unsafe { _mm256_loadu_ps(b.add((k + u) * WIDTH)) };
+    // One k into partial sum U (= k mod SPLIT).
+    macro_rules! step {
+        ($k:expr, $u:tt) => {{
+            // SAFETY: k < rows (asserted above), so both reads are in bounds.
+            let b_row = unsafe { _mm256_loadu_ps(b.add($k * WIDTH)) };
             for i in 0..M {
-                let weight = _mm256_set1_ps(unsafe { *a[i].get_unchecked(k + u) });
-                sums[i][u] = _mm256_fmadd_ps(weight, b_row, sums[i][u]);
+                let weight = _mm256_set1_ps(unsafe { *a[i].get_unchecked($k) });
+                sums[i][$u] = _mm256_fmadd_ps(weight, b_row, sums[i][$u]);
             }
-        }
-        k += SPLIT;
+        }};
     }
-    while k < rows {
-        // SAFETY: k < rows.
-        let b_row = unsafe { _mm256_loadu_ps(b.add(k * WIDTH)) };
-        for i in 0..M {
-            let weight = _mm256_set1_ps(unsafe { *a[i].get_unchecked(k) });
-            sums[i][0] = _mm256_fmadd_ps(weight, b_row, sums[i][0]);
+    macro_rules! single {
+        ($k:expr) => {{
+            match $k % SPLIT {
+                0 => step!($k, 0),
+                1 => step!($k, 1),
+                2 => step!($k, 2),
+                _ => step!($k, 3),
+            }
+        }};
+    }
+    for &(start, end) in ranges {
+        let mut k = start;
+        while k < end && k % SPLIT != 0 {
+            single!(k);
+            k += 1;
         }
-        k += 1;
+        while k + SPLIT <= end {
+            step!(k, 0);
+            step!(k + 1, 1);
+            step!(k + 2, 2);
+            step!(k + 3, 3);
+            k += SPLIT;
+        }
+        while k < end {
+            single!(k);
+            k += 1;
+        }
     }
     let mut out = [[0.0f32; WIDTH]; M];
     for i in 0..M {
@@ -198,9 +252,19 @@ mod tests {
     fn a_rows_product_does_not_depend_on_the_rows_beside_it() {
         // Values that round differently in different summation orders.
         let (rows, columns) = (4992, 40);
-        let matrix = PanelMatrix::from_fn(rows, columns, |k, j| ((k * 31 + j * 17) as f64).sin());
+        let matrix =
+            PanelMatrix::from_fn(rows, columns, 39, |k, j| ((k * 31 + j * 17) as f64).sin());
+        // Rows with runs of zeros (Gaussians without statistics), different in each row, so
+        // that groups skip different blocks than single rows.
         let a: Vec<f32> = (0..7 * rows)
-            .map(|i| ((i * 13) as f32 * 0.37).cos() * 100.0)
+            .map(|i| {
+                let (row, k) = (i / rows, i % rows);
+                if (k / 39 + row) % 3 == 0 || k / 39 == 5 {
+                    0.0
+                } else {
+                    ((i * 13) as f32 * 0.37).cos() * 100.0
+                }
+            })
             .collect();
         let together = matrix.left_multiply(&a);
         for i in 0..7 {
@@ -217,7 +281,7 @@ mod tests {
     fn products_equal_the_definition_for_every_row_count_and_padding() {
         for (rows, columns) in [(1, 1), (5, 8), (7, 13), (33, 20)] {
             let b = |k: usize, j: usize| ((k * 7 + j * 3) % 11) as f64 / 4.0 - 1.0;
-            let matrix = PanelMatrix::from_fn(rows, columns, b);
+            let matrix = PanelMatrix::from_fn(rows, columns, 3, b);
             for items in [0, 1, 3, 4, 5, 9] {
                 let a: Vec<f32> = (0..items * rows)
                     .map(|i| ((i * 5) % 9) as f32 / 2.0 - 2.0)

@@ -107,8 +107,9 @@ impl TotalVariability {
             pack_lower(product.view(), quadratic.row_mut(c));
         }
         let quadratic_panels =
-            PanelMatrix::from_fn(gaussians, quadratic.ncols(), |c, k| quadratic[(c, k)]);
-        let scaled_panels = PanelMatrix::from_fn(scaled.nrows(), rank, |k, r| scaled[(k, r)]);
+            PanelMatrix::from_fn(gaussians, quadratic.ncols(), 1, |c, k| quadratic[(c, k)]);
+        let scaled_panels =
+            PanelMatrix::from_fn(scaled.nrows(), rank, dims, |k, r| scaled[(k, r)]);
         Ok(TotalVariability {
             matrix,
             scaled,
