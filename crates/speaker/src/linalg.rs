@@ -290,12 +290,19 @@ mod tests {
             let mut x = b.to_vec();
             assert!(solve_positive_definite_in_place(&mut flat, n, &mut x));
             for (got, want) in x.iter().zip(&expected) {
-                assert!((got - want).abs() <= 1e-10 * want.abs().max(1.0), "{got} vs {want}");
+                assert!(
+                    (got - want).abs() <= 1e-10 * want.abs().max(1.0),
+                    "{got} vs {want}"
+                );
             }
         }
         let mut indefinite = vec![1.0, 2.0, 2.0, 1.0];
         let mut b = vec![1.0, 1.0];
-        assert!(!solve_positive_definite_in_place(&mut indefinite, 2, &mut b));
+        assert!(!solve_positive_definite_in_place(
+            &mut indefinite,
+            2,
+            &mut b
+        ));
         assert_eq!(b, vec![1.0, 1.0]);
     }
 

@@ -62,7 +62,11 @@ impl PanelMatrix {
     /// a·B for `a` of `a.len() / rows` rows (row-major, each of B's row count), row-major
     /// `[a rows, columns]`. Sums are in f32.
     pub(crate) fn left_multiply(&self, a: &[f32]) -> Vec<f32> {
-        let items = if self.rows == 0 { 0 } else { a.len() / self.rows };
+        let items = if self.rows == 0 {
+            0
+        } else {
+            a.len() / self.rows
+        };
         let mut out = vec![0.0f32; items * self.columns];
         #[cfg(target_arch = "x86_64")]
         {
@@ -189,7 +193,9 @@ unsafe fn panel_sums_avx2<const M: usize>(
     assert!(
         panel.len() >= rows * WIDTH
             && a.iter().all(|row| row.len() >= rows)
-            && ranges.iter().all(|&(start, end)| start <= end && end <= rows)
+            && ranges
+                .iter()
+                .all(|&(start, end)| start <= end && end <= rows)
     );
     let b = panel.as_ptr();
     let mut sums = [[_mm256_setzero_ps(); SPLIT]; M];
@@ -273,7 +279,10 @@ mod tests {
             let pair_start = i.min(5);
             let pair = matrix.left_multiply(&a[pair_start * rows..(pair_start + 2) * rows]);
             let at = (i - pair_start) * columns;
-            assert_eq!(pair[at..at + columns], together[i * columns..(i + 1) * columns]);
+            assert_eq!(
+                pair[at..at + columns],
+                together[i * columns..(i + 1) * columns]
+            );
         }
     }
 

@@ -108,8 +108,7 @@ impl TotalVariability {
         }
         let quadratic_panels =
             PanelMatrix::from_fn(gaussians, quadratic.ncols(), 1, |c, k| quadratic[(c, k)]);
-        let scaled_panels =
-            PanelMatrix::from_fn(scaled.nrows(), rank, dims, |k, r| scaled[(k, r)]);
+        let scaled_panels = PanelMatrix::from_fn(scaled.nrows(), rank, dims, |k, r| scaled[(k, r)]);
         Ok(TotalVariability {
             matrix,
             scaled,

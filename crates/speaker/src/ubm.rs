@@ -170,8 +170,8 @@ fn top_entries<'a>(
     }
     values.clear();
     values.extend(scratch.iter().map(|&(v, _)| v));
-    let (_, &mut threshold, _) = values
-        .select_nth_unstable_by(top - 1, |a, b| b.partial_cmp(a).unwrap_or(Ordering::Equal));
+    let (_, &mut threshold, _) =
+        values.select_nth_unstable_by(top - 1, |a, b| b.partial_cmp(a).unwrap_or(Ordering::Equal));
     let above = values.iter().filter(|&&v| v > threshold).count();
     let mut ties = top - above;
     scratch.retain(|&(v, _)| {
@@ -437,11 +437,11 @@ impl DiagGmm {
             .projection_by_gaussian
             .as_slice()
             .expect("the projection is built in standard layout");
-        for (row, frame) in approximate
-            .rows()
-            .into_iter()
-            .zip(x.as_slice().expect("to_f64 builds standard layout").chunks_exact(dims))
-        {
+        for (row, frame) in approximate.rows().into_iter().zip(
+            x.as_slice()
+                .expect("to_f64 builds standard layout")
+                .chunks_exact(dims),
+        ) {
             let first = values.len();
             let chosen = top_entries(row, top, &mut scratch, &mut work);
             for &(_, c) in chosen {
@@ -457,7 +457,10 @@ impl DiagGmm {
                     .map(|c| {
                         let (linear, quadratic) =
                             by_gaussian[2 * dims * c..2 * dims * (c + 1)].split_at(dims);
-                        (quadratic_score(self.offsets[c], frame, linear, quadratic), c)
+                        (
+                            quadratic_score(self.offsets[c], frame, linear, quadratic),
+                            c,
+                        )
                     })
                     .collect();
                 exact.sort_by(|a, b| b.0.total_cmp(&a.0));
