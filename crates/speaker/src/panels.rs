@@ -62,11 +62,7 @@ impl PanelMatrix {
     /// a·B for `a` of `a.len() / rows` rows (row-major, each of B's row count), row-major
     /// `[a rows, columns]`. Sums are in f32.
     pub(crate) fn left_multiply(&self, a: &[f32]) -> Vec<f32> {
-        let items = if self.rows == 0 {
-            0
-        } else {
-            a.len() / self.rows
-        };
+        let items = a.len().checked_div(self.rows).unwrap_or(0);
         let mut out = vec![0.0f32; items * self.columns];
         #[cfg(target_arch = "x86_64")]
         {

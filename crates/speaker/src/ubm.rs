@@ -1035,6 +1035,34 @@ mod tests {
     }
 
     #[test]
+    fn top_gaussians_far_below_the_best_get_posterior_zero() {
+        // One dimension, unit variances, equal weights: frame x scores −(x − μ_c)²/2 + const.
+        let gmm = DiagGmm::new(
+            ndarray::arr1(&[0.25, 0.25, 0.25, 0.25]),
+            ndarray::arr2(&[[0.0], [1.0], [8.0], [9.5]]),
+            ndarray::arr2(&[[1.0], [1.0], [1.0], [1.0]]),
+        )
+        .unwrap();
+        // At x = 0 the top three are μ = 0, 1 and 8; μ = 8 scores 32 below the best (within
+        // the gap of 40), and at x = −1.5 it scores 44 below (outside it).
+        let frames = ndarray::arr2(&[[0.0f32], [-1.5]]);
+        let full = gmm.posteriors(frames.view(), 0);
+        let pruned = gmm.posteriors(frames.view(), 3);
+        assert!(pruned[(0, 2)] > 0.0);
+        let kept = full[(0, 0)] + full[(0, 1)] + full[(0, 2)];
+        for c in 0..3 {
+            assert!((pruned[(0, c)] - full[(0, c)] / kept).abs() < 1e-15);
+        }
+        assert_eq!(pruned[(1, 2)], 0.0);
+        assert_eq!(pruned[(1, 3)], 0.0);
+        let kept = full[(1, 0)] + full[(1, 1)];
+        for c in 0..2 {
+            assert!((pruned[(1, c)] - full[(1, c)] / kept).abs() < 1e-15);
+        }
+        assert!((pruned.row(1).sum() - 1.0).abs() < 1e-15);
+    }
+
+    #[test]
     fn statistics_equal_the_sums_over_frames() {
         let gmm = toy_gmm();
         let frames = toy_frames(1300, 3);
