@@ -10,18 +10,23 @@
 //!
 //! Run (one thread, so that CPU time is not inflated by idle worker threads):
 //! `RAYON_NUM_THREADS=1 cargo run --release -p isogloss --example ivector_budget -- [--rounds 3]
-//! [--config extractor.toml] [--cache DIR]`
+//! [--config extractor.toml] [--cache DIR] [--model DIR] [--width N]` (`--model`: another model
+//! directory whose forward pass to time, default `models/demo`; `--width N`: time instead a
+//! freshly initialised network of the same layers with every hidden layer N wide, the same cost
+//! as a trained one of that shape).
 
 use std::path::{Path, PathBuf};
 use std::time::Instant;
 
 use isogloss_acoustic::pipeline::{manifest_features, normalize};
+use isogloss_acoustic::tdnn::{initial_parameters, initial_statistics};
 use isogloss_acoustic::AcousticModel;
 use isogloss_corpus::Manifest;
 use isogloss_speaker::{
     ExtractorConfig, FeatureLayout, IvectorExtractor, TrainingEvent, TrainingStage, Utterance,
 };
 use ndarray::Array2;
+use rand::SeedableRng;
 
 /// CPU time of the whole process (all threads), in seconds.
 fn process_cpu_seconds() -> f64 {
@@ -92,7 +97,39 @@ fn main() {
         Some(path) => ExtractorConfig::from_toml_file(Path::new(&path)).expect("extractor config"),
         None => ExtractorConfig::default(),
     };
-    let model = AcousticModel::load(&root.join("models/demo")).expect("demo model");
+    let model_dir = option("--model")
+        .map(PathBuf::from)
+        .unwrap_or_else(|| root.join("models/demo"));
+    let mut model = AcousticModel::load(&model_dir).expect("acoustic model");
+    if let Some(width) = option("--width").and_then(|v| v.parse::<usize>().ok()) {
+        // The same network with every hidden layer `width` wide, freshly initialised: its
+        // forward pass costs what a trained one of that shape costs.
+        let mut description = model.description().clone();
+        for layer in &mut description.architecture.layers {
+            layer.width = width;
+        }
+        let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(384);
+        let mut tensors = initial_parameters(
+            &description.architecture,
+            description.network_input(),
+            description.units.len(),
+            &mut rng,
+        )
+        .expect("initial parameters");
+        tensors.extend(initial_statistics(&description.architecture).expect("statistics"));
+        model = AcousticModel::from_parameters(description, &tensors).expect("wider model");
+    }
+    println!(
+        "acoustic model: {} hidden layers of widths {:?}",
+        model.description().architecture.layers.len(),
+        model
+            .description()
+            .architecture
+            .layers
+            .iter()
+            .map(|l| l.width)
+            .collect::<Vec<_>>()
+    );
     let demo = root.join("tests/data/demo");
     let train = features(&demo.join("train.tsv"), &model, &cache);
     let test = features(&demo.join("test.tsv"), &model, &cache);

@@ -8,8 +8,8 @@
 //! the CPU time per frame of extraction in online and per-utterance mode.
 //!
 //! Run: `cargo bench -p isogloss-speaker --bench ivector -- [--gaussians N] [--dimension R]
-//! [--period K] [--top N] [--stride S] [--minutes M]` (each defaults to the extractor's default
-//! setting; 40 minutes). The acoustic model's share is measured by the `isogloss` crate's
+//! [--period K] [--top N] [--stride S] [--minutes M] [--rounds N]` (each defaults to the
+//! extractor's default setting; 40 minutes, 3 rounds). The acoustic model's share is measured by the `isogloss` crate's
 //! example `ivector_budget` on the demo corpus.
 
 use std::time::Instant;
@@ -82,6 +82,7 @@ fn main() {
     let top = argument("--top", defaults.top_gaussians as f64) as usize;
     let stride = argument("--stride", defaults.frame_stride as f64) as usize;
     let minutes = argument("--minutes", 40.0);
+    let rounds = argument("--rounds", 3.0) as usize;
 
     let mut rng = ChaCha8Rng::seed_from_u64(15);
     let means = Array2::from_shape_fn((CLASSES, DIMS), |_| 2.0 * normal(&mut rng));
@@ -171,7 +172,7 @@ fn main() {
         wall - ubm_wall
     );
 
-    for round in 1..=3 {
+    for round in 1..=rounds {
         let cpu_started = process_cpu_seconds();
         for (i, features) in test.iter().enumerate() {
             let vectors = extractor

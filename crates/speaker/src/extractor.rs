@@ -120,6 +120,10 @@ pub(crate) fn check_frames(
             found: features.ncols(),
         });
     }
+    // The common case, every value finite, in one cheap pass; the position only on failure.
+    if features.iter().all(|v| v.is_finite()) {
+        return Ok(());
+    }
     if let Some(((frame, dim), value)) = features.indexed_iter().find(|(_, v)| !v.is_finite()) {
         return Err(SpeakerError::NonFinite {
             item: item.to_string(),
@@ -461,11 +465,17 @@ impl IvectorExtractor {
         ))
     }
 
-    /// The raw i-vector (posterior mean, before post-processing) of statistics.
+    /// The raw i-vector (posterior mean, before post-processing) of statistics, with the
+    /// products in single precision ([`TotalVariability::posterior_means_single`]).
     pub fn raw_ivector(&self, stats: &BaumWelchStats) -> Array1<f64> {
-        let (occupancy, centred) = stack(&self.ubm, &[stats]);
+        let occupancy = stats.occupancy.mapv(|v| v as f32).insert_axis(Axis(0));
+        let centred = stats.centred_first_order(&self.ubm).mapv(|v| v as f32);
+        let centred = centred
+            .to_shape((1, centred.len()))
+            .map(|c| c.to_owned())
+            .unwrap_or_else(|_| Array2::zeros((1, centred.len())));
         self.total_variability
-            .posterior_means(occupancy.view(), centred.view())
+            .posterior_means_single(occupancy.view(), centred.view())
             .row(0)
             .to_owned()
     }
@@ -478,10 +488,12 @@ impl IvectorExtractor {
     /// Post-processed i-vectors of many statistics at once, `[items, output dimension]`.
     pub(crate) fn ivectors_from_stacked(
         &self,
-        occupancy: ArrayView2<f64>,
-        centred: ArrayView2<f64>,
+        occupancy: ArrayView2<f32>,
+        centred: ArrayView2<f32>,
     ) -> Array2<f32> {
-        let raw = self.total_variability.posterior_means(occupancy, centred);
+        let raw = self
+            .total_variability
+            .posterior_means_single(occupancy, centred);
         let mut out = Array2::<f32>::zeros((raw.nrows(), self.output_dimension()));
         for (mut row, ivector) in out.rows_mut().into_iter().zip(raw.rows()) {
             row.assign(&self.postprocessing.apply(ivector));

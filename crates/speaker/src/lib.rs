@@ -89,6 +89,7 @@ mod extractor;
 mod io;
 mod linalg;
 mod online;
+mod panels;
 pub mod postprocess;
 pub mod total_variability;
 pub mod ubm;

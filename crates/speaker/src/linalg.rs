@@ -120,6 +120,70 @@ pub(crate) fn unpack_symmetric(packed: ArrayView1<f64>, n: usize) -> Array2<f64>
     a
 }
 
+/// Σ x_k·y_k with four partial sums (so that the compiler can vectorise it).
+#[inline(always)]
+fn dot(x: &[f64], y: &[f64]) -> f64 {
+    let mut partial = [0.0f64; 4];
+    let split = x.len().min(y.len()) / 4 * 4;
+    for (x4, y4) in x[..split].chunks_exact(4).zip(y[..split].chunks_exact(4)) {
+        for j in 0..4 {
+            partial[j] += x4[j] * y4[j];
+        }
+    }
+    let rest: f64 = x[split..].iter().zip(&y[split..]).map(|(a, b)| a * b).sum();
+    (partial[0] + partial[1]) + (partial[2] + partial[3]) + rest
+}
+
+/// Solves A·x = b for symmetric positive definite A given as its lower triangle, row-major
+/// `n × n` in `a` (the upper triangle is ignored; `a` is overwritten with the Cholesky factor),
+/// and `b` becomes x. Returns false (leaving `b` unchanged) when A is not numerically positive
+/// definite. The factorisation is the right-looking form of [`cholesky`]: after column j is
+/// done, its outer product is subtracted from the rest of the lower triangle row by row, so
+/// that the inner loop is a contiguous update the compiler can vectorise (the sums differ from
+/// [`cholesky`]'s by rounding only).
+#[inline(always)]
+pub(crate) fn solve_positive_definite_in_place(a: &mut [f64], n: usize, b: &mut [f64]) -> bool {
+    if a.len() != n * n || b.len() != n {
+        return false;
+    }
+    let mut column = vec![0.0f64; n];
+    for j in 0..n {
+        let pivot = a[j * n + j];
+        if !(pivot > 0.0 && pivot.is_finite()) {
+            return false;
+        }
+        let diagonal = pivot.sqrt();
+        a[j * n + j] = diagonal;
+        for i in j + 1..n {
+            a[i * n + j] /= diagonal;
+            column[i] = a[i * n + j];
+        }
+        // A[i][k] −= L[i][j]·L[k][j] for j < k ≤ i.
+        for i in j + 1..n {
+            let weight = column[i];
+            let row = &mut a[i * n + j + 1..i * n + i + 1];
+            for (value, &l) in row.iter_mut().zip(&column[j + 1..i + 1]) {
+                *value -= weight * l;
+            }
+        }
+    }
+    // L·y = b, then Lᵀ·x = y.
+    let mut y = b.to_vec();
+    for i in 0..n {
+        let row = &a[i * n..i * n + n];
+        y[i] = (y[i] - dot(&row[..i], &y[..i])) / row[i];
+    }
+    for i in (0..n).rev() {
+        let mut sum = y[i];
+        for k in i + 1..n {
+            sum -= a[k * n + i] * y[k];
+        }
+        y[i] = sum / a[i * n + i];
+    }
+    b.copy_from_slice(&y);
+    true
+}
+
 /// Eigenvalues (descending) and eigenvectors (the matching columns, orthonormal) of symmetric
 /// `a`, by cyclic Jacobi rotations until the off-diagonal mass is below 1e-24 of the total.
 pub(crate) fn symmetric_eigen(mut a: Array2<f64>) -> (Array1<f64>, Array2<f64>) {
@@ -214,6 +278,32 @@ mod tests {
             pack_lower(a.view(), packed.view_mut());
             assert_eq!(unpack_symmetric(packed.view(), n), a);
         }
+    }
+
+    #[test]
+    fn the_flat_solve_equals_the_factor_and_solves() {
+        for n in [1, 2, 5, 40] {
+            let a = random_positive_definite(n, 50 + n as u64);
+            let b = Array1::from_iter((0..n).map(|i| (i as f64 * 0.7).sin()));
+            let expected = cholesky_solve(cholesky(a.view()).unwrap().view(), b.view());
+            let mut flat = a.iter().copied().collect::<Vec<_>>();
+            let mut x = b.to_vec();
+            assert!(solve_positive_definite_in_place(&mut flat, n, &mut x));
+            for (got, want) in x.iter().zip(&expected) {
+                assert!(
+                    (got - want).abs() <= 1e-10 * want.abs().max(1.0),
+                    "{got} vs {want}"
+                );
+            }
+        }
+        let mut indefinite = vec![1.0, 2.0, 2.0, 1.0];
+        let mut b = vec![1.0, 1.0];
+        assert!(!solve_positive_definite_in_place(
+            &mut indefinite,
+            2,
+            &mut b
+        ));
+        assert_eq!(b, vec![1.0, 1.0]);
     }
 
     #[test]

@@ -17,7 +17,8 @@
 //! The window's statistics are running sums in f64: a frame's posteriors and values are added
 //! when it arrives and subtracted when it leaves the window (they are kept for that, W frames of
 //! them). The i-vectors of all recomputation points of a block of frames are solved together
-//! (two matrix products and one R×R Cholesky factorisation per point).
+//! (two matrix products, in single precision, and one R×R Cholesky factorisation in f64 per
+//! point; see [`crate::total_variability::TotalVariability::posterior_means_single`]).
 
 use ndarray::{Array1, Array2, ArrayView1, ArrayView2, Axis};
 
@@ -40,6 +41,10 @@ pub struct OnlineIvectors<'a> {
     frames_seen: usize,
     occupancy: Array1<f64>,
     first_order: Array2<f64>,
+    /// Entries with a non-zero posterior in the window, per Gaussian: where it drops to 0 the
+    /// Gaussian's sums are set to exactly 0 (what subtraction leaves is rounding residue), so
+    /// that the solve can skip it.
+    entries: Vec<usize>,
     /// Gaussian index and posterior of the kept entries of the frames in the window, by slot
     /// (frame t lives in slot t mod W).
     ring_gaussians: Vec<usize>,
@@ -63,6 +68,7 @@ impl<'a> OnlineIvectors<'a> {
             frames_seen: 0,
             occupancy: Array1::zeros(gaussians),
             first_order: Array2::zeros((gaussians, dims)),
+            entries: vec![0; gaussians],
             ring_gaussians: Vec::new(),
             ring_posteriors: Vec::new(),
             ring_frames: Vec::new(),
@@ -101,8 +107,9 @@ impl<'a> OnlineIvectors<'a> {
             let chunk_end = (chunk_start + chunk).min(rows);
             // (row in the piece) of every recomputation point in this chunk, and its statistics.
             let mut points: Vec<usize> = Vec::new();
-            let mut snapshot_occupancy: Vec<f64> = Vec::new();
-            let mut snapshot_centred: Vec<f64> = Vec::new();
+            // In f32: the solve's products are in single precision.
+            let mut snapshot_occupancy: Vec<f32> = Vec::new();
+            let mut snapshot_centred: Vec<f32> = Vec::new();
             for start in (chunk_start..chunk_end).step_by(BLOCK_FRAMES) {
                 let end = (start + BLOCK_FRAMES).min(chunk_end);
                 // Only frames on the stride grid (stream index a multiple of s) enter the
@@ -128,11 +135,18 @@ impl<'a> OnlineIvectors<'a> {
                     }
                     if frame % self.period == 0 {
                         points.push(i);
-                        snapshot_occupancy.extend(self.occupancy.iter());
-                        for c in 0..gaussians {
-                            let n = self.occupancy[c];
-                            for d in 0..dims {
-                                snapshot_centred.push(self.first_order[(c, d)] - n * means[(c, d)]);
+                        snapshot_occupancy.extend(self.occupancy.iter().map(|&n| n as f32));
+                        // F̃_c = F_c − N_c·μ_c, in f64, rounded once.
+                        let offset = snapshot_centred.len();
+                        snapshot_centred.resize(offset + gaussians * dims, 0.0);
+                        for (((out, sums), mean), &n) in snapshot_centred[offset..]
+                            .chunks_exact_mut(dims)
+                            .zip(self.first_order.rows())
+                            .zip(means.rows())
+                            .zip(&self.occupancy)
+                        {
+                            for ((o, &f), &m) in out.iter_mut().zip(&sums).zip(&mean) {
+                                *o = (f - n * m) as f32;
                             }
                         }
                     }
@@ -185,8 +199,12 @@ impl<'a> OnlineIvectors<'a> {
         }
         let mut k = slot * kept;
         posteriors.for_each(i, |c, gamma| {
-            self.occupancy[c] += gamma;
-            self.first_order.row_mut(c).scaled_add(gamma, &frame);
+            // A posterior of 0 (a Gaussian far below the frame's best) adds nothing.
+            if gamma > 0.0 {
+                self.occupancy[c] += gamma;
+                self.first_order.row_mut(c).scaled_add(gamma, &frame);
+                self.entries[c] += 1;
+            }
             self.ring_gaussians[k] = c;
             self.ring_posteriors[k] = gamma;
             k += 1;
@@ -199,8 +217,17 @@ impl<'a> OnlineIvectors<'a> {
         let frame = ArrayView1::from(&self.ring_frames[slot * dims..(slot + 1) * dims]);
         for k in slot * kept..(slot + 1) * kept {
             let (c, gamma) = (self.ring_gaussians[k], self.ring_posteriors[k]);
-            self.occupancy[c] -= gamma;
-            self.first_order.row_mut(c).scaled_add(-gamma, &frame);
+            if gamma == 0.0 {
+                continue;
+            }
+            self.entries[c] -= 1;
+            if self.entries[c] == 0 {
+                self.occupancy[c] = 0.0;
+                self.first_order.row_mut(c).fill(0.0);
+            } else {
+                self.occupancy[c] -= gamma;
+                self.first_order.row_mut(c).scaled_add(-gamma, &frame);
+            }
         }
     }
 }

@@ -14,6 +14,8 @@
 //! precomputed) plus g, in f64: the expansion cancels large terms, and f64 keeps the result
 //! within 1e-9 of the direct sum on normalised features (checked against scikit-learn).
 
+use std::cmp::Ordering;
+
 use ndarray::{s, Array1, Array2, ArrayView1, ArrayView2, ArrayViewMut1, Axis, Zip};
 use rand::{Rng, SeedableRng};
 use rand_chacha::ChaCha8Rng;
@@ -25,6 +27,12 @@ use crate::SpeakerError;
 /// Frames per block of the matrix products: large enough for an efficient product, small enough
 /// that a block's [frames, Gaussians] matrix stays in cache and rayon can balance the work.
 pub(crate) const BLOCK_FRAMES: usize = 512;
+
+/// Of a frame's top Gaussians, those whose (f32) log-likelihood is more than this below the best
+/// one's get posterior 0, without selection, f64 log-likelihood or exponential: theirs would be
+/// below e⁻⁴⁰ ≈ 4·10⁻¹⁸ of the best one's, under the rounding unit of the f64 sums that hold it,
+/// so they would not change the statistics beyond rounding.
+const NEGLIGIBLE_GAP: f32 = 40.0;
 
 /// A Gaussian with less occupancy than this (in frames) keeps its mean and variances in the M-step.
 const MIN_OCCUPANCY: f64 = 1.0;
@@ -132,19 +140,74 @@ fn to_f64(frames: ArrayView2<f32>) -> Array2<f64> {
     Array2::from_shape_fn(frames.dim(), |(t, d)| f64::from(frames[(t, d)]))
 }
 
-/// The `top` largest values of `row` with their indices (any order), using `scratch` as work
-/// space.
+/// The Gaussians of a frame that get a posterior: of the `top` largest values of `row`, those
+/// at most [`NEGLIGIBLE_GAP`] below the largest, with their values (in the order of `row`; a NaN
+/// counts as −∞, and of values tied at the boundary the lower indices are kept). Uses `scratch`
+/// and `values` as work space. Only the values within the gap are candidates at all, so the
+/// selection (of the `top`-th largest value, among plain f32 values) usually runs over a few of
+/// them or none.
 fn top_entries<'a>(
     row: ArrayView1<f32>,
     top: usize,
     scratch: &'a mut Vec<(f32, usize)>,
+    values: &mut Vec<f32>,
 ) -> &'a [(f32, usize)] {
     scratch.clear();
-    scratch.extend(row.iter().copied().zip(0..));
-    if top < row.len() {
-        scratch.select_nth_unstable_by(top - 1, |a, b| b.0.total_cmp(&a.0));
+    if top == 0 {
+        return scratch;
     }
-    &scratch[..top.min(row.len())]
+    let best = row.iter().copied().fold(f32::NEG_INFINITY, f32::max);
+    let floor = best - NEGLIGIBLE_GAP;
+    // NaN fails `>=`: never a candidate (unless every value is NaN or −∞: then nothing is).
+    scratch.extend(
+        row.iter()
+            .copied()
+            .zip(0..)
+            .filter(|&(v, _)| v >= floor && v > f32::NEG_INFINITY),
+    );
+    if scratch.len() <= top {
+        return scratch;
+    }
+    values.clear();
+    values.extend(scratch.iter().map(|&(v, _)| v));
+    let (_, &mut threshold, _) =
+        values.select_nth_unstable_by(top - 1, |a, b| b.partial_cmp(a).unwrap_or(Ordering::Equal));
+    let above = values.iter().filter(|&&v| v > threshold).count();
+    let mut ties = top - above;
+    scratch.retain(|&(v, _)| {
+        if v > threshold {
+            true
+        } else if v == threshold && ties > 0 {
+            ties -= 1;
+            true
+        } else {
+            false
+        }
+    });
+    scratch
+}
+
+/// g + Σ_d x_d·(a_d + x_d·b_d) in f64 with four partial sums (so that the compiler can vectorise
+/// the loop; the result differs from the sequential sum by rounding only).
+fn quadratic_score(offset: f64, x: &[f64], linear: &[f64], quadratic: &[f64]) -> f64 {
+    let mut partial = [0.0f64; 4];
+    let (x4, x_rest) = x.split_at(x.len() - x.len() % 4);
+    let (a4, a_rest) = linear.split_at(x4.len());
+    let (b4, b_rest) = quadratic.split_at(x4.len());
+    for ((x, a), b) in x4
+        .chunks_exact(4)
+        .zip(a4.chunks_exact(4))
+        .zip(b4.chunks_exact(4))
+    {
+        for j in 0..4 {
+            partial[j] += x[j] * (a[j] + x[j] * b[j]);
+        }
+    }
+    let mut rest = 0.0;
+    for ((&v, &a), &b) in x_rest.iter().zip(a_rest).zip(b_rest) {
+        rest += v * (a + v * b);
+    }
+    offset + ((partial[0] + partial[1]) + (partial[2] + partial[3])) + rest
 }
 
 /// Posteriors of a block of frames: of every Gaussian, or of each frame's `top` most likely.
@@ -152,6 +215,8 @@ pub(crate) enum FramePosteriors {
     /// `[frames, C]`.
     Dense(Array2<f64>),
     /// Frame i's Gaussians are `gaussians[i·top..(i+1)·top]`, their posteriors `values[…]`.
+    /// A frame with fewer Gaussians worth a posterior (see [`NEGLIGIBLE_GAP`]) is padded with
+    /// repeats of one of them with posterior 0.
     Sparse {
         /// Gaussians kept per frame.
         top: usize,
@@ -318,7 +383,8 @@ impl DiagGmm {
         {
             let (posteriors, _) = self.frame_posteriors(block, top);
             for i in 0..block.nrows() {
-                posteriors.for_each(i, |c, gamma| out[(start + i, c)] = gamma);
+                // Padding entries repeat a kept Gaussian with posterior 0: add, not assign.
+                posteriors.for_each(i, |c, gamma| out[(start + i, c)] += gamma);
             }
         }
         out
@@ -364,21 +430,50 @@ impl DiagGmm {
         let mut approximate = stacked.dot(&self.selection);
         approximate += &self.selection_offsets;
         let mut scratch = Vec::with_capacity(gaussians);
+        let mut work = Vec::with_capacity(gaussians);
         let mut kept = Vec::with_capacity(frames.nrows() * top);
         let mut values = Vec::with_capacity(frames.nrows() * top);
-        for (row, frame) in approximate.rows().into_iter().zip(x.rows()) {
+        let by_gaussian = self
+            .projection_by_gaussian
+            .as_slice()
+            .expect("the projection is built in standard layout");
+        for (row, frame) in approximate.rows().into_iter().zip(
+            x.as_slice()
+                .expect("to_f64 builds standard layout")
+                .chunks_exact(dims),
+        ) {
             let first = values.len();
-            for &(_, c) in top_entries(row, top, &mut scratch) {
-                let (linear, quadratic) =
-                    self.projection_by_gaussian.row(c).split_at(Axis(0), dims);
-                let score = Zip::from(&frame)
-                    .and(&linear)
-                    .and(&quadratic)
-                    .fold(self.offsets[c], |score, &v, &a, &b| score + v * (a + v * b));
+            let chosen = top_entries(row, top, &mut scratch, &mut work);
+            for &(_, c) in chosen {
                 kept.push(c);
-                values.push(score);
+                let (linear, quadratic) =
+                    by_gaussian[2 * dims * c..2 * dims * (c + 1)].split_at(dims);
+                values.push(quadratic_score(self.offsets[c], frame, linear, quadratic));
             }
-            posteriors_in_place(ArrayViewMut1::from(&mut values[first..]));
+            if chosen.is_empty() {
+                // Only when no f32 score is finite (features so large that the f32 product
+                // overflows): choose by the f64 scores instead.
+                let mut exact: Vec<(f64, usize)> = (0..gaussians)
+                    .map(|c| {
+                        let (linear, quadratic) =
+                            by_gaussian[2 * dims * c..2 * dims * (c + 1)].split_at(dims);
+                        (
+                            quadratic_score(self.offsets[c], frame, linear, quadratic),
+                            c,
+                        )
+                    })
+                    .collect();
+                exact.sort_by(|a, b| b.0.total_cmp(&a.0));
+                for &(score, c) in exact.iter().take(top) {
+                    kept.push(c);
+                    values.push(score);
+                }
+            }
+            // Every frame has `top` entries; the rest are padding with posterior 0 (−∞ here).
+            let padding = top - (values.len() - first);
+            kept.extend(std::iter::repeat_n(kept[first], padding));
+            values.extend(std::iter::repeat_n(f64::NEG_INFINITY, padding));
+            sparse_posteriors_in_place(&mut values[first..]);
         }
         (
             FramePosteriors::Sparse {
@@ -407,8 +502,10 @@ impl DiagGmm {
                 FramePosteriors::Sparse { .. } => {
                     for (i, frame) in x.rows().into_iter().enumerate() {
                         posteriors.for_each(i, |c, gamma| {
-                            stats.occupancy[c] += gamma;
-                            stats.first_order.row_mut(c).scaled_add(gamma, &frame);
+                            if gamma > 0.0 {
+                                stats.occupancy[c] += gamma;
+                                stats.first_order.row_mut(c).scaled_add(gamma, &frame);
+                            }
                         });
                     }
                 }
@@ -544,6 +641,22 @@ impl DiagGmm {
 
 /// Turns a row of weighted log-likelihoods into posteriors in place and returns its
 /// log-sum-exp.
+/// [`posteriors_in_place`] for a frame's kept Gaussians, where −∞ marks one whose posterior is
+/// 0 (no exponential for those).
+fn sparse_posteriors_in_place(values: &mut [f64]) {
+    let max = values.iter().copied().fold(f64::NEG_INFINITY, f64::max);
+    let mut sum = 0.0;
+    for v in values.iter_mut() {
+        *v = if *v == f64::NEG_INFINITY {
+            0.0
+        } else {
+            (*v - max).exp()
+        };
+        sum += *v;
+    }
+    values.iter_mut().for_each(|v| *v /= sum);
+}
+
 fn posteriors_in_place(mut row: ArrayViewMut1<f64>) -> f64 {
     let max = row.iter().copied().fold(f64::NEG_INFINITY, f64::max);
     let mut sum = 0.0;
@@ -919,6 +1032,34 @@ mod tests {
                 assert!((b[c] - a[c] / kept).abs() < 1e-12);
             }
         }
+    }
+
+    #[test]
+    fn top_gaussians_far_below_the_best_get_posterior_zero() {
+        // One dimension, unit variances, equal weights: frame x scores −(x − μ_c)²/2 + const.
+        let gmm = DiagGmm::new(
+            ndarray::arr1(&[0.25, 0.25, 0.25, 0.25]),
+            ndarray::arr2(&[[0.0], [1.0], [8.0], [9.5]]),
+            ndarray::arr2(&[[1.0], [1.0], [1.0], [1.0]]),
+        )
+        .unwrap();
+        // At x = 0 the top three are μ = 0, 1 and 8; μ = 8 scores 32 below the best (within
+        // the gap of 40), and at x = −1.5 it scores 44 below (outside it).
+        let frames = ndarray::arr2(&[[0.0f32], [-1.5]]);
+        let full = gmm.posteriors(frames.view(), 0);
+        let pruned = gmm.posteriors(frames.view(), 3);
+        assert!(pruned[(0, 2)] > 0.0);
+        let kept = full[(0, 0)] + full[(0, 1)] + full[(0, 2)];
+        for c in 0..3 {
+            assert!((pruned[(0, c)] - full[(0, c)] / kept).abs() < 1e-15);
+        }
+        assert_eq!(pruned[(1, 2)], 0.0);
+        assert_eq!(pruned[(1, 3)], 0.0);
+        let kept = full[(1, 0)] + full[(1, 1)];
+        for c in 0..2 {
+            assert!((pruned[(1, c)] - full[(1, c)] / kept).abs() < 1e-15);
+        }
+        assert!((pruned.row(1).sum() - 1.0).abs() < 1e-15);
     }
 
     #[test]
