@@ -122,8 +122,8 @@ pub struct EpochRecord {
     /// the steps did not hide.
     #[serde(default)]
     pub feature_seconds: f64,
-    /// Time spent computing the batches' features, summed over the threads that computed them
-    /// (absent from logs written before it existed).
+    /// Wall time of each utterance's feature computation, summed over the threads that
+    /// computed them (absent from logs written before it existed).
     #[serde(default)]
     pub feature_compute_seconds: f64,
     /// Wall time of the dev pass, seconds.
