@@ -72,6 +72,9 @@ pub struct TrainOptions {
     /// `config`; its units are kept) instead of a random initialisation. Ignored on resume:
     /// the checkpoint has the weights.
     pub start_from: Option<PathBuf>,
+    /// Compute the next batch's features on a background thread while a batch trains
+    /// ([`Trainer::set_prefetch`]); the weights are the same either way.
+    pub prefetch: bool,
 }
 
 /// Progress of the whole run, for the CLI to draw.
@@ -739,6 +742,7 @@ pub fn train_with(
         trainer.set_epochs(epochs);
     }
     trainer.set_collective(Arc::clone(&collective));
+    trainer.set_prefetch(options.prefetch);
     let config = trainer.config().clone();
     if distributed {
         let refused = if config.features.cmvn == CmvnMode::Speaker {
@@ -956,6 +960,7 @@ pub fn train_with(
                 "seed": seed,
                 "minutes": options.minutes,
                 "ranks": size,
+                "prefetch": options.prefetch,
             }),
         )?;
     }

@@ -170,11 +170,7 @@ impl TdnnLayer {
 
     /// Output frames for `frames` input frames (0 when the input is shorter than the span).
     pub fn output_frames(&self, frames: usize) -> usize {
-        if frames <= self.span() {
-            0
-        } else {
-            (frames - 1 - self.span()) / self.subsample + 1
-        }
+        layer_output_frames(frames, self.span(), self.subsample)
     }
 
     fn check_frames(&self, frames: usize) -> Result<usize, AcousticError> {
@@ -452,6 +448,35 @@ fn dropout_mask(
 
 /// The network: hidden [`TdnnLayer`]s and a final affine layer over the units (blank at 0).
 ///
+/// The frame counts of a network without its weights (see [`Tdnn::frame_geometry`]).
+#[derive(Debug, Clone, PartialEq)]
+pub(crate) struct FrameGeometry {
+    /// Context frames added around each utterance.
+    padding: usize,
+    /// `(span, subsample)` of each layer.
+    layers: Vec<(usize, usize)>,
+}
+
+impl FrameGeometry {
+    /// [`Tdnn::output_frames`] of the network it was taken from.
+    pub(crate) fn output_frames(&self, frames: usize) -> usize {
+        self.layers
+            .iter()
+            .fold(frames + self.padding, |n, &(span, subsample)| {
+                layer_output_frames(n, span, subsample)
+            })
+    }
+}
+
+/// Output frames of a layer spanning `span + 1` input frames that keeps every `subsample`th.
+fn layer_output_frames(frames: usize, span: usize, subsample: usize) -> usize {
+    if frames <= span {
+        0
+    } else {
+        (frames - 1 - span) / subsample + 1
+    }
+}
+
 /// Input `[batch, frames, feature_dims]` (each utterance already padded by the context),
 /// output `[batch, output_frames, units]` unnormalised scores (logits).
 #[derive(Debug, Clone)]
@@ -562,6 +587,20 @@ impl Tdnn {
         self.layers
             .iter()
             .fold(frames + left + right, |n, layer| layer.output_frames(n))
+    }
+
+    /// What [`Tdnn::output_frames`] needs, apart from the weights: a value another thread can
+    /// hold while the weights are updated.
+    pub(crate) fn frame_geometry(&self) -> FrameGeometry {
+        let (left, right) = self.config.context();
+        FrameGeometry {
+            padding: left + right,
+            layers: self
+                .layers
+                .iter()
+                .map(|layer| (layer.span(), layer.subsample))
+                .collect(),
+        }
     }
 
     /// The architecture.
@@ -926,12 +965,14 @@ mod tests {
             let vars = initial_parameters(&config, 39, 30, &mut rng).unwrap();
             let statistics = initial_statistics(&config).unwrap();
             let net = Tdnn::new(var_builder(&merged(&vars, &statistics)), &config, 39, 30).unwrap();
+            let geometry = net.frame_geometry();
             for frames in [1usize, 2, 3, 4, 100, 101] {
                 assert_eq!(
                     net.output_frames(frames),
                     frames.div_ceil(3),
                     "{frames} frames"
                 );
+                assert_eq!(geometry.output_frames(frames), frames.div_ceil(3));
             }
             let input = Tensor::zeros((2, 50 + 52, 39), DType::F32, &Device::Cpu).unwrap();
             let out = net.forward(&input).unwrap();

@@ -27,8 +27,10 @@
 //! floating-point sums (docs/training.md, "Data-parallel training").
 
 use std::collections::BTreeMap;
+use std::panic::AssertUnwindSafe;
 use std::path::{Path, PathBuf};
-use std::sync::Arc;
+use std::sync::atomic::{AtomicBool, AtomicU64, AtomicUsize, Ordering};
+use std::sync::{Arc, Condvar, Mutex};
 use std::time::Instant;
 
 use candle_core::{Device, Tensor, Var};
@@ -45,7 +47,9 @@ use crate::ctc::{min_frames_for, CtcLoss, CtcTargets};
 use crate::data::{utterance_rng, TrainingData};
 pub use crate::data::{Augment, PreparedUtterance};
 use crate::optim::{AdamW, Moments};
-use crate::tdnn::{initial_parameters, initial_statistics, var_builder, BatchPart, Tdnn};
+use crate::tdnn::{
+    initial_parameters, initial_statistics, var_builder, BatchPart, FrameGeometry, Tdnn,
+};
 use crate::units::UnitInventory;
 use crate::{greedy_path, AcousticError};
 
@@ -113,9 +117,15 @@ pub struct EpochRecord {
     /// Wall time of the training pass, seconds (feature work included).
     #[serde(default)]
     pub train_seconds: f64,
-    /// Wall time spent producing the batches' features (perturbation, extraction, masks).
+    /// Wall time the training pass waited for the batches' features (perturbation,
+    /// extraction, masks): all of their computation without prefetch, with prefetch the part
+    /// the steps did not hide.
     #[serde(default)]
     pub feature_seconds: f64,
+    /// Wall time of each utterance's feature computation, summed over the threads that
+    /// computed them (absent from logs written before it existed).
+    #[serde(default)]
+    pub feature_compute_seconds: f64,
     /// Wall time of the dev pass, seconds.
     #[serde(default)]
     pub dev_seconds: f64,
@@ -169,6 +179,8 @@ pub struct Trainer {
     deadline: Option<Instant>,
     /// The ranks of a data-parallel run ([`SingleProcess`] by default).
     collective: Arc<dyn Collective>,
+    /// Compute the next batch's features on a background thread while a batch trains.
+    prefetch: bool,
 }
 
 /// What one update of a data-parallel run gives: the per-frame loss of the whole batch and its
@@ -177,6 +189,134 @@ type PartOutcome = (Option<(f64, usize)>, usize);
 
 /// Updates of the first epoch timed before a budgeted run plans its schedule.
 const PROBE_UPDATES: usize = 8;
+
+/// What computing an utterance's features for an epoch needs, shared by the training loop and
+/// the prefetch thread (the network's frame counts, not the network, whose weights change).
+struct FeatureWork<'a> {
+    train: &'a dyn TrainingData,
+    seed: u64,
+    epoch: usize,
+    geometry: &'a FrameGeometry,
+    /// Time spent in [`FeatureWork::compute`], summed over threads.
+    compute_nanos: AtomicU64,
+}
+
+impl FeatureWork<'_> {
+    /// This process's utterances of `batch`, in batch order.
+    fn mine(&self, batch: &[usize]) -> Vec<usize> {
+        batch
+            .iter()
+            .copied()
+            .filter(|&i| self.train.is_local(i))
+            .collect()
+    }
+
+    /// Utterance `i`'s features of the epoch, from its own random stream: the same whichever
+    /// thread computes them, and whenever.
+    fn compute(&self, i: usize) -> Array2<f32> {
+        let start = Instant::now();
+        let labels = self.train.labels(i);
+        let fits = |frames: usize| {
+            frames > 0 && min_frames_for(labels) <= self.geometry.output_frames(frames)
+        };
+        let features = self
+            .train
+            .features(i, &mut utterance_rng(self.seed, self.epoch, i), &fits);
+        let nanos = u64::try_from(start.elapsed().as_nanos()).unwrap_or(u64::MAX);
+        self.compute_nanos.fetch_add(nanos, Ordering::Relaxed);
+        features
+    }
+}
+
+/// The features of one batch, each utterance's computed by whichever thread claims it first:
+/// the prefetch thread, or the training loop's pool when the batch is needed before the
+/// prefetch thread is through with it.
+struct BatchFeatures {
+    utterances: Vec<usize>,
+    slots: Vec<Mutex<Option<Array2<f32>>>>,
+    /// The next unclaimed place in `utterances`.
+    next: AtomicUsize,
+    /// Places whose computation is over (whether or not it gave features), and its signal.
+    finished: Mutex<usize>,
+    changed: Condvar,
+}
+
+impl BatchFeatures {
+    fn new(utterances: Vec<usize>) -> Self {
+        BatchFeatures {
+            slots: utterances.iter().map(|_| Mutex::new(None)).collect(),
+            utterances,
+            next: AtomicUsize::new(0),
+            finished: Mutex::new(0),
+            changed: Condvar::new(),
+        }
+    }
+
+    /// Claims the next place and computes it (a panic caught when `catch`, leaving the place
+    /// empty); `None` when every place is claimed, else whether the computation gave features.
+    fn claim_one(&self, work: &FeatureWork, catch: bool) -> Option<bool> {
+        let k = self.next.fetch_add(1, Ordering::Relaxed);
+        let &i = self.utterances.get(k)?;
+        let features = if catch {
+            std::panic::catch_unwind(AssertUnwindSafe(|| work.compute(i))).ok()
+        } else {
+            Some(work.compute(i))
+        };
+        let done = features.is_some();
+        *lock(&self.slots[k]) = features;
+        *lock(&self.finished) += 1;
+        self.changed.notify_all();
+        Some(done)
+    }
+
+    /// The prefetch thread's share: claims places until none is left or `stop` is set. False
+    /// when it should stop (told to, or a computation panicked: the training loop then computes
+    /// that utterance itself, and the panic, if it happens again, happens there as it would
+    /// without prefetch).
+    fn work_alone(&self, work: &FeatureWork, stop: &AtomicBool) -> bool {
+        while !stop.load(Ordering::Relaxed) {
+            match self.claim_one(work, true) {
+                None => return true,
+                Some(true) => {}
+                Some(false) => return false,
+            }
+        }
+        false
+    }
+
+    /// The training loop's side: computes the unclaimed places on the pool, waits for those
+    /// claimed by the prefetch thread and returns the features in batch order.
+    fn finish(&self, work: &FeatureWork) -> Vec<Array2<f32>> {
+        let left = self
+            .utterances
+            .len()
+            .saturating_sub(self.next.load(Ordering::Relaxed));
+        (0..left).into_par_iter().for_each(|_| {
+            self.claim_one(work, false);
+        });
+        let mut finished = lock(&self.finished);
+        while *finished < self.utterances.len() {
+            finished = self
+                .changed
+                .wait(finished)
+                .unwrap_or_else(|poisoned| poisoned.into_inner());
+        }
+        drop(finished);
+        self.slots
+            .iter()
+            .zip(&self.utterances)
+            .map(|(slot, &i)| lock(slot).take().unwrap_or_else(|| work.compute(i)))
+            .collect()
+    }
+}
+
+/// A lock whose holder cannot have left its value half-changed (every holder here only
+/// assigns), so a panic elsewhere does not poison it for the others.
+fn lock<T>(mutex: &Mutex<T>) -> std::sync::MutexGuard<'_, T> {
+    mutex
+        .lock()
+        .unwrap_or_else(|poisoned| poisoned.into_inner())
+}
 
 fn epoch_rng(seed: u64, epoch: usize) -> ChaCha8Rng {
     let mut rng = ChaCha8Rng::seed_from_u64(seed);
@@ -267,6 +407,7 @@ impl Trainer {
             },
             deadline: None,
             collective: Arc::new(SingleProcess),
+            prefetch: true,
         })
     }
 
@@ -274,6 +415,13 @@ impl Trainer {
     /// documentation); with one rank, as a single process.
     pub fn set_collective(&mut self, collective: Arc<dyn Collective>) {
         self.collective = collective;
+    }
+
+    /// Whether the features of the next batch are computed on a background thread while a
+    /// batch trains (on by default). The weights are the same either way: every utterance's
+    /// features come from its own random stream.
+    pub fn set_prefetch(&mut self, prefetch: bool) {
+        self.prefetch = prefetch;
     }
 
     /// The ranks this trainer works with.
@@ -678,70 +826,106 @@ impl Trainer {
         let mut feature_seconds = 0f64;
         let dev_share = dev.iter().map(|u| u.variants[0].nrows()).sum::<usize>() as f64
             / lengths.iter().sum::<usize>().max(1) as f64;
-        for (done, batch) in batches.iter().enumerate() {
-            if let Some(deadline) = self.deadline {
-                let planned = self.progress.planned_updates;
-                let mut spent = [f64::from(u8::from(Instant::now() >= deadline))];
-                if self.distributed() {
-                    self.collective
-                        .broadcast_f64("the end-of-budget check", &mut spent)?;
-                }
-                if spent[0] > 0.5 || (planned > 0 && self.optimizer.step >= planned) {
-                    break;
-                }
-                if planned == 0 && done == PROBE_UPDATES {
-                    // A forward-only dev pass costs about a third of a training pass per frame.
-                    let per_update = started.elapsed().as_secs_f64() / done as f64;
-                    self.plan_for_deadline(per_update * (1.0 + dev_share / 3.0))?;
-                }
-            }
-            let feature_start = Instant::now();
-            let network = &self.network;
-            // This rank's utterances of the batch, with their places in it (all of them in a
-            // single process).
-            let (positions, mine): (Vec<u64>, Vec<usize>) = batch
-                .iter()
-                .enumerate()
-                .filter(|(_, &i)| train.is_local(i))
-                .map(|(position, &i)| (position as u64, i))
-                .unzip();
-            let features: Vec<Array2<f32>> = mine
-                .par_iter()
-                .map(|&i| {
-                    let labels = train.labels(i);
-                    let fits = |frames: usize| {
-                        frames > 0 && min_frames_for(labels) <= network.output_frames(frames)
-                    };
-                    train.features(i, &mut utterance_rng(seed, epoch, i), &fits)
-                })
-                .collect();
-            feature_seconds += feature_start.elapsed().as_secs_f64();
-            let refs: Vec<&Array2<f32>> = features.iter().collect();
-            let labels: Vec<Vec<u32>> = mine.iter().map(|&i| train.labels(i).to_vec()).collect();
-            let (outcome, batch_frames) = if self.distributed() {
-                self.train_part(&refs, labels, &positions, &mut rng)?
-            } else {
-                let input_frames = refs.iter().map(|f| f.nrows()).sum();
-                (self.train_batch(&refs, labels, &mut rng)?, input_frames)
-            };
-            epoch_frames += batch_frames;
-            let Some((value, total_frames)) = outcome else {
-                skipped += 1;
-                on_event(&TrainingEvent::BatchSkipped {
-                    done: done + 1,
-                    utterances: batch.iter().map(|&i| train.id(i).to_string()).collect(),
+        let geometry = self.network.frame_geometry();
+        let work = FeatureWork {
+            train,
+            seed,
+            epoch,
+            geometry: &geometry,
+            compute_nanos: AtomicU64::new(0),
+        };
+        let prefetch = self.prefetch;
+        let stop = AtomicBool::new(false);
+        std::thread::scope(|scope| -> Result<(), AcousticError> {
+            // The prefetch thread computes the features of the batches in order, at most one
+            // batch ahead of the training loop (which holds the next one while it trains on
+            // the current one); it stops when the loop drops its end of the channel.
+            let (sender, receiver) = std::sync::mpsc::sync_channel::<Arc<BatchFeatures>>(1);
+            if prefetch {
+                let (work, batches, stop) = (&work, &batches, &stop);
+                scope.spawn(move || {
+                    for batch in batches {
+                        let job = Arc::new(BatchFeatures::new(work.mine(batch)));
+                        if sender.send(Arc::clone(&job)).is_err() || !job.work_alone(work, stop) {
+                            break;
+                        }
+                    }
                 });
-                continue;
-            };
-            loss_sum += value * total_frames as f64;
-            loss_frames += total_frames;
-            on_event(&TrainingEvent::Batch {
-                done: done + 1,
-                loss: value,
-                frames: batch_frames,
-                frames_per_second: epoch_frames as f64 / started.elapsed().as_secs_f64().max(1e-9),
-            });
-        }
+            } else {
+                drop(sender);
+            }
+            let result = (|| {
+                for (done, batch) in batches.iter().enumerate() {
+                    if let Some(deadline) = self.deadline {
+                        let planned = self.progress.planned_updates;
+                        let mut spent = [f64::from(u8::from(Instant::now() >= deadline))];
+                        if self.distributed() {
+                            self.collective
+                                .broadcast_f64("the end-of-budget check", &mut spent)?;
+                        }
+                        if spent[0] > 0.5 || (planned > 0 && self.optimizer.step >= planned) {
+                            break;
+                        }
+                        if planned == 0 && done == PROBE_UPDATES {
+                            // A forward-only dev pass costs about a third of a training pass
+                            // per frame.
+                            let per_update = started.elapsed().as_secs_f64() / done as f64;
+                            self.plan_for_deadline(per_update * (1.0 + dev_share / 3.0))?;
+                        }
+                    }
+                    let feature_start = Instant::now();
+                    // This rank's utterances of the batch, with their places in it (all of them
+                    // in a single process).
+                    let (positions, mine): (Vec<u64>, Vec<usize>) = batch
+                        .iter()
+                        .enumerate()
+                        .filter(|(_, &i)| train.is_local(i))
+                        .map(|(position, &i)| (position as u64, i))
+                        .unzip();
+                    let features: Vec<Array2<f32>> = match receiver.recv() {
+                        // What the prefetch thread has not done yet, the pool does now.
+                        Ok(job) => job.finish(&work),
+                        // Without prefetch (or after the prefetch thread stopped), all of it.
+                        Err(_) => mine.par_iter().map(|&i| work.compute(i)).collect(),
+                    };
+                    feature_seconds += feature_start.elapsed().as_secs_f64();
+                    let refs: Vec<&Array2<f32>> = features.iter().collect();
+                    let labels: Vec<Vec<u32>> =
+                        mine.iter().map(|&i| train.labels(i).to_vec()).collect();
+                    let (outcome, batch_frames) = if self.distributed() {
+                        self.train_part(&refs, labels, &positions, &mut rng)?
+                    } else {
+                        let input_frames = refs.iter().map(|f| f.nrows()).sum();
+                        (self.train_batch(&refs, labels, &mut rng)?, input_frames)
+                    };
+                    epoch_frames += batch_frames;
+                    let Some((value, total_frames)) = outcome else {
+                        skipped += 1;
+                        on_event(&TrainingEvent::BatchSkipped {
+                            done: done + 1,
+                            utterances: batch.iter().map(|&i| train.id(i).to_string()).collect(),
+                        });
+                        continue;
+                    };
+                    loss_sum += value * total_frames as f64;
+                    loss_frames += total_frames;
+                    on_event(&TrainingEvent::Batch {
+                        done: done + 1,
+                        loss: value,
+                        frames: batch_frames,
+                        frames_per_second: epoch_frames as f64
+                            / started.elapsed().as_secs_f64().max(1e-9),
+                    });
+                }
+                Ok(())
+            })();
+            // An early end (the budget, an error) stops the prefetch thread after the utterance
+            // it is computing; the scope waits for it.
+            stop.store(true, Ordering::Relaxed);
+            drop(receiver);
+            result
+        })?;
+        let feature_compute_seconds = work.compute_nanos.into_inner() as f64 * 1e-9;
         let train_seconds = started.elapsed().as_secs_f64();
         let frames_per_second = epoch_frames as f64 / train_seconds.max(1e-9);
         let exchange_seconds = self.collective.exchange_seconds() - exchange_before;
@@ -775,6 +959,7 @@ impl Trainer {
             updates,
             train_seconds,
             feature_seconds,
+            feature_compute_seconds,
             dev_seconds,
             exchange_seconds,
         };
@@ -1275,6 +1460,7 @@ mod tests {
                 record.frames_per_second = 0.0;
                 record.train_seconds = 0.0;
                 record.feature_seconds = 0.0;
+                record.feature_compute_seconds = 0.0;
                 record.dev_seconds = 0.0;
             }
             progress
@@ -1509,6 +1695,192 @@ mod tests {
         trainer.set_epochs(4);
         trainer.run_epoch(&set(&train), &dev, &mut |_| {}).unwrap();
         assert_eq!(trainer.progress().planned_updates, 4 * per_epoch);
+    }
+
+    /// A training set whose features come late and out of the utterance's random stream: a
+    /// variant drawn from the stream (a second one, every other frame of the first, too short
+    /// for the labels of some utterances), noise drawn from it, after a pause that differs by
+    /// utterance, so that the prefetch thread and the training loop each compute some of a
+    /// batch. `panic_on_prefetch` makes every computation on the prefetch thread panic (counted
+    /// in `panicked`); `always_panics` makes one utterance's computation panic anywhere.
+    struct SlowSet<'a> {
+        utterances: Vec<PreparedUtterance>,
+        inner: std::marker::PhantomData<&'a ()>,
+        trainer_thread: std::thread::ThreadId,
+        panic_on_prefetch: bool,
+        always_panics: Option<usize>,
+        panicked: AtomicUsize,
+    }
+
+    impl SlowSet<'_> {
+        fn new(utterances: &[PreparedUtterance]) -> Self {
+            let utterances = utterances
+                .iter()
+                .map(|u| {
+                    let first = u.variants[0].clone();
+                    let halved = first.select(
+                        ndarray::Axis(0),
+                        &(0..first.nrows()).step_by(2).collect::<Vec<_>>(),
+                    );
+                    PreparedUtterance {
+                        variants: vec![first, halved],
+                        ..u.clone()
+                    }
+                })
+                .collect();
+            SlowSet {
+                utterances,
+                inner: std::marker::PhantomData,
+                trainer_thread: std::thread::current().id(),
+                panic_on_prefetch: false,
+                always_panics: None,
+                panicked: AtomicUsize::new(0),
+            }
+        }
+    }
+
+    fn noise(matrix: &mut Array2<f32>, rng: &mut dyn RngCore) {
+        matrix.mapv_inplace(|v| v + rng.random_range(-0.05f32..0.05));
+    }
+
+    impl TrainingData for SlowSet<'_> {
+        fn len(&self) -> usize {
+            self.utterances.len()
+        }
+        fn id(&self, index: usize) -> &str {
+            &self.utterances[index].id
+        }
+        fn labels(&self, index: usize) -> &[u32] {
+            &self.utterances[index].labels
+        }
+        fn frames(&self, index: usize) -> usize {
+            self.utterances[index].variants[0].nrows()
+        }
+        fn features(
+            &self,
+            index: usize,
+            rng: &mut ChaCha8Rng,
+            fits: &dyn Fn(usize) -> bool,
+        ) -> Array2<f32> {
+            std::thread::sleep(std::time::Duration::from_micros(300 * (index % 4) as u64));
+            let on_prefetch_thread = rayon::current_thread_index().is_none()
+                && std::thread::current().id() != self.trainer_thread;
+            if self.always_panics == Some(index) || (self.panic_on_prefetch && on_prefetch_thread) {
+                self.panicked.fetch_add(1, Ordering::Relaxed);
+                panic!("the features of {} cannot be computed", self.id(index));
+            }
+            let augment: &Augment = &noise;
+            let set = PreparedSet {
+                utterances: &self.utterances,
+                augment: Some(augment),
+            };
+            set.features(index, rng, fits)
+        }
+    }
+
+    /// Two epochs of `train` with or without prefetch: the weights and the epoch records with
+    /// their times zeroed.
+    fn two_epochs(
+        train: &dyn TrainingData,
+        dev: &[PreparedUtterance],
+        prefetch: bool,
+    ) -> (Vec<(String, Vec<f32>)>, Vec<EpochRecord>) {
+        let mut config = config_with(Normalization::Batch);
+        config.training.batch_frames = 90;
+        let mut trainer = Trainer::new(config, units(), 5, 42).unwrap();
+        trainer.set_prefetch(prefetch);
+        let records = (0..2)
+            .map(|_| {
+                let mut record = trainer.run_epoch(train, dev, &mut |_| {}).unwrap();
+                assert!(record.updates > 3, "several batches an epoch");
+                assert!(record.feature_compute_seconds > 0.0);
+                record.frames_per_second = 0.0;
+                record.train_seconds = 0.0;
+                record.feature_seconds = 0.0;
+                record.feature_compute_seconds = 0.0;
+                record.dev_seconds = 0.0;
+                record
+            })
+            .collect();
+        (weights(&trainer), records)
+    }
+
+    /// Features computed ahead on the prefetch thread (and, for what it has not reached, by
+    /// the training loop) give exactly the weights of features computed batch by batch.
+    #[test]
+    fn prefetch_trains_the_weights_of_computing_features_in_turn() {
+        let utterances = synthetic(16, 1);
+        let dev = synthetic(4, 2);
+        let train = SlowSet::new(&utterances);
+        let (in_turn, records_in_turn) = two_epochs(&train, &dev, false);
+        let (ahead, records_ahead) = two_epochs(&train, &dev, true);
+        assert_eq!(records_ahead, records_in_turn);
+        assert!(in_turn == ahead, "prefetch changed the weights");
+        // Without the stream's draws the weights would differ: the check can fail.
+        let (plain, _) = two_epochs(&set(&utterances), &dev, true);
+        assert!(plain != ahead);
+    }
+
+    /// A panic on the prefetch thread stops it; the training loop computes that utterance and
+    /// the rest itself, to the same weights.
+    #[test]
+    fn a_panic_on_the_prefetch_thread_leaves_the_work_to_the_training_loop() {
+        let utterances = synthetic(16, 1);
+        let dev = synthetic(4, 2);
+        let mut train = SlowSet::new(&utterances);
+        let (in_turn, _) = two_epochs(&train, &dev, false);
+        train.panic_on_prefetch = true;
+        let (ahead, _) = two_epochs(&train, &dev, true);
+        assert!(in_turn == ahead, "the fallback changed the weights");
+        assert!(
+            train.panicked.load(Ordering::Relaxed) >= 1,
+            "the prefetch thread computed something"
+        );
+    }
+
+    /// A panic that happens wherever the utterance is computed reaches the caller of
+    /// `run_epoch` with its message, as without prefetch, rather than hanging the epoch.
+    #[test]
+    fn a_feature_panic_reaches_the_caller() {
+        let utterances = synthetic(16, 1);
+        let dev = synthetic(4, 2);
+        let mut train = SlowSet::new(&utterances);
+        train.always_panics = Some(5);
+        for prefetch in [false, true] {
+            let mut trainer = Trainer::new(tiny_config(), units(), 5, 42).unwrap();
+            trainer.set_prefetch(prefetch);
+            let outcome = std::panic::catch_unwind(AssertUnwindSafe(|| {
+                trainer.run_epoch(&train, &dev, &mut |_| {})
+            }));
+            let payload = outcome.expect_err("the panic reaches the caller");
+            let message = payload
+                .downcast_ref::<String>()
+                .cloned()
+                .unwrap_or_default();
+            assert_eq!(message, "the features of utt5 cannot be computed");
+        }
+    }
+
+    /// An error in a step ends the epoch with that error while the prefetch thread is at work.
+    #[test]
+    fn a_step_error_ends_the_epoch_with_prefetch() {
+        let mut utterances = synthetic(16, 1);
+        utterances[7].labels[0] = 9;
+        let dev = synthetic(4, 2);
+        let train = SlowSet::new(&utterances);
+        let errors: Vec<String> = [false, true]
+            .into_iter()
+            .map(|prefetch| {
+                let mut trainer = Trainer::new(tiny_config(), units(), 5, 42).unwrap();
+                trainer.set_prefetch(prefetch);
+                match trainer.run_epoch(&train, &dev, &mut |_| {}) {
+                    Ok(_) => panic!("a label out of range fails the step"),
+                    Err(e) => e.to_string(),
+                }
+            })
+            .collect();
+        assert!(errors[0].contains("label 9"), "{}", errors[0]);
+        assert_eq!(errors[0], errors[1]);
     }
 
     #[test]

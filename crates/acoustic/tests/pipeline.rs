@@ -111,6 +111,7 @@ fn options(
         seed: 7,
         lexicon: None,
         start_from: None,
+        prefetch: true,
     }
 }
 

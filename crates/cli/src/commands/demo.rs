@@ -217,6 +217,7 @@ pub fn run(args: DemoArgs) -> anyhow::Result<Outcome> {
             seed: SEED,
             lexicon: None,
             start_from: None,
+            prefetch: true,
         };
         super::train::train_with_progress(&options)
             .with_context(|| format!("training into {}", model_dir.display()))?;

@@ -98,6 +98,11 @@ pub struct TrainArgs {
     /// on the same machine.
     #[arg(long, value_parser = clap::value_parser!(u16).range(1..))]
     threads: Option<u16>,
+    /// Compute each batch's features before the step that needs them, on the training
+    /// threads, instead of on one more thread while the previous batch trains (the weights
+    /// are the same either way; this spares the extra thread on a machine without a free core).
+    #[arg(long)]
+    no_prefetch: bool,
     /// Under an MPI launcher: seconds a rank waits for the others at an exchange before it
     /// decides a rank has failed and ends the job (exit code 3).
     #[arg(long, default_value_t = 600.0, value_parser = parse_timeout)]
@@ -242,6 +247,7 @@ fn run_ranks(args: TrainArgs, collective: Arc<dyn Collective>) -> anyhow::Result
         seed: args.seed,
         lexicon: args.lexicon.clone(),
         start_from: args.from.clone(),
+        prefetch: !args.no_prefetch,
     };
     if let Some(untranscribed) = args.untranscribed {
         if size > 1 {
