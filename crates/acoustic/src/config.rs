@@ -743,6 +743,7 @@ mod tests {
         for text in [
             include_str!("../../../configs/tdnn-small.toml"),
             include_str!("../../../configs/tdnn-small-robust.toml"),
+            include_str!("../../../configs/tdnn-wide-robust.toml"),
             include_str!("../../../configs/tdnn-medium.toml"),
             include_str!("../../../configs/tdnn-narrow.toml"),
             include_str!("../../../configs/tdnn-small-ivector.toml"),
