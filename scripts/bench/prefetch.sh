@@ -4,7 +4,7 @@
 # (so every arm trains the same model at the same stage; the audio cache is decoded once, by a
 # warm-up epoch that is not counted):
 #
-#   prefetch-Nt  --threads N (the default: features of the next batch on one more thread)
+#   prefetch-Nt  --threads N --prefetch (features of the next batch on one more thread)
 #   in-turn-Nt   --threads N --no-prefetch (each batch's features on the pool, then its step)
 #
 # for N in THREADS (default "1 2"). Within a round the arms run in the order A B B A … and the
@@ -74,7 +74,7 @@ for round in $(seq "$ROUNDS"); do
         n=${arm##*-}
         n=${n%t}
         case $arm in
-            prefetch-*) run "$arm" "$n" ;;
+            prefetch-*) run "$arm" "$n" --prefetch ;;
             in-turn-*) run "$arm" "$n" --no-prefetch ;;
         esac
     done
