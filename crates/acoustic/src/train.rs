@@ -1456,13 +1456,7 @@ mod tests {
         // Everything but the wall-clock speed must agree.
         let without_speed = |trainer: &Trainer| {
             let mut progress = trainer.progress().clone();
-            for record in &mut progress.history {
-                record.frames_per_second = 0.0;
-                record.train_seconds = 0.0;
-                record.feature_seconds = 0.0;
-                record.feature_compute_seconds = 0.0;
-                record.dev_seconds = 0.0;
-            }
+            progress.history.iter_mut().for_each(zero_the_times);
             progress
         };
         assert_eq!(without_speed(&straight), without_speed(&resumed));
@@ -1778,6 +1772,15 @@ mod tests {
         }
     }
 
+    /// An epoch record without its wall-clock figures, which differ between equal runs.
+    fn zero_the_times(record: &mut EpochRecord) {
+        record.frames_per_second = 0.0;
+        record.train_seconds = 0.0;
+        record.feature_seconds = 0.0;
+        record.feature_compute_seconds = 0.0;
+        record.dev_seconds = 0.0;
+    }
+
     /// Two epochs of `train` with or without prefetch: the weights and the epoch records with
     /// their times zeroed.
     fn two_epochs(
@@ -1794,11 +1797,7 @@ mod tests {
                 let mut record = trainer.run_epoch(train, dev, &mut |_| {}).unwrap();
                 assert!(record.updates > 3, "several batches an epoch");
                 assert!(record.feature_compute_seconds > 0.0);
-                record.frames_per_second = 0.0;
-                record.train_seconds = 0.0;
-                record.feature_seconds = 0.0;
-                record.feature_compute_seconds = 0.0;
-                record.dev_seconds = 0.0;
+                zero_the_times(&mut record);
                 record
             })
             .collect();
