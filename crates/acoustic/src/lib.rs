@@ -51,6 +51,8 @@
 #![deny(missing_docs)]
 
 pub mod audio_set;
+#[cfg(target_arch = "x86_64")]
+mod bf16_matmul;
 pub mod collective;
 pub mod config;
 pub mod ctc;
@@ -69,6 +71,8 @@ pub mod units;
 
 use std::path::PathBuf;
 
+#[doc(hidden)]
+pub use fused::time_matmul;
 pub use greedy::{greedy_decode, greedy_path};
 pub use model::AcousticModel;
 

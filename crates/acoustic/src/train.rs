@@ -42,7 +42,7 @@ use rayon::prelude::*;
 use serde::{Deserialize, Serialize};
 
 use crate::collective::{Collective, SingleProcess};
-use crate::config::{Keep, ModelConfig, NetworkInput, Schedule};
+use crate::config::{Keep, MatmulPrecision, ModelConfig, NetworkInput, Schedule};
 use crate::ctc::{min_frames_for, CtcLoss, CtcTargets};
 use crate::data::{utterance_rng, TrainingData};
 pub use crate::data::{Augment, PreparedUtterance};
@@ -386,12 +386,13 @@ impl Trainer {
         let mut rng = epoch_rng(seed, usize::MAX - 1);
         let parameters = initial_parameters(&config.model, input, units.len(), &mut rng)?;
         let statistics = initial_statistics(&config.model)?;
-        let network = Tdnn::new(
+        let mut network = Tdnn::new(
             var_builder(&model_tensors(&parameters, &statistics)),
             &config.model,
             input,
             units.len(),
         )?;
+        network.set_training_precision(config.training.matmul_precision.supported());
         let optimizer = AdamW::new(config.training.weight_decay);
         Ok(Trainer {
             config,
@@ -473,6 +474,12 @@ impl Trainer {
     /// The configuration.
     pub fn config(&self) -> &ModelConfig {
         &self.config
+    }
+
+    /// The number format the training pass's matrix products run in: `[training]
+    /// matmul_precision` where this CPU supports it, else f32.
+    pub fn matmul_precision(&self) -> MatmulPrecision {
+        self.config.training.matmul_precision.supported()
     }
 
     /// The unit inventory.
