@@ -1469,6 +1469,35 @@ mod tests {
         assert_eq!(without_speed(&straight), without_speed(&resumed));
     }
 
+    /// `matmul_precision = "bf16"` trains the same weights to the bit at one and two threads
+    /// (each product element is summed by one thread in one order), and not the f32 weights.
+    #[test]
+    fn bf16_training_gives_the_same_weights_at_one_and_two_threads() {
+        if !crate::fused::bf16_available() {
+            eprintln!("skipped: this CPU lacks AVX-512 BF16");
+            return;
+        }
+        let train = synthetic(12, 1);
+        let dev = synthetic(3, 2);
+        let trained = |precision: MatmulPrecision, threads: usize| {
+            let mut config = config_with(Normalization::Batch);
+            config.training.matmul_precision = precision;
+            let pool = rayon::ThreadPoolBuilder::new()
+                .num_threads(threads)
+                .build()
+                .unwrap();
+            pool.install(|| {
+                let mut trainer = Trainer::new(config, units(), 5, 42).unwrap();
+                assert_eq!(trainer.matmul_precision(), precision);
+                trainer.run_epoch(&set(&train), &dev, &mut |_| {}).unwrap();
+                weights(&trainer)
+            })
+        };
+        let one = trained(MatmulPrecision::Bf16, 1);
+        assert_eq!(one, trained(MatmulPrecision::Bf16, 2));
+        assert_ne!(one, trained(MatmulPrecision::F32, 1));
+    }
+
     /// Issue 16: optimizer moments shorter than their parameter were silently truncated on
     /// resume. They are now an error naming the checkpoint and the parameter.
     #[test]
