@@ -21,6 +21,10 @@
 //!
 //! What `params` holds is set by the [`Transform`].
 //!
+//! The products run in f32 through the `gemm` crate, or, in a training pass with `[training]
+//! matmul_precision = "bf16"` on a CPU with AVX-512 BF16, with bfloat16 operands through the
+//! hand-written kernel of `bf16_matmul.rs`; inference passes are always f32.
+//!
 //! Reductions over frames (bias, gain and shift gradients, batch statistics) are summed per
 //! utterance and then over utterances in order, so results do not depend on the thread count.
 //!
