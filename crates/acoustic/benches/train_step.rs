@@ -6,12 +6,14 @@
 //! `RAYON_NUM_THREADS=2 cargo bench -p isogloss-acoustic --bench train_step -- --batch 16 --frames 600`
 //! `--normalization batch|layer|none` overrides the configuration's. Prints one JSON line, with
 //! the median wall time and the median CPU time of the process per step (on a loaded machine
-//! the CPU time with `RAYON_NUM_THREADS=1` is the steadier figure).
+//! the CPU time with `RAYON_NUM_THREADS=1` is the steadier figure). `--precision f32|bf16` sets
+//! `[training] matmul_precision`; the line also gives the rate of the three products of one
+//! offset of the largest layer (forward, weight gradient, input gradient) in f32 and in bf16.
 
 use std::time::Instant;
 
 use candle_core::{Device, Tensor};
-use isogloss_acoustic::config::{ModelConfig, Normalization};
+use isogloss_acoustic::config::{MatmulPrecision, ModelConfig, Normalization};
 use isogloss_acoustic::train::Trainer;
 use isogloss_acoustic::units::{UnitInventory, UnitKind};
 use ndarray::Array2;
@@ -38,6 +40,7 @@ fn median(mut values: Vec<f64>) -> f64 {
 fn main() {
     let mut config_path = None;
     let mut normalization = None;
+    let mut precision = None;
     let (mut batch, mut frames, mut steps, mut dims, mut units, mut labels) =
         (16, 600, 12, 39, 40, 60);
     let args: Vec<String> = std::env::args().skip(1).collect();
@@ -47,6 +50,7 @@ fn main() {
         match args[i].as_str() {
             "--config" => config_path = Some(value),
             "--normalization" => normalization = Some(value),
+            "--precision" => precision = Some(value),
             "--batch" => batch = value.parse().unwrap_or(batch),
             "--frames" => frames = value.parse().unwrap_or(frames),
             "--steps" => steps = value.parse().unwrap_or(steps),
@@ -70,6 +74,13 @@ fn main() {
             "layer" => Normalization::Layer,
             "none" => Normalization::None,
             other => panic!("--normalization is batch, layer or none, not {other:?}"),
+        };
+    }
+    if let Some(name) = precision {
+        config.training.matmul_precision = match name.as_str() {
+            "f32" => MatmulPrecision::F32,
+            "bf16" => MatmulPrecision::Bf16,
+            other => panic!("--precision is f32 or bf16, not {other:?}"),
         };
     }
     let inventory = UnitInventory {
@@ -118,6 +129,8 @@ fn main() {
     let mut input = dims;
     let mut flops = 0f64;
     let mut widest = (0usize, 0usize, 0usize);
+    // (rows, input width, output width) of the layer with the most multiply-adds.
+    let mut widest_layer = (0usize, 0usize, 0usize);
     let mut first = true;
     let mut layers: Vec<(usize, usize, usize, usize)> = config
         .model
@@ -137,6 +150,7 @@ fn main() {
         first = false;
         if rows * input * k * output > widest.0 * widest.1 * widest.2 {
             widest = (rows, input, k * output);
+            widest_layer = (rows, input, output);
         }
         frames_in = frames_out;
         input = output;
@@ -154,13 +168,40 @@ fn main() {
     }
     let matmul_gflops = 2.0 * (widest.0 * widest.1 * widest.2) as f64 / median(matmul_times) / 1e9;
     let step_gflops = flops / step / 1e9;
+    // The three products of one offset of that layer, as the fused layer runs them, in f32 and
+    // with bf16 operands (the same function; bf16 runs f32 on a CPU without AVX-512 BF16).
+    let (rows, d, h) = widest_layer;
+    let products: Vec<String> = [
+        ("forward", (rows, h, d), (false, false)),
+        ("weight_gradient", (d, h, rows), (true, false)),
+        ("input_gradient", (rows, d, h), (false, true)),
+    ]
+    .iter()
+    .map(|&(name, shape, layout)| {
+        let rate = |precision| {
+            let seconds = isogloss_acoustic::time_matmul(precision, shape, layout, 15)
+                .expect("product runs");
+            2.0 * (shape.0 * shape.1 * shape.2) as f64 / seconds / 1e9
+        };
+        format!(
+            "{{\"product\": \"{name}\", \"m_n_k\": [{}, {}, {}], \"f32_gflops\": {:.1}, \"bf16_gflops\": {:.1}}}",
+            shape.0,
+            shape.1,
+            shape.2,
+            rate(MatmulPrecision::F32),
+            rate(MatmulPrecision::Bf16)
+        )
+    })
+    .collect();
     println!(
-        "{{\"impl\": \"isogloss candle\", \"normalization\": \"{:?}\", \"threads\": {}, \"batch\": {batch}, \"frames\": {frames}, \"parameters\": {}, \"median_step_seconds\": {step:.4}, \"median_step_cpu_seconds\": {cpu_step:.4}, \"matmul_gflop_per_step\": {:.2}, \"frames_per_second\": {:.1}, \"step_matmul_gflops\": {step_gflops:.2}, \"machine_matmul_gflops\": {matmul_gflops:.2}, \"fraction_of_matmul_rate\": {:.3}}}",
+        "{{\"impl\": \"isogloss candle\", \"normalization\": \"{:?}\", \"threads\": {}, \"batch\": {batch}, \"frames\": {frames}, \"parameters\": {}, \"median_step_seconds\": {step:.4}, \"median_step_cpu_seconds\": {cpu_step:.4}, \"matmul_gflop_per_step\": {:.2}, \"frames_per_second\": {:.1}, \"step_matmul_gflops\": {step_gflops:.2}, \"machine_matmul_gflops\": {matmul_gflops:.2}, \"fraction_of_matmul_rate\": {:.3}, \"matmul_precision\": \"{}\", \"layer_products\": [{}]}}",
         config.model.normalization,
         std::env::var("RAYON_NUM_THREADS").unwrap_or_else(|_| "default".into()),
         config.model.parameter_count(dims, units),
         flops / 1e9,
         (batch * frames) as f64 / step,
         step_gflops / matmul_gflops,
+        trainer.matmul_precision().name(),
+        products.join(", "),
     );
 }

@@ -245,6 +245,36 @@ pub enum Keep {
     BestDevLoss,
 }
 
+/// Number format of the matrix products of training (`[training] matmul_precision`).
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize, Default)]
+#[serde(rename_all = "lowercase")]
+pub enum MatmulPrecision {
+    /// f32 operands and sums.
+    #[default]
+    F32,
+    /// Operands rounded to bfloat16, sums in f32, on CPUs with AVX-512 BF16 (others use f32).
+    /// Weights, optimizer, normalisation, CTC and inference stay f32.
+    Bf16,
+}
+
+impl MatmulPrecision {
+    /// The precision this CPU runs when `self` is asked for: bf16 needs AVX-512 BF16.
+    pub fn supported(self) -> MatmulPrecision {
+        match self {
+            MatmulPrecision::Bf16 if !crate::fused::bf16_available() => MatmulPrecision::F32,
+            other => other,
+        }
+    }
+
+    /// The configuration spelling.
+    pub fn name(self) -> &'static str {
+        match self {
+            MatmulPrecision::F32 => "f32",
+            MatmulPrecision::Bf16 => "bf16",
+        }
+    }
+}
+
 /// Optimisation settings.
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 #[serde(deny_unknown_fields, default)]
@@ -270,6 +300,8 @@ pub struct TrainingConfig {
     pub patience: usize,
     /// Which epoch the model directory holds: the last (default) or the best dev loss.
     pub keep: Keep,
+    /// Number format of the training pass's matrix products: `"f32"` (default) or `"bf16"`.
+    pub matmul_precision: MatmulPrecision,
     /// Deprecated spelling of `augmentation.speed_factors` (read for one release).
     #[serde(default, skip_serializing)]
     pub speed_factors: Option<Vec<f32>>,
@@ -298,6 +330,7 @@ impl Default for TrainingConfig {
             clip_norm: 5.0,
             patience: 0,
             keep: Keep::Last,
+            matmul_precision: MatmulPrecision::F32,
             speed_factors: None,
             volume_range: None,
             spec_augment: None,
@@ -774,6 +807,48 @@ mod tests {
             error.contains("keep") && error.contains("best-dev-loss"),
             "{error}"
         );
+    }
+
+    /// `[training] matmul_precision`: f32 unless written (so the shipped model.toml, written
+    /// before the key, reads as f32); "bf16" reads and is written back; a misspelt value is
+    /// named with both spellings.
+    #[test]
+    fn matmul_precision_is_f32_by_default_and_reads_bf16() {
+        assert_eq!(
+            TrainingConfig::default().matmul_precision,
+            MatmulPrecision::F32
+        );
+        let small = include_str!("../../../configs/tdnn-small.toml");
+        let config = ModelConfig::parse(small).unwrap();
+        assert_eq!(config.training.matmul_precision, MatmulPrecision::F32);
+        let shipped = include_str!("../../../models/demo/model.toml");
+        assert!(!shipped.contains("matmul_precision"));
+        let with = small.replacen(
+            "patience = 0",
+            "patience = 0\nmatmul_precision = \"bf16\"",
+            1,
+        );
+        let config = ModelConfig::parse(&with).unwrap();
+        assert_eq!(config.training.matmul_precision, MatmulPrecision::Bf16);
+        let text = toml::to_string(&config.training).unwrap();
+        assert!(text.contains("matmul_precision = \"bf16\""), "{text}");
+        let wrong = small.replacen(
+            "patience = 0",
+            "patience = 0\nmatmul_precision = \"f16\"",
+            1,
+        );
+        let error = ModelConfig::parse(&wrong).unwrap_err().to_string();
+        assert!(
+            error.contains("matmul_precision") && error.contains("bf16") && error.contains("f32"),
+            "{error}"
+        );
+        // On this CPU bf16 is used exactly when the instructions are there.
+        let used = MatmulPrecision::Bf16.supported();
+        assert_eq!(
+            used == MatmulPrecision::Bf16,
+            crate::fused::bf16_available()
+        );
+        assert_eq!(MatmulPrecision::F32.supported(), MatmulPrecision::F32);
     }
 
     /// `[speaker_vectors]`: off unless written; the shipped table is the extractor's defaults;

@@ -21,6 +21,10 @@
 //!
 //! What `params` holds is set by the [`Transform`].
 //!
+//! The products run in f32 through the `gemm` crate, or, in a training pass with `[training]
+//! matmul_precision = "bf16"` on a CPU with AVX-512 BF16, with bfloat16 operands through the
+//! hand-written kernel of `bf16_matmul.rs`; inference passes are always f32.
+//!
 //! Reductions over frames (bias, gain and shift gradients, batch statistics) are summed per
 //! utterance and then over utterances in order, so results do not depend on the thread count.
 //!
@@ -33,6 +37,7 @@
 use std::sync::{Arc, Mutex};
 
 use crate::collective::Collective;
+use crate::config::MatmulPrecision;
 
 use candle_core::{CpuStorage, CustomOp3, Layout, Shape, Storage, Tensor};
 use gemm::{gemm, Parallelism};
@@ -109,6 +114,8 @@ pub(crate) struct FusedLayer {
     pub mask: Option<Vec<f32>>,
     /// Whether to compute the input gradient.
     pub input_grad: bool,
+    /// Number format of the matrix products (training passes only; inference is f32).
+    precision: MatmulPrecision,
     saved: Mutex<Option<Saved>>,
     /// Where the forward pass leaves the batch statistics (batch normalisation), for the caller:
     /// candle keeps the operation itself.
@@ -161,19 +168,33 @@ fn parallelism() -> Parallelism {
 }
 
 /// A row-major matrix view: base offset into a slice, row stride and column stride.
-#[derive(Clone, Copy)]
-struct View {
-    offset: usize,
-    row_stride: usize,
-    col_stride: usize,
+#[derive(Debug, Clone, Copy)]
+pub(crate) struct View {
+    pub offset: usize,
+    pub row_stride: usize,
+    pub col_stride: usize,
 }
 
-/// `dst = (accumulate ? dst : 0) + lhs · rhs` for `[m, k] · [k, n]` views.
+/// Whether this CPU runs the bfloat16 products of [`MatmulPrecision::Bf16`].
+pub(crate) fn bf16_available() -> bool {
+    #[cfg(target_arch = "x86_64")]
+    {
+        crate::bf16_matmul::available()
+    }
+    #[cfg(not(target_arch = "x86_64"))]
+    {
+        false
+    }
+}
+
+/// `dst = (accumulate ? dst : 0) + lhs · rhs` for `[m, k] · [k, n]` views, in f32 or with the
+/// operands rounded to bfloat16 (`precision`, where the CPU has the instructions).
 ///
 /// Checks that every view stays inside its slice, so the unsafe call only reads and writes
 /// inside the given slices.
 #[allow(clippy::too_many_arguments)]
-fn matmul(
+pub(crate) fn matmul(
+    precision: MatmulPrecision,
     (m, n, k): (usize, usize, usize),
     dst: &mut [f32],
     dst_view: View,
@@ -204,6 +225,26 @@ fn matmul(
         }
         return Ok(());
     }
+    #[cfg(target_arch = "x86_64")]
+    if precision == MatmulPrecision::Bf16 && bf16_available() {
+        // SAFETY: the CPU has the instructions (checked); m, n, k ≥ 1 and the views lie inside
+        // their slices (checked above); the destination rows are distinct (as below).
+        unsafe {
+            crate::bf16_matmul::matmul(
+                (m, n, k),
+                dst,
+                dst_view,
+                accumulate,
+                lhs,
+                lhs_view,
+                rhs,
+                rhs_view,
+            )
+        };
+        return Ok(());
+    }
+    #[cfg(not(target_arch = "x86_64"))]
+    let _ = precision;
     // SAFETY: every element addressed by the three views lies inside its slice (checked above);
     // `dst` is borrowed mutably and does not alias `lhs` or `rhs`; the destination rows of one
     // call are distinct (row stride ≥ n · column stride for every caller).
@@ -279,6 +320,7 @@ impl FusedLayer {
             transform,
             mask,
             input_grad,
+            precision: MatmulPrecision::F32,
             saved: Mutex::new(None),
             statistics: StatisticsSlot::default(),
             collective: None,
@@ -289,6 +331,12 @@ impl FusedLayer {
     /// sees this rank's part (see the module documentation).
     pub fn with_collective(mut self, collective: Option<Arc<dyn Collective>>) -> Self {
         self.collective = collective;
+        self
+    }
+
+    /// Matrix products in `precision` instead of f32.
+    pub fn with_precision(mut self, precision: MatmulPrecision) -> Self {
+        self.precision = precision;
         self
     }
 
@@ -363,6 +411,7 @@ impl FusedLayer {
         for (x0, z0, m) in g.blocks(s) {
             for (k, &shift) in self.shifts.iter().enumerate() {
                 matmul(
+                    self.precision,
                     (m, h, g.dims),
                     &mut z,
                     View {
@@ -960,6 +1009,7 @@ impl CustomOp3 for FusedLayer {
                         };
                         // gW_k += X_kᵀ · gz
                         matmul(
+                            self.precision,
                             (g.dims, h, m),
                             &mut gw,
                             View {
@@ -984,6 +1034,7 @@ impl CustomOp3 for FusedLayer {
                         if self.input_grad {
                             // gX_k += gz · W_kᵀ
                             matmul(
+                                self.precision,
                                 (m, g.dims, h),
                                 &mut gx,
                                 x_view,
@@ -1023,4 +1074,56 @@ impl CustomOp3 for FusedLayer {
             Some(Tensor::from_vec(param_grad, (p_rows, h), device)?),
         ))
     }
+}
+
+/// Median wall time in seconds of `runs` products `[m, k] · [k, n]` of random values in
+/// `precision`, through the function the fused layers use: with `lhs_transposed` the left
+/// operand is read down its columns (as in the weight gradient), with `rhs_transposed` the right
+/// one (as in the input gradient). For the `train_step` benchmark.
+pub fn time_matmul(
+    precision: MatmulPrecision,
+    (m, n, k): (usize, usize, usize),
+    (lhs_transposed, rhs_transposed): (bool, bool),
+    runs: usize,
+) -> candle_core::Result<f64> {
+    let view = |rows: usize, cols: usize, transposed: bool| {
+        if transposed {
+            View {
+                offset: 0,
+                row_stride: 1,
+                col_stride: rows,
+            }
+        } else {
+            View {
+                offset: 0,
+                row_stride: cols,
+                col_stride: 1,
+            }
+        }
+    };
+    // A fixed pseudo-random fill: the values do not change the time.
+    let fill = |len: usize| -> Vec<f32> {
+        (0..len)
+            .map(|i| ((i.wrapping_mul(2_654_435_761) % 2001) as f32 - 1000.0) / 1000.0)
+            .collect()
+    };
+    let (lhs, rhs, mut dst) = (fill(m * k), fill(k * n), vec![0f32; m * n]);
+    let mut times = Vec::with_capacity(runs);
+    for _ in 0..runs.max(1) {
+        let start = std::time::Instant::now();
+        matmul(
+            precision,
+            (m, n, k),
+            &mut dst,
+            view(m, n, false),
+            false,
+            &lhs,
+            view(m, k, lhs_transposed),
+            &rhs,
+            view(k, n, rhs_transposed),
+        )?;
+        times.push(start.elapsed().as_secs_f64());
+    }
+    times.sort_by(f64::total_cmp);
+    Ok(times[times.len() / 2])
 }

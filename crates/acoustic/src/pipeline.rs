@@ -945,6 +945,15 @@ pub fn train_with(
         });
     }
     let log_path = options.out.join("training.jsonl");
+    let requested = config.training.matmul_precision;
+    let precision = trainer.matmul_precision();
+    if requested != precision && writer {
+        on_event(&PipelineEvent::Warning(format!(
+            "[training] matmul_precision = \"{}\" needs a CPU with AVX-512 BF16; this one lacks it, so the products run in {}",
+            requested.name(),
+            precision.name()
+        )));
+    }
     if writer {
         append_log(
             &log_path,
@@ -961,6 +970,8 @@ pub fn train_with(
                 "minutes": options.minutes,
                 "ranks": size,
                 "prefetch": options.prefetch,
+                "matmul_precision": precision.name(),
+                "matmul_precision_requested": requested.name(),
             }),
         )?;
     }

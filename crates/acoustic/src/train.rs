@@ -42,7 +42,7 @@ use rayon::prelude::*;
 use serde::{Deserialize, Serialize};
 
 use crate::collective::{Collective, SingleProcess};
-use crate::config::{Keep, ModelConfig, NetworkInput, Schedule};
+use crate::config::{Keep, MatmulPrecision, ModelConfig, NetworkInput, Schedule};
 use crate::ctc::{min_frames_for, CtcLoss, CtcTargets};
 use crate::data::{utterance_rng, TrainingData};
 pub use crate::data::{Augment, PreparedUtterance};
@@ -386,12 +386,13 @@ impl Trainer {
         let mut rng = epoch_rng(seed, usize::MAX - 1);
         let parameters = initial_parameters(&config.model, input, units.len(), &mut rng)?;
         let statistics = initial_statistics(&config.model)?;
-        let network = Tdnn::new(
+        let mut network = Tdnn::new(
             var_builder(&model_tensors(&parameters, &statistics)),
             &config.model,
             input,
             units.len(),
         )?;
+        network.set_training_precision(config.training.matmul_precision.supported());
         let optimizer = AdamW::new(config.training.weight_decay);
         Ok(Trainer {
             config,
@@ -473,6 +474,12 @@ impl Trainer {
     /// The configuration.
     pub fn config(&self) -> &ModelConfig {
         &self.config
+    }
+
+    /// The number format the training pass's matrix products run in: `[training]
+    /// matmul_precision` where this CPU supports it, else f32.
+    pub fn matmul_precision(&self) -> MatmulPrecision {
+        self.config.training.matmul_precision.supported()
     }
 
     /// The unit inventory.
@@ -1460,6 +1467,35 @@ mod tests {
             progress
         };
         assert_eq!(without_speed(&straight), without_speed(&resumed));
+    }
+
+    /// `matmul_precision = "bf16"` trains the same weights to the bit at one and two threads
+    /// (each product element is summed by one thread in one order), and not the f32 weights.
+    #[test]
+    fn bf16_training_gives_the_same_weights_at_one_and_two_threads() {
+        if !crate::fused::bf16_available() {
+            eprintln!("skipped: this CPU lacks AVX-512 BF16");
+            return;
+        }
+        let train = synthetic(12, 1);
+        let dev = synthetic(3, 2);
+        let trained = |precision: MatmulPrecision, threads: usize| {
+            let mut config = config_with(Normalization::Batch);
+            config.training.matmul_precision = precision;
+            let pool = rayon::ThreadPoolBuilder::new()
+                .num_threads(threads)
+                .build()
+                .unwrap();
+            pool.install(|| {
+                let mut trainer = Trainer::new(config, units(), 5, 42).unwrap();
+                assert_eq!(trainer.matmul_precision(), precision);
+                trainer.run_epoch(&set(&train), &dev, &mut |_| {}).unwrap();
+                weights(&trainer)
+            })
+        };
+        let one = trained(MatmulPrecision::Bf16, 1);
+        assert_eq!(one, trained(MatmulPrecision::Bf16, 2));
+        assert_ne!(one, trained(MatmulPrecision::F32, 1));
     }
 
     /// Issue 16: optimizer moments shorter than their parameter were silently truncated on
