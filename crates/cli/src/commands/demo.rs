@@ -219,6 +219,7 @@ pub fn run(args: DemoArgs) -> anyhow::Result<Outcome> {
             start_from: None,
             prefetch: true,
         };
+        super::train::keep_freed_memory();
         super::train::train_with_progress(&options)
             .with_context(|| format!("training into {}", model_dir.display()))?;
         eprintln!(
