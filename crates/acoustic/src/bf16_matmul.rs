@@ -31,11 +31,6 @@
 //! inputs as zero; the integer rounding here keeps them, and gives the same bits in the scalar
 //! and the vector path.
 
-// The AVX-512 intrinsics and the `avx512bf16` target feature are stable from Rust 1.89, above
-// the workspace's declared 1.85: raising that turns on newer lints in every crate, which is a
-// change of its own.
-#![allow(clippy::incompatible_msrv)]
-
 use std::arch::x86_64::*;
 
 use rayon::prelude::*;

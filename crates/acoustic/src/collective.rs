@@ -92,7 +92,7 @@ pub fn balanced_share(lengths: &[f64], rank: usize, size: usize) -> Vec<usize> {
         .filter(|(position, _)| {
             let round = position / size;
             let seat = position % size;
-            let owner = if round % 2 == 0 {
+            let owner = if round.is_multiple_of(2) {
                 seat
             } else {
                 size - 1 - seat

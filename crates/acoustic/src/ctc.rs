@@ -88,7 +88,7 @@ pub fn ctc_utterance(
     // Extended label sequence: blank, l1, blank, l2, …, blank.
     let states = 2 * labels.len() + 1;
     let unit_of = |s: usize| -> usize {
-        if s % 2 == 0 {
+        if s.is_multiple_of(2) {
             blank as usize
         } else {
             labels[s / 2] as usize

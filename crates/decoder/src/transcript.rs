@@ -101,7 +101,7 @@ pub(crate) fn viterbi_runs(
     // Extended sequence: blank, l1, blank, l2, ..., lL, blank.
     let states = 2 * labels.len() + 1;
     let symbol = |s: usize| {
-        if s % 2 == 0 {
+        if s.is_multiple_of(2) {
             0
         } else {
             labels[s / 2] as usize

@@ -289,7 +289,7 @@ impl FeatureConfig {
             ));
         }
         if self.fft_size < self.window_samples.max(2)
-            || self.fft_size % 2 != 0
+            || !self.fft_size.is_multiple_of(2)
             || self.fft_size > MAX_FFT_SIZE
         {
             return Err(invalid(

@@ -116,7 +116,7 @@ impl<'a> OnlineIvectors<'a> {
                 // statistics.
                 let first_frame = self.frames_seen;
                 let on_grid: Vec<usize> = (start..end)
-                    .filter(|&i| (first_frame + i - start) % stride == 0)
+                    .filter(|&i| (first_frame + i - start).is_multiple_of(stride))
                     .collect();
                 let (posteriors, x) = extractor.ubm.frame_posteriors(
                     frames.select(Axis(0), &on_grid).view(),
@@ -126,14 +126,14 @@ impl<'a> OnlineIvectors<'a> {
                 for i in start..end {
                     let frame = self.frames_seen;
                     let slot = frame % self.window;
-                    if frame >= self.window && (frame - self.window) % stride == 0 {
+                    if frame >= self.window && (frame - self.window).is_multiple_of(stride) {
                         self.remove_slot(slot, dims);
                     }
-                    if frame % stride == 0 {
+                    if frame.is_multiple_of(stride) {
                         self.add_frame(slot, &posteriors, next_on_grid, x.row(next_on_grid));
                         next_on_grid += 1;
                     }
-                    if frame % self.period == 0 {
+                    if frame.is_multiple_of(self.period) {
                         points.push(i);
                         snapshot_occupancy.extend(self.occupancy.iter().map(|&n| n as f32));
                         // F̃_c = F_c − N_c·μ_c, in f64, rounded once.

@@ -764,7 +764,7 @@ pub fn train_ubm(
         let mut index = 0usize;
         for utterance in utterances {
             for row in utterance.rows() {
-                if index % stride == 0 {
+                if index.is_multiple_of(stride) {
                     rows.extend(row.iter().copied());
                 }
                 index += 1;
@@ -849,7 +849,7 @@ fn kmeans_init(
     let mut index = 0usize;
     for matrix in pool {
         for row in matrix.rows() {
-            if index % stride == 0 {
+            if index.is_multiple_of(stride) {
                 sample.push(row.mapv(f64::from));
             }
             index += 1;

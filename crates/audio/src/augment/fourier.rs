@@ -122,7 +122,7 @@ mod tests {
     fn fast_lengths_are_5_smooth_and_minimal() {
         let smooth = |mut n: usize| {
             for p in [2, 3, 5] {
-                while n % p == 0 {
+                while n.is_multiple_of(p) {
                     n /= p;
                 }
             }

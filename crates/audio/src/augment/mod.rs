@@ -428,7 +428,7 @@ impl ReverbConfig {
                 0,
             ));
         }
-        if self.fractional_delay_taps < 3 || self.fractional_delay_taps % 2 == 0 {
+        if self.fractional_delay_taps < 3 || self.fractional_delay_taps.is_multiple_of(2) {
             return Err(invalid(
                 "augmentation.reverb.fractional_delay_taps",
                 "an odd number of taps, at least 3",
