@@ -215,9 +215,9 @@ fn parse_minutes(text: &str) -> Result<f64, String> {
 /// Every step allocates and frees the same few hundred MB of activations, gradients and
 /// converted operands. With glibc's defaults, the blocks above its adaptive threshold are
 /// mapped and unmapped each time and the top of the heap is handed back, so the next step takes
-/// fresh pages from the kernel: in a one-thread epoch of `configs/tdnn-wide-robust.toml`,
-/// 1.3 million page faults per epoch and 13 % of the CPU time in the kernel (DEVELOPERS.md,
-/// "Page faults"). Here blocks up to 32 MiB (glibc's largest allowed threshold on 64-bit
+/// fresh pages from the kernel: in a one-thread epoch of `configs/tdnn-wide-robust.toml` with
+/// bf16 products, 1.3 million page faults per epoch and 13 % of the CPU time in the kernel
+/// (DEVELOPERS.md, "Page faults"; the f32 path faulted far less and did not change). Here blocks up to 32 MiB (glibc's largest allowed threshold on 64-bit
 /// systems) come from the heap, and up to 1 GiB of free heap stays mapped.
 pub(crate) fn keep_freed_memory() {
     #[cfg(all(target_os = "linux", target_env = "gnu"))]
