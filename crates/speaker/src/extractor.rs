@@ -121,7 +121,12 @@ pub(crate) fn check_frames(
         });
     }
     // The common case, every value finite, in one cheap pass; the position only on failure.
-    if features.iter().all(|v| v.is_finite()) {
+    let all_finite = match features.as_slice() {
+        // No early exit: a loop the compiler vectorises.
+        Some(values) => values.iter().fold(true, |ok, v| ok & v.is_finite()),
+        None => features.iter().all(|v| v.is_finite()),
+    };
+    if all_finite {
         return Ok(());
     }
     if let Some(((frame, dim), value)) = features.indexed_iter().find(|(_, v)| !v.is_finite()) {

@@ -87,6 +87,7 @@ mod config;
 mod error;
 mod extractor;
 mod io;
+mod kernels;
 mod linalg;
 mod online;
 mod panels;

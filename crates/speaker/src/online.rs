@@ -20,9 +20,10 @@
 //! (two matrix products, in single precision, and one R×R Cholesky factorisation in f64 per
 //! point; see [`crate::total_variability::TotalVariability::posterior_means_single`]).
 
-use ndarray::{Array1, Array2, ArrayView1, ArrayView2, Axis};
+use ndarray::{Array1, Array2, ArrayView2, Axis};
 
 use crate::extractor::{check_frames, IvectorExtractor};
+use crate::kernels::{self, Level};
 use crate::ubm::{FramePosteriors, BLOCK_FRAMES};
 use crate::SpeakerError;
 
@@ -96,7 +97,9 @@ impl<'a> OnlineIvectors<'a> {
         check_frames(&self.item, frames, dims, self.frames_seen)?;
         let rows = frames.nrows();
         let gaussians = extractor.ubm.gaussians();
-        let means = extractor.ubm.means();
+        let means = extractor.ubm.means().as_standard_layout();
+        let means = means.as_slice().expect("standard layout");
+        let level = Level::detect();
         let stride = extractor.config.frame_stride;
         let mut out = Array2::<f32>::zeros((rows, extractor.output_dimension()));
         // Recomputation points are collected over a chunk of frames and solved together, so that
@@ -127,25 +130,37 @@ impl<'a> OnlineIvectors<'a> {
                     let frame = self.frames_seen;
                     let slot = frame % self.window;
                     if frame >= self.window && (frame - self.window).is_multiple_of(stride) {
-                        self.remove_slot(slot, dims);
+                        self.remove_slot(slot, dims, level);
                     }
                     if frame.is_multiple_of(stride) {
-                        self.add_frame(slot, &posteriors, next_on_grid, x.row(next_on_grid));
+                        let x = x.as_slice().expect("to_f64 builds standard layout");
+                        let frame = &x[next_on_grid * dims..(next_on_grid + 1) * dims];
+                        self.add_frame(slot, &posteriors, next_on_grid, frame, level);
                         next_on_grid += 1;
                     }
                     if frame.is_multiple_of(self.period) {
                         points.push(i);
                         snapshot_occupancy.extend(self.occupancy.iter().map(|&n| n as f32));
-                        // F̃_c = F_c − N_c·μ_c, in f64, rounded once.
+                        // F̃_c = F_c − N_c·μ_c, in f64, rounded once; a Gaussian without entries
+                        // has N_c = 0 and F_c = 0 exactly, so F̃_c = 0 (as `resize` leaves it).
                         let offset = snapshot_centred.len();
                         snapshot_centred.resize(offset + gaussians * dims, 0.0);
-                        for (((out, sums), mean), &n) in snapshot_centred[offset..]
+                        let sums = self
+                            .first_order
+                            .as_slice()
+                            .expect("zeros in standard layout");
+                        for (c, out) in snapshot_centred[offset..]
                             .chunks_exact_mut(dims)
-                            .zip(self.first_order.rows())
-                            .zip(means.rows())
-                            .zip(&self.occupancy)
+                            .enumerate()
                         {
-                            for ((o, &f), &m) in out.iter_mut().zip(&sums).zip(&mean) {
+                            if self.entries[c] == 0 {
+                                continue;
+                            }
+                            let n = self.occupancy[c];
+                            let range = c * dims..(c + 1) * dims;
+                            for ((o, &f), &m) in
+                                out.iter_mut().zip(&sums[range.clone()]).zip(&means[range])
+                            {
                                 *o = (f - n * m) as f32;
                             }
                         }
@@ -182,7 +197,8 @@ impl<'a> OnlineIvectors<'a> {
         slot: usize,
         posteriors: &FramePosteriors,
         i: usize,
-        frame: ArrayView1<f64>,
+        frame: &[f64],
+        level: Level,
     ) {
         let dims = frame.len();
         let kept = self.kept;
@@ -191,18 +207,17 @@ impl<'a> OnlineIvectors<'a> {
             self.ring_gaussians.resize((slot + 1) * kept, 0);
             self.ring_posteriors.resize((slot + 1) * kept, 0.0);
         }
-        for (kept_value, &v) in self.ring_frames[slot * dims..(slot + 1) * dims]
-            .iter_mut()
-            .zip(&frame)
-        {
-            *kept_value = v;
-        }
+        self.ring_frames[slot * dims..(slot + 1) * dims].copy_from_slice(frame);
+        let sums = self
+            .first_order
+            .as_slice_mut()
+            .expect("zeros in standard layout");
         let mut k = slot * kept;
         posteriors.for_each(i, |c, gamma| {
             // A posterior of 0 (a Gaussian far below the frame's best) adds nothing.
             if gamma > 0.0 {
                 self.occupancy[c] += gamma;
-                self.first_order.row_mut(c).scaled_add(gamma, &frame);
+                kernels::axpy(level, gamma, frame, &mut sums[c * dims..(c + 1) * dims]);
                 self.entries[c] += 1;
             }
             self.ring_gaussians[k] = c;
@@ -212,21 +227,26 @@ impl<'a> OnlineIvectors<'a> {
     }
 
     /// Subtracts the frame kept in `slot` from the window's sums.
-    fn remove_slot(&mut self, slot: usize, dims: usize) {
+    fn remove_slot(&mut self, slot: usize, dims: usize, level: Level) {
         let kept = self.kept;
-        let frame = ArrayView1::from(&self.ring_frames[slot * dims..(slot + 1) * dims]);
+        let frame = &self.ring_frames[slot * dims..(slot + 1) * dims];
+        let sums = self
+            .first_order
+            .as_slice_mut()
+            .expect("zeros in standard layout");
         for k in slot * kept..(slot + 1) * kept {
             let (c, gamma) = (self.ring_gaussians[k], self.ring_posteriors[k]);
             if gamma == 0.0 {
                 continue;
             }
+            let row = &mut sums[c * dims..(c + 1) * dims];
             self.entries[c] -= 1;
             if self.entries[c] == 0 {
                 self.occupancy[c] = 0.0;
-                self.first_order.row_mut(c).fill(0.0);
+                row.fill(0.0);
             } else {
                 self.occupancy[c] -= gamma;
-                self.first_order.row_mut(c).scaled_add(-gamma, &frame);
+                kernels::axpy(level, -gamma, frame, row);
             }
         }
     }

@@ -194,14 +194,12 @@ impl TotalVariability {
             .into_par_iter()
             .map(|start| {
                 let end = (start + ITEMS_PER_CHUNK).min(items);
-                let rows = |m: &ndarray::CowArray<f32, ndarray::Ix2>| -> Vec<f32> {
-                    match m.slice(s![start..end, ..]).to_slice() {
-                        Some(values) => values.to_vec(),
-                        None => m.slice(s![start..end, ..]).iter().copied().collect(),
-                    }
-                };
-                let precisions = self.quadratic_panels.left_multiply(&rows(&occupancy));
-                let linear = self.scaled_panels.left_multiply(&rows(&centred));
+                let precisions = self
+                    .quadratic_panels
+                    .left_multiply(&rows(&occupancy, start, end));
+                let linear = self
+                    .scaled_panels
+                    .left_multiply(&rows(&centred, start, end));
                 solve_means(&precisions, &linear, rank)
             })
             .collect();
@@ -317,6 +315,24 @@ fn product(a: ArrayView2<f64>, b: ArrayView2<f64>) -> Array2<f64> {
         }
     }
     out
+}
+
+/// Rows `start..end` of a matrix as one slice (borrowed when the matrix is contiguous).
+fn rows<'a>(
+    m: &'a ndarray::CowArray<f32, ndarray::Ix2>,
+    start: usize,
+    end: usize,
+) -> std::borrow::Cow<'a, [f32]> {
+    let width = m.ncols();
+    match m.as_slice() {
+        Some(values) => values[start * width..end * width].into(),
+        None => m
+            .slice(s![start..end, ..])
+            .iter()
+            .copied()
+            .collect::<Vec<_>>()
+            .into(),
+    }
 }
 
 /// The means L⁻¹b of items given the packed data parts of their precisions (`[items,

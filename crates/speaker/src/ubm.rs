@@ -14,14 +14,13 @@
 //! precomputed) plus g, in f64: the expansion cancels large terms, and f64 keeps the result
 //! within 1e-9 of the direct sum on normalised features (checked against scikit-learn).
 
-use std::cmp::Ordering;
-
 use ndarray::{s, Array1, Array2, ArrayView1, ArrayView2, ArrayViewMut1, Axis, Zip};
 use rand::{Rng, SeedableRng};
 use rand_chacha::ChaCha8Rng;
 use rayon::prelude::*;
 
 use crate::config::{UbmConfig, UbmInit};
+use crate::kernels::{self, Level, SelectionWork};
 use crate::SpeakerError;
 
 /// Frames per block of the matrix products: large enough for an efficient product, small enough
@@ -50,8 +49,9 @@ pub struct DiagGmm {
     projection: Array2<f64>,
     /// [C]: g_c of the module doc.
     offsets: Array1<f64>,
-    /// `projection` transposed, `[C, 2D]`: one Gaussian's weights contiguous.
-    projection_by_gaussian: Array2<f64>,
+    /// `[C, 2P]` with P = D rounded up to a multiple of 8: Gaussian c's μ_cd/σ²_cd (then zeros
+    /// up to P) and −1/(2σ²_cd) (likewise), what [`kernels::score`] takes.
+    rescoring: Vec<f64>,
     /// `projection` and `offsets` in f32, for choosing the top Gaussians of a frame.
     selection: Array2<f32>,
     selection_offsets: Array1<f32>,
@@ -138,76 +138,6 @@ fn widen(frames: ArrayView2<f32>) -> (Array2<f64>, Array2<f64>) {
 /// Frames as f64, in standard (row-major) layout whatever the layout of the view.
 fn to_f64(frames: ArrayView2<f32>) -> Array2<f64> {
     Array2::from_shape_fn(frames.dim(), |(t, d)| f64::from(frames[(t, d)]))
-}
-
-/// The Gaussians of a frame that get a posterior: of the `top` largest values of `row`, those
-/// at most [`NEGLIGIBLE_GAP`] below the largest, with their values (in the order of `row`; a NaN
-/// counts as −∞, and of values tied at the boundary the lower indices are kept). Uses `scratch`
-/// and `values` as work space. Only the values within the gap are candidates at all, so the
-/// selection (of the `top`-th largest value, among plain f32 values) usually runs over a few of
-/// them or none.
-fn top_entries<'a>(
-    row: ArrayView1<f32>,
-    top: usize,
-    scratch: &'a mut Vec<(f32, usize)>,
-    values: &mut Vec<f32>,
-) -> &'a [(f32, usize)] {
-    scratch.clear();
-    if top == 0 {
-        return scratch;
-    }
-    let best = row.iter().copied().fold(f32::NEG_INFINITY, f32::max);
-    let floor = best - NEGLIGIBLE_GAP;
-    // NaN fails `>=`: never a candidate (unless every value is NaN or −∞: then nothing is).
-    scratch.extend(
-        row.iter()
-            .copied()
-            .zip(0..)
-            .filter(|&(v, _)| v >= floor && v > f32::NEG_INFINITY),
-    );
-    if scratch.len() <= top {
-        return scratch;
-    }
-    values.clear();
-    values.extend(scratch.iter().map(|&(v, _)| v));
-    let (_, &mut threshold, _) =
-        values.select_nth_unstable_by(top - 1, |a, b| b.partial_cmp(a).unwrap_or(Ordering::Equal));
-    let above = values.iter().filter(|&&v| v > threshold).count();
-    let mut ties = top - above;
-    scratch.retain(|&(v, _)| {
-        if v > threshold {
-            true
-        } else if v == threshold && ties > 0 {
-            ties -= 1;
-            true
-        } else {
-            false
-        }
-    });
-    scratch
-}
-
-/// g + Σ_d x_d·(a_d + x_d·b_d) in f64 with four partial sums (so that the compiler can vectorise
-/// the loop; the result differs from the sequential sum by rounding only).
-fn quadratic_score(offset: f64, x: &[f64], linear: &[f64], quadratic: &[f64]) -> f64 {
-    let mut partial = [0.0f64; 4];
-    let (x4, x_rest) = x.split_at(x.len() - x.len() % 4);
-    let (a4, a_rest) = linear.split_at(x4.len());
-    let (b4, b_rest) = quadratic.split_at(x4.len());
-    for ((x, a), b) in x4
-        .chunks_exact(4)
-        .zip(a4.chunks_exact(4))
-        .zip(b4.chunks_exact(4))
-    {
-        for j in 0..4 {
-            partial[j] += x[j] * (a[j] + x[j] * b[j]);
-        }
-    }
-    let mut rest = 0.0;
-    for ((&v, &a), &b) in x_rest.iter().zip(a_rest).zip(b_rest) {
-        rest += v * (a + v * b);
-    }
-    offset + ((partial[0] + partial[1]) + (partial[2] + partial[3])) + rest
 }
 
 /// Posteriors of a block of frames: of every Gaussian, or of each frame's `top` most likely.
@@ -314,9 +244,17 @@ impl DiagGmm {
             weights,
             means,
             variances,
-            projection_by_gaussian: Array2::from_shape_fn((gaussians, 2 * dims), |(c, k)| {
-                projection[(k, c)]
-            }),
+            rescoring: {
+                let stride = kernels::padded(dims);
+                let mut rescoring = vec![0.0; gaussians * 2 * stride];
+                for (c, weights) in rescoring.chunks_exact_mut(2 * stride).enumerate() {
+                    for d in 0..dims {
+                        weights[d] = projection[(d, c)];
+                        weights[stride + d] = projection[(dims + d, c)];
+                    }
+                }
+                rescoring
+            },
             selection: projection.mapv(|v| v as f32),
             selection_offsets: offsets.mapv(|v| v as f32),
             projection,
@@ -419,6 +357,7 @@ impl DiagGmm {
             let (posteriors, _) = self.dense_posteriors(stacked.view());
             return (FramePosteriors::Dense(posteriors), x);
         }
+        let level = Level::detect();
         let x = to_f64(frames);
         let mut stacked = Array2::<f32>::zeros((frames.nrows(), 2 * dims));
         for (mut out, frame) in stacked.rows_mut().into_iter().zip(frames.rows()) {
@@ -429,39 +368,35 @@ impl DiagGmm {
         }
         let mut approximate = stacked.dot(&self.selection);
         approximate += &self.selection_offsets;
-        let mut scratch = Vec::with_capacity(gaussians);
-        let mut work = Vec::with_capacity(gaussians);
+        let mut chosen = Vec::with_capacity(gaussians);
+        let mut work = SelectionWork::default();
         let mut kept = Vec::with_capacity(frames.nrows() * top);
         let mut values = Vec::with_capacity(frames.nrows() * top);
-        let by_gaussian = self
-            .projection_by_gaussian
-            .as_slice()
-            .expect("the projection is built in standard layout");
+        let stride = 2 * kernels::padded(dims);
+        let weights = |c: usize| &self.rescoring[stride * c..stride * (c + 1)];
         for (row, frame) in approximate.rows().into_iter().zip(
             x.as_slice()
                 .expect("to_f64 builds standard layout")
                 .chunks_exact(dims),
         ) {
             let first = values.len();
-            let chosen = top_entries(row, top, &mut scratch, &mut work);
-            for &(_, c) in chosen {
+            kernels::select_top(
+                level,
+                row.as_slice().expect("a product in standard layout"),
+                top,
+                NEGLIGIBLE_GAP,
+                &mut chosen,
+                &mut work,
+            );
+            for &(_, c) in &chosen {
                 kept.push(c);
-                let (linear, quadratic) =
-                    by_gaussian[2 * dims * c..2 * dims * (c + 1)].split_at(dims);
-                values.push(quadratic_score(self.offsets[c], frame, linear, quadratic));
+                values.push(kernels::score(level, self.offsets[c], frame, weights(c)));
             }
             if chosen.is_empty() {
                 // Only when no f32 score is finite (features so large that the f32 product
                 // overflows): choose by the f64 scores instead.
                 let mut exact: Vec<(f64, usize)> = (0..gaussians)
-                    .map(|c| {
-                        let (linear, quadratic) =
-                            by_gaussian[2 * dims * c..2 * dims * (c + 1)].split_at(dims);
-                        (
-                            quadratic_score(self.offsets[c], frame, linear, quadratic),
-                            c,
-                        )
-                    })
+                    .map(|c| (kernels::score(level, self.offsets[c], frame, weights(c)), c))
                     .collect();
                 exact.sort_by(|a, b| b.0.total_cmp(&a.0));
                 for &(score, c) in exact.iter().take(top) {
@@ -500,11 +435,23 @@ impl DiagGmm {
                     stats.first_order += &matrix.t().dot(&x);
                 }
                 FramePosteriors::Sparse { .. } => {
-                    for (i, frame) in x.rows().into_iter().enumerate() {
+                    let level = Level::detect();
+                    let occupancy = &mut stats.occupancy;
+                    let first_order = stats
+                        .first_order
+                        .as_slice_mut()
+                        .expect("zeros in standard layout");
+                    let x = x.as_slice().expect("to_f64 builds standard layout");
+                    for (i, frame) in x.chunks_exact(dims).enumerate() {
                         posteriors.for_each(i, |c, gamma| {
                             if gamma > 0.0 {
-                                stats.occupancy[c] += gamma;
-                                stats.first_order.row_mut(c).scaled_add(gamma, &frame);
+                                occupancy[c] += gamma;
+                                kernels::axpy(
+                                    level,
+                                    gamma,
+                                    frame,
+                                    &mut first_order[c * dims..(c + 1) * dims],
+                                );
                             }
                         });
                     }
