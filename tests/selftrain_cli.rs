@@ -76,7 +76,7 @@ fn self_train(
     command
         .args(["train", "--manifest", text(train), "--dev", text(dev)])
         .args(["--column", "dialectal", "--out", text(out), "--epochs", "1"])
-        .args(["--config", text(&repo("configs/tdnn-wide-robust.toml"))])
+        .args(["--config", text(&repo("configs/tdnn-wider-robust.toml"))])
         .args(["--from", text(&repo("models/demo"))])
         .args(["--untranscribed", text(pool), "--rounds", "1"])
         .args(["--lm", text(&repo("models/demo-lm/indomain-3gram.arpa"))])

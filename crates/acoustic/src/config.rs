@@ -777,6 +777,7 @@ mod tests {
             include_str!("../../../configs/tdnn-small.toml"),
             include_str!("../../../configs/tdnn-small-robust.toml"),
             include_str!("../../../configs/tdnn-wide-robust.toml"),
+            include_str!("../../../configs/tdnn-wider-robust.toml"),
             include_str!("../../../configs/tdnn-medium.toml"),
             include_str!("../../../configs/tdnn-narrow.toml"),
             include_str!("../../../configs/tdnn-small-ivector.toml"),
@@ -809,9 +810,9 @@ mod tests {
         );
     }
 
-    /// `[training] matmul_precision`: f32 unless written (so the shipped model.toml, written
-    /// before the key, reads as f32); "bf16" reads and is written back; a misspelt value is
-    /// named with both spellings.
+    /// `[training] matmul_precision`: f32 unless written (so configs and model.toml files
+    /// written before the key read as f32); "bf16" reads and is written back, as in the shipped
+    /// demo model's model.toml; a misspelt value is named with both spellings.
     #[test]
     fn matmul_precision_is_f32_by_default_and_reads_bf16() {
         assert_eq!(
@@ -821,8 +822,12 @@ mod tests {
         let small = include_str!("../../../configs/tdnn-small.toml");
         let config = ModelConfig::parse(small).unwrap();
         assert_eq!(config.training.matmul_precision, MatmulPrecision::F32);
+        let older = include_str!("../../../configs/tdnn-wide-robust.toml");
+        assert!(!older.contains("matmul_precision"));
+        let config = ModelConfig::parse(older).unwrap();
+        assert_eq!(config.training.matmul_precision, MatmulPrecision::F32);
         let shipped = include_str!("../../../models/demo/model.toml");
-        assert!(!shipped.contains("matmul_precision"));
+        assert!(shipped.contains("matmul_precision = \"bf16\""));
         let with = small.replacen(
             "patience = 0",
             "patience = 0\nmatmul_precision = \"bf16\"",
