@@ -91,6 +91,7 @@ fn main() {
             augmentation: None,
             self_training: Vec::new(),
             speaker_vectors: None,
+            inference: None,
         };
         let model = AcousticModel::from_parameters(description, &trainer.model_tensors());
         (normalization, model.expect("valid model"))

@@ -77,6 +77,7 @@ pub mod speaker_vectors;
 pub mod tdnn;
 pub mod train;
 pub mod units;
+pub mod warp_search;
 
 use std::path::PathBuf;
 

@@ -121,6 +121,9 @@ pub struct ModelDescription {
     /// `ivector.toml` + `ivector.safetensors` in the model directory. Absent: none.
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub speaker_vectors: Option<crate::config::SpeakerVectors>,
+    /// How to decode it: the test-time warp search (absent: the unwarped front end alone).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub inference: Option<crate::warp_search::Inference>,
 }
 
 impl ModelDescription {
@@ -244,6 +247,14 @@ impl AcousticModel {
             .map_err(|e| invalid(e.into()))?;
         if let Some(vectors) = &description.speaker_vectors {
             vectors.validate().map_err(invalid)?;
+        }
+        if let Some(inference) = &description.inference {
+            inference
+                .validate(&description.features)
+                .map_err(|e| AcousticError::Model {
+                    path: toml_path.clone(),
+                    problem: format!("[inference] {e}"),
+                })?;
         }
         description
             .architecture
@@ -370,6 +381,69 @@ impl AcousticModel {
         0.01 * self.description.architecture.subsampling() as f64
     }
 
+    /// The test-time warp search in effect: `[inference]` of `model.toml`, or what
+    /// [`AcousticModel::set_inference`] put in its place. `None`: the unwarped front end alone.
+    pub fn inference(&self) -> Option<&crate::warp_search::Inference> {
+        self.description.inference.as_ref()
+    }
+
+    /// Replaces the warp search (`--warp-factors` of `transcribe`, `sweep`, `demo`), checked
+    /// against the model's front end; `None` or the single factor 1.0 turn it off.
+    pub fn set_inference(
+        &mut self,
+        inference: Option<crate::warp_search::Inference>,
+    ) -> Result<(), AcousticError> {
+        if let Some(search) = &inference {
+            search.validate(&self.description.features)?;
+        }
+        self.description.inference = inference.filter(|search| search.warp_factors != [1.0]);
+        Ok(())
+    }
+
+    /// Log-posteriors of one segment's 16 kHz samples as `transcribe` computes them: the
+    /// features of `extractor` (the model's front end), normalised by the segment's own
+    /// statistics unless the model normalises nothing, through every factor of the warp search
+    /// ([`crate::warp_search`]); the most confident posteriors and their factor (1.0 without a
+    /// search). A segment shorter than one frame gives no frames.
+    pub fn segment_posteriors(
+        &self,
+        extractor: &isogloss_features::FeatureExtractor,
+        samples: &[f32],
+    ) -> Result<(Array2<f32>, f64), AcousticError> {
+        let config = &self.description.features;
+        let (factors, warps) = match &self.description.inference {
+            Some(search) => (
+                search.warp_factors.clone(),
+                search.warps(config.sample_rate)?,
+            ),
+            None => (vec![1.0], vec![None]),
+        };
+        let mut candidates = Vec::with_capacity(warps.len());
+        for warp in &warps {
+            let mut features = match warp {
+                None => extractor.extract(samples),
+                Some(warp) => extractor.extract_warped(samples, warp)?,
+            };
+            if features.nrows() == 0 {
+                return Ok((Array2::zeros((0, self.units().len())), 1.0));
+            }
+            // A segment of a recording is normalised by its own statistics. A model trained
+            // with per-speaker statistics sees a slightly different normalisation here,
+            // because the speakers of an arbitrary recording are unknown.
+            if config.cmvn != isogloss_features::CmvnMode::None {
+                let cmvn = isogloss_features::Cmvn::from_features(
+                    &features,
+                    config.unit_variance,
+                    "segment",
+                )?;
+                cmvn.apply(&mut features, "segment")?;
+            }
+            candidates.push(self.log_posteriors(&features)?);
+        }
+        let best = crate::warp_search::most_confident(&candidates).unwrap_or(0);
+        Ok((candidates.swap_remove(best), factors[best]))
+    }
+
     /// What the network reads for `[frames, dims]` normalised features: the features
     /// themselves, or with speaker vectors the features with the online vector of each frame
     /// appended ([`crate::speaker_vectors::with_vectors`], a fresh window from the first frame).
@@ -454,6 +528,7 @@ mod tests {
             augmentation: Some(config.augmentation.clone()),
             self_training: Vec::new(),
             speaker_vectors: None,
+            inference: None,
         };
         let dir = tempfile::tempdir().unwrap();
         AcousticModel::save(dir.path(), &description, &parameters).unwrap();
@@ -523,6 +598,7 @@ mod tests {
             augmentation: None,
             self_training: Vec::new(),
             speaker_vectors: None,
+            inference: None,
         };
         let dir = tempfile::tempdir().unwrap();
         AcousticModel::save(dir.path(), &description, &parameters).unwrap();
@@ -598,5 +674,138 @@ mod tests {
         );
         assert_eq!(description.provenance.seed, 2);
         assert_eq!(description.provenance.epochs, 160);
+        // Decoded with the warp search `isogloss train` now writes for that recipe's VTLP range
+        // (added to the model.toml by hand: the model was trained before the search existed).
+        assert_eq!(
+            description.inference,
+            crate::warp_search::Inference::from_training(&config.augmentation.vtlp)
+        );
+        assert_eq!(
+            description.inference.as_ref().unwrap().warp_factors,
+            [1.0, 0.9, 1.1]
+        );
+    }
+
+    /// One real recording of the demo's unseen voices through the shipped model: the searched
+    /// posteriors are those of the factor whose frames are most confident, each factor's
+    /// features computed here the long way (warped filter bank, per-segment CMVN); without a
+    /// search, or with the single factor 1.0, the plain front end's.
+    #[test]
+    fn the_warp_search_keeps_the_most_confident_factor() {
+        use isogloss_features::{Cmvn, FeatureExtractor, VtlpWarp};
+        let root = Path::new(env!("CARGO_MANIFEST_DIR")).join("../..");
+        let mut model = AcousticModel::load(&root.join("models/demo")).unwrap();
+        let samples = isogloss_audio::read_segments(
+            &root.join("tests/data/demo/cross/clean/fells-cross01-0001.ogg"),
+            &[isogloss_audio::Segment {
+                start: 0.0,
+                end: None,
+            }],
+        )
+        .unwrap()
+        .remove(0);
+        let config = model.feature_config().clone();
+        let extractor = FeatureExtractor::new(&config).unwrap();
+        let by_hand = |factor: f64| {
+            let mut features = if factor == 1.0 {
+                extractor.extract(&samples)
+            } else {
+                let warp = VtlpWarp::new(factor, 4800.0, 16000).unwrap();
+                extractor.extract_warped(&samples, &warp).unwrap()
+            };
+            let cmvn = Cmvn::from_features(&features, true, "x").unwrap();
+            cmvn.apply(&mut features, "x").unwrap();
+            model.log_posteriors(&features).unwrap()
+        };
+        let candidates: Vec<(f64, Array2<f32>)> =
+            [1.0, 0.9, 1.1].iter().map(|&f| (f, by_hand(f))).collect();
+        let confidences: Vec<f64> = candidates
+            .iter()
+            .map(|(_, p)| crate::warp_search::confidence(p))
+            .collect();
+        // The three front ends do give different posteriors, so the choice is a real one.
+        assert!(confidences[0] != confidences[1] && confidences[0] != confidences[2]);
+        let best = (0..3)
+            .max_by(|&a, &b| confidences[a].total_cmp(&confidences[b]))
+            .unwrap();
+        let (searched, factor) = model.segment_posteriors(&extractor, &samples).unwrap();
+        assert_eq!(factor, candidates[best].0);
+        assert_eq!(searched, candidates[best].1);
+
+        model.set_inference(None).unwrap();
+        let (plain, factor) = model.segment_posteriors(&extractor, &samples).unwrap();
+        assert_eq!((factor, &plain), (1.0, &candidates[0].1));
+        model
+            .set_inference(Some(crate::warp_search::Inference {
+                warp_factors: vec![1.0],
+                warp_boundary_hz: 4800.0,
+            }))
+            .unwrap();
+        assert!(model.inference().is_none());
+        assert_eq!(
+            model.segment_posteriors(&extractor, &samples).unwrap().0,
+            plain
+        );
+        let too_strong = crate::warp_search::Inference {
+            warp_factors: vec![1.0, 0.3],
+            warp_boundary_hz: 4800.0,
+        };
+        assert!(model.set_inference(Some(too_strong)).is_err());
+    }
+
+    #[test]
+    fn a_bad_inference_table_is_an_error_naming_model_toml_and_the_key() {
+        let mut config = ModelConfig::small();
+        config.model.normalization = crate::config::Normalization::Layer;
+        let units = UnitInventory::graphemes(["abc de"]);
+        let mut rng = ChaCha8Rng::seed_from_u64(3);
+        let parameters =
+            initial_parameters(&config.model, config.features.dims(), units.len(), &mut rng)
+                .unwrap();
+        let description = ModelDescription {
+            format: MODEL_FORMAT,
+            units,
+            features: config.features.clone(),
+            architecture: config.model.clone(),
+            provenance: Provenance::default(),
+            training: None,
+            augmentation: None,
+            self_training: Vec::new(),
+            speaker_vectors: None,
+            inference: crate::warp_search::Inference::from_training(&config.augmentation.vtlp),
+        };
+        assert!(description.inference.is_some());
+        let dir = tempfile::tempdir().unwrap();
+        AcousticModel::save(dir.path(), &description, &parameters).unwrap();
+        let good = std::fs::read_to_string(dir.path().join("model.toml")).unwrap();
+        assert!(good.contains("[inference]\nwarp_factors = ["), "{good}");
+        assert_eq!(
+            AcousticModel::load(dir.path()).unwrap().description(),
+            &description
+        );
+        let table = good.find("[inference]").unwrap();
+        for (bad, expected) in [
+            ("[inference]\nwarp_factors = []\n", "no factor given"),
+            (
+                "[inference]\nwarp_factors = [1.0, -1.1]\n",
+                "-1.1 is not a positive number",
+            ),
+            (
+                "[inference]\nwarp_factors = [1.0, 0.3]\n",
+                "0.3 is outside 0.5 to 2",
+            ),
+            (
+                "[inference]\nwarp_factor = [1.0]\n",
+                "unknown field `warp_factor`",
+            ),
+        ] {
+            let text = format!("{}{bad}", &good[..table]);
+            std::fs::write(dir.path().join("model.toml"), text).unwrap();
+            let message = AcousticModel::load(dir.path()).err().unwrap().to_string();
+            assert!(
+                message.contains("model.toml") && message.contains(expected),
+                "{message}"
+            );
+        }
     }
 }

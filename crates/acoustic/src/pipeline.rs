@@ -16,7 +16,7 @@ use std::sync::Arc;
 use isogloss_corpus::Manifest;
 use isogloss_features::{
     read_features, write_features, Cmvn, CmvnMode, FeatureConfig, FeatureExtractor,
-    SpeakerCmvnStats,
+    SpeakerCmvnStats, VtlpWarp,
 };
 use isogloss_lexicon::Lexicon;
 use ndarray::Array2;
@@ -217,6 +217,21 @@ pub fn manifest_features_with(
     read: &SegmentReader<'_>,
     on_file_done: &(dyn Fn(usize, usize) + Sync),
 ) -> Result<Vec<UtteranceFeatures>, AcousticError> {
+    features_of_manifest(manifest, config, cache, read, &[None], on_file_done)
+}
+
+/// The features of every utterance of a manifest through each front end of `warps` (`None`:
+/// unwarped), one matrix per warp in that order. `cache` is only read and written for the
+/// unwarped front end alone (`warps == [None]`).
+fn features_of_manifest(
+    manifest: &Manifest,
+    config: &FeatureConfig,
+    cache: Option<&Path>,
+    read: &SegmentReader<'_>,
+    warps: &[Option<VtlpWarp>],
+    on_file_done: &(dyn Fn(usize, usize) + Sync),
+) -> Result<Vec<UtteranceFeatures>, AcousticError> {
+    let cache = cache.filter(|_| matches!(warps, [None]));
     let extractor = FeatureExtractor::new(config)?;
     if let Some(dir) = cache {
         std::fs::create_dir_all(dir).map_err(|source| AcousticError::Io {
@@ -267,6 +282,7 @@ pub fn manifest_features_with(
                     let result = (|| {
                         if let Some(path) = cached(i).filter(|p| p.exists()) {
                             return read_features(&path)
+                                .map(|matrix| vec![matrix])
                                 .map_err(|e| format!("{item}: cached features unreadable: {e}"));
                         }
                         let samples = match &audio {
@@ -274,14 +290,22 @@ pub fn manifest_features_with(
                             Some(Err(e)) => return Err(format!("{item}: {e}")),
                             None => return Err(format!("{item}: cache incomplete")),
                         };
-                        let matrix = extractor.extract(samples);
+                        let mut matrices = Vec::with_capacity(warps.len());
+                        for warp in warps {
+                            matrices.push(match warp {
+                                None => extractor.extract(samples),
+                                Some(warp) => extractor
+                                    .extract_warped(samples, warp)
+                                    .map_err(|e| format!("{item}: {e}"))?,
+                            });
+                        }
                         if let Some(path) = cached(i) {
-                            write_features(&path, &matrix)
+                            write_features(&path, &matrices[0])
                                 .map_err(|e| format!("{item}: cannot cache features: {e}"))?;
                         }
-                        Ok(matrix)
+                        Ok(matrices)
                     })();
-                    (i, result.map(|matrix| vec![matrix]))
+                    (i, result)
                 })
                 .collect();
             let finished = done.fetch_add(1, std::sync::atomic::Ordering::Relaxed) + 1;
@@ -1034,6 +1058,7 @@ pub fn train_with(
                 augmentation: Some(config.augmentation.clone()),
                 self_training: Vec::new(),
                 speaker_vectors: config.speaker_vectors.clone(),
+                inference: crate::warp_search::Inference::from_training(&config.augmentation.vtlp),
             };
             if writer {
                 AcousticModel::save(&options.out, &description, &trainer.model_tensors())?;
@@ -1083,22 +1108,39 @@ pub fn train_with(
 }
 
 /// Log-posteriors `[frames, units]` of every utterance of a manifest, normalised the way the
-/// model was trained; a failed utterance gives an error message and the others carry on.
+/// model was trained; a failed utterance gives an error message and the others carry on. With a
+/// warp search (`[inference]`, [`crate::warp_search`]) each utterance's features are computed
+/// through every factor, each normalised as the model says, and the most confident posteriors
+/// are kept.
 pub fn manifest_posteriors(
     model: &AcousticModel,
     manifest: &Manifest,
     on_file_done: &(dyn Fn(usize, usize) + Sync),
 ) -> Result<Vec<Result<Array2<f32>, String>>, AcousticError> {
     let config = model.feature_config();
-    let raw = manifest_features(manifest, config, None, on_file_done)?;
+    let warps = match model.inference() {
+        Some(inference) => inference.warps(config.sample_rate)?,
+        None => vec![None],
+    };
+    let raw = features_of_manifest(
+        manifest,
+        config,
+        None,
+        &isogloss_audio::read_segments,
+        &warps,
+        on_file_done,
+    )?;
     let mut ok_indices = Vec::new();
-    let mut features = Vec::new();
+    // by_warp[k][j]: the features of the j-th readable utterance through warp k.
+    let mut by_warp: Vec<Vec<Vec<Array2<f32>>>> = vec![Vec::new(); warps.len()];
     let mut results: Vec<Result<Array2<f32>, String>> = Vec::with_capacity(raw.len());
     for (i, result) in raw.into_iter().enumerate() {
         match result {
-            Ok(variants) => {
+            Ok(matrices) => {
                 ok_indices.push(i);
-                features.push(variants);
+                for (k, matrix) in matrices.into_iter().enumerate() {
+                    by_warp[k].push(vec![matrix]);
+                }
                 results.push(Ok(Array2::zeros((0, 0))));
             }
             Err(message) => results.push(Err(message)),
@@ -1108,20 +1150,27 @@ pub fn manifest_posteriors(
         .iter()
         .map(|&i| manifest.utterances[i].speaker.as_str())
         .collect();
-    normalize(&mut features, &speakers, config)?;
-    let posteriors: Vec<Result<Array2<f32>, String>> = features
+    for features in by_warp.iter_mut() {
+        normalize(features, &speakers, config)?;
+    }
+    let posteriors: Vec<Result<Array2<f32>, String>> = ok_indices
         .par_iter()
-        .zip(&ok_indices)
-        .map(|(variants, &i)| {
-            model.log_posteriors(&variants[0]).map_err(|e| {
-                let u = &manifest.utterances[i];
-                format!(
-                    "{}, line {} ({}): {e}",
-                    manifest.path.display(),
-                    u.line,
-                    u.id
-                )
-            })
+        .enumerate()
+        .map(|(j, &i)| {
+            let u = &manifest.utterances[i];
+            let mut candidates = Vec::with_capacity(by_warp.len());
+            for features in &by_warp {
+                candidates.push(model.log_posteriors(&features[j][0]).map_err(|e| {
+                    format!(
+                        "{}, line {} ({}): {e}",
+                        manifest.path.display(),
+                        u.line,
+                        u.id
+                    )
+                })?);
+            }
+            let best = crate::warp_search::most_confident(&candidates).unwrap_or(0);
+            Ok(candidates.swap_remove(best))
         })
         .collect();
     for (i, p) in ok_indices.into_iter().zip(posteriors) {

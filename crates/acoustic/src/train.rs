@@ -1645,6 +1645,7 @@ mod tests {
             augmentation: None,
             self_training: Vec::new(),
             speaker_vectors: None,
+            inference: None,
         };
         let dir = tempfile::tempdir().unwrap();
         crate::AcousticModel::save(dir.path(), &description, &trainer.model_tensors()).unwrap();

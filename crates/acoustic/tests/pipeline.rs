@@ -506,6 +506,7 @@ fn training_and_transcription_give_the_network_the_same_speaker_vectors() {
         augmentation: None,
         self_training: Vec::new(),
         speaker_vectors: Some(vectors),
+        inference: None,
     };
     let model = AcousticModel::from_parameters(description, &parameters)
         .unwrap()
@@ -572,4 +573,42 @@ fn training_and_transcription_give_the_network_the_same_speaker_vectors() {
             "utterance {i}"
         );
     }
+}
+
+/// `manifest_posteriors` (what `sweep` and `demo` decode) and `segment_posteriors` (what
+/// `transcribe` decodes) agree under the shipped model's warp search, and an utterance whose
+/// audio fails is its own error, the others unaffected.
+#[test]
+fn the_warp_search_gives_the_same_posteriors_to_sweep_and_transcribe() {
+    let root = Path::new(env!("CARGO_MANIFEST_DIR")).join("../..");
+    let model = AcousticModel::load(&root.join("models/demo")).unwrap();
+    assert!(model.inference().is_some());
+    let lines: Vec<String> = std::fs::read_to_string(demo().join("cross-phone.tsv"))
+        .unwrap()
+        .lines()
+        .take(4)
+        .map(str::to_string)
+        .collect();
+    let dir = tempfile::tempdir().unwrap();
+    let mut text = lines
+        .join("\n")
+        .replace("\tcross/", &format!("\t{}/cross/", demo().display()));
+    text.push_str("\nbroken-0001\tnowhere.ogg\t\t\tbroken\tfells\ta\ta\n");
+    let path = dir.path().join("some.tsv");
+    std::fs::write(&path, text).unwrap();
+    let manifest = Manifest::read(&path).unwrap();
+    let posteriors = manifest_posteriors(&model, &manifest, &|_, _| {}).unwrap();
+    assert_eq!(posteriors.len(), 4);
+    assert!(posteriors[3].as_ref().unwrap_err().contains("line 5"));
+    let extractor = FeatureExtractor::new(model.feature_config()).unwrap();
+    let mut factors = Vec::new();
+    for (utterance, result) in manifest.utterances.iter().zip(&posteriors).take(3) {
+        let samples = isogloss_audio::read_segments(&utterance.audio, &[utterance.segment()])
+            .unwrap()
+            .remove(0);
+        let (expected, factor) = model.segment_posteriors(&extractor, &samples).unwrap();
+        assert_eq!(result.as_ref().unwrap(), &expected, "{}", utterance.id);
+        factors.push(factor);
+    }
+    eprintln!("factors chosen: {factors:?}");
 }

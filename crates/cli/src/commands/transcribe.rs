@@ -15,7 +15,7 @@ use isogloss_batch::{
 use isogloss_decoder::output::OutputFormat;
 use isogloss_decoder::segment::VadConfig;
 use isogloss_decoder::{DecodeError, SearchOptions};
-use isogloss_features::{Cmvn, CmvnMode, FeatureExtractor};
+use isogloss_features::{CmvnMode, FeatureExtractor};
 use ndarray::Array2;
 
 use crate::Outcome;
@@ -184,19 +184,7 @@ impl Recognizer for ModelRecognizer {
     }
 
     fn log_posteriors(&self, samples: &[f32]) -> Result<Array2<f32>, SideError> {
-        let mut features = self.extractor.extract(samples);
-        if features.nrows() == 0 {
-            return Ok(Array2::zeros((0, self.model.units().len())));
-        }
-        let config = self.model.feature_config();
-        // A segment of a recording is normalized by its own statistics. A model trained with
-        // per-speaker statistics sees a slightly different normalization here, because the
-        // speakers of an arbitrary recording are unknown; the demo model trains per utterance.
-        if config.cmvn != CmvnMode::None {
-            let cmvn = Cmvn::from_features(&features, config.unit_variance, "segment")?;
-            cmvn.apply(&mut features, "segment")?;
-        }
-        Ok(self.model.log_posteriors(&features)?)
+        Ok(self.model.segment_posteriors(&self.extractor, samples)?.0)
     }
 
     fn files(&self) -> Vec<PathBuf> {
