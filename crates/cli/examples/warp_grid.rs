@@ -34,6 +34,9 @@ fn greedy_text(model: &AcousticModel, posteriors: &Array2<f32>) -> String {
     model.inventory().to_text(&units)
 }
 
+/// Chooses the posteriors of utterance `i` from those of every factor.
+type Pick<'a> = &'a dyn Fn(usize, &[Array2<f32>]) -> Array2<f32>;
+
 fn write_hypotheses(path: &Path, rows: &[(String, String)]) -> anyhow::Result<()> {
     let mut file = std::fs::File::create(path).with_context(|| path.display().to_string())?;
     writeln!(file, "id\ttext")?;
@@ -87,7 +90,7 @@ fn main() -> anyhow::Result<()> {
         })
         .collect::<anyhow::Result<_>>()?;
     let ids: Vec<String> = manifest.utterances.iter().map(|u| u.id.clone()).collect();
-    let rows = |pick: &dyn Fn(usize, &[Array2<f32>]) -> Array2<f32>| -> Vec<(String, String)> {
+    let rows = |pick: Pick<'_>| -> Vec<(String, String)> {
         ids.iter()
             .zip(&results)
             .enumerate()
