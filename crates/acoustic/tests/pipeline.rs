@@ -133,6 +133,8 @@ fn overfits_a_handful_of_demo_utterances() {
     // The saved model directory reproduces the transcripts through the public inference path.
     let model = AcousticModel::load(&dir.path().join("model")).unwrap();
     assert!((model.frame_shift_seconds() - 0.03).abs() < 1e-12);
+    // Trained without vocal-tract warping: no warp search at test time.
+    assert!(model.inference().is_none());
     let correct = exact_transcripts(&model, &path);
     assert!(
         correct >= 3,
@@ -611,4 +613,26 @@ fn the_warp_search_gives_the_same_posteriors_to_sweep_and_transcribe() {
         factors.push(factor);
     }
     eprintln!("factors chosen: {factors:?}");
+}
+
+/// A run that warps the mel filter bank writes the test-time warp search of its range into
+/// `model.toml` (docs/model-directory.md, `[inference]`).
+#[test]
+fn training_with_vocal_tract_warping_writes_the_warp_search() {
+    let dir = tempfile::tempdir().unwrap();
+    let path = manifest(dir.path(), "few.tsv", &FEW);
+    let mut options = options(dir.path(), path.clone(), path, "normalized");
+    options.config.training.epochs = 1;
+    options.config.augmentation.vtlp = isogloss_features::VtlpConfig {
+        probability: 0.5,
+        warp_factor: [0.92, 1.08],
+        boundary_hz: 4500.0,
+    };
+    train(&options, &mut |_| {}).unwrap();
+    let model = AcousticModel::load(&dir.path().join("model")).unwrap();
+    let search = model.inference().expect("a warp search");
+    assert_eq!(search.warp_factors, [1.0, 0.92, 1.08]);
+    assert_eq!(search.warp_boundary_hz, 4500.0);
+    let text = std::fs::read_to_string(dir.path().join("model/model.toml")).unwrap();
+    assert!(text.contains("\n[inference]\n"), "{text}");
 }
