@@ -14,6 +14,7 @@ use crate::config::TdnnConfig;
 use crate::io::{serialize_tensors, write_atomically};
 use crate::tdnn::{var_builder, Tdnn};
 use crate::units::UnitInventory;
+use crate::warp_search::{Candidate, Frontend};
 use crate::AcousticError;
 
 /// Feature settings recorded in (and required by) the model; the features crate's type.
@@ -396,36 +397,37 @@ impl AcousticModel {
         if let Some(search) = &inference {
             search.validate(&self.description.features)?;
         }
-        self.description.inference = inference.filter(|search| search.warp_factors != [1.0]);
+        self.description.inference = inference
+            .filter(|search| search.candidates() != [crate::warp_search::Candidate::PLAIN]);
         Ok(())
     }
 
     /// Log-posteriors of one segment's 16 kHz samples as `transcribe` computes them: the
     /// features of `extractor` (the model's front end), normalised by the segment's own
     /// statistics unless the model normalises nothing, through every factor of the warp search
-    /// ([`crate::warp_search`]); the most confident posteriors and their factor (1.0 without a
-    /// search). A segment shorter than one frame gives no frames.
+    /// ([`crate::warp_search`]); the most confident posteriors and the front end that gave
+    /// them ([`Candidate::PLAIN`] without a search). A tempo candidate's frames lie
+    /// `candidate.speed` times the model's frame shift apart in the segment. A segment shorter
+    /// than one frame gives no frames.
     pub fn segment_posteriors(
         &self,
         extractor: &isogloss_features::FeatureExtractor,
         samples: &[f32],
-    ) -> Result<(Array2<f32>, f64), AcousticError> {
+    ) -> Result<(Array2<f32>, Candidate), AcousticError> {
         let config = &self.description.features;
-        let (factors, warps) = match &self.description.inference {
-            Some(search) => (
-                search.warp_factors.clone(),
-                search.warps(config.sample_rate)?,
-            ),
-            None => (vec![1.0], vec![None]),
+        let frontends = match &self.description.inference {
+            Some(search) => search.frontends(config.sample_rate)?,
+            None => Frontend::plain(),
         };
-        let mut candidates = Vec::with_capacity(warps.len());
-        for warp in &warps {
-            let mut features = match warp {
-                None => extractor.extract(samples),
-                Some(warp) => extractor.extract_warped(samples, warp)?,
-            };
+        let mut candidates = Vec::with_capacity(frontends.len());
+        for frontend in &frontends {
+            let mut features = frontend.features(extractor, samples)?;
             if features.nrows() == 0 {
-                return Ok((Array2::zeros((0, self.units().len())), 1.0));
+                if frontend.candidate == Candidate::PLAIN {
+                    return Ok((Array2::zeros((0, self.units().len())), Candidate::PLAIN));
+                }
+                candidates.push(Array2::zeros((0, self.units().len())));
+                continue;
             }
             // A segment of a recording is normalised by its own statistics. A model trained
             // with per-speaker statistics sees a slightly different normalisation here,
@@ -441,7 +443,7 @@ impl AcousticModel {
             candidates.push(self.log_posteriors(&features)?);
         }
         let best = crate::warp_search::most_confident(&candidates).unwrap_or(0);
-        Ok((candidates.swap_remove(best), factors[best]))
+        Ok((candidates.swap_remove(best), frontends[best].candidate))
     }
 
     /// What the network reads for `[frames, dims]` normalised features: the features
@@ -687,11 +689,12 @@ mod tests {
     }
 
     /// One real recording of the demo's unseen voices through the shipped model: the searched
-    /// posteriors are those of the factor whose frames are most confident, each factor's
-    /// features computed here the long way (warped filter bank, per-segment CMVN); without a
-    /// search, or with the single factor 1.0, the plain front end's.
+    /// posteriors are those of the front end whose frames are most confident, each front end's
+    /// features computed here the long way (warped filter bank or resampled audio, per-segment
+    /// CMVN); without a search, or with the single factor 1.0, the plain front end's.
     #[test]
     fn the_warp_search_keeps_the_most_confident_factor() {
+        use crate::warp_search::Inference;
         use isogloss_features::{Cmvn, FeatureExtractor, VtlpWarp};
         let root = Path::new(env!("CARGO_MANIFEST_DIR")).join("../..");
         let mut model = AcousticModel::load(&root.join("models/demo")).unwrap();
@@ -706,39 +709,67 @@ mod tests {
         .remove(0);
         let config = model.feature_config().clone();
         let extractor = FeatureExtractor::new(&config).unwrap();
-        let by_hand = |factor: f64| {
-            let mut features = if factor == 1.0 {
+        let by_hand = |speed: f64, warp: f64| {
+            let samples = if speed == 1.0 {
+                samples.clone()
+            } else {
+                isogloss_audio::speed_perturb(&samples, speed)
+            };
+            let mut features = if warp == 1.0 {
                 extractor.extract(&samples)
             } else {
-                let warp = VtlpWarp::new(factor, 4800.0, 16000).unwrap();
+                let warp = VtlpWarp::new(warp, 4800.0, 16000).unwrap();
                 extractor.extract_warped(&samples, &warp).unwrap()
             };
             let cmvn = Cmvn::from_features(&features, true, "x").unwrap();
             cmvn.apply(&mut features, "x").unwrap();
             model.log_posteriors(&features).unwrap()
         };
-        let candidates: Vec<(f64, Array2<f32>)> =
-            [1.0, 0.9, 1.1].iter().map(|&f| (f, by_hand(f))).collect();
-        let confidences: Vec<f64> = candidates
-            .iter()
-            .map(|(_, p)| crate::warp_search::confidence(p))
+        let most_confident = |candidates: &[(Candidate, Array2<f32>)]| {
+            let confidences: Vec<f64> = candidates
+                .iter()
+                .map(|(_, p)| crate::warp_search::confidence(p))
+                .collect();
+            // The front ends do give different posteriors, so the choice is a real one.
+            assert!(confidences[1..].iter().all(|&c| c != confidences[0]));
+            (0..candidates.len())
+                .max_by(|&a, &b| confidences[a].total_cmp(&confidences[b]))
+                .unwrap()
+        };
+        let c = |speed, warp| Candidate { speed, warp };
+        let mut candidates: Vec<(Candidate, Array2<f32>)> = [c(1.0, 1.0), c(1.0, 0.9), c(1.0, 1.1)]
+            .into_iter()
+            .map(|k| (k, by_hand(k.speed, k.warp)))
             .collect();
-        // The three front ends do give different posteriors, so the choice is a real one.
-        assert!(confidences[0] != confidences[1] && confidences[0] != confidences[2]);
-        let best = (0..3)
-            .max_by(|&a, &b| confidences[a].total_cmp(&confidences[b]))
-            .unwrap();
-        let (searched, factor) = model.segment_posteriors(&extractor, &samples).unwrap();
-        assert_eq!(factor, candidates[best].0);
+        let best = most_confident(&candidates);
+        let (searched, chosen) = model.segment_posteriors(&extractor, &samples).unwrap();
+        assert_eq!(chosen, candidates[best].0);
         assert_eq!(searched, candidates[best].1);
 
+        // With tempo candidates as well (their frames at another rate).
+        for speed in [0.9, 1.1] {
+            candidates.push((c(speed, 1.0), by_hand(speed, 1.0)));
+        }
+        let best = most_confident(&candidates);
+        let search = Inference {
+            speed_factors: vec![0.9, 1.1],
+            ..model.inference().unwrap().clone()
+        };
+        model.set_inference(Some(search)).unwrap();
+        let (searched, chosen) = model.segment_posteriors(&extractor, &samples).unwrap();
+        assert_eq!(chosen, candidates[best].0);
+        assert_eq!(searched, candidates[best].1);
+        let slow = &candidates[3].1;
+        assert!(slow.nrows() > candidates[0].1.nrows(), "{}", slow.nrows());
+
         model.set_inference(None).unwrap();
-        let (plain, factor) = model.segment_posteriors(&extractor, &samples).unwrap();
-        assert_eq!((factor, &plain), (1.0, &candidates[0].1));
+        let (plain, chosen) = model.segment_posteriors(&extractor, &samples).unwrap();
+        assert_eq!((chosen, &plain), (Candidate::PLAIN, &candidates[0].1));
         model
-            .set_inference(Some(crate::warp_search::Inference {
+            .set_inference(Some(Inference {
                 warp_factors: vec![1.0],
                 warp_boundary_hz: 4800.0,
+                speed_factors: Vec::new(),
             }))
             .unwrap();
         assert!(model.inference().is_none());
@@ -746,9 +777,10 @@ mod tests {
             model.segment_posteriors(&extractor, &samples).unwrap().0,
             plain
         );
-        let too_strong = crate::warp_search::Inference {
+        let too_strong = Inference {
             warp_factors: vec![1.0, 0.3],
             warp_boundary_hz: 4800.0,
+            speed_factors: Vec::new(),
         };
         assert!(model.set_inference(Some(too_strong)).is_err());
     }

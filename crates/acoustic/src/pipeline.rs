@@ -16,7 +16,7 @@ use std::sync::Arc;
 use isogloss_corpus::Manifest;
 use isogloss_features::{
     read_features, write_features, Cmvn, CmvnMode, FeatureConfig, FeatureExtractor,
-    SpeakerCmvnStats, VtlpWarp,
+    SpeakerCmvnStats,
 };
 use isogloss_lexicon::Lexicon;
 use ndarray::Array2;
@@ -33,6 +33,7 @@ use crate::speaker_vectors::{
 };
 use crate::train::{checkpoint_path, EpochRecord, PreparedUtterance, Trainer, TrainingEvent};
 use crate::units::{grapheme_sequence, transcript_words, UnitInventory, UnitKind};
+use crate::warp_search::{Candidate, Frontend};
 use crate::AcousticError;
 
 /// The feature matrices of one utterance (one per perturbation), or why there are none.
@@ -217,21 +218,29 @@ pub fn manifest_features_with(
     read: &SegmentReader<'_>,
     on_file_done: &(dyn Fn(usize, usize) + Sync),
 ) -> Result<Vec<UtteranceFeatures>, AcousticError> {
-    features_of_manifest(manifest, config, cache, read, &[None], on_file_done)
+    features_of_manifest(
+        manifest,
+        config,
+        cache,
+        read,
+        &Frontend::plain(),
+        on_file_done,
+    )
 }
 
-/// The features of every utterance of a manifest through each front end of `warps` (`None`:
-/// unwarped), one matrix per warp in that order. `cache` is only read and written for the
-/// unwarped front end alone (`warps == [None]`).
+/// The features of every utterance of a manifest through each of `frontends`
+/// ([`crate::warp_search`]), one matrix per front end in that order. `cache` is only read and
+/// written for the plain front end alone.
 fn features_of_manifest(
     manifest: &Manifest,
     config: &FeatureConfig,
     cache: Option<&Path>,
     read: &SegmentReader<'_>,
-    warps: &[Option<VtlpWarp>],
+    frontends: &[Frontend],
     on_file_done: &(dyn Fn(usize, usize) + Sync),
 ) -> Result<Vec<UtteranceFeatures>, AcousticError> {
-    let cache = cache.filter(|_| matches!(warps, [None]));
+    let plain_alone = matches!(frontends, [f] if f.candidate == Candidate::PLAIN);
+    let cache = cache.filter(|_| plain_alone);
     let extractor = FeatureExtractor::new(config)?;
     if let Some(dir) = cache {
         std::fs::create_dir_all(dir).map_err(|source| AcousticError::Io {
@@ -290,14 +299,13 @@ fn features_of_manifest(
                             Some(Err(e)) => return Err(format!("{item}: {e}")),
                             None => return Err(format!("{item}: cache incomplete")),
                         };
-                        let mut matrices = Vec::with_capacity(warps.len());
-                        for warp in warps {
-                            matrices.push(match warp {
-                                None => extractor.extract(samples),
-                                Some(warp) => extractor
-                                    .extract_warped(samples, warp)
+                        let mut matrices = Vec::with_capacity(frontends.len());
+                        for frontend in frontends {
+                            matrices.push(
+                                frontend
+                                    .features(&extractor, samples)
                                     .map_err(|e| format!("{item}: {e}"))?,
-                            });
+                            );
                         }
                         if let Some(path) = cached(i) {
                             write_features(&path, &matrices[0])
@@ -1118,21 +1126,21 @@ pub fn manifest_posteriors(
     on_file_done: &(dyn Fn(usize, usize) + Sync),
 ) -> Result<Vec<Result<Array2<f32>, String>>, AcousticError> {
     let config = model.feature_config();
-    let warps = match model.inference() {
-        Some(inference) => inference.warps(config.sample_rate)?,
-        None => vec![None],
+    let frontends = match model.inference() {
+        Some(inference) => inference.frontends(config.sample_rate)?,
+        None => Frontend::plain(),
     };
     let raw = features_of_manifest(
         manifest,
         config,
         None,
         &isogloss_audio::read_segments,
-        &warps,
+        &frontends,
         on_file_done,
     )?;
     let mut ok_indices = Vec::new();
-    // by_warp[k][j]: the features of the j-th readable utterance through warp k.
-    let mut by_warp: Vec<Vec<Vec<Array2<f32>>>> = vec![Vec::new(); warps.len()];
+    // by_warp[k][j]: the features of the j-th readable utterance through front end k.
+    let mut by_warp: Vec<Vec<Vec<Array2<f32>>>> = vec![Vec::new(); frontends.len()];
     let mut results: Vec<Result<Array2<f32>, String>> = Vec::with_capacity(raw.len());
     for (i, result) in raw.into_iter().enumerate() {
         match result {

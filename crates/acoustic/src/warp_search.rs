@@ -41,6 +41,65 @@ pub struct Inference {
     /// Upper boundary frequency F_hi of the piecewise-linear warp, Hz.
     #[serde(default = "default_boundary_hz")]
     pub warp_boundary_hz: f64,
+    /// Tempo factors tried as well, each unwarped: the segment resampled to play `factor`
+    /// times as fast before the front end, as the training's `speed_factors` do (tempo and
+    /// pitch together). Empty (the default, and what `isogloss train` writes): none. A tempo
+    /// candidate's frames are `factor` times as far apart in the recording.
+    #[serde(default, skip_serializing_if = "Vec::is_empty")]
+    pub speed_factors: Vec<f64>,
+}
+
+/// One front end of the search: a tempo factor and a warp factor (1.0: unchanged).
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct Candidate {
+    /// Tempo: the samples are played this many times as fast before the front end.
+    pub speed: f64,
+    /// Vocal-tract warp of the mel filter bank.
+    pub warp: f64,
+}
+
+impl Candidate {
+    /// The unchanged front end.
+    pub const PLAIN: Candidate = Candidate {
+        speed: 1.0,
+        warp: 1.0,
+    };
+}
+
+/// A candidate ready to compute features: the tempo and the warp built for the front end.
+pub struct Frontend {
+    /// What it is.
+    pub candidate: Candidate,
+    warp: Option<VtlpWarp>,
+}
+
+impl Frontend {
+    /// Features of `samples` through this front end (before normalisation).
+    pub fn features(
+        &self,
+        extractor: &isogloss_features::FeatureExtractor,
+        samples: &[f32],
+    ) -> Result<ndarray::Array2<f32>, isogloss_features::FeatureError> {
+        let resampled;
+        let samples = if self.candidate.speed == 1.0 {
+            samples
+        } else {
+            resampled = isogloss_audio::speed_perturb(samples, self.candidate.speed);
+            &resampled
+        };
+        match &self.warp {
+            None => Ok(extractor.extract(samples)),
+            Some(warp) => extractor.extract_warped(samples, warp),
+        }
+    }
+
+    /// The unchanged front end alone (a model without a search).
+    pub fn plain() -> Vec<Frontend> {
+        vec![Frontend {
+            candidate: Candidate::PLAIN,
+            warp: None,
+        }]
+    }
 }
 
 impl Inference {
@@ -61,6 +120,7 @@ impl Inference {
         Some(Inference {
             warp_factors: factors,
             warp_boundary_hz: vtlp.boundary_hz,
+            speed_factors: Vec::new(),
         })
     }
 
@@ -86,6 +146,15 @@ impl Inference {
                 return Err(bad(format!("{f} is listed twice")));
             }
         }
+        for (i, &f) in self.speed_factors.iter().enumerate() {
+            isogloss_audio::check_speed_factor(f)
+                .map_err(|e| AcousticError::Config(format!("speed_factors: {e}")))?;
+            if self.speed_factors[..i].contains(&f) {
+                return Err(AcousticError::Config(format!(
+                    "speed_factors: {f} is listed twice"
+                )));
+            }
+        }
         let low = self
             .warp_factors
             .iter()
@@ -101,18 +170,38 @@ impl Inference {
         .map_err(|e| bad(e.to_string()))
     }
 
-    /// One warp per factor, `None` for 1.0 (the unwarped front end, bit for bit).
-    pub fn warps(&self, sample_rate: u32) -> Result<Vec<Option<VtlpWarp>>, AcousticError> {
-        self.warp_factors
+    /// The candidates in the order tried: every warp factor at the normal tempo, then every
+    /// tempo factor unwarped (one already listed is not repeated).
+    pub fn candidates(&self) -> Vec<Candidate> {
+        let mut out: Vec<Candidate> = self
+            .warp_factors
             .iter()
-            .map(|&f| {
-                if f == 1.0 {
-                    Ok(None)
+            .map(|&warp| Candidate { speed: 1.0, warp })
+            .collect();
+        for &speed in &self.speed_factors {
+            let candidate = Candidate { speed, warp: 1.0 };
+            if !out.contains(&candidate) {
+                out.push(candidate);
+            }
+        }
+        out
+    }
+
+    /// The front end of each candidate; an unwarped one reads the plain mel filter bank, bit
+    /// for bit.
+    pub fn frontends(&self, sample_rate: u32) -> Result<Vec<Frontend>, AcousticError> {
+        self.candidates()
+            .into_iter()
+            .map(|candidate| {
+                let warp = if candidate.warp == 1.0 {
+                    None
                 } else {
-                    VtlpWarp::new(f, self.warp_boundary_hz, sample_rate)
-                        .map(Some)
-                        .map_err(|e| AcousticError::Config(format!("warp_factors: {e}")))
-                }
+                    Some(
+                        VtlpWarp::new(candidate.warp, self.warp_boundary_hz, sample_rate)
+                            .map_err(|e| AcousticError::Config(format!("warp_factors: {e}")))?,
+                    )
+                };
+                Ok(Frontend { candidate, warp })
             })
             .collect()
     }
@@ -132,12 +221,18 @@ pub fn confidence(log_posteriors: &Array2<f32>) -> f64 {
     total / frames as f64
 }
 
-/// The index of the most confident of `candidates` ([`confidence`]); the first on a tie.
-/// `None` for an empty list.
+/// The index of the most confident of `candidates` ([`confidence`]) among those with frames;
+/// the first on a tie (and when none has frames). `None` for an empty list.
 pub fn most_confident(candidates: &[Array2<f32>]) -> Option<usize> {
     let mut best: Option<(usize, f64)> = None;
     for (i, candidate) in candidates.iter().enumerate() {
-        let c = confidence(candidate);
+        // A candidate without frames (a tempo change can shorten a very short segment to
+        // nothing) says nothing; it wins only when no candidate has frames.
+        let c = if candidate.nrows() == 0 {
+            f64::NEG_INFINITY
+        } else {
+            confidence(candidate)
+        };
         if best.is_none_or(|(_, b)| c > b) {
             best = Some((i, c));
         }
@@ -170,8 +265,11 @@ mod tests {
             most_confident(&[unsure.clone(), sure.clone(), unsure.clone()]),
             Some(1)
         );
-        assert_eq!(most_confident(&[sure.clone(), sure]), Some(0));
+        assert_eq!(most_confident(&[sure.clone(), sure.clone()]), Some(0));
         assert_eq!(most_confident(&[]), None);
+        let empty = Array2::zeros((0, 2));
+        assert_eq!(most_confident(&[empty.clone(), unsure]), Some(1));
+        assert_eq!(most_confident(&[empty.clone(), empty]), Some(0));
     }
 
     #[test]
@@ -204,6 +302,7 @@ mod tests {
         let with = |factors: Vec<f64>| Inference {
             warp_factors: factors,
             warp_boundary_hz: 4800.0,
+            speed_factors: Vec::new(),
         };
         assert!(with(vec![1.0, 0.9, 1.1]).validate(&features).is_ok());
         for (factors, says) in [
@@ -243,9 +342,65 @@ mod tests {
         let search = Inference {
             warp_factors: vec![1.0, 0.9],
             warp_boundary_hz: 4800.0,
+            speed_factors: Vec::new(),
         };
-        let warps = search.warps(16000).unwrap();
-        assert!(warps[0].is_none());
-        assert_eq!(warps[1].as_ref().unwrap().factor(), 0.9);
+        let frontends = search.frontends(16000).unwrap();
+        assert!(frontends[0].warp.is_none());
+        assert_eq!(frontends[0].candidate, Candidate::PLAIN);
+        assert_eq!(frontends[1].warp.as_ref().unwrap().factor(), 0.9);
+    }
+
+    #[test]
+    fn tempo_candidates_come_after_the_warps_each_unwarped_and_once() {
+        let search = Inference {
+            warp_factors: vec![1.0, 0.9, 1.1],
+            warp_boundary_hz: 4800.0,
+            speed_factors: vec![0.9, 1.0, 1.1],
+        };
+        let c = |speed, warp| Candidate { speed, warp };
+        assert_eq!(
+            search.candidates(),
+            [
+                c(1.0, 1.0),
+                c(1.0, 0.9),
+                c(1.0, 1.1),
+                c(0.9, 1.0),
+                c(1.1, 1.0)
+            ]
+        );
+        // Played 1.1 times as fast, a second of audio gives about 1/1.1 as many frames.
+        let features = FeatureConfig::default();
+        let extractor = isogloss_features::FeatureExtractor::new(&features).unwrap();
+        let samples: Vec<f32> = (0..16000).map(|i| (i as f32 * 0.05).sin() * 0.1).collect();
+        let frontends = search.frontends(16000).unwrap();
+        let plain = frontends[0].features(&extractor, &samples).unwrap();
+        let fast = frontends[4].features(&extractor, &samples).unwrap();
+        assert_eq!(plain, extractor.extract(&samples));
+        assert_eq!(plain.nrows(), 98);
+        assert_eq!(
+            fast,
+            extractor.extract(&isogloss_audio::speed_perturb(&samples, 1.1))
+        );
+        assert!(
+            (fast.nrows() as f64 - 98.0 / 1.1).abs() < 2.0,
+            "{}",
+            fast.nrows()
+        );
+        for (bad, says) in [
+            (vec![0.3], "speed factor"),
+            (vec![1.1, 1.1], "listed twice"),
+        ] {
+            let message = Inference {
+                speed_factors: bad,
+                ..search.clone()
+            }
+            .validate(&features)
+            .unwrap_err()
+            .to_string();
+            assert!(
+                message.contains("speed_factors") && message.contains(says),
+                "{message}"
+            );
+        }
     }
 }

@@ -33,6 +33,14 @@ pub trait Recognizer: Sync {
     fn frame_shift_seconds(&self) -> f64;
     /// Natural-log posteriors `[frames, units]` for 16 kHz mono samples.
     fn log_posteriors(&self, samples: &[f32]) -> Result<Array2<f32>, SideError>;
+    /// The posteriors with the seconds between two of their frames in the segment: by default
+    /// [`Recognizer::log_posteriors`] at [`Recognizer::frame_shift_seconds`]. A recognizer
+    /// whose frame rate depends on the segment (a model that read it at another tempo, the
+    /// test-time search of its `model.toml`) says so here; transcription places the words with
+    /// this one.
+    fn timed_log_posteriors(&self, samples: &[f32]) -> Result<(Array2<f32>, f64), SideError> {
+        Ok((self.log_posteriors(samples)?, self.frame_shift_seconds()))
+    }
     /// Files whose content identifies the model (hashed for resuming).
     fn files(&self) -> Vec<PathBuf>;
 }
@@ -296,7 +304,6 @@ fn run_items<L: LanguageModel>(
             )))
         }
     };
-    let shift = recognizer.frame_shift_seconds();
     let group_size = 2 * rayon::current_num_threads();
     let stream = StreamSettings {
         sample_rate: SAMPLE_RATE,
@@ -305,7 +312,6 @@ fn run_items<L: LanguageModel>(
             ..VadConfig::default()
         },
         batch_segments: group_size,
-        frame_shift_seconds: shift,
     };
     let transcribe_one = |item: &BatchItem,
                           decoder: &mut AnyDecoder<'_, L>|
@@ -318,7 +324,7 @@ fn run_items<L: LanguageModel>(
                 let segments = transcribe_stream(
                     chunks,
                     &stream,
-                    |samples| recognizer.log_posteriors(samples),
+                    |samples| recognizer.timed_log_posteriors(samples),
                     new_decoder,
                     |s| seconds = s,
                 )
@@ -338,8 +344,8 @@ fn run_items<L: LanguageModel>(
                     .read_cut(&item.audio, start, end)
                     .map_err(BatchError::Side)?;
                 let seconds = samples.len() as f64 / f64::from(SAMPLE_RATE);
-                let posteriors = recognizer
-                    .log_posteriors(&samples)
+                let (posteriors, shift) = recognizer
+                    .timed_log_posteriors(&samples)
                     .map_err(BatchError::Side)?;
                 let transcript = decoder.decode(posteriors.view())?;
                 let segment =

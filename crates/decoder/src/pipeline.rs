@@ -14,25 +14,26 @@ use crate::segment::{Segmenter, SpeechSegment, VadConfig};
 use crate::{DecodeError, Decoder};
 
 /// Decodes `segments` in parallel. `posteriors` turns a segment's samples into log posteriors
-/// `[frames, units]` (features + acoustic model); `new_decoder` makes one decoder per worker
-/// thread. Results keep the input order; one failing segment does not stop the others.
+/// `[frames, units]` (features + acoustic model) and the seconds between two of those frames
+/// in the segment (the model's frame shift; another one where the model read the segment at
+/// another tempo); `new_decoder` makes one decoder per worker thread. Results keep the input
+/// order; one failing segment does not stop the others.
 pub fn decode_segments<D, E, P, N>(
     segments: &[SpeechSegment],
     sample_rate: u32,
-    frame_shift_seconds: f64,
     posteriors: P,
     new_decoder: N,
 ) -> Vec<Result<TimedSegment, E>>
 where
     D: Decoder,
     E: From<DecodeError> + Send,
-    P: Fn(&[f32]) -> Result<Array2<f32>, E> + Sync,
+    P: Fn(&[f32]) -> Result<(Array2<f32>, f64), E> + Sync,
     N: Fn() -> D + Sync,
 {
     segments
         .par_iter()
         .map_init(&new_decoder, |decoder, segment| {
-            let log_posteriors = posteriors(&segment.samples)?;
+            let (log_posteriors, frame_shift_seconds) = posteriors(&segment.samples)?;
             let transcript = decoder.decode(log_posteriors.view())?;
             Ok(TimedSegment::from_transcript(
                 &transcript,
@@ -53,8 +54,6 @@ pub struct StreamSettings {
     pub vad: VadConfig,
     /// Segments decoded together (in parallel) before the next chunk is read.
     pub batch_segments: usize,
-    /// Seconds between two posterior frames.
-    pub frame_shift_seconds: f64,
 }
 
 /// Transcribes a recording delivered as a stream of sample chunks: voice-activity
@@ -72,24 +71,17 @@ where
     D: Decoder,
     E: From<DecodeError> + Send,
     I: IntoIterator<Item = Result<Vec<f32>, E>>,
-    P: Fn(&[f32]) -> Result<Array2<f32>, E> + Sync,
+    P: Fn(&[f32]) -> Result<(Array2<f32>, f64), E> + Sync,
     N: Fn() -> D + Sync,
 {
     let sample_rate = settings.sample_rate;
-    let frame_shift_seconds = settings.frame_shift_seconds;
     let mut segmenter = Segmenter::new(settings.vad.clone(), sample_rate);
     let mut pending = Vec::new();
     let mut out = Vec::new();
     let mut consumed = 0u64;
     let batch = settings.batch_segments.max(1);
     let flush = |pending: &mut Vec<SpeechSegment>, out: &mut Vec<TimedSegment>| -> Result<(), E> {
-        for result in decode_segments(
-            pending,
-            sample_rate,
-            frame_shift_seconds,
-            &posteriors,
-            &new_decoder,
-        ) {
+        for result in decode_segments(pending, sample_rate, &posteriors, &new_decoder) {
             out.push(result?);
         }
         pending.clear();
@@ -117,9 +109,9 @@ mod tests {
 
     /// A stand-in acoustic model: one frame per 10 ms; a frame is unit 1 ("a") when the
     /// samples are loud, blank otherwise; a loud stretch is a word.
-    fn fake_posteriors(samples: &[f32]) -> Result<Array2<f32>, DecodeError> {
+    fn fake_posteriors(samples: &[f32]) -> Result<(Array2<f32>, f64), DecodeError> {
         let frames = samples.len() / 160;
-        Ok(Array2::from_shape_fn((frames, 3), |(t, u)| {
+        let posteriors = Array2::from_shape_fn((frames, 3), |(t, u)| {
             let loud = samples[t * 160..(t + 1) * 160]
                 .iter()
                 .any(|x| x.abs() > 0.1);
@@ -129,11 +121,30 @@ mod tests {
             } else {
                 (0.01f32).ln()
             }
-        }))
+        });
+        Ok((posteriors, 0.01))
+    }
+
+    /// The same model reading the segment at a slower frame rate (every other frame, 20 ms
+    /// apart), as a tempo-changed front end does: the words must land at the same times.
+    fn fake_posteriors_every_other_frame(
+        samples: &[f32],
+    ) -> Result<(Array2<f32>, f64), DecodeError> {
+        let (all, shift) = fake_posteriors(samples)?;
+        let kept = all.slice(ndarray::s![..;2, ..]).to_owned();
+        Ok((kept, 2.0 * shift))
     }
 
     #[test]
     fn words_land_on_the_recording_time_line_in_order() {
+        words_land_at_the_bursts(fake_posteriors, 0.011);
+        words_land_at_the_bursts(fake_posteriors_every_other_frame, 0.021);
+    }
+
+    /// Posteriors of a segment and the seconds between their frames.
+    type Timed = Result<(Array2<f32>, f64), DecodeError>;
+
+    fn words_land_at_the_bursts(posteriors: fn(&[f32]) -> Timed, tolerance: f64) {
         let rate = 16_000;
         let graph =
             SearchGraph::lexicon_free(vec!["<ctc-blank>".into(), "a".into(), "<wb>".into()])
@@ -158,9 +169,8 @@ mod tests {
                 sample_rate: rate as u32,
                 vad: VadConfig::default(),
                 batch_segments: 2,
-                frame_shift_seconds: 0.01,
             },
-            fake_posteriors,
+            posteriors,
             || GreedyDecoder::new(&graph),
             |seconds| progress.push(seconds),
         )
@@ -169,8 +179,8 @@ mod tests {
         for (segment, burst) in segments.iter().zip(bursts) {
             assert_eq!(segment.words.len(), 1);
             let w = &segment.words[0];
-            assert!((w.start - burst).abs() <= 0.011, "{w:?} vs {burst}");
-            assert!((w.end - (burst + 0.5)).abs() <= 0.011, "{w:?}");
+            assert!((w.start - burst).abs() <= tolerance, "{w:?} vs {burst}");
+            assert!((w.end - (burst + 0.5)).abs() <= tolerance, "{w:?}");
             assert!(segment.start <= w.start && w.end <= segment.end);
         }
         assert!(progress.windows(2).all(|p| p[0] <= p[1]));

@@ -184,7 +184,16 @@ impl Recognizer for ModelRecognizer {
     }
 
     fn log_posteriors(&self, samples: &[f32]) -> Result<Array2<f32>, SideError> {
-        Ok(self.model.segment_posteriors(&self.extractor, samples)?.0)
+        Ok(self.timed_log_posteriors(samples)?.0)
+    }
+
+    fn timed_log_posteriors(&self, samples: &[f32]) -> Result<(Array2<f32>, f64), SideError> {
+        let (posteriors, candidate) = self.model.segment_posteriors(&self.extractor, samples)?;
+        // Frames of a segment read at another tempo lie `speed` times as far apart.
+        Ok((
+            posteriors,
+            self.model.frame_shift_seconds() * candidate.speed,
+        ))
     }
 
     fn files(&self) -> Vec<PathBuf> {
