@@ -581,8 +581,11 @@ mod tests {
     /// Issue 16: a `model.toml` was used without checking its network description; taps such
     /// as `[-2000000000, 0]` overflowed the context arithmetic. Every out-of-range size is now
     /// an error naming `model.toml`, before any weight is read.
-    #[test]
-    fn out_of_range_descriptions_are_errors_naming_model_toml() {
+    /// A small layer-norm model with fresh weights saved in a temporary directory, its
+    /// description carrying `inference`.
+    fn saved_small_model(
+        inference: Option<crate::warp_search::Inference>,
+    ) -> (tempfile::TempDir, ModelDescription) {
         let mut config = ModelConfig::small();
         config.model.normalization = crate::config::Normalization::Layer;
         let units = UnitInventory::graphemes(["abc de"]);
@@ -600,10 +603,16 @@ mod tests {
             augmentation: None,
             self_training: Vec::new(),
             speaker_vectors: None,
-            inference: None,
+            inference,
         };
         let dir = tempfile::tempdir().unwrap();
         AcousticModel::save(dir.path(), &description, &parameters).unwrap();
+        (dir, description)
+    }
+
+    #[test]
+    fn out_of_range_descriptions_are_errors_naming_model_toml() {
+        let (dir, _) = saved_small_model(None);
         let good = std::fs::read_to_string(dir.path().join("model.toml")).unwrap();
         assert!(good.contains("taps = [\n    -2,"), "{good}");
         for (bad, expected) in [
@@ -787,28 +796,10 @@ mod tests {
 
     #[test]
     fn a_bad_inference_table_is_an_error_naming_model_toml_and_the_key() {
-        let mut config = ModelConfig::small();
-        config.model.normalization = crate::config::Normalization::Layer;
-        let units = UnitInventory::graphemes(["abc de"]);
-        let mut rng = ChaCha8Rng::seed_from_u64(3);
-        let parameters =
-            initial_parameters(&config.model, config.features.dims(), units.len(), &mut rng)
-                .unwrap();
-        let description = ModelDescription {
-            format: MODEL_FORMAT,
-            units,
-            features: config.features.clone(),
-            architecture: config.model.clone(),
-            provenance: Provenance::default(),
-            training: None,
-            augmentation: None,
-            self_training: Vec::new(),
-            speaker_vectors: None,
-            inference: crate::warp_search::Inference::from_training(&config.augmentation.vtlp),
-        };
-        assert!(description.inference.is_some());
-        let dir = tempfile::tempdir().unwrap();
-        AcousticModel::save(dir.path(), &description, &parameters).unwrap();
+        let search =
+            crate::warp_search::Inference::from_training(&ModelConfig::small().augmentation.vtlp);
+        assert!(search.is_some());
+        let (dir, description) = saved_small_model(search);
         let good = std::fs::read_to_string(dir.path().join("model.toml")).unwrap();
         assert!(good.contains("[inference]\nwarp_factors = ["), "{good}");
         assert_eq!(
