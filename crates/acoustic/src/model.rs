@@ -511,29 +511,12 @@ mod tests {
 
     #[test]
     fn a_saved_model_loads_and_gives_normalised_posteriors() {
-        // Layer normalisation: fresh parameters carry no running statistics (the batch-norm
-        // round trip is tested in train.rs with a trained model).
-        let mut config = ModelConfig::small();
-        config.model.normalization = crate::config::Normalization::Layer;
-        let units = UnitInventory::graphemes(["abc de"]);
-        let mut rng = ChaCha8Rng::seed_from_u64(2);
-        let parameters =
-            initial_parameters(&config.model, config.features.dims(), units.len(), &mut rng)
-                .unwrap();
-        let description = ModelDescription {
-            format: MODEL_FORMAT,
-            units,
-            features: config.features.clone(),
-            architecture: config.model.clone(),
-            provenance: Provenance::default(),
-            training: Some(config.training.clone()),
-            augmentation: Some(config.augmentation.clone()),
-            self_training: Vec::new(),
-            speaker_vectors: None,
-            inference: None,
-        };
-        let dir = tempfile::tempdir().unwrap();
-        AcousticModel::save(dir.path(), &description, &parameters).unwrap();
+        let config = ModelConfig::small();
+        let (dir, description, parameters) = saved_small_model(|description| {
+            description.training = Some(config.training.clone());
+            description.augmentation = Some(config.augmentation.clone());
+        });
+        let mut rng = ChaCha8Rng::seed_from_u64(5);
         let model = AcousticModel::load(dir.path()).unwrap();
         assert_eq!(model.description(), &description);
         assert_eq!(model.units()[0], "<ctc-blank>");
@@ -581,11 +564,17 @@ mod tests {
     /// Issue 16: a `model.toml` was used without checking its network description; taps such
     /// as `[-2000000000, 0]` overflowed the context arithmetic. Every out-of-range size is now
     /// an error naming `model.toml`, before any weight is read.
-    /// A small layer-norm model with fresh weights saved in a temporary directory, its
-    /// description carrying `inference`.
+    /// A small layer-norm model with fresh weights saved in a temporary directory, after
+    /// `change` has filled in its description's optional parts.
     fn saved_small_model(
-        inference: Option<crate::warp_search::Inference>,
-    ) -> (tempfile::TempDir, ModelDescription) {
+        change: impl FnOnce(&mut ModelDescription),
+    ) -> (
+        tempfile::TempDir,
+        ModelDescription,
+        BTreeMap<String, candle_core::Var>,
+    ) {
+        // Layer normalisation: fresh parameters carry no running statistics (the batch-norm
+        // round trip is tested in train.rs with a trained model).
         let mut config = ModelConfig::small();
         config.model.normalization = crate::config::Normalization::Layer;
         let units = UnitInventory::graphemes(["abc de"]);
@@ -593,7 +582,7 @@ mod tests {
         let parameters =
             initial_parameters(&config.model, config.features.dims(), units.len(), &mut rng)
                 .unwrap();
-        let description = ModelDescription {
+        let mut description = ModelDescription {
             format: MODEL_FORMAT,
             units,
             features: config.features.clone(),
@@ -603,16 +592,17 @@ mod tests {
             augmentation: None,
             self_training: Vec::new(),
             speaker_vectors: None,
-            inference,
+            inference: None,
         };
+        change(&mut description);
         let dir = tempfile::tempdir().unwrap();
         AcousticModel::save(dir.path(), &description, &parameters).unwrap();
-        (dir, description)
+        (dir, description, parameters)
     }
 
     #[test]
     fn out_of_range_descriptions_are_errors_naming_model_toml() {
-        let (dir, _) = saved_small_model(None);
+        let (dir, _, _) = saved_small_model(|_| {});
         let good = std::fs::read_to_string(dir.path().join("model.toml")).unwrap();
         assert!(good.contains("taps = [\n    -2,"), "{good}");
         for (bad, expected) in [
@@ -799,7 +789,7 @@ mod tests {
         let search =
             crate::warp_search::Inference::from_training(&ModelConfig::small().augmentation.vtlp);
         assert!(search.is_some());
-        let (dir, description) = saved_small_model(search);
+        let (dir, description, _) = saved_small_model(|d| d.inference = search);
         let good = std::fs::read_to_string(dir.path().join("model.toml")).unwrap();
         assert!(good.contains("[inference]\nwarp_factors = ["), "{good}");
         assert_eq!(
