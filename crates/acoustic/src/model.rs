@@ -388,7 +388,8 @@ impl AcousticModel {
         self.description.inference.as_ref()
     }
 
-    /// Replaces the warp search (`--warp-factors` of `transcribe`, `sweep`, `demo`), checked
+    /// Replaces the warp search for this loaded model (for a program using the library; the
+    /// commands read the `[inference]` table of `model.toml` and have no flag for it), checked
     /// against the model's front end; `None` or the single factor 1.0 turn it off.
     pub fn set_inference(
         &mut self,
