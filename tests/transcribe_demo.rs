@@ -12,16 +12,17 @@ use isogloss_lm::ArpaModel;
 use isogloss_score::{align, tokenize, TokenRules, VariantMap};
 use isogloss_sweep::resources::lm_words;
 
-/// WER and flexible WER of the first interview with the shipped model (and its warp search), LM
-/// and lexicon at the default decoder settings, measured 26.8 % and 23.9 % (272 reference words;
-/// the interviewer's questions are not in the LM's text; 27.2 % / 25.0 % without the warp
+/// WER and flexible WER of the first interview with the shipped model (and its warp search,
+/// choosing by the decoder), LM and lexicon at the default decoder settings, measured 25.4 % and
+/// 23.2 % (272 reference words; the interviewer's questions are not in the LM's text; 26.8 % /
+/// 23.9 % choosing the warp by the posteriors' confidence; 27.2 % / 25.0 % without the warp
 /// search; 29.4 % / 26.5 % with the width-384 model before it,
 /// 32.7 % / 29.4 % with the width-320 one,
 /// 28.3 % / 25.0 % with the light-dose model before that, which did worse on every degraded
 /// channel; 36.8 % / 33.5 % with the model of an early recipe), plus about two points
 /// (DEVELOPERS.md).
-const MAX_INTERVIEW_WER: f64 = 0.288;
-const MAX_INTERVIEW_FLEXIBLE_WER: f64 = 0.259;
+const MAX_INTERVIEW_WER: f64 = 0.274;
+const MAX_INTERVIEW_FLEXIBLE_WER: f64 = 0.252;
 
 fn repo(path: &str) -> PathBuf {
     Path::new(env!("CARGO_MANIFEST_DIR"))
@@ -124,10 +125,10 @@ fn lm_and_lexicon_decoding_beats_greedy_on_the_test_split() {
         "LM + lexicon WER {wer} should be below greedy WER {greedy_wer}"
     );
     // The same LM and lexicon as `isogloss demo` at the default settings: the demo's measured
-    // 10.9 % / 7.1 % (README) plus about two points, as in tests/demo_cli.rs.
+    // 10.4 % / 6.8 % (README) plus about two points, as in tests/demo_cli.rs.
     assert!(
-        wer <= 0.129 && flexible_wer <= 0.091,
-        "LM + lexicon WER {wer:.3} / flexible {flexible_wer:.3} above 0.129 / 0.091"
+        wer <= 0.124 && flexible_wer <= 0.088,
+        "LM + lexicon WER {wer:.3} / flexible {flexible_wer:.3} above 0.124 / 0.088"
     );
     assert!(
         flexible_wer < wer,

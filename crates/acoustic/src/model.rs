@@ -403,31 +403,48 @@ impl AcousticModel {
         Ok(())
     }
 
-    /// Log-posteriors of one segment's 16 kHz samples as `transcribe` computes them: the
-    /// features of `extractor` (the model's front end), normalised by the segment's own
-    /// statistics unless the model normalises nothing, through every factor of the warp search
-    /// ([`crate::warp_search`]); the most confident posteriors and the front end that gave
-    /// them ([`Candidate::PLAIN`] without a search). A tempo candidate's frames lie
-    /// `candidate.speed` times the model's frame shift apart in the segment. A segment shorter
-    /// than one frame gives no frames.
+    /// Log-posteriors of one segment's 16 kHz samples through the most confident candidate of
+    /// the warp search ([`AcousticModel::segment_readings`], first item), and the front end
+    /// that gave them ([`Candidate::PLAIN`] without a search).
     pub fn segment_posteriors(
         &self,
         extractor: &isogloss_features::FeatureExtractor,
         samples: &[f32],
     ) -> Result<(Array2<f32>, Candidate), AcousticError> {
+        let mut readings = self.segment_readings(extractor, samples)?;
+        // Never empty: a search has at least one candidate, and so has no search.
+        Ok(readings.swap_remove(0))
+    }
+
+    /// Log-posteriors of one segment's 16 kHz samples as `transcribe` computes them: the
+    /// features of `extractor` (the model's front end), normalised by the segment's own
+    /// statistics unless the model normalises nothing, through every candidate of the warp
+    /// search ([`crate::warp_search`]). What the decoder is handed: every candidate's
+    /// posteriors with its front end, most confident first, or the most confident alone
+    /// (`choose = "posteriors"`, [`crate::warp_search::arrange`]); the unwarped front end alone
+    /// without a search. A tempo candidate's frames lie `candidate.speed` times the model's
+    /// frame shift apart in the segment. A segment shorter than one frame gives no frames.
+    pub fn segment_readings(
+        &self,
+        extractor: &isogloss_features::FeatureExtractor,
+        samples: &[f32],
+    ) -> Result<Vec<(Array2<f32>, Candidate)>, AcousticError> {
         let config = &self.description.features;
-        let frontends = match &self.description.inference {
-            Some(search) => search.frontends(config.sample_rate)?,
-            None => Frontend::plain(),
+        let (frontends, choose) = match &self.description.inference {
+            Some(search) => (search.frontends(config.sample_rate)?, search.choose),
+            None => (Frontend::plain(), Default::default()),
         };
         let mut candidates = Vec::with_capacity(frontends.len());
         for frontend in &frontends {
             let mut features = frontend.features(extractor, samples)?;
             if features.nrows() == 0 {
                 if frontend.candidate == Candidate::PLAIN {
-                    return Ok((Array2::zeros((0, self.units().len())), Candidate::PLAIN));
+                    return Ok(vec![(
+                        Array2::zeros((0, self.units().len())),
+                        Candidate::PLAIN,
+                    )]);
                 }
-                candidates.push(Array2::zeros((0, self.units().len())));
+                candidates.push((Array2::zeros((0, self.units().len())), frontend.candidate));
                 continue;
             }
             // A segment of a recording is normalised by its own statistics. A model trained
@@ -441,10 +458,9 @@ impl AcousticModel {
                 )?;
                 cmvn.apply(&mut features, "segment")?;
             }
-            candidates.push(self.log_posteriors(&features)?);
+            candidates.push((self.log_posteriors(&features)?, frontend.candidate));
         }
-        let best = crate::warp_search::most_confident(&candidates).unwrap_or(0);
-        Ok((candidates.swap_remove(best), frontends[best].candidate))
+        Ok(crate::warp_search::arrange(choose, candidates))
     }
 
     /// What the network reads for `[frames, dims]` normalised features: the features
@@ -770,6 +786,7 @@ mod tests {
                 warp_factors: vec![1.0],
                 warp_boundary_hz: 4800.0,
                 speed_factors: Vec::new(),
+                choose: Default::default(),
             }))
             .unwrap();
         assert!(model.inference().is_none());
@@ -781,6 +798,7 @@ mod tests {
             warp_factors: vec![1.0, 0.3],
             warp_boundary_hz: 4800.0,
             speed_factors: Vec::new(),
+            choose: Default::default(),
         };
         assert!(model.set_inference(Some(too_strong)).is_err());
     }

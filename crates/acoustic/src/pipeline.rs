@@ -1118,17 +1118,18 @@ pub fn train_with(
 /// Log-posteriors `[frames, units]` of every utterance of a manifest, normalised the way the
 /// model was trained; a failed utterance gives an error message and the others carry on. With a
 /// warp search (`[inference]`, [`crate::warp_search`]) each utterance's features are computed
-/// through every factor, each normalised as the model says, and the most confident posteriors
-/// are kept.
+/// through every candidate, each normalised as the model says, and the posteriors the decoder
+/// is to choose from are kept, most confident first ([`crate::warp_search::arrange`]); without
+/// one, the unwarped posteriors alone. Every utterance that succeeds has at least one.
 pub fn manifest_posteriors(
     model: &AcousticModel,
     manifest: &Manifest,
     on_file_done: &(dyn Fn(usize, usize) + Sync),
-) -> Result<Vec<Result<Array2<f32>, String>>, AcousticError> {
+) -> Result<Vec<Result<Vec<Array2<f32>>, String>>, AcousticError> {
     let config = model.feature_config();
-    let frontends = match model.inference() {
-        Some(inference) => inference.frontends(config.sample_rate)?,
-        None => Frontend::plain(),
+    let (frontends, choose) = match model.inference() {
+        Some(inference) => (inference.frontends(config.sample_rate)?, inference.choose),
+        None => (Frontend::plain(), Default::default()),
     };
     let raw = features_of_manifest(
         manifest,
@@ -1141,7 +1142,7 @@ pub fn manifest_posteriors(
     let mut ok_indices = Vec::new();
     // by_warp[k][j]: the features of the j-th readable utterance through front end k.
     let mut by_warp: Vec<Vec<Vec<Array2<f32>>>> = vec![Vec::new(); frontends.len()];
-    let mut results: Vec<Result<Array2<f32>, String>> = Vec::with_capacity(raw.len());
+    let mut results: Vec<Result<Vec<Array2<f32>>, String>> = Vec::with_capacity(raw.len());
     for (i, result) in raw.into_iter().enumerate() {
         match result {
             Ok(matrices) => {
@@ -1149,7 +1150,7 @@ pub fn manifest_posteriors(
                 for (k, matrix) in matrices.into_iter().enumerate() {
                     by_warp[k].push(vec![matrix]);
                 }
-                results.push(Ok(Array2::zeros((0, 0))));
+                results.push(Ok(Vec::new()));
             }
             Err(message) => results.push(Err(message)),
         }
@@ -1161,24 +1162,27 @@ pub fn manifest_posteriors(
     for features in by_warp.iter_mut() {
         normalize(features, &speakers, config)?;
     }
-    let posteriors: Vec<Result<Array2<f32>, String>> = ok_indices
+    let posteriors: Vec<Result<Vec<Array2<f32>>, String>> = ok_indices
         .par_iter()
         .enumerate()
         .map(|(j, &i)| {
             let u = &manifest.utterances[i];
             let mut candidates = Vec::with_capacity(by_warp.len());
             for features in &by_warp {
-                candidates.push(model.log_posteriors(&features[j][0]).map_err(|e| {
+                let posteriors = model.log_posteriors(&features[j][0]).map_err(|e| {
                     format!(
                         "{}, line {} ({}): {e}",
                         manifest.path.display(),
                         u.line,
                         u.id
                     )
-                })?);
+                })?;
+                candidates.push((posteriors, ()));
             }
-            let best = crate::warp_search::most_confident(&candidates).unwrap_or(0);
-            Ok(candidates.swap_remove(best))
+            Ok(crate::warp_search::arrange(choose, candidates)
+                .into_iter()
+                .map(|(posteriors, ())| posteriors)
+                .collect())
         })
         .collect();
     for (i, p) in ok_indices.into_iter().zip(posteriors) {

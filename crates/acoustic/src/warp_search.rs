@@ -1,19 +1,24 @@
 //! Test-time warp search: the front end run at a few vocal-tract warp factors, the network's
-//! log-posteriors computed for each, and those of the most confident factor kept.
+//! log-posteriors computed for each, and one of them kept per segment.
 //!
 //! A network trained with vocal-tract length perturbation (`[augmentation.vtlp]`) has seen
 //! every warp factor of its training range, so at test time a voice unlike the training voices
-//! can be read through the warp under which the network is surest of itself. Confidence is
-//! the mean over output frames of the largest log-posterior of the frame (blank included):
-//! 0 when every frame is certain, more negative the more the network hesitates. This is the
-//! classic idea of choosing the warp per utterance that maximises the model's score (common
-//! practice in speaker normalisation; here with the network's own posteriors as the score).
-//! Each segment is searched on its own, so `transcribe` needs no speaker labels.
+//! can be read through the warp that suits it best. Which one is decided per segment, so
+//! `transcribe` needs no speaker labels, in one of two ways ([`Choice`]):
 //!
-//! The search is written in `model.toml` as `[inference] warp_factors`
-//! (docs/model-directory.md): `isogloss train` writes the two ends of its VTLP range and 1.0;
-//! a model without the table decodes with the unwarped front end alone, as before.
-//! Measured in DEVELOPERS.md ("Test-time warp search").
+//! - by the decoder (the default): every candidate's posteriors are decoded, and the candidate
+//!   whose best hypothesis has the highest acoustic score, ln P(units | posteriors), is kept —
+//!   the warp under which the recognised words are most likely, the classic maximum-likelihood
+//!   choice of a warp factor (common practice in speaker normalisation), with the decoder's own
+//!   hypothesis as the transcription. It costs one beam search per candidate;
+//! - by the posteriors alone: the most confident candidate, confidence being the mean over
+//!   output frames of the frame's largest log-posterior (blank included; 0 when every frame
+//!   is certain). Greedy decoding always chooses this way.
+//!
+//! The search is written in `model.toml` as `[inference]` (docs/model-directory.md):
+//! `isogloss train` writes the two ends of its VTLP range and 1.0; a model without the table
+//! decodes with the unwarped front end alone, as before. Measured in DEVELOPERS.md ("Test-time
+//! warp search").
 
 use ndarray::Array2;
 use serde::{Deserialize, Serialize};
@@ -36,7 +41,7 @@ pub const FACTOR_LIMITS: [f64; 2] = [0.5, 2.0];
 #[serde(deny_unknown_fields)]
 pub struct Inference {
     /// Vocal-tract warp factors tried per segment (each > 0; 1.0 is the unwarped front end).
-    /// The most confident wins; on a tie the first listed.
+    /// On a tie between candidates the first listed wins.
     pub warp_factors: Vec<f64>,
     /// Upper boundary frequency F_hi of the piecewise-linear warp, Hz.
     #[serde(default = "default_boundary_hz")]
@@ -47,6 +52,25 @@ pub struct Inference {
     /// candidate's frames are `factor` times as far apart in the recording.
     #[serde(default, skip_serializing_if = "Vec::is_empty")]
     pub speed_factors: Vec<f64>,
+    /// How the candidate is chosen per segment ([`Choice`]); by default with the decoder.
+    #[serde(default)]
+    pub choose: Choice,
+}
+
+/// How the search chooses among its candidates.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Default, Serialize, Deserialize)]
+#[serde(rename_all = "kebab-case")]
+pub enum Choice {
+    /// Every candidate goes to the decoder and the one whose best hypothesis has the highest
+    /// acoustic score (ln P(units | posteriors), summed over the hypothesis' alignments) is
+    /// kept: the warp under which the recognised words are most likely. A greedy decoder has
+    /// no hypotheses to compare and keeps the most confident candidate, as
+    /// [`Choice::Posteriors`] does. Ties go to the more confident candidate.
+    #[default]
+    Hypothesis,
+    /// The candidate whose posteriors are most confident ([`confidence`]) alone goes to the
+    /// decoder: one beam search per segment instead of one per candidate.
+    Posteriors,
 }
 
 /// One front end of the search: a tempo factor and a warp factor (1.0: unchanged).
@@ -121,6 +145,7 @@ impl Inference {
             warp_factors: factors,
             warp_boundary_hz: vtlp.boundary_hz,
             speed_factors: Vec::new(),
+            choose: Choice::default(),
         })
     }
 
@@ -224,20 +249,45 @@ pub fn confidence(log_posteriors: &Array2<f32>) -> f64 {
 /// The index of the most confident of `candidates` ([`confidence`]) among those with frames;
 /// the first on a tie (and when none has frames). `None` for an empty list.
 pub fn most_confident(candidates: &[Array2<f32>]) -> Option<usize> {
-    let mut best: Option<(usize, f64)> = None;
-    for (i, candidate) in candidates.iter().enumerate() {
-        // A candidate without frames (a tempo change can shorten a very short segment to
-        // nothing) says nothing; it wins only when no candidate has frames.
-        let c = if candidate.nrows() == 0 {
-            f64::NEG_INFINITY
-        } else {
-            confidence(candidate)
-        };
-        if best.is_none_or(|(_, b)| c > b) {
-            best = Some((i, c));
-        }
-    }
-    best.map(|(i, _)| i)
+    by_confidence(candidates.iter()).first().copied()
+}
+
+/// The indices of `candidates` from the most confident ([`confidence`]) to the least, those
+/// without frames last (a tempo change can shorten a very short segment to nothing, which says
+/// nothing about the segment); equals keep their order.
+pub fn by_confidence<'a>(candidates: impl IntoIterator<Item = &'a Array2<f32>>) -> Vec<usize> {
+    let scores: Vec<f64> = candidates
+        .into_iter()
+        .map(|candidate| {
+            if candidate.nrows() == 0 {
+                f64::NEG_INFINITY
+            } else {
+                confidence(candidate)
+            }
+        })
+        .collect();
+    let mut order: Vec<usize> = (0..scores.len()).collect();
+    // A stable sort, descending; no score is NaN (posteriors are checked finite or -inf, and
+    // a frame's largest is finite).
+    order.sort_by(|&a, &b| scores[b].total_cmp(&scores[a]));
+    order
+}
+
+/// Keeps the candidates a search hands to the decoder: all of them, most confident first, for
+/// [`Choice::Hypothesis`]; the most confident alone for [`Choice::Posteriors`]. Each
+/// candidate travels with its own `T` (its front end, its frame shift).
+pub fn arrange<T>(choose: Choice, candidates: Vec<(Array2<f32>, T)>) -> Vec<(Array2<f32>, T)> {
+    let order = by_confidence(candidates.iter().map(|(m, _)| m));
+    let mut slots: Vec<Option<(Array2<f32>, T)>> = candidates.into_iter().map(Some).collect();
+    let keep = match choose {
+        Choice::Hypothesis => order.len(),
+        Choice::Posteriors => order.len().min(1),
+    };
+    order
+        .into_iter()
+        .take(keep)
+        .filter_map(|i| slots[i].take())
+        .collect()
 }
 
 #[cfg(test)]
@@ -303,6 +353,7 @@ mod tests {
             warp_factors: factors,
             warp_boundary_hz: 4800.0,
             speed_factors: Vec::new(),
+            choose: Default::default(),
         };
         assert!(with(vec![1.0, 0.9, 1.1]).validate(&features).is_ok());
         for (factors, says) in [
@@ -343,6 +394,7 @@ mod tests {
             warp_factors: vec![1.0, 0.9],
             warp_boundary_hz: 4800.0,
             speed_factors: Vec::new(),
+            choose: Default::default(),
         };
         let frontends = search.frontends(16000).unwrap();
         assert!(frontends[0].warp.is_none());
@@ -356,6 +408,7 @@ mod tests {
             warp_factors: vec![1.0, 0.9, 1.1],
             warp_boundary_hz: 4800.0,
             speed_factors: vec![0.9, 1.0, 1.1],
+            choose: Default::default(),
         };
         let c = |speed, warp| Candidate { speed, warp };
         assert_eq!(
@@ -402,5 +455,48 @@ mod tests {
                 "{message}"
             );
         }
+    }
+
+    #[test]
+    fn the_decoder_gets_every_candidate_most_confident_first_or_the_most_confident_alone() {
+        let unsure = array![[0.5f32.ln(), 0.5f32.ln()]];
+        let sure = array![[0.9f32.ln(), 0.1f32.ln()]];
+        let middling = array![[0.7f32.ln(), 0.3f32.ln()]];
+        let empty = Array2::zeros((0, 2));
+        let candidates = vec![
+            (empty, 'e'),
+            (unsure, 'u'),
+            (sure.clone(), 's'),
+            (middling, 'm'),
+            (sure, 't'),
+        ];
+        let tags = |kept: Vec<(Array2<f32>, char)>| -> String {
+            kept.into_iter().map(|(_, tag)| tag).collect()
+        };
+        assert_eq!(
+            tags(arrange(Choice::Hypothesis, candidates.clone())),
+            "stmue"
+        );
+        assert_eq!(tags(arrange(Choice::Posteriors, candidates)), "s");
+        assert_eq!(tags(arrange::<char>(Choice::Posteriors, Vec::new())), "");
+    }
+
+    #[test]
+    fn the_choice_is_read_from_model_toml_and_defaults_to_the_decoder() {
+        let read = |text: &str| toml::from_str::<Inference>(text);
+        let plain = read("warp_factors = [1.0, 0.9]").unwrap();
+        assert_eq!(plain.choose, Choice::Hypothesis);
+        let by_posteriors = read("warp_factors = [1.0]\nchoose = \"posteriors\"").unwrap();
+        assert_eq!(by_posteriors.choose, Choice::Posteriors);
+        let message = read("warp_factors = [1.0]\nchoose = \"loudest\"")
+            .unwrap_err()
+            .to_string();
+        assert!(
+            message.contains("choose") || message.contains("hypothesis"),
+            "{message}"
+        );
+        // Written back, the choice round-trips.
+        let text = toml::to_string(&by_posteriors).unwrap();
+        assert_eq!(read(&text).unwrap(), by_posteriors);
     }
 }

@@ -33,7 +33,7 @@ fn exact_transcripts(model: &AcousticModel, path: &Path) -> usize {
     for (utterance, result) in manifest.utterances.iter().zip(posteriors) {
         let text = model
             .inventory()
-            .to_text(&greedy_decode(&result.unwrap(), model.units()));
+            .to_text(&greedy_decode(&result.unwrap()[0], model.units()));
         correct += usize::from(text == utterance.transcripts[1]);
     }
     correct
@@ -577,8 +577,9 @@ fn training_and_transcription_give_the_network_the_same_speaker_vectors() {
     }
 }
 
-/// `manifest_posteriors` (what `sweep` and `demo` decode) and `segment_posteriors` (what
-/// `transcribe` decodes) agree under the shipped model's warp search, and an utterance whose
+/// `manifest_posteriors` (what `sweep` and `demo` decode) and `segment_readings` (what
+/// `transcribe` decodes) agree under the shipped model's warp search: the same three readings
+/// in the same order, the first the most confident (`segment_posteriors`); an utterance whose
 /// audio fails is its own error, the others unaffected.
 #[test]
 fn the_warp_search_gives_the_same_posteriors_to_sweep_and_transcribe() {
@@ -608,8 +609,24 @@ fn the_warp_search_gives_the_same_posteriors_to_sweep_and_transcribe() {
         let samples = isogloss_audio::read_segments(&utterance.audio, &[utterance.segment()])
             .unwrap()
             .remove(0);
-        let (expected, factor) = model.segment_posteriors(&extractor, &samples).unwrap();
-        assert_eq!(result.as_ref().unwrap(), &expected, "{}", utterance.id);
+        let readings = model.segment_readings(&extractor, &samples).unwrap();
+        let (first, factor) = model.segment_posteriors(&extractor, &samples).unwrap();
+        let result = result.as_ref().unwrap();
+        assert_eq!(result.len(), 3);
+        assert_eq!(readings.len(), 3);
+        for (k, (posteriors, _)) in readings.iter().enumerate() {
+            assert_eq!(&result[k], posteriors, "{} reading {k}", utterance.id);
+        }
+        assert_eq!(result[0], first);
+        assert_eq!(readings[0].1, factor);
+        let confidences: Vec<f64> = result
+            .iter()
+            .map(isogloss_acoustic::warp_search::confidence)
+            .collect();
+        assert!(
+            confidences.windows(2).all(|c| c[0] >= c[1]),
+            "{confidences:?}"
+        );
         factors.push(factor);
     }
     eprintln!("factors chosen: {factors:?}");

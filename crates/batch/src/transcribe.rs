@@ -8,7 +8,7 @@ use std::path::{Path, PathBuf};
 
 use isogloss_corpus::tsv::Table;
 use isogloss_decoder::output::{ItemTranscript, OutputFormat, TimedSegment};
-use isogloss_decoder::pipeline::{transcribe_stream, StreamSettings};
+use isogloss_decoder::pipeline::{transcribe_stream, Reading, StreamSettings};
 use isogloss_decoder::segment::VadConfig;
 use isogloss_decoder::{
     DecodeError, Decoder, GreedyDecoder, LanguageModel, NoLanguageModel, PrefixBeamSearch,
@@ -33,13 +33,17 @@ pub trait Recognizer: Sync {
     fn frame_shift_seconds(&self) -> f64;
     /// Natural-log posteriors `[frames, units]` for 16 kHz mono samples.
     fn log_posteriors(&self, samples: &[f32]) -> Result<Array2<f32>, SideError>;
-    /// The posteriors with the seconds between two of their frames in the segment: by default
-    /// [`Recognizer::log_posteriors`] at [`Recognizer::frame_shift_seconds`]. A recognizer
-    /// whose frame rate depends on the segment (a model that read it at another tempo, the
-    /// test-time search of its `model.toml`) says so here; transcription places the words with
-    /// this one.
-    fn timed_log_posteriors(&self, samples: &[f32]) -> Result<(Array2<f32>, f64), SideError> {
-        Ok((self.log_posteriors(samples)?, self.frame_shift_seconds()))
+    /// The readings the decoder chooses from ([`Decoder::decode_readings`]), each posteriors
+    /// with the seconds between two of their frames in the segment, the preferred first: by
+    /// default [`Recognizer::log_posteriors`] alone at [`Recognizer::frame_shift_seconds`]. A
+    /// recognizer with a test-time search (the `[inference]` of its `model.toml`) gives one per
+    /// candidate; transcription places the words with the frame shift of the reading the
+    /// decoder kept.
+    fn readings(&self, samples: &[f32]) -> Result<Vec<Reading>, SideError> {
+        Ok(vec![(
+            self.log_posteriors(samples)?,
+            self.frame_shift_seconds(),
+        )])
     }
     /// Files whose content identifies the model (hashed for resuming).
     fn files(&self) -> Vec<PathBuf>;
@@ -173,6 +177,16 @@ impl<L: LanguageModel> Decoder for AnyDecoder<'_, L> {
         match self {
             AnyDecoder::Greedy(d) => d.decode(log_posteriors),
             AnyDecoder::Beam(d) => d.decode(log_posteriors),
+        }
+    }
+
+    fn decode_readings(
+        &mut self,
+        readings: &[ArrayView2<'_, f32>],
+    ) -> Result<(Transcript, usize), DecodeError> {
+        match self {
+            AnyDecoder::Greedy(d) => d.decode_readings(readings),
+            AnyDecoder::Beam(d) => d.decode_readings(readings),
         }
     }
 }
@@ -324,7 +338,7 @@ fn run_items<L: LanguageModel>(
                 let segments = transcribe_stream(
                     chunks,
                     &stream,
-                    |samples| recognizer.timed_log_posteriors(samples),
+                    |samples| recognizer.readings(samples),
                     new_decoder,
                     |s| seconds = s,
                 )
@@ -344,10 +358,10 @@ fn run_items<L: LanguageModel>(
                     .read_cut(&item.audio, start, end)
                     .map_err(BatchError::Side)?;
                 let seconds = samples.len() as f64 / f64::from(SAMPLE_RATE);
-                let (posteriors, shift) = recognizer
-                    .timed_log_posteriors(&samples)
-                    .map_err(BatchError::Side)?;
-                let transcript = decoder.decode(posteriors.view())?;
+                let readings = recognizer.readings(&samples).map_err(BatchError::Side)?;
+                let views: Vec<_> = readings.iter().map(|(p, _)| p.view()).collect();
+                let (transcript, chosen) = decoder.decode_readings(&views)?;
+                let shift = readings.get(chosen).map_or(0.0, |(_, shift)| *shift);
                 let segment =
                     TimedSegment::from_transcript(&transcript, start, start + seconds, shift);
                 Ok((

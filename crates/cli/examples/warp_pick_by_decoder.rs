@@ -59,6 +59,7 @@ fn main() -> anyhow::Result<()> {
         warp_factors: vec![1.0, 0.9, 1.1],
         warp_boundary_hz: 4800.0,
         speed_factors: Vec::new(),
+        choose: Default::default(),
     };
     let frontends = search.frontends(16000)?;
     let config = model.feature_config().clone();

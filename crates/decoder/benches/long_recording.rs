@@ -65,7 +65,7 @@ fn main() {
             .collect::<Vec<f32>>();
         Ok::<_, DecodeError>(samples)
     });
-    let posteriors = |samples: &[f32]| -> Result<(Array2<f32>, f64), DecodeError> {
+    let posteriors = |samples: &[f32]| -> Result<Vec<(Array2<f32>, f64)>, DecodeError> {
         let frames = samples.len() / 160;
         let mut rng = ChaCha8Rng::seed_from_u64(samples.len() as u64);
         let mut out = Array2::from_elem((frames, unit_count), (1e-5f32).ln());
@@ -79,7 +79,7 @@ fn main() {
             };
             out[[t, unit]] = (1.0 - 1e-5 * (unit_count - 1) as f32).ln();
         }
-        Ok((out, 0.01))
+        Ok(vec![(out, 0.01)])
     };
     let settings = StreamSettings {
         sample_rate: RATE as u32,

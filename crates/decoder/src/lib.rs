@@ -130,6 +130,48 @@ pub enum DecodeError {
 pub trait Decoder {
     /// Decodes one utterance.
     fn decode(&mut self, log_posteriors: ArrayView2<'_, f32>) -> Result<Transcript, DecodeError>;
+
+    /// Decodes one utterance read several ways (the candidates of a test-time search, ordered
+    /// by the acoustic side, its preferred first) and keeps one: the transcript and the index
+    /// of the reading it came from. By default the first reading alone is decoded; a decoder
+    /// that compares hypotheses ([`PrefixBeamSearch`]) decodes every reading with frames and
+    /// keeps the transcript with the highest acoustic score, the earliest on a tie. An empty
+    /// list gives an empty transcript.
+    fn decode_readings(
+        &mut self,
+        readings: &[ArrayView2<'_, f32>],
+    ) -> Result<(Transcript, usize), DecodeError> {
+        match readings.first() {
+            Some(first) => Ok((self.decode(*first)?, 0)),
+            None => Ok((Transcript::empty(), 0)),
+        }
+    }
+}
+
+/// The reading whose best hypothesis has the highest acoustic score (the earliest on a tie),
+/// among those with frames; the first reading when none has frames.
+pub(crate) fn decode_each_reading<D: Decoder + ?Sized>(
+    decoder: &mut D,
+    readings: &[ArrayView2<'_, f32>],
+) -> Result<(Transcript, usize), DecodeError> {
+    let mut best: Option<(Transcript, usize)> = None;
+    for (i, reading) in readings.iter().enumerate() {
+        if reading.nrows() == 0 {
+            continue;
+        }
+        let transcript = decoder.decode(*reading)?;
+        if best
+            .as_ref()
+            .is_none_or(|(b, _)| transcript.acoustic_score > b.acoustic_score)
+        {
+            best = Some((transcript, i));
+        }
+    }
+    match (best, readings.first()) {
+        (Some(best), _) => Ok(best),
+        (None, Some(first)) => Ok((decoder.decode(*first)?, 0)),
+        (None, None) => Ok((Transcript::empty(), 0)),
+    }
 }
 
 fn check_posteriors(

@@ -13,11 +13,16 @@ use crate::output::TimedSegment;
 use crate::segment::{Segmenter, SpeechSegment, VadConfig};
 use crate::{DecodeError, Decoder};
 
-/// Decodes `segments` in parallel. `posteriors` turns a segment's samples into log posteriors
-/// `[frames, units]` (features + acoustic model) and the seconds between two of those frames
-/// in the segment (the model's frame shift; another one where the model read the segment at
-/// another tempo); `new_decoder` makes one decoder per worker thread. Results keep the input
-/// order; one failing segment does not stop the others.
+/// One reading of a segment: log posteriors `[frames, units]` and the seconds between two of
+/// those frames in the segment (the model's frame shift; another one where the model read the
+/// segment at another tempo).
+pub type Reading = (Array2<f32>, f64);
+
+/// Decodes `segments` in parallel. `posteriors` turns a segment's samples into its readings
+/// (features + acoustic model; several for a test-time search, the acoustic side's preferred
+/// first), of which the decoder keeps one ([`Decoder::decode_readings`]); `new_decoder` makes
+/// one decoder per worker thread. Results keep the input order; one failing segment does not
+/// stop the others.
 pub fn decode_segments<D, E, P, N>(
     segments: &[SpeechSegment],
     sample_rate: u32,
@@ -27,14 +32,16 @@ pub fn decode_segments<D, E, P, N>(
 where
     D: Decoder,
     E: From<DecodeError> + Send,
-    P: Fn(&[f32]) -> Result<(Array2<f32>, f64), E> + Sync,
+    P: Fn(&[f32]) -> Result<Vec<Reading>, E> + Sync,
     N: Fn() -> D + Sync,
 {
     segments
         .par_iter()
         .map_init(&new_decoder, |decoder, segment| {
-            let (log_posteriors, frame_shift_seconds) = posteriors(&segment.samples)?;
-            let transcript = decoder.decode(log_posteriors.view())?;
+            let readings = posteriors(&segment.samples)?;
+            let views: Vec<_> = readings.iter().map(|(p, _)| p.view()).collect();
+            let (transcript, chosen) = decoder.decode_readings(&views)?;
+            let frame_shift_seconds = readings.get(chosen).map_or(0.0, |(_, shift)| *shift);
             Ok(TimedSegment::from_transcript(
                 &transcript,
                 segment.start_seconds(sample_rate),
@@ -71,7 +78,7 @@ where
     D: Decoder,
     E: From<DecodeError> + Send,
     I: IntoIterator<Item = Result<Vec<f32>, E>>,
-    P: Fn(&[f32]) -> Result<(Array2<f32>, f64), E> + Sync,
+    P: Fn(&[f32]) -> Result<Vec<Reading>, E> + Sync,
     N: Fn() -> D + Sync,
 {
     let sample_rate = settings.sample_rate;
@@ -135,20 +142,51 @@ mod tests {
         Ok((kept, 2.0 * shift))
     }
 
+    /// Two readings of a segment, the first less sure of itself and on a wrong time line (its
+    /// frames claimed 5 ms apart): a decoder that compares hypotheses must keep the second
+    /// and place the words with the second's frame shift; a greedy decoder keeps the first.
+    fn two_readings(samples: &[f32]) -> Result<Vec<Reading>, DecodeError> {
+        let (sure, shift) = fake_posteriors(samples)?;
+        let unsure = sure.mapv(|v| {
+            if v > 0.5f32.ln() {
+                0.6f32.ln()
+            } else {
+                0.2f32.ln()
+            }
+        });
+        let every_other = sure.slice(ndarray::s![..;2, ..]).to_owned();
+        Ok(vec![(unsure, shift / 2.0), (every_other, 2.0 * shift)])
+    }
+
     #[test]
     fn words_land_on_the_recording_time_line_in_order() {
-        words_land_at_the_bursts(fake_posteriors, 0.011);
-        words_land_at_the_bursts(fake_posteriors_every_other_frame, 0.021);
+        let graph =
+            SearchGraph::lexicon_free(vec!["<ctc-blank>".into(), "a".into(), "<wb>".into()])
+                .unwrap();
+        let greedy = || GreedyDecoder::new(&graph);
+        let one = |p: fn(&[f32]) -> Timed| move |s: &[f32]| p(s).map(|r| vec![r]);
+        words_land_at_the_bursts(one(fake_posteriors), greedy, 0.011, 1.0);
+        words_land_at_the_bursts(one(fake_posteriors_every_other_frame), greedy, 0.021, 1.0);
+        // The greedy decoder keeps the first reading: times at half the true ones.
+        words_land_at_the_bursts(two_readings, greedy, 0.011, 0.5);
+        let lm = crate::NoLanguageModel;
+        let beam = || crate::PrefixBeamSearch::new(&graph, &lm, crate::SearchOptions::default());
+        words_land_at_the_bursts(one(fake_posteriors), beam, 0.011, 1.0);
+        words_land_at_the_bursts(two_readings, beam, 0.021, 1.0);
     }
 
     /// Posteriors of a segment and the seconds between their frames.
     type Timed = Result<(Array2<f32>, f64), DecodeError>;
 
-    fn words_land_at_the_bursts(posteriors: fn(&[f32]) -> Timed, tolerance: f64) {
+    /// Transcribes three half-second bursts in 40 s of faint noise and checks each word lands
+    /// at its burst's times × `scale` (1: the true time line), within `tolerance` seconds.
+    fn words_land_at_the_bursts<D: Decoder>(
+        posteriors: impl Fn(&[f32]) -> Result<Vec<Reading>, DecodeError> + Sync,
+        new_decoder: impl Fn() -> D + Sync,
+        tolerance: f64,
+        scale: f64,
+    ) {
         let rate = 16_000;
-        let graph =
-            SearchGraph::lexicon_free(vec!["<ctc-blank>".into(), "a".into(), "<wb>".into()])
-                .unwrap();
         // a loud square wave at 2–2.5 s, 10–10.5 s and 30–30.5 s in 40 s of faint noise
         let bursts = [2.0, 10.0, 30.0];
         let signal: Vec<f32> = (0..40 * rate)
@@ -171,7 +209,7 @@ mod tests {
                 batch_segments: 2,
             },
             posteriors,
-            || GreedyDecoder::new(&graph),
+            new_decoder,
             |seconds| progress.push(seconds),
         )
         .unwrap();
@@ -179,8 +217,9 @@ mod tests {
         for (segment, burst) in segments.iter().zip(bursts) {
             assert_eq!(segment.words.len(), 1);
             let w = &segment.words[0];
-            assert!((w.start - burst).abs() <= tolerance, "{w:?} vs {burst}");
-            assert!((w.end - (burst + 0.5)).abs() <= tolerance, "{w:?}");
+            let at = |t: f64| segment.start + (t - segment.start) * scale;
+            assert!((w.start - at(burst)).abs() <= tolerance, "{w:?} vs {burst}");
+            assert!((w.end - at(burst + 0.5)).abs() <= tolerance, "{w:?}");
             assert!(segment.start <= w.start && w.end <= segment.end);
         }
         assert!(progress.windows(2).all(|p| p[0] <= p[1]));

@@ -832,6 +832,13 @@ impl<L: LanguageModel> Decoder for PrefixBeamSearch<'_, L> {
             acoustic_score: f32::NEG_INFINITY,
         }))
     }
+
+    fn decode_readings(
+        &mut self,
+        readings: &[ArrayView2<'_, f32>],
+    ) -> Result<(Transcript, usize), DecodeError> {
+        crate::decode_each_reading(self, readings)
+    }
 }
 
 #[cfg(test)]
@@ -870,5 +877,36 @@ mod tests {
         for options in bad {
             assert!(options.validate().is_err(), "{options:?}");
         }
+    }
+
+    /// One-frame readings worked by hand: the best hypothesis of a frame [0.2, 0.8, 0, 0] over
+    /// (blank, a, b, <wb>) is "a" with acoustic score ln 0.8, of [0.1, 0, 0.9, 0] "b" with ln 0.9.
+    #[test]
+    fn the_reading_with_the_likeliest_hypothesis_is_kept_and_the_earliest_on_a_tie() {
+        let graph =
+            SearchGraph::lexicon_free(["<ctc-blank>", "a", "b", "<wb>"].map(String::from).to_vec())
+                .unwrap();
+        let lm = crate::NoLanguageModel;
+        let mut search = PrefixBeamSearch::new(&graph, &lm, SearchOptions::default());
+        let frame = |p: [f32; 4]| ndarray::Array2::from_shape_fn((1, 4), |(_, u)| p[u].ln());
+        let reads_a = frame([0.2, 0.8, 0.0, 0.0]);
+        let reads_b = frame([0.1, 0.0, 0.9, 0.0]);
+        let empty = ndarray::Array2::<f32>::zeros((0, 4));
+        let readings = [empty.view(), reads_a.view(), reads_b.view(), reads_b.view()];
+        let (transcript, chosen) = search.decode_readings(&readings).unwrap();
+        assert_eq!((transcript.text().as_str(), chosen), ("b", 2));
+        assert!((transcript.acoustic_score - 0.9f32.ln()).abs() < 1e-5);
+        // Nothing but empty readings: the first, decoded to no words.
+        let (transcript, chosen) = search
+            .decode_readings(&[empty.view(), empty.view()])
+            .unwrap();
+        assert_eq!((transcript.text().as_str(), chosen), ("", 0));
+        // A greedy decoder compares nothing and keeps the first reading.
+        let mut greedy = crate::GreedyDecoder::new(&graph);
+        let (transcript, chosen) = greedy
+            .decode_readings(&[reads_a.view(), reads_b.view()])
+            .unwrap();
+        assert_eq!((transcript.text().as_str(), chosen), ("a", 0));
+        assert_eq!(search.decode_readings(&[]).unwrap().1, 0);
     }
 }

@@ -36,6 +36,16 @@ pub struct Transcript {
 }
 
 impl Transcript {
+    /// No words, from no frames (both scores 0, the log of certainty).
+    pub fn empty() -> Transcript {
+        Transcript {
+            words: Vec::new(),
+            units: Vec::new(),
+            score: 0.0,
+            acoustic_score: 0.0,
+        }
+    }
+
     /// The words joined by single spaces.
     pub fn text(&self) -> String {
         let words: Vec<&str> = self.words.iter().map(|w| w.text.as_str()).collect();

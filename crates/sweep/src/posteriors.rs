@@ -6,6 +6,10 @@
 //! (CMVN): changing one recording changes the posteriors of that speaker's other utterances too,
 //! and of nobody else's. So a changed model recomputes everything, a changed recording exactly
 //! its speaker's utterances, and an unchanged sweep nothing.
+//!
+//! An utterance has one posterior matrix per reading the decoder chooses from (the candidates
+//! of the model's test-time search, most confident first; one without a search); an entry
+//! names reading `k` of utterance `id` as `k<TAB>id`.
 
 use std::collections::{BTreeMap, HashMap};
 use std::path::{Path, PathBuf};
@@ -21,8 +25,9 @@ use crate::SweepError;
 /// Posteriors of every utterance of a manifest that could be computed, by utterance id, and the
 /// utterances that failed with their messages.
 pub struct Posteriors {
-    /// `[frames, units]` natural-log posteriors by utterance id.
-    pub by_id: HashMap<String, Array2<f32>>,
+    /// Each reading's `[frames, units]` natural-log posteriors, the most confident first, by
+    /// utterance id (never an empty list).
+    pub by_id: HashMap<String, Vec<Array2<f32>>>,
     /// Utterances whose audio or features failed: `(id, message)`.
     pub failed: Vec<(String, String)>,
     /// How many utterances went through the acoustic model in this call (0 when all were
@@ -38,7 +43,7 @@ pub struct Posteriors {
 /// The content key of a model directory.
 pub fn model_key(dir: &Path) -> Result<String, SweepError> {
     let mut key = ContentKey::new();
-    key.text("model v1");
+    key.text("model v2");
     key.file(&dir.join("model.safetensors"))?;
     key.file(&dir.join("model.toml"))?;
     Ok(key.finish())
@@ -113,7 +118,7 @@ pub fn posteriors(
         let computed = isogloss_acoustic::pipeline::manifest_posteriors(model, &subset, &|_, _| {})
             .map_err(|e| SweepError::Build(e.to_string()))?;
         result.computed = subset.utterances.len();
-        let mut computed: HashMap<String, Result<Array2<f32>, String>> = subset
+        let mut computed: HashMap<String, Result<Vec<Array2<f32>>, String>> = subset
             .utterances
             .iter()
             .map(|u| u.id.clone())
@@ -144,11 +149,13 @@ pub fn posteriors(
     Ok(result)
 }
 
-fn read_entry(path: &Path) -> Option<HashMap<String, Array2<f32>>> {
+fn read_entry(path: &Path) -> Option<HashMap<String, Vec<Array2<f32>>>> {
     let bytes = std::fs::read(path).ok()?;
     let tensors = safetensors::SafeTensors::deserialize(&bytes).ok()?;
-    let mut entry = HashMap::new();
+    let mut readings: BTreeMap<(String, usize), Array2<f32>> = BTreeMap::new();
     for (name, view) in tensors.tensors() {
+        let (k, id) = name.split_once('\t')?;
+        let k: usize = k.parse().ok()?;
         let shape = view.shape();
         if view.dtype() != Dtype::F32 || shape.len() != 2 {
             return None;
@@ -158,20 +165,31 @@ fn read_entry(path: &Path) -> Option<HashMap<String, Array2<f32>>> {
             .chunks_exact(4)
             .map(|b| f32::from_le_bytes([b[0], b[1], b[2], b[3]]))
             .collect();
-        entry.insert(
-            name,
+        readings.insert(
+            (id.to_string(), k),
             Array2::from_shape_vec((shape[0], shape[1]), values).ok()?,
         );
+    }
+    let mut entry: HashMap<String, Vec<Array2<f32>>> = HashMap::new();
+    // In (id, k) order, so each list fills in reading order; a gap makes the entry unusable.
+    for ((id, k), posteriors) in readings {
+        let list = entry.entry(id).or_default();
+        if list.len() != k {
+            return None;
+        }
+        list.push(posteriors);
     }
     Some(entry)
 }
 
-fn write_entry(path: &Path, entry: &[(String, Array2<f32>)]) -> Result<(), SweepError> {
+fn write_entry(path: &Path, entry: &[(String, Vec<Array2<f32>>)]) -> Result<(), SweepError> {
     let buffers: Vec<(String, Vec<u8>, Vec<usize>)> = entry
         .iter()
-        .map(|(id, posteriors)| {
-            let bytes = posteriors.iter().flat_map(|v| v.to_le_bytes()).collect();
-            (id.clone(), bytes, posteriors.shape().to_vec())
+        .flat_map(|(id, readings)| {
+            readings.iter().enumerate().map(move |(k, posteriors)| {
+                let bytes = posteriors.iter().flat_map(|v| v.to_le_bytes()).collect();
+                (format!("{k}\t{id}"), bytes, posteriors.shape().to_vec())
+            })
         })
         .collect();
     let views: Vec<(String, TensorView<'_>)> = buffers

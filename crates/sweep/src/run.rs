@@ -268,9 +268,10 @@ fn decode_to_file(
     let mut search = PrefixBeamSearch::new(graph, lm, options.clone());
     let mut rows = Vec::new();
     for utterance in &manifest.utterances {
-        if let Some(p) = posteriors.by_id.get(&utterance.id) {
-            let transcript = search
-                .decode(p.view())
+        if let Some(readings) = posteriors.by_id.get(&utterance.id) {
+            let views: Vec<_> = readings.iter().map(|p| p.view()).collect();
+            let (transcript, _) = search
+                .decode_readings(&views)
                 .map_err(|e| SweepError::Build(format!("{}: {e}", utterance.id)))?;
             rows.push(vec![utterance.id.clone(), transcript.text()]);
         }

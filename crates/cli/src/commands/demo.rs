@@ -348,7 +348,8 @@ pub fn run(args: DemoArgs) -> anyhow::Result<Outcome> {
     let mut greedy = GreedyDecoder::new(&graph);
     let mut rows = Vec::new();
     for utterance in &test_manifest.utterances {
-        if let Some(p) = pass.by_id.get(&utterance.id) {
+        // Greedy decoding keeps the most confident reading, the first.
+        if let Some(p) = pass.by_id.get(&utterance.id).and_then(|r| r.first()) {
             rows.push(vec![utterance.id.clone(), greedy.decode(p.view())?.text()]);
         }
     }
@@ -586,7 +587,8 @@ fn greedy_summary(
     let mut greedy = GreedyDecoder::new(&graph);
     let mut rows = Vec::new();
     for utterance in &manifest.utterances {
-        if let Some(p) = pass.by_id.get(&utterance.id) {
+        // Greedy decoding keeps the most confident reading, the first.
+        if let Some(p) = pass.by_id.get(&utterance.id).and_then(|r| r.first()) {
             rows.push(vec![utterance.id.clone(), greedy.decode(p.view())?.text()]);
         }
     }

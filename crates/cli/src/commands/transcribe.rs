@@ -13,6 +13,7 @@ use isogloss_batch::{
     TranscribeSettings,
 };
 use isogloss_decoder::output::OutputFormat;
+use isogloss_decoder::pipeline::Reading;
 use isogloss_decoder::segment::VadConfig;
 use isogloss_decoder::{DecodeError, SearchOptions};
 use isogloss_features::{CmvnMode, FeatureExtractor};
@@ -184,16 +185,17 @@ impl Recognizer for ModelRecognizer {
     }
 
     fn log_posteriors(&self, samples: &[f32]) -> Result<Array2<f32>, SideError> {
-        Ok(self.timed_log_posteriors(samples)?.0)
+        Ok(self.model.segment_posteriors(&self.extractor, samples)?.0)
     }
 
-    fn timed_log_posteriors(&self, samples: &[f32]) -> Result<(Array2<f32>, f64), SideError> {
-        let (posteriors, candidate) = self.model.segment_posteriors(&self.extractor, samples)?;
+    fn readings(&self, samples: &[f32]) -> Result<Vec<Reading>, SideError> {
+        let readings = self.model.segment_readings(&self.extractor, samples)?;
         // Frames of a segment read at another tempo lie `speed` times as far apart.
-        Ok((
-            posteriors,
-            self.model.frame_shift_seconds() * candidate.speed,
-        ))
+        let shift = self.model.frame_shift_seconds();
+        Ok(readings
+            .into_iter()
+            .map(|(posteriors, candidate)| (posteriors, shift * candidate.speed))
+            .collect())
     }
 
     fn files(&self) -> Vec<PathBuf> {
