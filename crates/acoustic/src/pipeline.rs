@@ -1115,6 +1115,10 @@ pub fn train_with(
     Ok(summary)
 }
 
+/// One utterance's posteriors as the decoder chooses from them: one `[frames, units]` matrix
+/// per reading, the most confident first.
+pub type Readings = Vec<Array2<f32>>;
+
 /// Log-posteriors `[frames, units]` of every utterance of a manifest, normalised the way the
 /// model was trained; a failed utterance gives an error message and the others carry on. With a
 /// warp search (`[inference]`, [`crate::warp_search`]) each utterance's features are computed
@@ -1125,7 +1129,7 @@ pub fn manifest_posteriors(
     model: &AcousticModel,
     manifest: &Manifest,
     on_file_done: &(dyn Fn(usize, usize) + Sync),
-) -> Result<Vec<Result<Vec<Array2<f32>>, String>>, AcousticError> {
+) -> Result<Vec<Result<Readings, String>>, AcousticError> {
     let config = model.feature_config();
     let (frontends, choose) = match model.inference() {
         Some(inference) => (inference.frontends(config.sample_rate)?, inference.choose),
@@ -1142,7 +1146,7 @@ pub fn manifest_posteriors(
     let mut ok_indices = Vec::new();
     // by_warp[k][j]: the features of the j-th readable utterance through front end k.
     let mut by_warp: Vec<Vec<Vec<Array2<f32>>>> = vec![Vec::new(); frontends.len()];
-    let mut results: Vec<Result<Vec<Array2<f32>>, String>> = Vec::with_capacity(raw.len());
+    let mut results: Vec<Result<Readings, String>> = Vec::with_capacity(raw.len());
     for (i, result) in raw.into_iter().enumerate() {
         match result {
             Ok(matrices) => {
@@ -1162,7 +1166,7 @@ pub fn manifest_posteriors(
     for features in by_warp.iter_mut() {
         normalize(features, &speakers, config)?;
     }
-    let posteriors: Vec<Result<Vec<Array2<f32>>, String>> = ok_indices
+    let posteriors: Vec<Result<Readings, String>> = ok_indices
         .par_iter()
         .enumerate()
         .map(|(j, &i)| {
