@@ -210,3 +210,52 @@ fn write_entry(path: &Path, entry: &[(String, Vec<Array2<f32>>)]) -> Result<(), 
             source,
         })
 }
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    /// Every reading of every utterance comes back in its order; an entry with a reading
+    /// missing in the middle is not used (the cache recomputes it).
+    #[test]
+    fn an_entry_keeps_each_utterances_readings_in_order() {
+        let dir = tempfile::tempdir().unwrap();
+        let path = dir.path().join("entry.safetensors");
+        let reading = |k: f32, frames: usize| {
+            Array2::from_shape_fn((frames, 3), |(t, u)| k + (t * 3 + u) as f32)
+        };
+        let entry = vec![
+            (
+                "a".to_string(),
+                vec![reading(0.0, 2), reading(10.0, 2), reading(20.0, 1)],
+            ),
+            ("b\twith a tab".to_string(), vec![reading(30.0, 0)]),
+        ];
+        write_entry(&path, &entry).unwrap();
+        let read = read_entry(&path).unwrap();
+        assert_eq!(read.len(), 2);
+        for (id, readings) in &entry {
+            assert_eq!(&read[id], readings, "{id}");
+        }
+        // Readings 0 and 2 only: a gap.
+        let views = [("0\ta", reading(0.0, 1)), ("2\ta", reading(2.0, 1))];
+        let buffers: Vec<(String, Vec<u8>, Vec<usize>)> = views
+            .iter()
+            .map(|(name, m)| {
+                let bytes = m.iter().flat_map(|v| v.to_le_bytes()).collect();
+                (name.to_string(), bytes, m.shape().to_vec())
+            })
+            .collect();
+        let tensors: Vec<(String, TensorView<'_>)> = buffers
+            .iter()
+            .map(|(name, bytes, shape)| {
+                (
+                    name.clone(),
+                    TensorView::new(Dtype::F32, shape.clone(), bytes).unwrap(),
+                )
+            })
+            .collect();
+        std::fs::write(&path, safetensors::serialize(tensors, None).unwrap()).unwrap();
+        assert!(read_entry(&path).is_none());
+    }
+}
