@@ -1,13 +1,14 @@
-//! The next selection rule for the warp search, measured (DEVELOPERS.md, "Test-time warp
+//! Selection rules of the warp search compared on one manifest (DEVELOPERS.md, "Test-time warp
 //! search"): decode every candidate with the LM and lexicon and keep the one whose best
-//! hypothesis scores highest, instead of the candidate whose posteriors are most confident.
+//! hypothesis scores highest (what `[inference] choose = "hypothesis"`, the default, does), or
+//! keep the candidate whose posteriors are most confident (`choose = "posteriors"`).
 //!
 //! For every utterance of a manifest, the shipped candidates (warps 1.0, 0.9, 1.1, per-utterance
 //! CMVN) are each decoded by the prefix beam search at the decoder defaults, and four files of
 //! `id<TAB>text` are written for `isogloss score`: `plain.tsv` (factor 1.0), `confidence.tsv`
-//! (what `[inference]` does today), `objective.tsv` (the highest search objective: acoustic +
-//! LM weight × LM + word bonus × words) and `acoustic.tsv` (the highest acoustic score of the
-//! best hypothesis, ln P(units | posteriors)).
+//! (`choose = "posteriors"`), `objective.tsv` (the highest search objective: acoustic + LM
+//! weight × LM + word bonus × words) and `acoustic.tsv` (the highest acoustic score of the best
+//! hypothesis, ln P(units | posteriors): `choose = "hypothesis"`).
 //!
 //! Run: `cargo run --release -p isogloss --example warp_pick_by_decoder -- MODEL_DIR MANIFEST OUT_DIR
 //! LM.arpa LEXICON.tsv` with MODEL_DIR a model whose own `[inference]` table is ignored.
