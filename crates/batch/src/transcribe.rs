@@ -8,7 +8,7 @@ use std::path::{Path, PathBuf};
 
 use isogloss_corpus::tsv::Table;
 use isogloss_decoder::output::{ItemTranscript, OutputFormat, TimedSegment};
-use isogloss_decoder::pipeline::{transcribe_stream, Reading, StreamSettings};
+use isogloss_decoder::pipeline::{decode_timed, transcribe_stream, Reading, StreamSettings};
 use isogloss_decoder::segment::VadConfig;
 use isogloss_decoder::{
     DecodeError, Decoder, GreedyDecoder, LanguageModel, NoLanguageModel, PrefixBeamSearch,
@@ -359,9 +359,7 @@ fn run_items<L: LanguageModel>(
                     .map_err(BatchError::Side)?;
                 let seconds = samples.len() as f64 / f64::from(SAMPLE_RATE);
                 let readings = recognizer.readings(&samples).map_err(BatchError::Side)?;
-                let views: Vec<_> = readings.iter().map(|(p, _)| p.view()).collect();
-                let (transcript, chosen) = decoder.decode_readings(&views)?;
-                let shift = readings.get(chosen).map_or(0.0, |(_, shift)| *shift);
+                let (transcript, shift) = decode_timed(decoder, &readings)?;
                 let segment =
                     TimedSegment::from_transcript(&transcript, start, start + seconds, shift);
                 Ok((

@@ -18,6 +18,18 @@ use crate::{DecodeError, Decoder};
 /// segment at another tempo).
 pub type Reading = (Array2<f32>, f64);
 
+/// Decodes one segment's readings ([`Decoder::decode_readings`]): the transcript the decoder
+/// kept and the seconds between the frames of the reading it came from (0 without readings).
+pub fn decode_timed<D: Decoder + ?Sized>(
+    decoder: &mut D,
+    readings: &[Reading],
+) -> Result<(crate::Transcript, f64), DecodeError> {
+    let views: Vec<_> = readings.iter().map(|(p, _)| p.view()).collect();
+    let (transcript, chosen) = decoder.decode_readings(&views)?;
+    let shift = readings.get(chosen).map_or(0.0, |(_, shift)| *shift);
+    Ok((transcript, shift))
+}
+
 /// Decodes `segments` in parallel. `posteriors` turns a segment's samples into its readings
 /// (features + acoustic model; several for a test-time search, the acoustic side's preferred
 /// first), of which the decoder keeps one ([`Decoder::decode_readings`]); `new_decoder` makes
@@ -38,10 +50,8 @@ where
     segments
         .par_iter()
         .map_init(&new_decoder, |decoder, segment| {
-            let readings = posteriors(&segment.samples)?;
-            let views: Vec<_> = readings.iter().map(|(p, _)| p.view()).collect();
-            let (transcript, chosen) = decoder.decode_readings(&views)?;
-            let frame_shift_seconds = readings.get(chosen).map_or(0.0, |(_, shift)| *shift);
+            let (transcript, frame_shift_seconds) =
+                decode_timed(decoder, &posteriors(&segment.samples)?)?;
             Ok(TimedSegment::from_transcript(
                 &transcript,
                 segment.start_seconds(sample_rate),
