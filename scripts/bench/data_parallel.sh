@@ -6,13 +6,15 @@
 #   one-2t   the feature build, one process, 2 threads
 #   ranks-2  the feature build, mpirun -np 2, 1 thread per rank
 #   plain-2t a build without the `mpi` feature, one process, 2 threads
+#   other-2  with a fifth argument, another build with the feature (e.g. an older commit's),
+#            mpirun -np 2, 1 thread per rank: a before/after of a change to the exchanges
 #
 # Prints each epoch's input frames per second of wall time (feature work included, dev pass
 # excluded: `frames_per_second` of training.jsonl) and the share of the training pass rank 0
 # spent in sums over the ranks (`exchange_seconds` / `train_seconds`; 0 in one process), and
 # the median per arm.
 #
-# usage: scripts/bench/data_parallel.sh MPI_BINARY PLAIN_BINARY [ROUNDS] [UTTERANCES]
+# usage: scripts/bench/data_parallel.sh MPI_BINARY PLAIN_BINARY [ROUNDS] [UTTERANCES] [OTHER_MPI_BINARY]
 # Build the two binaries first, e.g.
 #   cargo build --release -p isogloss && cp target/release/isogloss /tmp/isogloss-plain
 #   cargo build --release -p isogloss --features mpi && cp target/release/isogloss /tmp/isogloss-mpi
@@ -22,6 +24,7 @@ MPI_BIN=$1
 PLAIN_BIN=$2
 ROUNDS=${3:-3}
 UTTERANCES=${4:-600}
+OTHER_BIN=${5:-}
 WORK=$(mktemp -d)
 trap 'rm -rf "$WORK"' EXIT
 # A prefix of the demo training split, audio paths made absolute.
@@ -65,17 +68,21 @@ MPIRUN=(mpirun --oversubscribe --bind-to none -np 2 --mca btl_vader_single_copy_
 run warm-one 2 "$MPI_BIN" >/dev/null
 run warm-ranks 1 "${MPIRUN[@]}" "$MPI_BIN" >/dev/null
 run warm-plain 2 "$PLAIN_BIN" >/dev/null
+[ -n "$OTHER_BIN" ] && run warm-other 1 "${MPIRUN[@]}" "$OTHER_BIN" >/dev/null
 : > "$WORK/results"
 for round in $(seq "$ROUNDS"); do
     echo "round $round (load average $(cut -d' ' -f1 /proc/loadavg))"
     run one-2t 2 "$MPI_BIN"
     run ranks-2 1 "${MPIRUN[@]}" "$MPI_BIN"
     run plain-2t 2 "$PLAIN_BIN"
+    if [ -n "$OTHER_BIN" ]; then run other-2 1 "${MPIRUN[@]}" "$OTHER_BIN"; fi
 done
 median() { sort -g | awk '{ v[NR] = $1 } END { printf "%s", (NR % 2) ? v[(NR + 1) / 2] : (v[NR / 2] + v[NR / 2 + 1]) / 2 }'; }
 echo "medians (frames/s; for the ranks, the share of the training pass spent in exchanges):"
-for arm in one-2t ranks-2 plain-2t; do
+arms=(one-2t ranks-2 plain-2t)
+[ -n "$OTHER_BIN" ] && arms+=(other-2)
+for arm in "${arms[@]}"; do
     printf '%s %.0f' "$arm" "$(grep "^$arm " "$WORK/results" | cut -d' ' -f2 | median)"
-    [ "$arm" = ranks-2 ] && printf ' %.3f' "$(grep "^$arm " "$WORK/results" | cut -d' ' -f3 | median)"
+    [ "$arm" = ranks-2 ] || [ "$arm" = other-2 ] && printf ' %.3f' "$(grep "^$arm " "$WORK/results" | cut -d' ' -f3 | median)"
     echo
 done

@@ -128,9 +128,19 @@ mod mpi_world {
     /// batch schedulers' launchers use): a process without any of them runs alone.
     const LAUNCHER_VARIABLES: [&str; 3] = ["OMPI_COMM_WORLD_SIZE", "PMI_SIZE", "PMIX_RANK"];
 
-    /// Polls of a pending all-reduce before the waiting rank starts to sleep between polls (a
-    /// short exchange completes within them; a long wait then costs no core).
-    const BUSY_POLLS: u32 = 2_000;
+    /// Polls of a pending all-reduce before the waiting rank starts to yield its core between
+    /// polls. Open MPI moves a non-blocking collective on only inside a poll, so a rank must
+    /// not pause between polls while the exchange is under way: with a 50 µs sleep between
+    /// polls after 2 000 of them (this module's earlier rule) a 5.6 MB sum of two ranks took
+    /// 10.2 ms instead of 1.4, and 18.1 instead of 1.4 once the other rank came 5 ms late
+    /// (`examples/exchange.rs`, DEVELOPERS.md "Data-parallel training"). A yield costs nothing
+    /// on an idle core and hands an oversubscribed one to whoever waits for it.
+    const YIELD_AFTER_POLLS: u32 = 2_000;
+
+    /// A wait longer than this is a rank that has stopped or hangs, not a slower one: from
+    /// then on the waiting rank sleeps between polls, so a stuck job does not hold its cores
+    /// until the timeout ends it.
+    const SLEEP_AFTER: Duration = Duration::from_secs(1);
 
     /// The ranks of MPI's world communicator. MPI is initialised with
     /// `MPI_THREAD_FUNNELED`: only the thread that created this value may communicate, and every
@@ -246,8 +256,10 @@ mod mpi_world {
                         self.world.abort(RANK_FAILED_EXIT_CODE);
                     }
                     polls = polls.saturating_add(1);
-                    if polls > BUSY_POLLS {
-                        std::thread::sleep(Duration::from_micros(50));
+                    if started.elapsed() >= SLEEP_AFTER {
+                        std::thread::sleep(Duration::from_millis(1));
+                    } else if polls > YIELD_AFTER_POLLS {
+                        std::thread::yield_now();
                     }
                 }
             });
