@@ -233,6 +233,11 @@ pub enum Schedule {
     Constant,
 }
 
+/// Serde's test for a setting left at 0 (not written out).
+fn is_zero(value: &f64) -> bool {
+    *value == 0.0
+}
+
 /// Which epoch's weights the model directory holds (`[training] keep`).
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize, Default)]
 #[serde(rename_all = "kebab-case")]
@@ -302,6 +307,12 @@ pub struct TrainingConfig {
     pub keep: Keep,
     /// Number format of the training pass's matrix products: `"f32"` (default) or `"bf16"`.
     pub matmul_precision: MatmulPrecision,
+    /// Weight averaging at the end of the run: the model directory holds the mean of the
+    /// weights (parameters and batch-norm running statistics) at the end of every epoch that
+    /// ends after `1 − average_share` of the planned updates, each epoch counted once. 0 (the
+    /// default): one epoch's weights, as `keep` says.
+    #[serde(default, skip_serializing_if = "is_zero")]
+    pub average_share: f64,
     /// Deprecated spelling of `augmentation.speed_factors` (read for one release).
     #[serde(default, skip_serializing)]
     pub speed_factors: Option<Vec<f32>>,
@@ -331,6 +342,7 @@ impl Default for TrainingConfig {
             patience: 0,
             keep: Keep::Last,
             matmul_precision: MatmulPrecision::F32,
+            average_share: 0.0,
             speed_factors: None,
             volume_range: None,
             spec_augment: None,
@@ -389,6 +401,20 @@ impl TrainingConfig {
                 "final_rate",
                 "a share from 0 to 1",
                 self.final_rate.to_string(),
+            );
+        }
+        if !(0.0..1.0).contains(&self.average_share) {
+            return invalid(
+                "average_share",
+                "a share from 0 up to (not including) 1",
+                self.average_share.to_string(),
+            );
+        }
+        if self.average_share > 0.0 && self.keep != Keep::Last {
+            return invalid(
+                "average_share",
+                "0 with keep = \"best-dev-loss\" (the average is of the last epochs)",
+                self.average_share.to_string(),
             );
         }
         Ok(())
@@ -808,6 +834,36 @@ mod tests {
             error.contains("keep") && error.contains("best-dev-loss"),
             "{error}"
         );
+    }
+
+    /// `[training] average_share`: off unless written (and then not written into model.toml);
+    /// a share is read and written back; outside [0, 1) or with `keep = "best-dev-loss"` it is
+    /// refused with the key named.
+    #[test]
+    fn average_share_is_off_by_default_and_checked() {
+        let small = include_str!("../../../configs/tdnn-small.toml");
+        let config = ModelConfig::parse(small).unwrap();
+        assert_eq!(config.training.average_share, 0.0);
+        let text = toml::to_string(&config.training).unwrap();
+        assert!(!text.contains("average_share"), "{text}");
+        let averaged = small.replacen("patience = 0", "patience = 0\naverage_share = 0.1", 1);
+        let config = ModelConfig::parse(&averaged).unwrap();
+        assert_eq!(config.training.average_share, 0.1);
+        let text = toml::to_string(&config.training).unwrap();
+        assert!(text.contains("average_share = 0.1"), "{text}");
+        for (value, extra) in [
+            ("1.0", ""),
+            ("-0.1", ""),
+            ("0.2", "\nkeep = \"best-dev-loss\""),
+        ] {
+            let wrong = small.replacen(
+                "patience = 0",
+                &format!("patience = 0\naverage_share = {value}{extra}"),
+                1,
+            );
+            let error = ModelConfig::parse(&wrong).unwrap_err().to_string();
+            assert!(error.contains("[training] average_share"), "{error}");
+        }
     }
 
     /// `[training] matmul_precision`: f32 unless written (so configs and model.toml files

@@ -55,6 +55,15 @@ pub struct Provenance {
     /// The model directory whose weights the run started from (`train --from`), if any.
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub started_from: Option<String>,
+    /// Epochs whose weights these are the mean of (`[training] average_share`; 0 or absent:
+    /// one epoch's weights). `dev_loss` and `dev_unit_error_rate` are then the mean's.
+    #[serde(default, skip_serializing_if = "is_zero")]
+    pub averaged_epochs: usize,
+}
+
+/// Serde's test for a count left at 0 (not written out).
+fn is_zero(value: &usize) -> bool {
+    *value == 0
 }
 
 /// One round of self-training (`isogloss train --untranscribed`), as `model.toml` and the

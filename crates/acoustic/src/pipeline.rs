@@ -1049,8 +1049,14 @@ pub fn train_with(
                     dev_manifest_sha256: dev_hash.clone(),
                     column: options.column.clone(),
                     epochs: record.epoch,
-                    dev_loss: record.dev_loss,
-                    dev_unit_error_rate: record.dev_unit_error_rate,
+                    dev_loss: record
+                        .average
+                        .as_ref()
+                        .map_or(record.dev_loss, |a| a.dev_loss),
+                    dev_unit_error_rate: record
+                        .average
+                        .as_ref()
+                        .map_or(record.dev_unit_error_rate, |a| a.dev_unit_error_rate),
                     train_utterances: train_set.len(),
                     skipped_utterances: skipped_count,
                     seed,
@@ -1061,6 +1067,7 @@ pub fn train_with(
                         .start_from
                         .as_ref()
                         .map(|dir| dir.display().to_string()),
+                    averaged_epochs: record.average.as_ref().map_or(0, |a| a.epochs),
                 },
                 training: Some(config.training.clone()),
                 augmentation: Some(config.augmentation.clone()),
@@ -1069,7 +1076,9 @@ pub fn train_with(
                 inference: crate::warp_search::Inference::from_training(&config.augmentation.vtlp),
             };
             if writer {
-                AcousticModel::save(&options.out, &description, &trainer.model_tensors())?;
+                trainer.with_kept_weights(|trainer| {
+                    AcousticModel::save(&options.out, &description, &trainer.model_tensors())
+                })?;
             }
             summary.kept = Some(record.clone());
         }

@@ -133,6 +133,21 @@ pub struct EpochRecord {
     /// the slowest rank included (0 in a single process).
     #[serde(default)]
     pub exchange_seconds: f64,
+    /// After an epoch of the averaging window (`[training] average_share`): the mean weights
+    /// so far, which the model directory then holds.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub average: Option<AverageRecord>,
+}
+
+/// The mean weights after an epoch of the averaging window (`[training] average_share`).
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct AverageRecord {
+    /// Epochs in the mean so far (this one included).
+    pub epochs: usize,
+    /// Per-frame dev CTC loss of the mean weights.
+    pub dev_loss: f64,
+    /// Greedy dev unit error rate of the mean weights.
+    pub dev_unit_error_rate: f64,
 }
 
 /// Counters that survive a resume.
@@ -154,6 +169,9 @@ pub struct TrainingProgress {
     /// The epoch count the plan was made for (a changed `--epochs` re-plans).
     #[serde(default)]
     pub planned_epochs: usize,
+    /// Epochs folded into the mean weights (`[training] average_share`; 0: none yet).
+    #[serde(default)]
+    pub averaged_epochs: usize,
 }
 
 /// Utterances left out because their labels cannot fit the output frames.
@@ -176,6 +194,9 @@ pub struct Trainer {
     network: Tdnn,
     optimizer: AdamW,
     progress: TrainingProgress,
+    /// The mean of the weights (parameters and running statistics, by name) at the ends of
+    /// the `progress.averaged_epochs` epochs of the averaging window; empty before it.
+    average: BTreeMap<String, Vec<f32>>,
     deadline: Option<Instant>,
     /// The ranks of a data-parallel run ([`SingleProcess`] by default).
     collective: Arc<dyn Collective>,
@@ -406,6 +427,7 @@ impl Trainer {
                 seed,
                 ..TrainingProgress::default()
             },
+            average: BTreeMap::new(),
             deadline: None,
             collective: Arc::new(SingleProcess),
             prefetch: true,
@@ -464,6 +486,65 @@ impl Trainer {
     /// their storage), for [`crate::AcousticModel::save`].
     pub fn model_tensors(&self) -> BTreeMap<String, Var> {
         model_tensors(&self.parameters, &self.statistics)
+    }
+
+    /// True when the epoch just finished lies in the averaging window: `[training]
+    /// average_share` is set and the updates done exceed `1 − average_share` of the planned
+    /// ones (with `--minutes`, of those planned at the time).
+    fn in_average_window(&self) -> bool {
+        let share = self.config.training.average_share;
+        let planned = self.progress.planned_updates;
+        share > 0.0 && planned > 0 && self.optimizer.step as f64 > planned as f64 * (1.0 - share)
+    }
+
+    /// Folds the current weights into the mean: `mean += (weights − mean) / k` for the k-th
+    /// epoch of the window, in f32 (so the first epoch's mean is its weights exactly, and a
+    /// resumed run continues the same sums). Then measures the mean on dev.
+    fn fold_into_average(
+        &mut self,
+        dev: &[PreparedUtterance],
+    ) -> Result<AverageRecord, AcousticError> {
+        let k = self.progress.averaged_epochs + 1;
+        let divisor = k as f32;
+        for (name, var) in self.model_tensors() {
+            let weights: Vec<f32> = var.as_tensor().flatten_all()?.to_vec1()?;
+            let mean = self
+                .average
+                .entry(name)
+                .or_insert_with(|| vec![0.0; weights.len()]);
+            for (m, w) in mean.iter_mut().zip(weights) {
+                *m += (w - *m) / divisor;
+            }
+        }
+        self.progress.averaged_epochs = k;
+        let (dev_loss, dev_unit_error_rate) =
+            self.with_kept_weights(|trainer| trainer.evaluate(dev))?;
+        Ok(AverageRecord {
+            epochs: k,
+            dev_loss,
+            dev_unit_error_rate,
+        })
+    }
+
+    /// Runs `f` with the weights the model directory is to hold in place: the mean weights
+    /// once the averaging window has begun, else the current ones; the current weights are
+    /// back afterwards, whatever `f` returned.
+    pub fn with_kept_weights<T>(
+        &self,
+        f: impl FnOnce(&Self) -> Result<T, AcousticError>,
+    ) -> Result<T, AcousticError> {
+        let mut current = Vec::new();
+        for (name, var) in self.model_tensors() {
+            if let Some(mean) = self.average.get(&name) {
+                current.push((var.clone(), var.as_tensor().copy()?));
+                var.set(&Tensor::from_slice(mean, var.shape(), &Device::Cpu)?)?;
+            }
+        }
+        let result = f(self);
+        for (var, weights) in current {
+            var.set(&weights)?;
+        }
+        result
     }
 
     /// Counters and history.
@@ -969,6 +1050,15 @@ impl Trainer {
             feature_compute_seconds,
             dev_seconds,
             exchange_seconds,
+            average: None,
+        };
+        let record = EpochRecord {
+            average: if self.in_average_window() {
+                Some(self.fold_into_average(dev)?)
+            } else {
+                None
+            },
+            ..record
         };
         self.progress.epochs_done = epoch;
         self.progress.history.push(record.clone());
@@ -1015,6 +1105,9 @@ impl Trainer {
         for (name, var) in &self.statistics {
             let values: Vec<f32> = var.as_tensor().flatten_all()?.to_vec1()?;
             tensors.push((format!("statistic/{name}"), var.dims().to_vec(), values));
+        }
+        for (name, mean) in &self.average {
+            tensors.push((format!("average/{name}"), vec![mean.len()], mean.clone()));
         }
         for (name, moments) in &self.optimizer.moments {
             let n = moments.first.len();
@@ -1135,6 +1228,15 @@ impl Trainer {
                 return Err(corrupt(&format!("statistic `{name}` has the wrong size")));
             }
             var.set(&Tensor::from_vec(values, var.shape(), &Device::Cpu)?)?;
+        }
+        if progress.averaged_epochs > 0 {
+            for (name, var) in trainer.model_tensors() {
+                let mean = read(&format!("average/{name}"))?;
+                if mean.len() != var.elem_count() {
+                    return Err(corrupt(&format!("the mean of `{name}` has the wrong size")));
+                }
+                trainer.average.insert(name, mean);
+            }
         }
         trainer.optimizer.step = step;
         trainer.progress = progress;
@@ -1467,6 +1569,89 @@ mod tests {
             progress
         };
         assert_eq!(without_speed(&straight), without_speed(&resumed));
+    }
+
+    /// `[training] average_share = 0.5` over three epochs averages the last two (the first ends
+    /// at a third of the planned updates, inside neither half): the kept weights are
+    /// `w₂ + (w₃ − w₂)/2` in f32, checked against the weights of a run without averaging (which
+    /// follows the same path: averaging only reads the weights), the current weights stay
+    /// `w₃`, the model file and its provenance hold the mean and its dev figures, and a run
+    /// resumed after epoch 2 gives the same mean to the bit.
+    #[test]
+    fn averaging_keeps_the_mean_of_the_window_epochs_and_resumes() {
+        let train = synthetic(12, 1);
+        let dev = synthetic(3, 2);
+        let mut plain_config = config_with(Normalization::Batch);
+        plain_config.training.epochs = 3;
+        let mut averaged_config = plain_config.clone();
+        averaged_config.training.average_share = 0.5;
+        let mut plain = Trainer::new(plain_config, units(), 5, 42).unwrap();
+        let mut per_epoch = Vec::new();
+        for _ in 0..3 {
+            let record = plain.run_epoch(&set(&train), &dev, &mut |_| {}).unwrap();
+            assert_eq!(record.average, None);
+            per_epoch.push(weights(&plain));
+        }
+        let mut averaged = Trainer::new(averaged_config.clone(), units(), 5, 42).unwrap();
+        let mut records = Vec::new();
+        for _ in 0..3 {
+            records.push(averaged.run_epoch(&set(&train), &dev, &mut |_| {}).unwrap());
+        }
+        assert_eq!(
+            weights(&averaged),
+            per_epoch[2],
+            "averaging does not touch training"
+        );
+        let counted: Vec<Option<usize>> = records
+            .iter()
+            .map(|r| r.average.as_ref().map(|a| a.epochs))
+            .collect();
+        assert_eq!(counted, [None, Some(1), Some(2)]);
+        let expected: Vec<(String, Vec<f32>)> = per_epoch[1]
+            .iter()
+            .zip(&per_epoch[2])
+            .map(|((name, second), (_, third))| {
+                let mean = second
+                    .iter()
+                    .zip(third)
+                    .map(|(&a, &b)| a + (b - a) / 2.0)
+                    .collect();
+                (name.clone(), mean)
+            })
+            .collect();
+        assert_ne!(expected, per_epoch[2]);
+        let kept = averaged.with_kept_weights(|t| Ok(weights(t))).unwrap();
+        assert_eq!(kept, expected);
+        assert_eq!(
+            weights(&averaged),
+            per_epoch[2],
+            "the current weights are back"
+        );
+        // The mean's dev figures are those of the mean weights.
+        let (dev_loss, dev_error) = averaged.with_kept_weights(|t| t.evaluate(&dev)).unwrap();
+        let last = records[2].average.as_ref().unwrap();
+        assert_eq!(
+            (last.dev_loss, last.dev_unit_error_rate),
+            (dev_loss, dev_error)
+        );
+        assert_ne!(last.dev_loss, records[2].dev_loss);
+        // Resumed after epoch 2: the same mean, to the bit.
+        let dir = tempfile::tempdir().unwrap();
+        let path = checkpoint_path(dir.path());
+        let mut first = Trainer::new(averaged_config, units(), 5, 42).unwrap();
+        for _ in 0..2 {
+            first.run_epoch(&set(&train), &dev, &mut |_| {}).unwrap();
+        }
+        first.save_checkpoint(&path).unwrap();
+        drop(first);
+        let mut resumed = Trainer::load_checkpoint(&path).unwrap();
+        assert_eq!(resumed.progress().averaged_epochs, 1);
+        let record = resumed.run_epoch(&set(&train), &dev, &mut |_| {}).unwrap();
+        assert_eq!(record.average.as_ref().map(|a| a.epochs), Some(2));
+        assert_eq!(
+            resumed.with_kept_weights(|t| Ok(weights(t))).unwrap(),
+            expected
+        );
     }
 
     /// `matmul_precision = "bf16"` trains the same weights to the bit at one and two threads

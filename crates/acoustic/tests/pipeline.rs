@@ -270,6 +270,63 @@ fn a_warm_start_begins_from_the_model_and_refuses_another_network() {
     );
 }
 
+/// `[training] average_share = 0.5` over four epochs: the model directory holds the mean the
+/// checkpoint carries (epochs 3 and 4), not the last epoch's weights; `model.toml` counts the
+/// averaged epochs and gives the mean's dev figures, as the log's last epoch does.
+#[test]
+fn an_averaged_run_writes_the_mean_weights_and_says_so() {
+    let dir = tempfile::tempdir().unwrap();
+    let path = manifest(dir.path(), "few.tsv", &FEW);
+    let mut options = options(dir.path(), path.clone(), path, "dialectal");
+    options.epochs = Some(4);
+    options.config.training.average_share = 0.5;
+    let summary = train(&options, &mut |_| {}).expect("training runs");
+    let out = dir.path().join("model");
+    let model = AcousticModel::load(&out).unwrap();
+    let provenance = &model.description().provenance;
+    assert_eq!((provenance.epochs, provenance.averaged_epochs), (4, 2));
+    let epochs: Vec<serde_json::Value> = std::fs::read_to_string(out.join("training.jsonl"))
+        .unwrap()
+        .lines()
+        .map(|line| serde_json::from_str(line).unwrap())
+        .filter(|line: &serde_json::Value| line["event"] == "epoch")
+        .collect();
+    let counted: Vec<Option<u64>> = epochs
+        .iter()
+        .map(|e| e["average"]["epochs"].as_u64())
+        .collect();
+    assert_eq!(counted, [None, None, Some(1), Some(2)]);
+    let last = &epochs[3]["average"];
+    assert_eq!(last["dev_loss"].as_f64(), Some(provenance.dev_loss));
+    assert_eq!(
+        last["dev_unit_error_rate"].as_f64(),
+        Some(provenance.dev_unit_error_rate)
+    );
+    assert_eq!(summary.kept.unwrap().average.unwrap().epochs, 2);
+    let saved =
+        candle_core::safetensors::load(out.join("model.safetensors"), &candle_core::Device::Cpu)
+            .unwrap();
+    let checkpoint = candle_core::safetensors::load(
+        out.join("checkpoint.safetensors"),
+        &candle_core::Device::Cpu,
+    )
+    .unwrap();
+    let values = |t: &candle_core::Tensor| t.flatten_all().unwrap().to_vec1::<f32>().unwrap();
+    assert!(!saved.is_empty());
+    for (name, tensor) in &saved {
+        assert_eq!(
+            values(tensor),
+            values(&checkpoint[&format!("average/{name}")]),
+            "{name}"
+        );
+        assert_ne!(
+            values(tensor),
+            values(&checkpoint[&format!("param/{name}")]),
+            "{name}"
+        );
+    }
+}
+
 /// A small extractor for the demo utterances: 8 Gaussians, 4-dimensional vectors, a 2 s window
 /// recomputed every 20 frames.
 const SPEAKER_VECTORS: &str = r#"

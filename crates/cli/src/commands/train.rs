@@ -474,13 +474,23 @@ fn train_ranks(
                 record.dev_loss,
                 100.0 * record.dev_unit_error_rate,
                 record.frames_per_second,
-                match (record.saved, record.improved) {
-                    (true, true) => "  (saved; best dev loss so far)",
-                    (true, false) => "  (saved)",
-                    (false, true) => "  (best dev loss so far)",
-                    (false, false) => "",
+                match (&record.average, record.saved, record.improved) {
+                    (Some(_), _, true) => "  (best dev loss so far)",
+                    (Some(_), _, false) => "",
+                    (None, true, true) => "  (saved; best dev loss so far)",
+                    (None, true, false) => "  (saved)",
+                    (None, false, true) => "  (best dev loss so far)",
+                    (None, false, false) => "",
                 }
             );
+            if let Some(average) = &record.average {
+                eprintln!(
+                    "           mean of the last {} epochs' weights: dev loss {:.4}  dev unit error rate {:.2}%  (saved)",
+                    average.epochs,
+                    average.dev_loss,
+                    100.0 * average.dev_unit_error_rate
+                );
+            }
         }
     })
     .map_err(anyhow::Error::from)
