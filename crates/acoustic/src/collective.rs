@@ -132,7 +132,7 @@ mod mpi_world {
     /// polls. Open MPI moves a non-blocking collective on only inside a poll, so a rank must
     /// not pause between polls while the exchange is under way: with a 50 µs sleep between
     /// polls after 2 000 of them (this module's earlier rule) a 5.6 MB sum of two ranks took
-    /// 10.2 ms instead of 1.4, and 18.1 instead of 1.4 once the other rank came 5 ms late
+    /// 10.4 ms instead of 1.75, and 19.1 instead of 1.8 once the other rank came 5 ms late
     /// (`examples/exchange.rs`, DEVELOPERS.md "Data-parallel training"). A yield costs nothing
     /// on an idle core and hands an oversubscribed one to whoever waits for it.
     const YIELD_AFTER_POLLS: u32 = 2_000;

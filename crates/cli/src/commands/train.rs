@@ -474,13 +474,12 @@ fn train_ranks(
                 record.dev_loss,
                 100.0 * record.dev_unit_error_rate,
                 record.frames_per_second,
-                match (&record.average, record.saved, record.improved) {
-                    (Some(_), _, true) => "  (best dev loss so far)",
-                    (Some(_), _, false) => "",
-                    (None, true, true) => "  (saved; best dev loss so far)",
-                    (None, true, false) => "  (saved)",
-                    (None, false, true) => "  (best dev loss so far)",
-                    (None, false, false) => "",
+                // With averaging the directory holds the mean, said on the next line.
+                match (record.saved && record.average.is_none(), record.improved) {
+                    (true, true) => "  (saved; best dev loss so far)",
+                    (true, false) => "  (saved)",
+                    (false, true) => "  (best dev loss so far)",
+                    (false, false) => "",
                 }
             );
             if let Some(average) = &record.average {
