@@ -2,6 +2,7 @@
 
 use isogloss_audio::augment::{
     AugmentConfig, BandLimitConfig, CodecConfig, GainConfig, NoiseConfig, ReverbConfig,
+    RevoiceConfig,
 };
 use isogloss_features::{deprecated_spellings, CmvnMode, FeatureConfig, SpecAugment, VtlpConfig};
 use isogloss_speaker::{ExtractionMode, ExtractorConfig};
@@ -422,7 +423,7 @@ impl TrainingConfig {
 }
 
 /// `[augmentation]`: how every training utterance is perturbed, afresh in every epoch. Speed
-/// first (resampling), then the waveform steps (room, noise, band, gain), then the features
+/// first (resampling), then the waveform steps (voice source, room, noise, band, gain, codec), then the features
 /// (vocal-tract warp of the mel filters), normalisation and the time/frequency masks.
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 #[serde(deny_unknown_fields, default)]
@@ -444,6 +445,10 @@ pub struct Augmentation {
     /// configurations and `model.toml` files written before it existed keep their meaning.
     #[serde(default = "CodecConfig::off")]
     pub codec: CodecConfig,
+    /// A new voice source through a linear-prediction vocoder. Off without an
+    /// `[augmentation.revoice]` table, like the codec.
+    #[serde(default = "RevoiceConfig::off")]
+    pub revoice: RevoiceConfig,
     /// SpecAugment time and frequency masks on the normalised features (zero masks disable).
     pub masks: SpecAugment,
 }
@@ -464,6 +469,7 @@ impl Default for Augmentation {
             band_limit: waveform.band_limit,
             gain: waveform.gain,
             codec: CodecConfig::off(),
+            revoice: RevoiceConfig::off(),
             masks: SpecAugment::default(),
         };
         augmentation.vtlp.probability = 0.5;
@@ -496,6 +502,7 @@ impl Augmentation {
         none.band_limit.probability = 0.0;
         none.gain.probability = 0.0;
         none.codec.probability = 0.0;
+        none.revoice.probability = 0.0;
         none
     }
 
@@ -507,6 +514,7 @@ impl Augmentation {
             band_limit: self.band_limit.clone(),
             gain: self.gain.clone(),
             codec: self.codec.clone(),
+            revoice: self.revoice.clone(),
         }
     }
 
@@ -518,6 +526,7 @@ impl Augmentation {
             self.band_limit.probability,
             self.gain.probability,
             self.codec.probability,
+            self.revoice.probability,
         ]
         .iter()
         .any(|&p| p > 0.0)
@@ -1088,6 +1097,36 @@ mod tests {
         .to_string();
         assert!(
             message.contains("augmentation.codec.cutoff_hz"),
+            "{message}"
+        );
+    }
+
+    /// Re-voicing, like the codec, is off without its table; with it the missing keys take the
+    /// library's defaults, the model file carries the table, and bad values name their key.
+    #[test]
+    fn revoicing_is_off_without_its_table() {
+        let layers = "[model]\nnormalization = \"batch\"\ndropout = 0.0\nlayers = [{ taps = [0], width = 8 }]\n";
+        let without = ModelConfig::parse(layers).unwrap();
+        assert_eq!(without.augmentation.revoice.probability, 0.0);
+        assert_eq!(Augmentation::default().revoice.probability, 0.0);
+        let with = ModelConfig::parse(&format!(
+            "{layers}[augmentation.revoice]\nprobability = 0.3\nf0_hz = [90.0, 250.0]\n"
+        ))
+        .unwrap();
+        assert_eq!(with.augmentation.revoice.probability, 0.3);
+        assert_eq!(with.augmentation.revoice.f0_hz, [90.0, 250.0]);
+        assert_eq!(with.augmentation.revoice.bandwidth_factor, [0.95, 1.0]);
+        assert!(with.augmentation.has_waveform_steps());
+        assert_eq!(with.augmentation.waveform().revoice, with.augmentation.revoice);
+        let written = toml::to_string(&with).unwrap();
+        assert_eq!(ModelConfig::parse(&written).unwrap(), with);
+        let message = ModelConfig::parse(&format!(
+            "{layers}[augmentation.revoice]\nbandwidth_factor = [0.5, 1.0]\n"
+        ))
+        .unwrap_err()
+        .to_string();
+        assert!(
+            message.contains("augmentation.revoice.bandwidth_factor") && message.contains("0.5"),
             "{message}"
         );
     }

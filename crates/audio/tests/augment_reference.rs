@@ -1,15 +1,18 @@
 //! The augmentations against general-purpose reference libraries: room impulse responses
 //! against pyroomacoustics' image-source `ShoeBox`, Sabine absorption against
 //! `pyroomacoustics.inverse_sabine`, the band-limiting filters against scipy's Butterworth
-//! design; the simulated codec's window and frame spectra against `scipy.signal.stft`. Values
-//! computed by `scripts/reference/augment_reference.py` and `scripts/reference/codec_reference.py`
-//! and committed in `tests/fixtures/audio/augment_reference.json` and `codec_reference.json`.
+//! design; the simulated codec's window and frame spectra against `scipy.signal.stft`; the
+//! re-voicing step's autocorrelation and Levinson–Durbin recursion against `numpy.correlate` and
+//! `scipy.linalg.solve_toeplitz`. Values computed by `scripts/reference/augment_reference.py`,
+//! `codec_reference.py` and `revoice_reference.py` and committed in `tests/fixtures/audio/`
+//! (`augment_reference.json`, `codec_reference.json`, `revoice_reference.json`).
 
 use std::path::PathBuf;
 
 use isogloss_audio::augment::{
-    band_limit_gain, codec_window, frame_spectra, image_source_rir, sabine_absorption, FftPlans,
-    ImageSourceSettings, Room, CODEC_FRAME, CODEC_HOP,
+    autocorrelation, band_limit_gain, codec_window, frame_spectra, image_source_rir,
+    levinson_durbin, sabine_absorption, FftPlans, ImageSourceSettings, Room, CODEC_FRAME,
+    CODEC_HOP,
 };
 use serde_json::Value;
 
@@ -177,5 +180,42 @@ fn frame_spectra_equal_scipy_stft() {
                 im[k]
             );
         }
+    }
+}
+
+#[test]
+fn linear_prediction_equals_numpy_and_scipy_solve_toeplitz() {
+    let reference = fixture("revoice_reference.json");
+    let order = reference["order"].as_u64().unwrap() as usize;
+    for case in reference["cases"].as_array().unwrap() {
+        let name = case["name"].as_str().unwrap();
+        let frame = numbers(&case["frame"]);
+        let expected_r = numbers(&case["r"]);
+        let r = autocorrelation(&frame, order);
+        for (lag, (ours, theirs)) in r.iter().zip(&expected_r).enumerate() {
+            assert!(
+                (ours - theirs).abs() <= 1e-12 * expected_r[0],
+                "{name}: r[{lag}] {ours} against numpy's {theirs}"
+            );
+        }
+        // The recursion on numpy's autocorrelation, so the two checks stay apart.
+        let mut solved = expected_r.clone();
+        solved[0] *= 1.0 + case["correction"].as_f64().unwrap();
+        let (polynomial, error) = levinson_durbin(&solved).unwrap();
+        for (k, (ours, theirs)) in polynomial
+            .iter()
+            .zip(numbers(&case["polynomial"]))
+            .enumerate()
+        {
+            assert!(
+                (ours - theirs).abs() <= 1e-8 * theirs.abs().max(1.0),
+                "{name}: a[{k}] {ours} against scipy's {theirs}"
+            );
+        }
+        let theirs = case["error"].as_f64().unwrap();
+        assert!(
+            (error - theirs).abs() <= 1e-8 * theirs,
+            "{name}: error {error} against {theirs}"
+        );
     }
 }

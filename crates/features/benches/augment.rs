@@ -15,8 +15,8 @@ use std::hint::black_box;
 use std::time::Instant;
 
 use isogloss_audio::augment::{
-    babble, band_limit, coloured_noise, hum, mix_at_snr, reverberate, simulate_codec,
-    AugmentConfig, Augmenter, CodecSettings, HumSettings, ReverbConfig, RirBank,
+    babble, band_limit, coloured_noise, hum, mix_at_snr, reverberate, revoice, simulate_codec,
+    AugmentConfig, Augmenter, CodecSettings, HumSettings, ReverbConfig, RevoiceSettings, RirBank,
 };
 use isogloss_audio::volume_perturb;
 use isogloss_features::mel::MelFilterbank;
@@ -173,6 +173,19 @@ fn main() {
         seconds,
         mfcc,
     );
+    let voice = RevoiceSettings {
+        f0_hz: 150.0,
+        intonation_semitones: 2.0,
+        breath: 0.2,
+        tilt: 0.2,
+        bandwidth_factor: 0.97,
+    };
+    let cost = time(runs, || {
+        let mut samples = speech.clone();
+        black_box(revoice(&mut samples, &voice, &mut rng));
+        black_box(samples);
+    });
+    report("re-voicing (150 Hz, γ 0.97)", cost, seconds, mfcc);
     let copy = time(runs, || {
         black_box(speech.clone());
     });

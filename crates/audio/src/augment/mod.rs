@@ -8,7 +8,8 @@
 //! computed once into a [`RirBank`] from its own seed when the [`Augmenter`] is built; each
 //! utterance is still convolved afresh (a bank of responses, not a cache of augmented audio).
 //!
-//! The chain, each step with its own probability, in the order sound meets it: the **room**
+//! The chain, each step with its own probability, in the order sound meets it: the **voice**
+//! (its source exchanged through a linear-prediction vocoder, [`revoice`]), the **room**
 //! (the voice convolved with a response of a random rectangular room, level kept), **background
 //! noise** (white, pink, brown or babble at an SNR drawn in a range, exact over the utterance),
 //! the **channel** (a random band, or the 300–3400 Hz telephone band), the **recording level**
@@ -45,6 +46,7 @@ mod codec;
 mod filter;
 mod fourier;
 mod noise;
+mod revoice;
 mod room;
 
 use rand::Rng;
@@ -61,6 +63,10 @@ pub use fourier::{convolve, FftPlans};
 pub use noise::{
     babble, coloured_noise, hum, loop_to_length, mean_power, mix_at_snr, BabbleSource, HumSettings,
     NoiseKind, COLOURED_NOISE_LOW_HZ, HUM_HARMONICS, HUM_HISS_DB, LOOP_CROSSFADE_SAMPLES, MAINS_HZ,
+};
+pub use revoice::{
+    autocorrelation, levinson_durbin, revoice, RevoiceSettings, JITTER, LPC_ORDER, PREEMPHASIS,
+    REVOICE_HOP, REVOICE_WINDOW, VOICING_HIGH, VOICING_LOW,
 };
 pub use room::{
     image_source_rir, reverberate, sabine_absorption, ImageSourceSettings, RirBank, Room,
@@ -89,6 +95,8 @@ pub struct AugmentConfig {
     pub gain: GainConfig,
     /// A lossy re-encode.
     pub codec: CodecConfig,
+    /// A new voice source ([`revoice`]).
+    pub revoice: RevoiceConfig,
 }
 
 /// `[augmentation.noise]`.
@@ -275,6 +283,94 @@ impl CodecConfig {
     }
 }
 
+/// `[augmentation.revoice]`: the voice source exchanged through a linear-prediction vocoder
+/// ([`revoice`]).
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(default, deny_unknown_fields)]
+pub struct RevoiceConfig {
+    /// Chance that an utterance is re-voiced.
+    pub probability: f64,
+    /// Range of the new fundamental (Hz), [low, high], drawn on a log scale.
+    pub f0_hz: [f64; 2],
+    /// Range of the intonation depth (semitones, peak), [low, high].
+    pub intonation_semitones: [f64; 2],
+    /// Range of the breathiness (share of the voiced source power given to noise), [low, high].
+    pub breath: [f64; 2],
+    /// Range of the source tilt (one-pole coefficient; positive: darker), [low, high].
+    pub tilt: [f64; 2],
+    /// Range of the envelope's pole radius factor γ (bandwidth expansion; 1 keeps the
+    /// formants as they were), [low, high].
+    pub bandwidth_factor: [f64; 2],
+}
+
+impl Default for RevoiceConfig {
+    /// A fifth of utterances; fundamentals from 70 to 300 Hz (low male to child voices, common
+    /// knowledge of speech, from memory), intonation up to 4 semitones, breathiness up to 0.4, a
+    /// tilt from slightly brighter to darker than the analysed source, formants kept to about
+    /// 250 Hz wider (γ from 0.95 to 1).
+    fn default() -> Self {
+        RevoiceConfig {
+            probability: 0.2,
+            f0_hz: [70.0, 300.0],
+            intonation_semitones: [0.0, 4.0],
+            breath: [0.0, 0.4],
+            tilt: [-0.3, 0.6],
+            bandwidth_factor: [0.95, 1.0],
+        }
+    }
+}
+
+impl RevoiceConfig {
+    /// The same ranges, never drawn: what a training configuration without an
+    /// `[augmentation.revoice]` table means.
+    pub fn off() -> Self {
+        RevoiceConfig {
+            probability: 0.0,
+            ..RevoiceConfig::default()
+        }
+    }
+
+    /// Checks the `[augmentation.revoice]` settings.
+    pub fn validate(&self) -> Result<(), AudioError> {
+        check_probability("augmentation.revoice.probability", self.probability)?;
+        check_range(
+            "augmentation.revoice.f0_hz",
+            self.f0_hz,
+            40.0,
+            600.0,
+            "from 40 to 600 Hz",
+        )?;
+        check_range(
+            "augmentation.revoice.intonation_semitones",
+            self.intonation_semitones,
+            0.0,
+            12.0,
+            "from 0 to 12 semitones",
+        )?;
+        check_range(
+            "augmentation.revoice.breath",
+            self.breath,
+            0.0,
+            1.0,
+            "from 0 to 1",
+        )?;
+        check_range(
+            "augmentation.revoice.tilt",
+            self.tilt,
+            -0.95,
+            0.95,
+            "from -0.95 to 0.95",
+        )?;
+        check_range(
+            "augmentation.revoice.bandwidth_factor",
+            self.bandwidth_factor,
+            0.8,
+            1.0,
+            "from 0.8 to 1",
+        )
+    }
+}
+
 fn invalid(
     key: &'static str,
     expected: impl Into<String>,
@@ -323,6 +419,7 @@ impl AugmentConfig {
         self.band_limit.probability = 1.0;
         self.gain.probability = 1.0;
         self.codec.probability = 1.0;
+        self.revoice.probability = 1.0;
         self
     }
 
@@ -333,7 +430,8 @@ impl AugmentConfig {
         self.reverb.validate()?;
         self.band_limit.validate()?;
         self.gain.validate()?;
-        self.codec.validate()
+        self.codec.validate()?;
+        self.revoice.validate()
     }
 }
 
@@ -485,6 +583,8 @@ impl GainConfig {
 /// What [`Augmenter::apply`] did to one utterance (`None`: that step was not drawn).
 #[derive(Debug, Clone, PartialEq, Default, Serialize)]
 pub struct Applied {
+    /// The new voice source.
+    pub revoice: Option<AppliedRevoice>,
     /// The room the utterance was reverberated in.
     pub reverb: Option<AppliedReverb>,
     /// The noise added.
@@ -495,6 +595,21 @@ pub struct Applied {
     pub gain_db: Option<f64>,
     /// The re-encode.
     pub codec: Option<AppliedCodec>,
+}
+
+/// A re-voicing as drawn ([`RevoiceSettings`]).
+#[derive(Debug, Clone, Copy, PartialEq, Serialize)]
+pub struct AppliedRevoice {
+    /// Centre of the new fundamental (Hz).
+    pub f0_hz: f64,
+    /// Intonation depth (semitones).
+    pub intonation_semitones: f64,
+    /// Breathiness.
+    pub breath: f64,
+    /// Source tilt.
+    pub tilt: f64,
+    /// Pole radius factor of the envelope.
+    pub bandwidth_factor: f64,
 }
 
 /// A re-encode as drawn.
@@ -579,10 +694,11 @@ impl Augmenter {
     }
 
     /// Draws the chain for one utterance of 16 kHz samples and applies it in place (the length
-    /// does not change). For each step in turn — reverberation, noise, band-limit, gain, codec —
-    /// one uniform value decides whether it happens (with the configured probability), then its
-    /// parameters are drawn. The codec, the newest step, draws nothing at all when its
-    /// probability is 0, so configurations without it get the same draws as before it existed. `babble` supplies the other utterances for babble noise; when babble
+    /// does not change). For each step in turn — re-voicing, reverberation, noise, band-limit,
+    /// gain, codec — one uniform value decides whether it happens (with the configured
+    /// probability), then its parameters are drawn. The codec and re-voicing, the newest steps,
+    /// draw nothing at all when their probability is 0, so configurations without them get the
+    /// same draws as before they existed. `babble` supplies the other utterances for babble noise; when babble
     /// is drawn and there is none to draw from, that is an error (a configuration that lists
     /// babble needs a source). Silent utterances get no noise.
     pub fn apply<R: Rng + ?Sized>(
@@ -593,6 +709,26 @@ impl Augmenter {
     ) -> Result<Applied, AudioError> {
         let mut applied = Applied::default();
         let config = &self.config;
+        let voice = &config.revoice;
+        if voice.probability > 0.0 && rng.random::<f64>() < voice.probability {
+            let [low, high] = voice.f0_hz;
+            let settings = RevoiceSettings {
+                f0_hz: (low.ln() + rng.random::<f64>() * (high.ln() - low.ln())).exp(),
+                intonation_semitones: draw(rng, voice.intonation_semitones),
+                breath: draw(rng, voice.breath),
+                tilt: draw(rng, voice.tilt),
+                bandwidth_factor: draw(rng, voice.bandwidth_factor),
+            };
+            if revoice(samples, &settings, rng) {
+                applied.revoice = Some(AppliedRevoice {
+                    f0_hz: settings.f0_hz,
+                    intonation_semitones: settings.intonation_semitones,
+                    breath: settings.breath,
+                    tilt: settings.tilt,
+                    bandwidth_factor: settings.bandwidth_factor,
+                });
+            }
+        }
         if rng.random::<f64>() < config.reverb.probability {
             if let Some((bank_index, response)) = self.bank.as_ref().and_then(|b| b.draw(rng)) {
                 reverberate(samples, response, &self.plans);
@@ -820,6 +956,26 @@ mod tests {
                 "[6.0, -6.0]",
             ),
             (
+                "[revoice]\nf0_hz = [30.0, 200.0]",
+                "augmentation.revoice.f0_hz",
+                "30.0",
+            ),
+            (
+                "[revoice]\nbandwidth_factor = [0.9, 1.1]",
+                "augmentation.revoice.bandwidth_factor",
+                "1.1",
+            ),
+            (
+                "[revoice]\ntilt = [0.5, -0.5]",
+                "augmentation.revoice.tilt",
+                "[0.5, -0.5]",
+            ),
+            (
+                "[revoice]\nbreath = [0.0, 2.0]",
+                "augmentation.revoice.breath",
+                "2.0",
+            ),
+            (
                 "[codec]\nprobability = 1.2",
                 "augmentation.codec.probability",
                 "1.2",
@@ -949,6 +1105,7 @@ mod tests {
         off.band_limit.probability = 0.0;
         off.gain.probability = 0.0;
         off.codec.probability = 0.0;
+        off.revoice.probability = 0.0;
         let augmenter = Augmenter::new(off).unwrap();
         assert!(augmenter.rir_bank().is_none());
         let mut samples = utterance(0);
@@ -957,20 +1114,21 @@ mod tests {
         assert_eq!(samples, utterance(0));
     }
 
-    /// A configuration without the codec draws exactly what it drew before the codec existed:
-    /// the generator is left where the gain step left it.
+    /// A configuration without the codec and re-voicing draws exactly what it drew before they
+    /// existed: the generator is left where the gain step left it.
     #[test]
-    fn a_codec_that_is_off_draws_nothing() {
+    fn a_codec_and_a_revoicing_that_are_off_draw_nothing() {
         let mut config = AugmentConfig::default();
         config.noise.probability = 0.0;
         config.reverb.probability = 0.0;
         config.band_limit.probability = 0.0;
         config.gain.probability = 1.0;
         config.codec = CodecConfig::off();
+        config.revoice = RevoiceConfig::off();
         let augmenter = Augmenter::new(config).unwrap();
         let mut rng = ChaCha8Rng::seed_from_u64(3);
         let applied = augmenter.apply(&mut utterance(0), &mut rng, None).unwrap();
-        assert!(applied.codec.is_none() && applied.gain_db.is_some());
+        assert!(applied.codec.is_none() && applied.revoice.is_none() && applied.gain_db.is_some());
         // The draws by hand: four decisions (reverb, noise, band, gain) and the gain.
         let mut replay = ChaCha8Rng::seed_from_u64(3);
         for _ in 0..4 {
@@ -978,6 +1136,30 @@ mod tests {
         }
         assert_eq!(Some(draw(&mut replay, [-6.0, 6.0])), applied.gain_db);
         assert_eq!(replay.random::<u64>(), rng.random::<u64>());
+    }
+
+    #[test]
+    fn the_revoice_step_changes_the_audio_keeps_its_power_and_records_its_draw() {
+        let mut config = AugmentConfig::default();
+        config.noise.probability = 0.0;
+        config.reverb.probability = 0.0;
+        config.band_limit.probability = 0.0;
+        config.gain.probability = 0.0;
+        config.codec.probability = 0.0;
+        config.revoice.probability = 1.0;
+        let augmenter = Augmenter::new(config.clone()).unwrap();
+        let mut rng = ChaCha8Rng::seed_from_u64(17);
+        let mut samples = utterance(1);
+        let applied = augmenter.apply(&mut samples, &mut rng, None).unwrap();
+        let drawn = applied.revoice.expect("probability 1");
+        let voice = &config.revoice;
+        assert!((voice.f0_hz[0]..=voice.f0_hz[1]).contains(&drawn.f0_hz));
+        assert!((voice.bandwidth_factor[0]..=voice.bandwidth_factor[1])
+            .contains(&drawn.bandwidth_factor));
+        assert!(samples.iter().all(|s| s.is_finite()));
+        assert_ne!(samples, utterance(1));
+        let ratio = mean_power(&samples) / mean_power(&utterance(1));
+        assert!((ratio - 1.0).abs() < 1e-3, "{ratio}");
     }
 
     #[test]
