@@ -564,6 +564,46 @@ mod tests {
         assert!(short.iter().all(|&s| s == 0.1));
     }
 
+    /// Odd input from real files — a constant offset, one click, a clipped square wave, a
+    /// near-silent hiss, a pure tone — comes out finite at the input's power, or untouched.
+    #[test]
+    fn odd_input_stays_finite() {
+        let mut rng = ChaCha8Rng::seed_from_u64(19);
+        let n = 8_000;
+        let inputs: Vec<(&str, Vec<f32>)> = vec![
+            ("offset", vec![0.25; n]),
+            (
+                "click",
+                (0..n).map(|i| if i == n / 2 { 1.0 } else { 0.0 }).collect(),
+            ),
+            (
+                "square",
+                (0..n)
+                    .map(|i| if (i / 40) % 2 == 0 { 1.0 } else { -1.0 })
+                    .collect(),
+            ),
+            (
+                "hiss",
+                (0..n)
+                    .map(|_| 1e-30 * Distribution::<f32>::sample(&StandardNormal, &mut rng))
+                    .collect(),
+            ),
+            ("tone", (0..n).map(|i| (i as f32 * 0.3).sin()).collect()),
+        ];
+        for (name, input) in inputs {
+            let mut samples = input.clone();
+            let changed = revoice(&mut samples, &SETTINGS, &mut rng);
+            assert!(samples.iter().all(|s| s.is_finite()), "{name}");
+            if changed {
+                let power = |x: &[f32]| x.iter().map(|&s| f64::from(s).powi(2)).sum::<f64>();
+                let ratio = power(&samples) / power(&input);
+                assert!((ratio - 1.0).abs() < 1e-3, "{name}: power ratio {ratio}");
+            } else {
+                assert_eq!(samples, input, "{name}");
+            }
+        }
+    }
+
     #[test]
     fn the_same_generator_state_gives_the_same_samples() {
         let mut rng = ChaCha8Rng::seed_from_u64(11);
