@@ -1117,7 +1117,10 @@ mod tests {
         assert_eq!(with.augmentation.revoice.f0_hz, [90.0, 250.0]);
         assert_eq!(with.augmentation.revoice.bandwidth_factor, [0.95, 1.0]);
         assert!(with.augmentation.has_waveform_steps());
-        assert_eq!(with.augmentation.waveform().revoice, with.augmentation.revoice);
+        assert_eq!(
+            with.augmentation.waveform().revoice,
+            with.augmentation.revoice
+        );
         let written = toml::to_string(&with).unwrap();
         assert_eq!(ModelConfig::parse(&written).unwrap(), with);
         let message = ModelConfig::parse(&format!(

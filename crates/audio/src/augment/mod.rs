@@ -1020,6 +1020,17 @@ mod tests {
         config
     }
 
+    /// `config` with every step's probability 0; a test switches on the step it looks at.
+    fn all_off(mut config: AugmentConfig) -> AugmentConfig {
+        config.revoice.probability = 0.0;
+        config.reverb.probability = 0.0;
+        config.noise.probability = 0.0;
+        config.band_limit.probability = 0.0;
+        config.gain.probability = 0.0;
+        config.codec.probability = 0.0;
+        config
+    }
+
     fn utterance(seed: u64) -> Vec<f32> {
         (0..24_000)
             .map(|n| 0.2 * ((n as f32) * (0.03 + seed as f32 * 0.01)).sin())
@@ -1063,11 +1074,8 @@ mod tests {
     fn hum_is_a_noise_kind_of_the_config_file_and_needs_no_source() {
         let config = parse("[noise]\nprobability = 1.0\nkinds = [\"hum\"]").unwrap();
         assert_eq!(config.noise.kinds, [NoiseKind::Hum]);
-        let mut only_noise = config;
-        only_noise.reverb.probability = 0.0;
-        only_noise.band_limit.probability = 0.0;
-        only_noise.gain.probability = 0.0;
-        only_noise.codec.probability = 0.0;
+        let mut only_noise = all_off(config);
+        only_noise.noise.probability = 1.0;
         let augmenter = Augmenter::new(only_noise).unwrap();
         let clean = utterance(0);
         let mut samples = clean.clone();
@@ -1099,14 +1107,7 @@ mod tests {
             .unwrap_err()
             .to_string();
         assert!(error.contains("babble"), "{error}");
-        let mut off = AugmentConfig::default();
-        off.noise.probability = 0.0;
-        off.reverb.probability = 0.0;
-        off.band_limit.probability = 0.0;
-        off.gain.probability = 0.0;
-        off.codec.probability = 0.0;
-        off.revoice.probability = 0.0;
-        let augmenter = Augmenter::new(off).unwrap();
+        let augmenter = Augmenter::new(all_off(AugmentConfig::default())).unwrap();
         assert!(augmenter.rir_bank().is_none());
         let mut samples = utterance(0);
         let applied = augmenter.apply(&mut samples, &mut rng, None).unwrap();
@@ -1118,10 +1119,7 @@ mod tests {
     /// existed: the generator is left where the gain step left it.
     #[test]
     fn a_codec_and_a_revoicing_that_are_off_draw_nothing() {
-        let mut config = AugmentConfig::default();
-        config.noise.probability = 0.0;
-        config.reverb.probability = 0.0;
-        config.band_limit.probability = 0.0;
+        let mut config = all_off(AugmentConfig::default());
         config.gain.probability = 1.0;
         config.codec = CodecConfig::off();
         config.revoice = RevoiceConfig::off();
@@ -1140,12 +1138,7 @@ mod tests {
 
     #[test]
     fn the_revoice_step_changes_the_audio_keeps_its_power_and_records_its_draw() {
-        let mut config = AugmentConfig::default();
-        config.noise.probability = 0.0;
-        config.reverb.probability = 0.0;
-        config.band_limit.probability = 0.0;
-        config.gain.probability = 0.0;
-        config.codec.probability = 0.0;
+        let mut config = all_off(AugmentConfig::default());
         config.revoice.probability = 1.0;
         let augmenter = Augmenter::new(config.clone()).unwrap();
         let mut rng = ChaCha8Rng::seed_from_u64(17);
@@ -1164,11 +1157,7 @@ mod tests {
 
     #[test]
     fn the_codec_step_changes_the_audio_and_keeps_it_finite() {
-        let mut config = AugmentConfig::default();
-        config.noise.probability = 0.0;
-        config.reverb.probability = 0.0;
-        config.band_limit.probability = 0.0;
-        config.gain.probability = 0.0;
+        let mut config = all_off(AugmentConfig::default());
         config.codec.probability = 1.0;
         let augmenter = Augmenter::new(config).unwrap();
         let mut rng = ChaCha8Rng::seed_from_u64(11);
