@@ -377,3 +377,42 @@ fn variants_pairs_word_aligned_rows_and_lists_the_rest() {
     let report = json_of(&output);
     assert!(report["flexible_wer"].as_f64().unwrap() < report["wer"].as_f64().unwrap());
 }
+
+/// `--speakers` joins a speaker table on the reference's `speaker` column: an age group of one
+/// speaker has that speaker's figures, a group of two the sum of their words (the fixture:
+/// martha and zoë 80+, tom 60-79).
+#[test]
+fn a_speaker_table_gives_breakdowns_by_its_columns() {
+    let speakers = fixture("speakers.tsv");
+    let report = json_of(&score(&[
+        "--speakers",
+        speakers.to_str().unwrap(),
+        "--by",
+        "age,speaker",
+        "--json",
+    ]));
+    let groups = report["groups"].as_array().unwrap();
+    let find = |column: &str, value: &str| {
+        groups
+            .iter()
+            .find(|g| g["column"] == column && g["value"] == value)
+            .unwrap_or_else(|| panic!("no group {column} = {value} in {groups:?}"))
+    };
+    let (young, old) = (find("age", "60-79"), find("age", "80+"));
+    let (tom, martha, zoe) = (
+        find("speaker", "tom"),
+        find("speaker", "martha"),
+        find("speaker", "zoë"),
+    );
+    assert_eq!(young["ref_words"], tom["ref_words"]);
+    assert_eq!(young["wer"], tom["wer"]);
+    assert_eq!(
+        old["ref_words"].as_u64().unwrap(),
+        martha["ref_words"].as_u64().unwrap() + zoe["ref_words"].as_u64().unwrap()
+    );
+
+    assert_fails(
+        &score(&["--speakers", speakers.to_str().unwrap(), "--by", "region"]),
+        &["`region`", "speakers.tsv", "ref.tsv"],
+    );
+}

@@ -45,26 +45,98 @@ impl Reference {
         column: &str,
         group_columns: &[String],
     ) -> Result<Reference, ScoreError> {
+        Reference::read_joined(path, column, group_columns, None)
+    }
+
+    /// As [`Reference::read`], with grouping columns that the manifest lacks taken from a
+    /// speaker table: a file with a header, a `speaker` column and any others (age group, sex,
+    /// locality, recording device, …), joined on the manifest's `speaker` column. A column the
+    /// manifest has is read from the manifest. Errors name the file and line: a speaker listed
+    /// twice in the table, a manifest speaker missing from it, a column in neither file.
+    pub fn read_with_speakers(
+        path: &Path,
+        column: &str,
+        group_columns: &[String],
+        speakers: &Path,
+    ) -> Result<Reference, ScoreError> {
+        Reference::read_joined(path, column, group_columns, Some(speakers))
+    }
+
+    fn read_joined(
+        path: &Path,
+        column: &str,
+        group_columns: &[String],
+        speakers: Option<&Path>,
+    ) -> Result<Reference, ScoreError> {
         let table = Table::read_with_header(path)?;
         let id_column = table.column("id")?;
         let text_column = table.column(column)?;
-        let group_indices = group_columns
-            .iter()
-            .map(|name| table.column(name))
-            .collect::<Result<Vec<_>, _>>()?;
-        let utterances = table
-            .records
-            .iter()
-            .map(|record| ReferenceUtterance {
+        let speakers = speakers.map(SpeakerTable::read).transpose()?;
+        // Where each grouping column comes from: the manifest, or the speaker table.
+        let mut sources = Vec::with_capacity(group_columns.len());
+        for name in group_columns {
+            let source = match (&speakers, table.header.iter().position(|h| h == name)) {
+                (_, Some(index)) => Source::Manifest(index),
+                (Some(speakers), None) => match speakers.table.header.iter().position(|h| h == name) {
+                    Some(index) => Source::Speakers(index),
+                    None => {
+                        return Err(ScoreError::Format {
+                            path: path.to_path_buf(),
+                            line: 1,
+                            message: format!(
+                                "expected a column named `{name}` here or in the speaker table {} (its columns: {}), found only: {}",
+                                speakers.table.path.display(),
+                                speakers.table.header.join(", "),
+                                table.header.join(", ")
+                            ),
+                        })
+                    }
+                },
+                (None, None) => Source::Manifest(table.column(name)?),
+            };
+            sources.push(source);
+        }
+        let speaker_column = if sources.iter().any(|s| matches!(s, Source::Speakers(_))) {
+            Some(table.column("speaker")?)
+        } else {
+            None
+        };
+        let mut utterances = Vec::with_capacity(table.records.len());
+        for record in &table.records {
+            let joined = match (&speakers, speaker_column) {
+                (Some(speakers), Some(index)) => {
+                    let speaker = record.fields[index].trim();
+                    match speakers.rows.get(speaker) {
+                        Some(&row) => Some(&speakers.table.records[row]),
+                        None => {
+                            return Err(ScoreError::Format {
+                                path: path.to_path_buf(),
+                                line: record.line,
+                                message: format!(
+                                    "expected speaker `{speaker}` in the speaker table {}, found no row for it",
+                                    speakers.table.path.display()
+                                ),
+                            })
+                        }
+                    }
+                }
+                _ => None,
+            };
+            let groups = sources
+                .iter()
+                .map(|source| match (source, joined) {
+                    (Source::Manifest(i), _) => record.fields[*i].trim().to_string(),
+                    (Source::Speakers(i), Some(row)) => row.fields[*i].trim().to_string(),
+                    (Source::Speakers(_), None) => unreachable!("a speaker column is read"),
+                })
+                .collect();
+            utterances.push(ReferenceUtterance {
                 id: record.fields[id_column].trim().to_string(),
                 line: record.line,
                 text: record.fields[text_column].clone(),
-                groups: group_indices
-                    .iter()
-                    .map(|&i| record.fields[i].trim().to_string())
-                    .collect(),
-            })
-            .collect::<Vec<_>>();
+                groups,
+            });
+        }
         check_ids(path, utterances.iter().map(|u| (u.id.as_str(), u.line)))?;
         Ok(Reference {
             path: path.to_path_buf(),
@@ -72,6 +144,44 @@ impl Reference {
             group_columns: group_columns.to_vec(),
             utterances,
         })
+    }
+}
+
+/// Where a grouping column's values come from.
+enum Source {
+    /// This column of the manifest.
+    Manifest(usize),
+    /// This column of the speaker table, through the manifest's `speaker` column.
+    Speakers(usize),
+}
+
+/// A speaker table, indexed by speaker.
+struct SpeakerTable {
+    table: Table,
+    /// Row index of each speaker.
+    rows: HashMap<String, usize>,
+}
+
+impl SpeakerTable {
+    fn read(path: &Path) -> Result<SpeakerTable, ScoreError> {
+        let table = Table::read_with_header(path)?;
+        let column = table.column("speaker")?;
+        let mut rows: HashMap<String, usize> = HashMap::new();
+        for (index, record) in table.records.iter().enumerate() {
+            let speaker = record.fields[column].trim().to_string();
+            if let Some(&first) = rows.get(&speaker) {
+                return Err(ScoreError::Format {
+                    path: path.to_path_buf(),
+                    line: record.line,
+                    message: format!(
+                        "expected each speaker once, found `{speaker}` again (first on line {})",
+                        table.records[first].line
+                    ),
+                });
+            }
+            rows.insert(speaker, index);
+        }
+        Ok(SpeakerTable { table, rows })
     }
 }
 
@@ -210,6 +320,69 @@ mod tests {
             .to_string();
         assert!(
             message.contains("line 4") && message.contains("`u2`"),
+            "{message}"
+        );
+    }
+
+    #[test]
+    fn a_speaker_table_adds_grouping_columns() {
+        let dir = tempfile::tempdir().unwrap();
+        let path = file(&dir, "ref.tsv", MANIFEST);
+        let speakers = file(
+            &dir,
+            "speakers.tsv",
+            "speaker\tage\tdialect\nzoë\t80+\tother\nmartha\t60-79\tother\n",
+        );
+        let reference = Reference::read_with_speakers(
+            &path,
+            "dialectal",
+            &["age".into(), "dialect".into()],
+            &speakers,
+        )
+        .unwrap();
+        // `age` from the table; `dialect` from the manifest, which has it.
+        assert_eq!(reference.utterances[0].groups, ["60-79", "fells"]);
+        assert_eq!(reference.utterances[1].groups, ["80+", "marsh"]);
+
+        let message = Reference::read_with_speakers(&path, "dialectal", &["era".into()], &speakers)
+            .unwrap_err()
+            .to_string();
+        assert!(
+            message.contains("ref.tsv")
+                && message.contains("`era`")
+                && message.contains("speakers.tsv")
+                && message.contains("age"),
+            "{message}"
+        );
+        let short = file(&dir, "short.tsv", "speaker\tage\nmartha\t60-79\n");
+        let message = Reference::read_with_speakers(&path, "dialectal", &["age".into()], &short)
+            .unwrap_err()
+            .to_string();
+        assert!(
+            message.contains("ref.tsv") && message.contains("line 3") && message.contains("`zoë`"),
+            "{message}"
+        );
+        let twice = file(
+            &dir,
+            "twice.tsv",
+            "speaker\tage\nmartha\t60-79\nzoë\t80+\nmartha\t40-59\n",
+        );
+        let message = Reference::read_with_speakers(&path, "dialectal", &["age".into()], &twice)
+            .unwrap_err()
+            .to_string();
+        assert!(
+            message.contains("twice.tsv")
+                && message.contains("line 4")
+                && message.contains("`martha`")
+                && message.contains("line 2"),
+            "{message}"
+        );
+        let nameless = file(&dir, "nameless.tsv", "who\tage\nmartha\t60-79\n");
+        let message = Reference::read_with_speakers(&path, "dialectal", &["age".into()], &nameless)
+            .unwrap_err()
+            .to_string();
+        assert!(
+            message.contains("nameless.tsv") && message.contains("`speaker`"),
             "{message}"
         );
     }

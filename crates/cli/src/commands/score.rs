@@ -31,6 +31,10 @@ pub struct ScoreArgs {
     /// Reference columns to break the rates down by, comma-separated (e.g. `dialect,speaker`).
     #[arg(long, value_name = "COLUMNS", value_delimiter = ',')]
     pub by: Vec<String>,
+    /// Speaker table (`speaker` plus any columns: age group, sex, locality, recording device…),
+    /// joined on the reference's `speaker` column: `--by` may name its columns too.
+    #[arg(long, value_name = "FILE.tsv")]
+    pub speakers: Option<PathBuf>,
     /// A second system's hypotheses for a paired bootstrap comparison.
     #[arg(long, value_name = "HYP2.tsv")]
     pub compare: Option<PathBuf>,
@@ -84,7 +88,12 @@ pub fn run(args: ScoreArgs) -> anyhow::Result<Outcome> {
         },
         top_confusions: args.top_confusions,
     };
-    let reference = Reference::read(&args.reference, &args.column, &args.by)?;
+    let reference = match &args.speakers {
+        Some(speakers) => {
+            Reference::read_with_speakers(&args.reference, &args.column, &args.by, speakers)?
+        }
+        None => Reference::read(&args.reference, &args.column, &args.by)?,
+    };
     let variants = args
         .variants
         .as_deref()
