@@ -40,7 +40,7 @@ use crate::fused::View;
 /// Rows of the register tile.
 const MR: usize = 14;
 /// Columns of the register tile: two registers of 16 f32 lanes.
-const NR: usize = 32;
+pub(crate) const NR: usize = 32;
 /// Pairs of `k` per block: a column panel of `KC` pairs (`KC · NR · 4` bytes = 16 KiB) and a row
 /// panel (7 KiB) stay in a 32 KiB L1 cache while the micro-kernel runs.
 const KC: usize = 128;
@@ -73,14 +73,14 @@ pub(crate) fn from_bf16(bits: u16) -> f32 {
 
 /// The bfloat16 pair `(a, b)` as one 32-bit lane: `a` in the low half, as the instruction reads
 /// `a[2i]` before `a[2i+1]`.
-fn pair(a: f32, b: f32) -> u32 {
+pub(crate) fn pair(a: f32, b: f32) -> u32 {
     u32::from(to_bf16(a)) | (u32::from(to_bf16(b)) << 16)
 }
 
 /// Sixteen f32 lanes rounded to bfloat16 as [`to_bf16`] does, in the low halves of 32-bit lanes.
 #[inline]
 #[target_feature(enable = "avx512f,avx512bw,avx512bf16")]
-fn round16(v: __m512) -> __m512i {
+pub(crate) fn round16(v: __m512) -> __m512i {
     let bits = _mm512_castps_si512(v);
     let odd = _mm512_and_si512(_mm512_srli_epi32::<16>(bits), _mm512_set1_epi32(1));
     let rounding = _mm512_add_epi32(odd, _mm512_set1_epi32(0x7FFF));
@@ -90,7 +90,7 @@ fn round16(v: __m512) -> __m512i {
 }
 
 /// Lane mask of the first `count` (≤ 16) lanes.
-fn lanes(count: usize) -> __mmask16 {
+pub(crate) fn lanes(count: usize) -> __mmask16 {
     if count >= 16 {
         0xFFFF
     } else {
@@ -108,6 +108,45 @@ fn lanes(count: usize) -> __mmask16 {
 /// stride ≥ `n` × column stride).
 #[allow(clippy::too_many_arguments)]
 pub(crate) unsafe fn matmul(
+    shape: (usize, usize, usize),
+    dst: &mut [f32],
+    dst_view: View,
+    accumulate: bool,
+    lhs: &[f32],
+    lhs_view: View,
+    rhs: &[f32],
+    rhs_view: View,
+) {
+    let kernel = if crate::bf16_amx::usable() {
+        Kernel::Tiles
+    } else {
+        Kernel::Registers
+    };
+    // SAFETY: the caller's guarantees; the tile kernel only where usable.
+    unsafe {
+        matmul_with(
+            kernel, shape, dst, dst_view, accumulate, lhs, lhs_view, rhs, rhs_view,
+        )
+    }
+}
+
+/// Which kernel runs the bfloat16 products.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub(crate) enum Kernel {
+    /// The AVX-512 BF16 register kernel of this module.
+    Registers,
+    /// The AMX tile kernel ([`crate::bf16_amx`]).
+    Tiles,
+}
+
+/// [`matmul`] with the kernel named.
+///
+/// # Safety
+///
+/// As [`matmul`]; [`Kernel::Tiles`] only where [`crate::bf16_amx::usable`].
+#[allow(clippy::too_many_arguments)]
+pub(crate) unsafe fn matmul_with(
+    kernel: Kernel,
     (m, n, k): (usize, usize, usize),
     dst: &mut [f32],
     dst_view: View,
@@ -117,6 +156,22 @@ pub(crate) unsafe fn matmul(
     rhs: &[f32],
     rhs_view: View,
 ) {
+    if kernel == Kernel::Tiles {
+        // SAFETY: the caller's guarantees.
+        unsafe {
+            crate::bf16_amx::matmul(
+                (m, n, k),
+                dst,
+                dst_view,
+                accumulate,
+                lhs,
+                lhs_view,
+                rhs,
+                rhs_view,
+            )
+        };
+        return;
+    }
     let threads = rayon::current_num_threads().max(1);
     let pairs = k.div_ceil(2);
     let panels = n.div_ceil(NR);
@@ -163,9 +218,9 @@ pub(crate) unsafe fn matmul(
 
 /// The destination of a product, written by several threads at disjoint rows.
 #[derive(Clone, Copy)]
-struct Destination {
-    base: *mut f32,
-    view: View,
+pub(crate) struct Destination {
+    pub(crate) base: *mut f32,
+    pub(crate) view: View,
 }
 
 // SAFETY: threads write disjoint rows (each row block is one thread's), and the pointer outlives
@@ -299,7 +354,7 @@ unsafe fn pack_lhs(
 /// The pairs `p0 .. p0 + count` of a contiguous run of `k` values, handed to `put(q, pair)`
 /// with `q` counted from `p0`.
 #[target_feature(enable = "avx512f,avx512bw,avx512bf16")]
-fn pack_contiguous(
+pub(crate) fn pack_contiguous(
     run: &[f32],
     k: usize,
     (p0, count): (usize, usize),
@@ -341,7 +396,7 @@ fn pack_contiguous(
 /// Columns `c0 .. c0 + columns` (≤ NR) of `rhs`, every pair of `k`, into `panel`: pair `q`,
 /// column `j` at `q · NR + j`; missing columns are zero.
 #[target_feature(enable = "avx512f,avx512bw,avx512bf16")]
-unsafe fn pack_rhs(
+pub(crate) unsafe fn pack_rhs(
     panel: &mut [u32],
     rhs: &[f32],
     view: View,
@@ -498,6 +553,20 @@ mod tests {
         true
     }
 
+    /// The kernels this CPU runs: none without AVX-512 BF16; the register kernel; and the
+    /// tile kernel where the CPU has AMX (else a note that it was not tested).
+    fn kernels() -> Vec<Kernel> {
+        if skipped() {
+            return Vec::new();
+        }
+        if crate::bf16_amx::usable() {
+            vec![Kernel::Registers, Kernel::Tiles]
+        } else {
+            eprintln!("note: no AMX here; the tile kernel is not tested on this CPU");
+            vec![Kernel::Registers]
+        }
+    }
+
     /// How a matrix lies in its buffer.
     #[derive(Debug, Clone, Copy)]
     enum Layout {
@@ -564,24 +633,42 @@ mod tests {
         (m, n, k): (usize, usize, usize),
         layouts: [Layout; 3],
         accumulate: bool,
-        precision: MatmulPrecision,
+        kernel: Option<Kernel>,
     ) -> Case {
         let (lhs, lhs_view) = matrix(rng, m, k, layouts[0]);
         let (rhs, rhs_view) = matrix(rng, k, n, layouts[1]);
         let (before, dst_view) = matrix(rng, m, n, layouts[2]);
         let mut after = before.clone();
-        fused::matmul(
-            precision,
-            (m, n, k),
-            &mut after,
-            dst_view,
-            accumulate,
-            &lhs,
-            lhs_view,
-            &rhs,
-            rhs_view,
-        )
-        .unwrap();
+        match kernel {
+            // The f32 product, through the function the fused layers call.
+            None => fused::matmul(
+                MatmulPrecision::F32,
+                (m, n, k),
+                &mut after,
+                dst_view,
+                accumulate,
+                &lhs,
+                lhs_view,
+                &rhs,
+                rhs_view,
+            )
+            .unwrap(),
+            // SAFETY: the kernel runs on this CPU (`kernels`); m, n, k ≥ 1 and the views
+            // lie inside their buffers (`matrix`); destination rows are distinct.
+            Some(kernel) => unsafe {
+                matmul_with(
+                    kernel,
+                    (m, n, k),
+                    &mut after,
+                    dst_view,
+                    accumulate,
+                    &lhs,
+                    lhs_view,
+                    &rhs,
+                    rhs_view,
+                )
+            },
+        }
         let round = |v: f32| f64::from(from_bf16(to_bf16(v)));
         let (mut rounded, mut unrounded, mut magnitude) = (vec![], vec![], vec![]);
         for i in 0..m {
@@ -637,14 +724,17 @@ mod tests {
 
     #[test]
     fn products_match_exact_sums_of_the_rounded_operands() {
-        if skipped() {
-            return;
+        for kernel in kernels() {
+            products_match_exact_sums_with(kernel);
         }
+    }
+
+    fn products_match_exact_sums_with(kernel: Kernel) {
         let mut rng = ChaCha8Rng::seed_from_u64(7);
         for (index, shape) in shapes().into_iter().enumerate() {
             let layouts = LAYOUTS[index % LAYOUTS.len()];
             let accumulate = index % 2 == 1;
-            let case = run(&mut rng, shape, layouts, accumulate, MatmulPrecision::Bf16);
+            let case = run(&mut rng, shape, layouts, accumulate, Some(kernel));
             let (m, n, _) = shape;
             for i in 0..m {
                 for j in 0..n {
@@ -655,7 +745,7 @@ mod tests {
                     let tolerance = 1e-5 * case.magnitude[e] + 1e-30;
                     assert!(
                         (got - case.rounded[e]).abs() <= tolerance,
-                        "{shape:?} {layouts:?} accumulate {accumulate}, element ({i}, {j}): {got} vs {}",
+                        "{kernel:?} {shape:?} {layouts:?} accumulate {accumulate}, element ({i}, {j}): {got} vs {}",
                         case.rounded[e]
                     );
                 }
@@ -672,7 +762,7 @@ mod tests {
             for (e, (&b, &a)) in case.before.iter().zip(&case.after).enumerate() {
                 assert!(
                     inside[e] || b.to_bits() == a.to_bits(),
-                    "{shape:?}: value {e} outside the view changed"
+                    "{kernel:?} {shape:?}: value {e} outside the view changed"
                 );
             }
         }
@@ -680,13 +770,23 @@ mod tests {
 
     #[test]
     fn products_stay_within_the_rounding_bound_of_the_f32_product() {
-        if skipped() {
-            return;
+        for kernel in kernels() {
+            let mut rng = ChaCha8Rng::seed_from_u64(8);
+            for (index, shape) in shapes().into_iter().enumerate().step_by(3) {
+                let layouts = LAYOUTS[index % LAYOUTS.len()];
+                within_the_rounding_bound(&mut rng, kernel, shape, layouts);
+            }
         }
-        let mut rng = ChaCha8Rng::seed_from_u64(8);
-        for (index, shape) in shapes().into_iter().enumerate().step_by(3) {
-            let layouts = LAYOUTS[index % LAYOUTS.len()];
-            let case = run(&mut rng, shape, layouts, false, MatmulPrecision::Bf16);
+    }
+
+    fn within_the_rounding_bound(
+        rng: &mut ChaCha8Rng,
+        kernel: Kernel,
+        shape: (usize, usize, usize),
+        layouts: [Layout; 3],
+    ) {
+        {
+            let case = run(rng, shape, layouts, false, Some(kernel));
             let (m, n, _) = shape;
             for i in 0..m {
                 for j in 0..n {
@@ -696,7 +796,7 @@ mod tests {
                     let bound = 2.0 * 2f64.powi(-8) * case.magnitude[e];
                     assert!(
                         (got - case.unrounded[e]).abs() <= bound,
-                        "{shape:?} element ({i}, {j}): {got} vs {}",
+                        "{kernel:?} {shape:?} element ({i}, {j}): {got} vs {}",
                         case.unrounded[e]
                     );
                 }
@@ -708,13 +808,7 @@ mod tests {
     fn f32_precision_is_the_f32_product() {
         let mut rng = ChaCha8Rng::seed_from_u64(9);
         let (m, n) = (29, 33);
-        let case = run(
-            &mut rng,
-            (m, n, 257),
-            LAYOUTS[1],
-            true,
-            MatmulPrecision::F32,
-        );
+        let case = run(&mut rng, (m, n, 257), LAYOUTS[1], true, None);
         for e in 0..m * n {
             let got = f64::from(get(&case.after, case.dst_view, e / n, e % n));
             let exact = case.unrounded[e];
@@ -727,9 +821,12 @@ mod tests {
 
     #[test]
     fn results_do_not_depend_on_the_thread_count() {
-        if skipped() {
-            return;
+        for kernel in kernels() {
+            same_at_one_and_two_threads(kernel);
         }
+    }
+
+    fn same_at_one_and_two_threads(kernel: Kernel) {
         for (shape, layouts) in [
             ((700, 100, 300), LAYOUTS[0]),
             ((384, 70, 1001), LAYOUTS[1]),
@@ -744,14 +841,14 @@ mod tests {
                         .unwrap();
                     pool.install(|| {
                         let mut rng = ChaCha8Rng::seed_from_u64(10);
-                        let case = run(&mut rng, shape, layouts, true, MatmulPrecision::Bf16);
+                        let case = run(&mut rng, shape, layouts, true, Some(kernel));
                         case.after.iter().map(|v| v.to_bits()).collect()
                     })
                 })
                 .collect();
             assert!(
                 products[0] == products[1],
-                "{shape:?}: 1 and 2 threads differ"
+                "{kernel:?} {shape:?}: 1 and 2 threads differ"
             );
         }
     }

@@ -61,6 +61,8 @@
 
 pub mod audio_set;
 #[cfg(target_arch = "x86_64")]
+mod bf16_amx;
+#[cfg(target_arch = "x86_64")]
 mod bf16_matmul;
 pub mod collective;
 pub mod config;

@@ -10,7 +10,7 @@ use serde::{Deserialize, Serialize};
 
 use isogloss_speaker::{IvectorExtractor, EXTRACTOR_DESCRIPTION};
 
-use crate::config::TdnnConfig;
+use crate::config::{MatmulPrecision, TdnnConfig};
 use crate::io::{serialize_tensors, write_atomically};
 use crate::tdnn::{var_builder, Tdnn};
 use crate::units::UnitInventory;
@@ -186,6 +186,17 @@ fn upgrade_previous_release(description: &mut ModelDescription, text: &str) -> V
     notices
 }
 
+/// The number format of the network's products at inference: `[inference] matmul_precision`
+/// where this CPU runs it, else f32.
+fn inference_precision(description: &ModelDescription) -> MatmulPrecision {
+    description
+        .inference
+        .as_ref()
+        .map_or(MatmulPrecision::F32, |search| {
+            search.matmul_precision.supported()
+        })
+}
+
 /// A trained model ready for inference.
 pub struct AcousticModel {
     description: ModelDescription,
@@ -284,7 +295,7 @@ impl AcousticModel {
         })?;
         let vb =
             candle_nn::VarBuilder::from_tensors(tensors, candle_core::DType::F32, &Device::Cpu);
-        let network = Tdnn::new(
+        let mut network = Tdnn::new(
             vb,
             &description.architecture,
             description.network_input(),
@@ -294,6 +305,7 @@ impl AcousticModel {
             path: weights,
             problem: e.to_string(),
         })?;
+        network.set_inference_precision(inference_precision(&description));
         let model = AcousticModel {
             description,
             network,
@@ -353,12 +365,13 @@ impl AcousticModel {
         description: ModelDescription,
         tensors: &BTreeMap<String, Var>,
     ) -> Result<AcousticModel, AcousticError> {
-        let network = Tdnn::new(
+        let mut network = Tdnn::new(
             var_builder(tensors),
             &description.architecture,
             description.network_input(),
             description.units.len(),
         )?;
+        network.set_inference_precision(inference_precision(&description));
         Ok(AcousticModel {
             description,
             network,
@@ -397,9 +410,10 @@ impl AcousticModel {
         self.description.inference.as_ref()
     }
 
-    /// Replaces the warp search for this loaded model (for a program using the library; the
-    /// commands read the `[inference]` table of `model.toml` and have no flag for it), checked
-    /// against the model's front end; `None` or the single factor 1.0 turn it off.
+    /// Replaces the `[inference]` table for this loaded model (for a program using the
+    /// library; the commands read the table of `model.toml` and have no flag for it), checked
+    /// against the model's front end; `None`, or the single factor 1.0 with f32 products, is
+    /// no table.
     pub fn set_inference(
         &mut self,
         inference: Option<crate::warp_search::Inference>,
@@ -407,9 +421,19 @@ impl AcousticModel {
         if let Some(search) = &inference {
             search.validate(&self.description.features)?;
         }
-        self.description.inference = inference
-            .filter(|search| search.candidates() != [crate::warp_search::Candidate::PLAIN]);
+        self.description.inference = inference.filter(|search| {
+            search.candidates() != [crate::warp_search::Candidate::PLAIN]
+                || search.matmul_precision != MatmulPrecision::F32
+        });
+        let precision = inference_precision(&self.description);
+        self.network.set_inference_precision(precision);
         Ok(())
+    }
+
+    /// The number format the network's products run in for this model on this CPU
+    /// (`[inference] matmul_precision`, f32 where the CPU lacks AVX-512 BF16).
+    pub fn matmul_precision(&self) -> MatmulPrecision {
+        inference_precision(&self.description)
     }
 
     /// Log-posteriors of one segment's 16 kHz samples through the most confident candidate of
@@ -796,6 +820,7 @@ mod tests {
                 warp_boundary_hz: 4800.0,
                 speed_factors: Vec::new(),
                 choose: Default::default(),
+                matmul_precision: Default::default(),
             }))
             .unwrap();
         assert!(model.inference().is_none());
@@ -808,8 +833,53 @@ mod tests {
             warp_boundary_hz: 4800.0,
             speed_factors: Vec::new(),
             choose: Default::default(),
+            matmul_precision: Default::default(),
         };
         assert!(model.set_inference(Some(too_strong)).is_err());
+    }
+
+    #[test]
+    fn an_inference_table_may_ask_for_bf16_products_alone() {
+        let (dir, _, _) = saved_small_model(|_| {});
+        let f32_model = AcousticModel::load(dir.path()).unwrap();
+        assert_eq!(f32_model.matmul_precision(), MatmulPrecision::F32);
+        let path = dir.path().join("model.toml");
+        let text = std::fs::read_to_string(&path).unwrap();
+        std::fs::write(
+            &path,
+            format!("{text}\n[inference]\nmatmul_precision = \"bf16\"\n"),
+        )
+        .unwrap();
+        let model = AcousticModel::load(dir.path()).unwrap();
+        let search = model.inference().expect("the table is kept").clone();
+        // No warp factors named: the unwarped front end alone.
+        assert_eq!(search.candidates(), [Candidate::PLAIN]);
+        assert_eq!(search.matmul_precision, MatmulPrecision::Bf16);
+        let mut rng = ChaCha8Rng::seed_from_u64(6);
+        let features = Array2::from_shape_fn((120, 39), |_| rng.random_range(-1.0f32..1.0));
+        let exact = f32_model.log_posteriors(&features).unwrap();
+        let rounded = model.log_posteriors(&features).unwrap();
+        if !crate::fused::bf16_available() {
+            // This CPU runs f32 whatever the table asks.
+            assert_eq!(model.matmul_precision(), MatmulPrecision::F32);
+            assert_eq!(rounded, exact);
+            return;
+        }
+        assert_eq!(model.matmul_precision(), MatmulPrecision::Bf16);
+        // Operands rounded to 8 significant bits: close to the f32 posteriors, not equal.
+        let largest = exact
+            .iter()
+            .zip(&rounded)
+            .map(|(a, b)| (a - b).abs())
+            .fold(0f32, f32::max);
+        assert!(largest > 0.0 && largest < 0.05, "{largest}");
+        // Written back, the table keeps the key; set to f32 with no search, it is no table.
+        let mut model = model;
+        let mut plain = search;
+        plain.matmul_precision = MatmulPrecision::F32;
+        model.set_inference(Some(plain)).unwrap();
+        assert!(model.inference().is_none());
+        assert_eq!(model.log_posteriors(&features).unwrap(), exact);
     }
 
     #[test]
@@ -838,6 +908,10 @@ mod tests {
             (
                 "[inference]\nwarp_factor = [1.0]\n",
                 "unknown field `warp_factor`",
+            ),
+            (
+                "[inference]\nmatmul_precision = \"fp8\"\n",
+                "unknown variant `fp8`",
             ),
         ] {
             let text = format!("{}{bad}", &good[..table]);

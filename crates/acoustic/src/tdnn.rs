@@ -112,8 +112,11 @@ pub struct TdnnLayer {
     subsample: usize,
     output_dims: usize,
     hidden: bool,
-    /// Number format of the matrix products of training passes (inference is always f32).
+    /// Number format of the matrix products of training passes.
     training_precision: MatmulPrecision,
+    /// Number format of the matrix products of inference passes (`[inference]
+    /// matmul_precision` of `model.toml`; f32 unless set).
+    inference_precision: MatmulPrecision,
 }
 
 impl TdnnLayer {
@@ -153,6 +156,7 @@ impl TdnnLayer {
             output_dims,
             hidden: normalization.is_some(),
             training_precision: MatmulPrecision::F32,
+            inference_precision: MatmulPrecision::F32,
         })
     }
 
@@ -203,11 +207,10 @@ impl TdnnLayer {
             Some((valid, p, rng)) => (Some(valid), Some((p, rng))),
             None => (None, None),
         };
-        // Inference stays f32 whatever the training setting.
         let precision = if valid.is_some() {
             self.training_precision
         } else {
-            MatmulPrecision::F32
+            self.inference_precision
         };
         let (transform, params) = match (&self.stage, valid) {
             (Stage::Bias { bias }, _) => (Transform::Bias, bias.unsqueeze(0)?),
@@ -614,11 +617,21 @@ impl Tdnn {
     }
 
     /// The number format of the matrix products of training passes ([`Tdnn::forward_train`]);
-    /// f32 until set. Inference ([`Tdnn::forward`]) is f32 whatever this says. Bf16 on a CPU
-    /// without the instructions runs f32 (see [`MatmulPrecision::supported`]).
+    /// f32 until set. Inference ([`Tdnn::forward`]) has its own
+    /// ([`Tdnn::set_inference_precision`]). Bf16 on a CPU without the instructions runs f32
+    /// (see [`MatmulPrecision::supported`]).
     pub fn set_training_precision(&mut self, precision: MatmulPrecision) {
         for layer in &mut self.layers {
             layer.training_precision = precision;
+        }
+    }
+
+    /// The number format of the matrix products of inference passes ([`Tdnn::forward`]); f32
+    /// until set. Everything else (bias, normalisation, the softmax) stays f32. Bf16 on a CPU
+    /// without the instructions runs f32.
+    pub fn set_inference_precision(&mut self, precision: MatmulPrecision) {
+        for layer in &mut self.layers {
+            layer.inference_precision = precision;
         }
     }
 

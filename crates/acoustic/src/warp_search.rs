@@ -25,6 +25,7 @@ use serde::{Deserialize, Serialize};
 
 use isogloss_features::{FeatureConfig, VtlpConfig, VtlpWarp};
 
+use crate::config::MatmulPrecision;
 use crate::AcousticError;
 
 /// The upper boundary frequency of the warp when `model.toml` does not name one: that of the
@@ -36,12 +37,22 @@ fn default_boundary_hz() -> f64 {
 /// The factors a search may try (docs/limits.md); training draws from about 0.9–1.1.
 pub const FACTOR_LIMITS: [f64; 2] = [0.5, 2.0];
 
+/// The search of a table that names no warp factors: the unwarped front end alone.
+fn plain_factors() -> Vec<f64> {
+    vec![1.0]
+}
+
+fn is_f32(precision: &MatmulPrecision) -> bool {
+    *precision == MatmulPrecision::F32
+}
+
 /// `[inference]` of `model.toml`: how the model is best decoded.
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 #[serde(deny_unknown_fields)]
 pub struct Inference {
     /// Vocal-tract warp factors tried per segment (each > 0; 1.0 is the unwarped front end).
-    /// On a tie between candidates the first listed wins.
+    /// On a tie between candidates the first listed wins. Absent: `[1.0]`, no search.
+    #[serde(default = "plain_factors")]
     pub warp_factors: Vec<f64>,
     /// Upper boundary frequency F_hi of the piecewise-linear warp, Hz.
     #[serde(default = "default_boundary_hz")]
@@ -55,6 +66,11 @@ pub struct Inference {
     /// How the candidate is chosen per segment ([`Choice`]); by default with the decoder.
     #[serde(default)]
     pub choose: Choice,
+    /// Number format of the network's matrix products: f32 (the default), or operands rounded
+    /// to bfloat16 with f32 sums on CPUs with AVX-512 BF16 (others run f32), about twice as
+    /// fast. Bias, normalisation and the softmax stay f32.
+    #[serde(default, skip_serializing_if = "is_f32")]
+    pub matmul_precision: MatmulPrecision,
 }
 
 /// How the search chooses among its candidates.
@@ -146,6 +162,7 @@ impl Inference {
             warp_boundary_hz: vtlp.boundary_hz,
             speed_factors: Vec::new(),
             choose: Choice::default(),
+            matmul_precision: MatmulPrecision::F32,
         })
     }
 
@@ -354,6 +371,7 @@ mod tests {
             warp_boundary_hz: 4800.0,
             speed_factors: Vec::new(),
             choose: Default::default(),
+            matmul_precision: MatmulPrecision::F32,
         };
         assert!(with(vec![1.0, 0.9, 1.1]).validate(&features).is_ok());
         for (factors, says) in [
@@ -395,6 +413,7 @@ mod tests {
             warp_boundary_hz: 4800.0,
             speed_factors: Vec::new(),
             choose: Default::default(),
+            matmul_precision: MatmulPrecision::F32,
         };
         let frontends = search.frontends(16000).unwrap();
         assert!(frontends[0].warp.is_none());
@@ -409,6 +428,7 @@ mod tests {
             warp_boundary_hz: 4800.0,
             speed_factors: vec![0.9, 1.0, 1.1],
             choose: Default::default(),
+            matmul_precision: MatmulPrecision::F32,
         };
         let c = |speed, warp| Candidate { speed, warp };
         assert_eq!(

@@ -61,6 +61,7 @@ fn main() -> anyhow::Result<()> {
         warp_boundary_hz: 4800.0,
         speed_factors: Vec::new(),
         choose: Default::default(),
+        matmul_precision: Default::default(),
     };
     let frontends = search.frontends(16000)?;
     let config = model.feature_config().clone();
