@@ -692,8 +692,11 @@ mod tests {
             .map(|_| rng.random_range(-2.0f32..2.0))
             .collect();
         let input = Tensor::from_vec(x, (2, frames, dims), &Device::Cpu).unwrap();
-        let fused = model.network.forward(&input).unwrap();
-        let reference = model.network.forward_reference(&input, None).unwrap();
+        // Both in f32 (the shipped model.toml asks for bf16 products at inference).
+        let mut network = model.network.clone();
+        network.set_inference_precision(MatmulPrecision::F32);
+        let fused = network.forward(&input).unwrap();
+        let reference = network.forward_reference(&input, None).unwrap();
         let diff: f32 = (fused - reference)
             .unwrap()
             .abs()
@@ -725,11 +728,15 @@ mod tests {
         );
         assert_eq!(description.provenance.seed, 2);
         assert_eq!(description.provenance.epochs, 160);
-        // Decoded with the warp search `isogloss train` now writes for that recipe's VTLP range
-        // (added to the model.toml by hand: the model was trained before the search existed).
+        // Decoded with the `[inference]` table `isogloss train` now writes for that recipe: the
+        // warp search over its VTLP range and its bf16 products (added to the model.toml by
+        // hand: the model was trained before either existed).
         assert_eq!(
             description.inference,
-            crate::warp_search::Inference::from_training(&config.augmentation.vtlp)
+            crate::warp_search::Inference::from_training(
+                &config.augmentation.vtlp,
+                config.training.matmul_precision
+            )
         );
         assert_eq!(
             description.inference.as_ref().unwrap().warp_factors,
@@ -747,6 +754,12 @@ mod tests {
         use isogloss_features::{Cmvn, FeatureExtractor, VtlpWarp};
         let root = Path::new(env!("CARGO_MANIFEST_DIR")).join("../..");
         let mut model = AcousticModel::load(&root.join("models/demo")).unwrap();
+        // f32 products throughout, so that turning the search off below changes nothing else.
+        let f32_search = Inference {
+            matmul_precision: MatmulPrecision::F32,
+            ..model.inference().unwrap().clone()
+        };
+        model.set_inference(Some(f32_search)).unwrap();
         let samples = isogloss_audio::read_segments(
             &root.join("tests/data/demo/cross/clean/fells-cross01-0001.ogg"),
             &[isogloss_audio::Segment {
@@ -884,8 +897,10 @@ mod tests {
 
     #[test]
     fn a_bad_inference_table_is_an_error_naming_model_toml_and_the_key() {
-        let search =
-            crate::warp_search::Inference::from_training(&ModelConfig::small().augmentation.vtlp);
+        let search = crate::warp_search::Inference::from_training(
+            &ModelConfig::small().augmentation.vtlp,
+            MatmulPrecision::F32,
+        );
         assert!(search.is_some());
         let (dir, description, _) = saved_small_model(|d| d.inference = search);
         let good = std::fs::read_to_string(dir.path().join("model.toml")).unwrap();

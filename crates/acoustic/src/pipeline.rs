@@ -1073,7 +1073,10 @@ pub fn train_with(
                 augmentation: Some(config.augmentation.clone()),
                 self_training: Vec::new(),
                 speaker_vectors: config.speaker_vectors.clone(),
-                inference: crate::warp_search::Inference::from_training(&config.augmentation.vtlp),
+                inference: crate::warp_search::Inference::from_training(
+                    &config.augmentation.vtlp,
+                    config.training.matmul_precision,
+                ),
             };
             if writer {
                 trainer.with_kept_weights(|trainer| {

@@ -143,26 +143,30 @@ impl Frontend {
 }
 
 impl Inference {
-    /// The search over the ends of a training warp range and 1.0, in the order
-    /// [1.0, low, high] (1.0 first, so that it wins ties); `None` when the training did not
-    /// warp (probability 0) or its range is the single factor 1.0.
-    pub fn from_training(vtlp: &VtlpConfig) -> Option<Inference> {
+    /// The table `isogloss train` writes: the search over the ends of the training's warp
+    /// range and 1.0, in the order [1.0, low, high] (1.0 first, so that it wins ties), and the
+    /// number format of the training's products (a network trained with bf16 products is
+    /// decoded with them). `None` when neither applies: the training did not warp (probability
+    /// 0, or the single factor 1.0) and ran its products in f32.
+    pub fn from_training(vtlp: &VtlpConfig, precision: MatmulPrecision) -> Option<Inference> {
         let [low, high] = vtlp.warp_factor;
-        if vtlp.probability <= 0.0 || (low == 1.0 && high == 1.0) {
-            return None;
-        }
         let mut factors = vec![1.0];
-        for f in [low, high] {
-            if !factors.contains(&f) {
-                factors.push(f);
+        if vtlp.probability > 0.0 {
+            for f in [low, high] {
+                if !factors.contains(&f) {
+                    factors.push(f);
+                }
             }
+        }
+        if factors.len() == 1 && precision == MatmulPrecision::F32 {
+            return None;
         }
         Some(Inference {
             warp_factors: factors,
             warp_boundary_hz: vtlp.boundary_hz,
             speed_factors: Vec::new(),
             choose: Choice::default(),
-            matmul_precision: MatmulPrecision::F32,
+            matmul_precision: precision,
         })
     }
 
@@ -342,25 +346,35 @@ mod tests {
     #[test]
     fn training_ranges_give_one_and_their_ends() {
         let vtlp = VtlpConfig::default();
-        let search = Inference::from_training(&vtlp).unwrap();
+        let f32 = MatmulPrecision::F32;
+        let search = Inference::from_training(&vtlp, f32).unwrap();
         assert_eq!(
             search.warp_factors,
             vec![1.0, vtlp.warp_factor[0], vtlp.warp_factor[1]]
         );
         assert_eq!(search.warp_boundary_hz, vtlp.boundary_hz);
+        assert_eq!(search.matmul_precision, f32);
         let never = VtlpConfig {
             probability: 0.0,
             ..VtlpConfig::default()
         };
-        assert_eq!(Inference::from_training(&never), None);
+        assert_eq!(Inference::from_training(&never, f32), None);
         let one_sided = VtlpConfig {
             warp_factor: [1.0, 1.1],
             ..VtlpConfig::default()
         };
         assert_eq!(
-            Inference::from_training(&one_sided).unwrap().warp_factors,
+            Inference::from_training(&one_sided, f32).unwrap().warp_factors,
             vec![1.0, 1.1]
         );
+        // Trained with bf16 products: decoded with them, with or without a search.
+        let bf16 = MatmulPrecision::Bf16;
+        let searched = Inference::from_training(&vtlp, bf16).unwrap();
+        assert_eq!(searched.warp_factors, search.warp_factors);
+        assert_eq!(searched.matmul_precision, bf16);
+        let unwarped = Inference::from_training(&never, bf16).unwrap();
+        assert_eq!(unwarped.candidates(), [Candidate::PLAIN]);
+        assert_eq!(unwarped.matmul_precision, bf16);
     }
 
     #[test]
