@@ -69,7 +69,13 @@ fn request_tile_state() -> bool {
     const XFEATURE_XTILEDATA: libc::c_long = 18;
     // SAFETY: a plain system call with two integer arguments; it changes only which register
     // state the process may use.
-    unsafe { libc::syscall(libc::SYS_arch_prctl, ARCH_REQ_XCOMP_PERM, XFEATURE_XTILEDATA) == 0 }
+    unsafe {
+        libc::syscall(
+            libc::SYS_arch_prctl,
+            ARCH_REQ_XCOMP_PERM,
+            XFEATURE_XTILEDATA,
+        ) == 0
+    }
 }
 
 #[cfg(not(target_os = "linux"))]

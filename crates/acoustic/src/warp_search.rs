@@ -364,7 +364,9 @@ mod tests {
             ..VtlpConfig::default()
         };
         assert_eq!(
-            Inference::from_training(&one_sided, f32).unwrap().warp_factors,
+            Inference::from_training(&one_sided, f32)
+                .unwrap()
+                .warp_factors,
             vec![1.0, 1.1]
         );
         // Trained with bf16 products: decoded with them, with or without a search.
