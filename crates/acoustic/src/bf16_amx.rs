@@ -180,7 +180,7 @@ fn with_buffer<T: Copy + Default, R>(
 ///
 /// As [`matmul`]; `packed_rhs` holds the panels of `rhs`, `padded_pairs` pairs each.
 #[allow(clippy::too_many_arguments)]
-unsafe fn product(
+pub(crate) unsafe fn product(
     (m, n, k): (usize, usize, usize),
     threads: usize,
     dst: &mut [f32],

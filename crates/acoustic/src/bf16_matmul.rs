@@ -172,22 +172,115 @@ pub(crate) unsafe fn matmul_with(
         };
         return;
     }
-    let threads = rayon::current_num_threads().max(1);
-    let pairs = k.div_ceil(2);
-    let panels = n.div_ceil(NR);
-    let mut packed_rhs = vec![0u32; panels * pairs * NR];
-    let pack = |(p, panel): (usize, &mut [u32])| {
-        // SAFETY: the caller's guarantees (CPU features, views inside their slices).
-        unsafe { pack_rhs(panel, rhs, rhs_view, k, p * NR, NR.min(n - p * NR)) }
-    };
-    if threads > 1 {
-        packed_rhs
-            .par_chunks_mut(pairs * NR)
-            .enumerate()
-            .for_each(pack);
-    } else {
-        packed_rhs.chunks_mut(pairs * NR).enumerate().for_each(pack);
+    // SAFETY: the caller's guarantees.
+    let packed = unsafe { PackedRhs::new(rhs, rhs_view, (k, n), 1) };
+    // SAFETY: the caller's guarantees; `packed` is `rhs` converted.
+    unsafe { register_product((m, n, k), dst, dst_view, accumulate, lhs, lhs_view, &packed) }
+}
+
+/// The right operand `[k, n]` of a product converted once for either kernel: panels of [`NR`]
+/// columns, one 32-bit lane per column and pair of `k` (pair `q`, column `j` of panel `p` at
+/// `(p · panel_pairs + q) · NR + j`), each panel `panel_pairs` pairs long (a multiple of the
+/// kernel's unit; the pairs past `k` and the columns past `n` are zero). A network's weights
+/// are converted this way once for all the segments it reads ([`crate::tdnn::Tdnn::
+/// set_inference_precision`]).
+pub(crate) struct PackedRhs {
+    pub(crate) data: Vec<u32>,
+    pub(crate) k: usize,
+    pub(crate) n: usize,
+    pub(crate) panel_pairs: usize,
+}
+
+impl PackedRhs {
+    /// `rhs` through `view` (`k` × `n`), panels padded to a multiple of `unit` pairs.
+    ///
+    /// # Safety
+    ///
+    /// The CPU has AVX-512 F, BW and BF16; `k`, `n` ≥ 1; every element the view addresses lies
+    /// inside `rhs`.
+    pub(crate) unsafe fn new(
+        rhs: &[f32],
+        view: View,
+        (k, n): (usize, usize),
+        unit: usize,
+    ) -> PackedRhs {
+        let threads = rayon::current_num_threads().max(1);
+        let panel_pairs = k.div_ceil(2).div_ceil(unit) * unit;
+        let panels = n.div_ceil(NR);
+        let mut data = vec![0u32; panels * panel_pairs * NR];
+        let pack = |(p, panel): (usize, &mut [u32])| {
+            // SAFETY: the caller's guarantees (CPU features, view inside the slice); the panel
+            // holds at least `pairs · NR` values.
+            unsafe { pack_rhs(panel, rhs, view, k, p * NR, NR.min(n - p * NR)) }
+        };
+        if threads > 1 {
+            data.par_chunks_mut(panel_pairs * NR)
+                .enumerate()
+                .for_each(pack);
+        } else {
+            data.chunks_mut(panel_pairs * NR).enumerate().for_each(pack);
+        }
+        PackedRhs {
+            data,
+            k,
+            n,
+            panel_pairs,
+        }
     }
+}
+
+/// `dst = (accumulate ? dst : 0) + lhs · rhs` with `rhs` already converted, on the kernel this
+/// CPU runs ([`matmul`]'s choice).
+///
+/// # Safety
+///
+/// As [`matmul`]; `packed` holds a `[k, n]` operand converted with panels of a multiple of 16
+/// pairs.
+pub(crate) unsafe fn matmul_packed(
+    m: usize,
+    dst: &mut [f32],
+    dst_view: View,
+    accumulate: bool,
+    (lhs, lhs_view): (&[f32], View),
+    packed: &PackedRhs,
+) {
+    let shape = (m, packed.n, packed.k);
+    if crate::bf16_amx::usable() {
+        let threads = rayon::current_num_threads().max(1);
+        // SAFETY: the caller's guarantees.
+        unsafe {
+            crate::bf16_amx::product(
+                shape,
+                threads,
+                dst,
+                dst_view,
+                accumulate,
+                (lhs, lhs_view),
+                &packed.data,
+                packed.panel_pairs,
+            )
+        }
+    } else {
+        // SAFETY: the caller's guarantees.
+        unsafe { register_product(shape, dst, dst_view, accumulate, lhs, lhs_view, packed) }
+    }
+}
+
+/// The register kernel's product over a converted right operand.
+///
+/// # Safety
+///
+/// As [`matmul`]; `packed` is the right operand converted.
+unsafe fn register_product(
+    (m, n, k): (usize, usize, usize),
+    dst: &mut [f32],
+    dst_view: View,
+    accumulate: bool,
+    lhs: &[f32],
+    lhs_view: View,
+    packed: &PackedRhs,
+) {
+    let threads = rayon::current_num_threads().max(1);
     // Enough row blocks for every thread; the block size does not change any sum.
     let mc = MC.min(m.div_ceil(threads).div_ceil(MR) * MR);
     let blocks = m.div_ceil(mc);
@@ -201,7 +294,8 @@ pub(crate) unsafe fn matmul_with(
         accumulate,
         lhs,
         lhs_view,
-        packed_rhs: &packed_rhs,
+        packed_rhs: &packed.data,
+        panel_pairs: packed.panel_pairs,
         out,
     };
     let run = |block: usize| {
@@ -236,6 +330,8 @@ struct Job<'a> {
     lhs: &'a [f32],
     lhs_view: View,
     packed_rhs: &'a [u32],
+    /// Pairs per panel of `packed_rhs`.
+    panel_pairs: usize,
     out: Destination,
 }
 
@@ -271,7 +367,7 @@ impl Job<'_> {
             for cp in 0..self.n.div_ceil(NR) {
                 let c0 = cp * NR;
                 let columns = NR.min(self.n - c0);
-                let b = &self.packed_rhs[(cp * pairs + p0) * NR..][..count * NR];
+                let b = &self.packed_rhs[(cp * self.panel_pairs + p0) * NR..][..count * NR];
                 for rp in 0..row_panels {
                     let r0 = rp * MR;
                     let a = &packed_lhs[rp * count * MR..][..count * MR];

@@ -114,8 +114,11 @@ pub(crate) struct FusedLayer {
     pub mask: Option<Vec<f32>>,
     /// Whether to compute the input gradient.
     pub input_grad: bool,
-    /// Number format of the matrix products (training passes only; inference is f32).
+    /// Number format of the matrix products.
     precision: MatmulPrecision,
+    /// The weights of each offset already converted for the bf16 kernels (inference of a
+    /// loaded model, whose weights do not change); used when `precision` is bf16.
+    packed_weights: Option<Arc<PackedWeights>>,
     saved: Mutex<Option<Saved>>,
     /// Where the forward pass leaves the batch statistics (batch normalisation), for the caller:
     /// candle keeps the operation itself.
@@ -274,6 +277,83 @@ pub(crate) fn matmul(
     Ok(())
 }
 
+/// A layer's weights `[input_dims, K · H]` converted for the bf16 kernels, one operand per
+/// offset (the `[input_dims, H]` block of each).
+pub(crate) struct PackedWeights {
+    #[cfg(target_arch = "x86_64")]
+    offsets: Vec<crate::bf16_matmul::PackedRhs>,
+}
+
+impl PackedWeights {
+    /// The `offsets` blocks of `weights` (`[dims, offsets · h]`, row-major), converted; `None`
+    /// where the CPU has no bf16 kernel or a shape is empty.
+    pub fn new(weights: &[f32], dims: usize, offsets: usize, h: usize) -> Option<PackedWeights> {
+        if dims == 0 || h == 0 || offsets == 0 || weights.len() != dims * offsets * h {
+            return None;
+        }
+        #[cfg(target_arch = "x86_64")]
+        if bf16_available() {
+            let offsets = (0..offsets)
+                .map(|k| {
+                    let view = View {
+                        offset: k * h,
+                        row_stride: offsets * h,
+                        col_stride: 1,
+                    };
+                    // SAFETY: the CPU has the instructions (checked); dims, h ≥ 1 and the view
+                    // lies inside `weights` (its length checked above).
+                    unsafe { crate::bf16_matmul::PackedRhs::new(weights, view, (dims, h), 16) }
+                })
+                .collect();
+            return Some(PackedWeights { offsets });
+        }
+        None
+    }
+
+    /// Whether these are the weights of a layer of `offsets` offsets from `dims` to `h`.
+    #[cfg(target_arch = "x86_64")]
+    fn fits(&self, offsets: usize, dims: usize, h: usize) -> bool {
+        self.offsets.len() == offsets && self.offsets.iter().all(|p| p.k == dims && p.n == h)
+    }
+}
+
+/// [`matmul`] in bf16 with the right operand converted beforehand: `dst = (accumulate ? dst :
+/// 0) + lhs · packed` for an `[m, k]` view of `lhs`. Checks the views as [`matmul`] does.
+#[cfg(target_arch = "x86_64")]
+fn matmul_packed(
+    m: usize,
+    dst: &mut [f32],
+    dst_view: View,
+    accumulate: bool,
+    lhs: &[f32],
+    lhs_view: View,
+    packed: &crate::bf16_matmul::PackedRhs,
+) -> candle_core::Result<()> {
+    let (n, k) = (packed.n, packed.k);
+    if m == 0 {
+        return Ok(());
+    }
+    let last = |v: View, rows: usize, cols: usize| {
+        v.offset + (rows - 1) * v.row_stride + (cols.max(1) - 1) * v.col_stride
+    };
+    if last(dst_view, m, n) >= dst.len() || last(lhs_view, m, k) >= lhs.len() {
+        candle_core::bail!("fused TDNN layer: a matrix view exceeds its buffer")
+    }
+    // SAFETY: the CPU has the instructions (the caller checked `bf16_available`); m, n, k ≥ 1
+    // (a converted operand is never empty); the views lie inside their slices (checked above);
+    // the destination rows are distinct (row stride ≥ n for every caller).
+    unsafe {
+        crate::bf16_matmul::matmul_packed(m, dst, dst_view, accumulate, (lhs, lhs_view), packed)
+    };
+    Ok(())
+}
+
+impl std::fmt::Debug for PackedWeights {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        f.write_str("PackedWeights")
+    }
+}
+
 fn contiguous_f32<'a>(
     storage: &'a CpuStorage,
     layout: &Layout,
@@ -321,6 +401,7 @@ impl FusedLayer {
             mask,
             input_grad,
             precision: MatmulPrecision::F32,
+            packed_weights: None,
             saved: Mutex::new(None),
             statistics: StatisticsSlot::default(),
             collective: None,
@@ -337,6 +418,13 @@ impl FusedLayer {
     /// Matrix products in `precision` instead of f32.
     pub fn with_precision(mut self, precision: MatmulPrecision) -> Self {
         self.precision = precision;
+        self
+    }
+
+    /// The weights of every offset converted beforehand ([`PackedWeights::new`]), for bf16
+    /// products; they must be the converted weight tensor this operation is applied with.
+    pub fn with_packed_weights(mut self, packed: Option<Arc<PackedWeights>>) -> Self {
+        self.packed_weights = packed;
         self
     }
 
@@ -408,6 +496,33 @@ impl FusedLayer {
         let kh = self.shifts.len() * h;
         let s = self.subsample;
         let mut z = vec![0f32; g.rows() * h];
+        #[cfg(target_arch = "x86_64")]
+        if let (MatmulPrecision::Bf16, Some(packed)) = (self.precision, &self.packed_weights) {
+            if bf16_available() && packed.fits(self.shifts.len(), g.dims, h) {
+                for (x0, z0, m) in g.blocks(s) {
+                    for (k, &shift) in self.shifts.iter().enumerate() {
+                        matmul_packed(
+                            m,
+                            &mut z,
+                            View {
+                                offset: z0 * h,
+                                row_stride: h,
+                                col_stride: 1,
+                            },
+                            k > 0,
+                            x,
+                            View {
+                                offset: (x0 + shift) * g.dims,
+                                row_stride: s * g.dims,
+                                col_stride: 1,
+                            },
+                            &packed.offsets[k],
+                        )?;
+                    }
+                }
+                return Ok(z);
+            }
+        }
         for (x0, z0, m) in g.blocks(s) {
             for (k, &shift) in self.shifts.iter().enumerate() {
                 matmul(

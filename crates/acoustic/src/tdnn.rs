@@ -55,7 +55,9 @@ use crate::collective::Collective;
 use crate::config::{MatmulPrecision, NetworkInput, Normalization, TdnnConfig};
 #[cfg(test)]
 use crate::fused::NORM_EPSILON;
-use crate::fused::{global_statistics, inverse_deviations, FusedLayer, Transform, UnitStatistics};
+use crate::fused::{
+    global_statistics, inverse_deviations, FusedLayer, PackedWeights, Transform, UnitStatistics,
+};
 use crate::AcousticError;
 
 /// Weight of the newest batch in the running mean and variance of batch normalisation (common
@@ -117,6 +119,8 @@ pub struct TdnnLayer {
     /// Number format of the matrix products of inference passes (`[inference]
     /// matmul_precision` of `model.toml`; f32 unless set).
     inference_precision: MatmulPrecision,
+    /// With bf16 inference, the weights converted once for the bf16 kernels.
+    packed_weights: Option<Arc<PackedWeights>>,
 }
 
 impl TdnnLayer {
@@ -157,7 +161,16 @@ impl TdnnLayer {
             hidden: normalization.is_some(),
             training_precision: MatmulPrecision::F32,
             inference_precision: MatmulPrecision::F32,
+            packed_weights: None,
         })
+    }
+
+    /// The weights converted for the bf16 kernels (`None` where the CPU has none).
+    fn packed(&self) -> Option<Arc<PackedWeights>> {
+        let (dims, width) = self.weight.dims2().ok()?;
+        let values: Vec<f32> = self.weight.flatten_all().ok()?.to_vec1().ok()?;
+        let offsets = self.offsets.len();
+        PackedWeights::new(&values, dims, offsets, width / offsets).map(Arc::new)
     }
 
     fn span(&self) -> usize {
@@ -267,7 +280,12 @@ impl TdnnLayer {
             input.track_op(),
         )
         .with_collective(part.map(|part| Arc::clone(&part.collective)))
-        .with_precision(precision);
+        .with_precision(precision)
+        .with_packed_weights(if valid.is_some() {
+            None
+        } else {
+            self.packed_weights.clone()
+        });
         let slot = op.statistics_slot();
         let output = input.contiguous()?.apply_op3(&self.weight, &params, op)?;
         let statistics = slot
@@ -628,10 +646,25 @@ impl Tdnn {
 
     /// The number format of the matrix products of inference passes ([`Tdnn::forward`]); f32
     /// until set. Everything else (bias, normalisation, the softmax) stays f32. Bf16 on a CPU
-    /// without the instructions runs f32.
+    /// without the instructions runs f32. With bf16 the weights are converted for the kernels
+    /// here, once, instead of at every product: call it when the weights are final (a loaded
+    /// model), and again after changing them.
     pub fn set_inference_precision(&mut self, precision: MatmulPrecision) {
         for layer in &mut self.layers {
             layer.inference_precision = precision;
+            layer.packed_weights = match precision {
+                MatmulPrecision::Bf16 => layer.packed(),
+                MatmulPrecision::F32 => None,
+            };
+        }
+    }
+
+    /// Drops the converted weights, so that bf16 inference converts them at every product (for
+    /// tests that compare the two).
+    #[cfg(test)]
+    fn forget_packed_weights(&mut self) {
+        for layer in &mut self.layers {
+            layer.packed_weights = None;
         }
     }
 
@@ -1195,7 +1228,7 @@ mod tests {
     /// within bf16 rounding of the f32 pass, with dropout and both normalisations, and inference
     /// keeps the f32 bits.
     #[test]
-    fn bf16_training_passes_stay_close_to_f32_and_inference_stays_f32() {
+    fn bf16_passes_stay_close_to_f32_and_inference_follows_its_own_setting() {
         if !crate::fused::bf16_available() {
             eprintln!("skipped: this CPU lacks AVX-512 BF16");
             return;
@@ -1287,6 +1320,31 @@ mod tests {
                     "{normalization:?} {name}: bf16 changed nothing"
                 );
             }
+            // bf16 inference: the weights converted once give the bits of converting them at
+            // every product, and differ from f32 by rounding alone.
+            net.set_inference_precision(MatmulPrecision::Bf16);
+            let packed = inference(&net);
+            net.forget_packed_weights();
+            let unpacked = inference(&net);
+            assert_eq!(packed, unpacked, "{normalization:?}: converted weights");
+            let as_f32 = |bits: &[u32]| bits.iter().map(|&b| f32::from_bits(b)).collect();
+            let (exact, rounded): (Vec<f32>, Vec<f32>) = (as_f32(&f32_inference), as_f32(&packed));
+            let largest = exact.iter().map(|v| v.abs()).fold(0f32, f32::max);
+            let error = exact
+                .iter()
+                .zip(&rounded)
+                .map(|(a, b)| (a - b).abs())
+                .fold(0f32, f32::max);
+            assert!(
+                error > 0.0 && error <= 2e-2 * largest,
+                "{normalization:?}: bf16 inference off by {error} (largest logit {largest})"
+            );
+            net.set_inference_precision(MatmulPrecision::F32);
+            assert_eq!(
+                inference(&net),
+                f32_inference,
+                "{normalization:?}: back to f32"
+            );
         }
     }
 
