@@ -311,41 +311,66 @@ impl PackedWeights {
     }
 
     /// Whether these are the weights of a layer of `offsets` offsets from `dims` to `h`.
-    #[cfg(target_arch = "x86_64")]
     fn fits(&self, offsets: usize, dims: usize, h: usize) -> bool {
-        self.offsets.len() == offsets && self.offsets.iter().all(|p| p.k == dims && p.n == h)
+        #[cfg(target_arch = "x86_64")]
+        return self.offsets.len() == offsets
+            && self.offsets.iter().all(|p| p.k == dims && p.n == h);
+        #[cfg(not(target_arch = "x86_64"))]
+        {
+            let _ = (offsets, dims, h);
+            false
+        }
     }
-}
 
-/// [`matmul`] in bf16 with the right operand converted beforehand: `dst = (accumulate ? dst :
-/// 0) + lhs · packed` for an `[m, k]` view of `lhs`. Checks the views as [`matmul`] does.
-#[cfg(target_arch = "x86_64")]
-fn matmul_packed(
-    m: usize,
-    dst: &mut [f32],
-    dst_view: View,
-    accumulate: bool,
-    lhs: &[f32],
-    lhs_view: View,
-    packed: &crate::bf16_matmul::PackedRhs,
-) -> candle_core::Result<()> {
-    let (n, k) = (packed.n, packed.k);
-    if m == 0 {
-        return Ok(());
+    /// [`matmul`] in bf16 with offset `k`'s weights as the right operand: `dst = (accumulate ?
+    /// dst : 0) + lhs · W_k` for an `[m, dims]` view of `lhs`. Checks the views as [`matmul`]
+    /// does.
+    #[allow(clippy::too_many_arguments)]
+    fn product(
+        &self,
+        k: usize,
+        m: usize,
+        dst: &mut [f32],
+        dst_view: View,
+        accumulate: bool,
+        lhs: &[f32],
+        lhs_view: View,
+    ) -> candle_core::Result<()> {
+        #[cfg(target_arch = "x86_64")]
+        {
+            let packed = &self.offsets[k];
+            if m == 0 {
+                return Ok(());
+            }
+            let last = |v: View, rows: usize, cols: usize| {
+                v.offset + (rows - 1) * v.row_stride + (cols.max(1) - 1) * v.col_stride
+            };
+            if last(dst_view, m, packed.n) >= dst.len() || last(lhs_view, m, packed.k) >= lhs.len()
+            {
+                candle_core::bail!("fused TDNN layer: a matrix view exceeds its buffer")
+            }
+            // SAFETY: the CPU has the instructions (converted weights exist only where it
+            // does); m ≥ 1 and a converted operand is never empty; the views lie inside their
+            // slices (checked above); the destination rows are distinct (row stride ≥ n for
+            // every caller).
+            unsafe {
+                crate::bf16_matmul::matmul_packed(
+                    m,
+                    dst,
+                    dst_view,
+                    accumulate,
+                    (lhs, lhs_view),
+                    packed,
+                )
+            };
+            Ok(())
+        }
+        #[cfg(not(target_arch = "x86_64"))]
+        {
+            let _ = (k, m, dst, dst_view, accumulate, lhs, lhs_view);
+            candle_core::bail!("fused TDNN layer: no converted weights on this CPU")
+        }
     }
-    let last = |v: View, rows: usize, cols: usize| {
-        v.offset + (rows - 1) * v.row_stride + (cols.max(1) - 1) * v.col_stride
-    };
-    if last(dst_view, m, n) >= dst.len() || last(lhs_view, m, k) >= lhs.len() {
-        candle_core::bail!("fused TDNN layer: a matrix view exceeds its buffer")
-    }
-    // SAFETY: the CPU has the instructions (the caller checked `bf16_available`); m, n, k ≥ 1
-    // (a converted operand is never empty); the views lie inside their slices (checked above);
-    // the destination rows are distinct (row stride ≥ n for every caller).
-    unsafe {
-        crate::bf16_matmul::matmul_packed(m, dst, dst_view, accumulate, (lhs, lhs_view), packed)
-    };
-    Ok(())
 }
 
 impl std::fmt::Debug for PackedWeights {
@@ -496,58 +521,45 @@ impl FusedLayer {
         let kh = self.shifts.len() * h;
         let s = self.subsample;
         let mut z = vec![0f32; g.rows() * h];
-        #[cfg(target_arch = "x86_64")]
-        if let (MatmulPrecision::Bf16, Some(packed)) = (self.precision, &self.packed_weights) {
-            if bf16_available() && packed.fits(self.shifts.len(), g.dims, h) {
-                for (x0, z0, m) in g.blocks(s) {
-                    for (k, &shift) in self.shifts.iter().enumerate() {
-                        matmul_packed(
-                            m,
-                            &mut z,
-                            View {
-                                offset: z0 * h,
-                                row_stride: h,
-                                col_stride: 1,
-                            },
-                            k > 0,
-                            x,
-                            View {
-                                offset: (x0 + shift) * g.dims,
-                                row_stride: s * g.dims,
-                                col_stride: 1,
-                            },
-                            &packed.offsets[k],
-                        )?;
-                    }
-                }
-                return Ok(z);
+        // With bf16 products and the weights converted beforehand, the converted ones.
+        let packed = match (self.precision, &self.packed_weights) {
+            (MatmulPrecision::Bf16, Some(packed))
+                if bf16_available() && packed.fits(self.shifts.len(), g.dims, h) =>
+            {
+                Some(packed)
             }
-        }
+            _ => None,
+        };
         for (x0, z0, m) in g.blocks(s) {
             for (k, &shift) in self.shifts.iter().enumerate() {
-                matmul(
-                    self.precision,
-                    (m, h, g.dims),
-                    &mut z,
-                    View {
-                        offset: z0 * h,
-                        row_stride: h,
-                        col_stride: 1,
-                    },
-                    k > 0,
-                    x,
-                    View {
-                        offset: (x0 + shift) * g.dims,
-                        row_stride: s * g.dims,
-                        col_stride: 1,
-                    },
-                    w,
-                    View {
-                        offset: k * h,
-                        row_stride: kh,
-                        col_stride: 1,
-                    },
-                )?;
+                let z_view = View {
+                    offset: z0 * h,
+                    row_stride: h,
+                    col_stride: 1,
+                };
+                let x_view = View {
+                    offset: (x0 + shift) * g.dims,
+                    row_stride: s * g.dims,
+                    col_stride: 1,
+                };
+                match packed {
+                    Some(packed) => packed.product(k, m, &mut z, z_view, k > 0, x, x_view)?,
+                    None => matmul(
+                        self.precision,
+                        (m, h, g.dims),
+                        &mut z,
+                        z_view,
+                        k > 0,
+                        x,
+                        x_view,
+                        w,
+                        View {
+                            offset: k * h,
+                            row_stride: kh,
+                            col_stride: 1,
+                        },
+                    )?,
+                }
             }
         }
         Ok(z)
