@@ -13,10 +13,10 @@
 //! Blocking. `rhs` is converted once per call into the column panels of the register kernel
 //! (32 columns, one 32-bit lane per column and pair of `k`), padded with zero pairs to a
 //! multiple of 16 pairs. Each thread takes blocks of at most [`MC`] rows; for each block of
-//! [`KC`] pairs of `k` it converts its rows into tiles of 16 rows × 16 pairs, each 1 KiB in
-//! one piece, then for every 32 rows and 32 columns loads four 16 × 16 tiles of sums from an
-//! f32 scratch of the block (zero at the first `k` block), adds the products of two row tiles
-//! and two column tiles over the block's pairs, and stores them back. The scratch goes to the destination
+//! [`KC`] pairs of `k` it converts its rows into row-major pairs (a tile row is 16 pairs), then
+//! for every 32 columns and 32 rows loads four 16 × 16 tiles of sums from an f32 scratch of
+//! the block (zero at the first `k` block), adds the products of two row tiles and two column
+//! tiles over the block's pairs, and stores them back. The scratch goes to the destination
 //! once, at the end. Sums are exact f32 values between `k` blocks (a tile store and load loses
 //! nothing), so every destination element is one chain of f32 additions in `k` order, the same
 //! at any thread count.
@@ -256,7 +256,7 @@ impl Job<'_> {
         let padded_rows = rows.div_ceil(2 * TILE) * 2 * TILE;
         let padded_columns = self.n.div_ceil(NR) * NR;
         let kc = KC.min(self.padded_pairs);
-        // Converted rows of one `k` block, in tiles ([`lhs_index`]).
+        // Converted rows of one `k` block, row-major: row r, pair q at r · kc + q.
         with_buffer(&PACKED_LHS, padded_rows * kc, |packed_lhs| {
             // The f32 sums of the block, row-major over the padded columns (every value is
             // written by a tile store before it is read).
@@ -292,9 +292,7 @@ impl Job<'_> {
             // up to the last tile's, and the padding rows.
             for r in 0..padded_rows {
                 let from = if r < rows { count } else { 0 };
-                for q in from..steps * TILE {
-                    packed_lhs[lhs_index(kc, r, q)] = 0;
-                }
+                packed_lhs[r * kc + from..r * kc + steps * TILE].fill(0);
             }
             // SAFETY: the caller's guarantees; `packed_lhs` holds `rows` rows of `kc` pairs.
             unsafe { self.pack_lhs(packed_lhs, kc, first, rows, (p0, count)) };
@@ -304,13 +302,12 @@ impl Job<'_> {
                     let panel = &self.packed_rhs[cp * self.padded_pairs * NR..];
                     let c = sums[r0 * padded_columns + cp * NR..].as_mut_ptr();
                     let c_stride = padded_columns * 4;
-                    let a = packed_lhs[lhs_index(kc, r0, 0)..].as_ptr();
+                    let a = packed_lhs[r0 * kc..].as_ptr();
                     let b = panel[p0 * NR..].as_ptr();
                     // SAFETY: the tiles read and written lie inside `sums` (32 rows × 32
-                    // columns from (r0, 32·cp)), `packed_lhs` (two groups of 16 rows, `steps`
-                    // tiles each, of the kc / 16 a group holds) and the panel (16·steps pairs
-                    // from p0, within the padded pairs).
-                    unsafe { tile_step(c, c_stride, a, kc * TILE, b, steps, p0 == 0) };
+                    // columns from (r0, 32·cp)), `packed_lhs` (32 rows × 16·steps ≤ kc pairs)
+                    // and the panel (16·steps pairs from p0, within the padded pairs).
+                    unsafe { tile_step(c, c_stride, a, kc * 4, b, steps, p0 == 0) };
                 }
             }
             p0 += count;
@@ -320,9 +317,9 @@ impl Job<'_> {
         self.write(sums, padded_columns, first, rows);
     }
 
-    /// Rows `first .. first + rows` and pairs `p0 .. p0 + count` of `lhs` into `packed`, laid
-    /// out by [`lhs_index`] for blocks of `stride` pairs (missing members of a last odd pair are
-    /// zero; the rest of `packed` is left as it is).
+    /// Rows `first .. first + rows` and pairs `p0 .. p0 + count` of `lhs` into `packed`, row
+    /// `r` at `r · stride` (missing members of a last odd pair are zero; the rest of `packed`
+    /// is left as it is).
     #[target_feature(enable = "avx512f,avx512bw,avx512bf16")]
     unsafe fn pack_lhs(
         &self,
@@ -337,10 +334,8 @@ impl Job<'_> {
         if view.col_stride == 1 {
             for r in 0..rows {
                 let row = &lhs[at(first + r, 0)..];
-                let out = &mut packed[lhs_index(stride, r, 0)..];
-                pack_contiguous(row, k, (p0, count), |q, v| {
-                    out[(q / TILE) * TILE * TILE + q % TILE] = v
-                });
+                let out = &mut packed[r * stride..];
+                pack_contiguous(row, k, (p0, count), |q, v| out[q] = v);
             }
         } else if view.row_stride == 1 {
             // Rows side by side in memory: sixteen rows of one pair per vector, then written
@@ -371,7 +366,7 @@ impl Job<'_> {
                         unsafe { _mm512_storeu_si512(slot.as_mut_ptr().cast(), value) };
                     }
                     for i in 0..live {
-                        let out = &mut packed[lhs_index(stride, r0 + i, q0)..][..width];
+                        let out = &mut packed[(r0 + i) * stride + q0..][..width];
                         for (q, value) in out.iter_mut().enumerate() {
                             *value = block[q][i];
                         }
@@ -387,7 +382,7 @@ impl Job<'_> {
                     } else {
                         0.0
                     };
-                    packed[lhs_index(stride, r, q)] = pair(lhs[at(first + r, c)], high);
+                    packed[r * stride + q] = pair(lhs[at(first + r, c)], high);
                 }
             }
         }
@@ -412,37 +407,27 @@ impl Job<'_> {
     }
 }
 
-/// Where pair `q` of row `r` lies in a block of converted rows of `kc` pairs: rows in groups of
-/// 16, each group's pairs in tiles of 16 × 16 stored one after the other (a tile is one
-/// contiguous 1 KiB load), row-major within a tile.
-#[inline]
-fn lhs_index(kc: usize, r: usize, q: usize) -> usize {
-    (r / TILE) * kc * TILE + (q / TILE) * TILE * TILE + (r % TILE) * TILE + q % TILE
-}
-
 /// One step of 32 rows × 32 columns over `steps` groups of 16 pairs: tiles 0–3 take the sums at
 /// `c` (or zero when `fresh`), gain `A · B`, and go back to `c`.
 ///
 /// # Safety
 ///
 /// The tile configuration of [`TileConfig::new`] is loaded; `c` addresses 32 rows of 32 f32
-/// (row stride `c_stride` bytes), `a` `steps` tiles of 16 rows × 16 pairs one after another
-/// for the first 16 rows and as many `a_down` values further for the next 16 ([`lhs_index`]), `b`
+/// (row stride `c_stride` bytes), `a` 32 rows of `16 · steps` pairs (`a_stride` bytes), `b`
 /// `16 · steps` pair rows of 32 columns (row stride `NR · 4` bytes).
 #[inline]
 unsafe fn tile_step(
     c: *mut f32,
     c_stride: usize,
     a: *const u32,
-    a_down: usize,
+    a_stride: usize,
     b: *const u32,
     steps: usize,
     fresh: bool,
 ) {
     let b_stride = NR * 4;
     let c_down = c_stride / 4 * TILE;
-    // Each tile of the left operand is 1 KiB in one piece: rows 64 bytes apart.
-    let a_stride = TILE * 4;
+    let a_down = a_stride / 4 * TILE;
     // SAFETY (every block): the addresses are inside the buffers (the caller's guarantee).
     unsafe {
         if fresh {
@@ -468,7 +453,7 @@ unsafe fn tile_step(
             );
         }
         for step in 0..steps {
-            let a0 = a.add(step * TILE * TILE);
+            let a0 = a.add(step * TILE);
             let b0 = b.add(step * TILE * NR);
             asm!(
                 "tileloadd tmm4, [{a0} + {sa}*1]",
