@@ -32,7 +32,7 @@ use std::cell::RefCell;
 use std::sync::OnceLock;
 use std::thread::LocalKey;
 
-use crate::bf16_matmul::{pack_contiguous, pack_rhs, pair, round16, Destination, NR};
+use crate::bf16_matmul::{pack_contiguous, pack_panels, pair, round16, Destination, NR};
 use crate::fused::View;
 
 /// Pairs of `k` per block: a 32-row slice of converted rows (32 KiB) and a column panel's
@@ -101,36 +101,13 @@ pub(crate) unsafe fn matmul(
     rhs: &[f32],
     rhs_view: View,
 ) {
-    use rayon::prelude::*;
     let threads = rayon::current_num_threads().max(1);
     let pairs = k.div_ceil(2);
     let padded_pairs = pairs.div_ceil(TILE) * TILE;
     let panels = n.div_ceil(NR);
     with_buffer(&PACKED_RHS, panels * padded_pairs * NR, |packed_rhs| {
-        let pack = |(p, panel): (usize, &mut [u32])| {
-            let columns = NR.min(n - p * NR);
-            // The buffer is reused: zero what packing does not write (the padding pairs, and
-            // the missing columns of a last narrow panel).
-            if columns < NR {
-                panel.fill(0);
-            } else {
-                panel[pairs * NR..].fill(0);
-            }
-            // SAFETY: the caller's guarantees (CPU features, views inside their slices); the
-            // panel holds at least `pairs · NR` values.
-            unsafe { pack_rhs(panel, rhs, rhs_view, k, p * NR, columns) }
-        };
-        if threads > 1 {
-            packed_rhs
-                .par_chunks_mut(padded_pairs * NR)
-                .enumerate()
-                .for_each(pack);
-        } else {
-            packed_rhs
-                .chunks_mut(padded_pairs * NR)
-                .enumerate()
-                .for_each(pack);
-        }
+        // SAFETY: the caller's guarantees; the reused buffer holds every panel.
+        unsafe { pack_panels(packed_rhs, rhs, rhs_view, (k, n), padded_pairs) };
         // SAFETY: the caller's guarantees.
         unsafe {
             product(

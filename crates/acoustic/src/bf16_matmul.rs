@@ -204,28 +204,53 @@ impl PackedRhs {
         (k, n): (usize, usize),
         unit: usize,
     ) -> PackedRhs {
-        let threads = rayon::current_num_threads().max(1);
         let panel_pairs = k.div_ceil(2).div_ceil(unit) * unit;
-        let panels = n.div_ceil(NR);
-        let mut data = vec![0u32; panels * panel_pairs * NR];
-        let pack = |(p, panel): (usize, &mut [u32])| {
-            // SAFETY: the caller's guarantees (CPU features, view inside the slice); the panel
-            // holds at least `pairs · NR` values.
-            unsafe { pack_rhs(panel, rhs, view, k, p * NR, NR.min(n - p * NR)) }
-        };
-        if threads > 1 {
-            data.par_chunks_mut(panel_pairs * NR)
-                .enumerate()
-                .for_each(pack);
-        } else {
-            data.chunks_mut(panel_pairs * NR).enumerate().for_each(pack);
-        }
+        let mut data = vec![0u32; n.div_ceil(NR) * panel_pairs * NR];
+        // SAFETY: the caller's guarantees; `data` holds every panel.
+        unsafe { pack_panels(&mut data, rhs, view, (k, n), panel_pairs) };
         PackedRhs {
             data,
             k,
             n,
             panel_pairs,
         }
+    }
+}
+
+/// `rhs` through `view` (`k` × `n`) into `data` as [`PackedRhs`] lays it out, panels of
+/// `panel_pairs` pairs (≥ the pairs of `k`), spread over the threads. `data` may hold old
+/// values: what packing does not write (the padding pairs, the missing columns of a last
+/// narrow panel) is zeroed.
+///
+/// # Safety
+///
+/// The CPU has AVX-512 F, BW and BF16; `k`, `n` ≥ 1; every element the view addresses lies
+/// inside `rhs`; `data` holds `⌈n / NR⌉ · panel_pairs · NR` values.
+pub(crate) unsafe fn pack_panels(
+    data: &mut [u32],
+    rhs: &[f32],
+    view: View,
+    (k, n): (usize, usize),
+    panel_pairs: usize,
+) {
+    let pairs = k.div_ceil(2);
+    let pack = |(p, panel): (usize, &mut [u32])| {
+        let columns = NR.min(n - p * NR);
+        if columns < NR {
+            panel.fill(0);
+        } else {
+            panel[pairs * NR..].fill(0);
+        }
+        // SAFETY: the caller's guarantees (CPU features, view inside the slice); the panel
+        // holds at least `pairs · NR` values.
+        unsafe { pack_rhs(panel, rhs, view, k, p * NR, columns) }
+    };
+    if rayon::current_num_threads() > 1 {
+        data.par_chunks_mut(panel_pairs * NR)
+            .enumerate()
+            .for_each(pack);
+    } else {
+        data.chunks_mut(panel_pairs * NR).enumerate().for_each(pack);
     }
 }
 
