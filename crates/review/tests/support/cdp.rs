@@ -205,6 +205,25 @@ impl Browser {
         self.wait_event("Page.loadEventFired");
     }
 
+    /// Reloads the page until `expression` is `true` once it has loaded (or panics after the
+    /// timeout), and returns the number of reloads.
+    pub fn reload_until(&mut self, expression: &str) -> u32 {
+        let deadline = Instant::now() + TIMEOUT;
+        let mut reloads = 0;
+        loop {
+            self.reload();
+            reloads += 1;
+            if self.eval(expression) == json!(true) {
+                return reloads;
+            }
+            assert!(
+                Instant::now() < deadline,
+                "still not true after {reloads} reloads: {expression}"
+            );
+            std::thread::sleep(Duration::from_millis(200));
+        }
+    }
+
     /// Evaluates a JavaScript expression in the page (promises awaited) and returns its value.
     /// An exception panics with its description.
     pub fn eval(&mut self, expression: &str) -> Value {
