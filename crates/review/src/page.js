@@ -25,6 +25,8 @@
   first.push(words.length);
 
   var state = load();
+  // Words and labels this copy of the page changed since it loaded (see `merge`).
+  var mine = { words: {}, labels: {} };
   var selected = -1, playing = -1, stopAt = null, editing = null;
 
   function load() {
@@ -227,6 +229,7 @@
       var value = input.value.replace(/\s+/g, " ").trim();
       if (value === words[k]) delete state.words[k];
       else state.words[k] = value;
+      mine.words[k] = true;
       save();
     }
     input.outerHTML = wordHtml(k);
@@ -345,6 +348,7 @@
     var labels = state.stretches[i] || {};
     labels[target.getAttribute("data-f")] = target.value;
     state.stretches[i] = labels;
+    mine.labels[i + ":" + target.getAttribute("data-f")] = true;
     save();
   });
 
@@ -361,9 +365,70 @@
   document.getElementById("forget").addEventListener("click", function () {
     if (!window.confirm("Forget all " + countEdits() + " corrections and the stretch labels of this page?")) return;
     state = { words: {}, stretches: {} };
+    mine = { words: {}, labels: {} };
     try { window.localStorage.removeItem(storeKey); } catch (e) { storageTrouble(e); }
     render();
     say("Corrections forgotten.");
+  });
+
+  // Another copy of this page (a second tab, or a load that started before this browser had
+  // stored the last one's corrections) saved. Take its value of every word and label; keep this
+  // copy's own change where the other copy has none (and store the union), so that two open
+  // copies never wipe out each other's work. Where both changed the same word differently, the
+  // later save wins. Only saving what the other copy lacks keeps two copies from answering
+  // each other forever.
+  function merge(other) {
+    var own = Object.prototype.hasOwnProperty, keep = false;
+    function one(ours, theirs, flag, flags) {
+      if (ours === theirs) return ours;
+      if (flags[flag] && ours !== null && theirs === null) { keep = true; return ours; }
+      delete flags[flag];
+      return theirs;
+    }
+    var keys = {};
+    Object.keys(state.words).concat(Object.keys(other.words)).forEach(function (k) { keys[k] = true; });
+    Object.keys(keys).forEach(function (key) {
+      var k = Number(key);
+      if (!(k >= 0 && k < words.length)) return;
+      var ours = own.call(state.words, k) ? state.words[k] : null;
+      var theirs = own.call(other.words, k) ? String(other.words[k]) : null;
+      var value = one(ours, theirs, k, mine.words);
+      if (value === ours) return;
+      if (value === null) delete state.words[k]; else state.words[k] = value;
+      if (editing && editing.k === k) return;
+      var element = span(k);
+      if (element) element.outerHTML = wordHtml(k);
+    });
+    data.stretches.forEach(function (s, i) {
+      ["speaker", "dialect"].forEach(function (f) {
+        var ours = state.stretches[i] && typeof state.stretches[i][f] === "string" ? state.stretches[i][f] : null;
+        var theirs = other.stretches[i] && typeof other.stretches[i][f] === "string" ? other.stretches[i][f] : null;
+        var value = one(ours, theirs, i + ":" + f, mine.labels);
+        if (value === ours) return;
+        var labels = state.stretches[i] || {};
+        if (value === null) delete labels[f]; else labels[f] = value;
+        if (Object.keys(labels).length) state.stretches[i] = labels; else delete state.stretches[i];
+        var input = transcript.querySelector('input.lab[data-s="' + i + '"][data-f="' + f + '"]');
+        if (input && input !== document.activeElement) input.value = stretchLabel(i, f);
+      });
+    });
+    if (keep) save();
+    else say("Corrections from another copy of this page taken in (" + countEdits() + " words).");
+  }
+
+  window.addEventListener("storage", function (e) {
+    if (e.storageArea !== window.localStorage || (e.key !== null && e.key !== storeKey)) return;
+    var other = { words: {}, stretches: {} };
+    if (e.key !== null && e.newValue) {
+      try {
+        var v = JSON.parse(e.newValue);
+        if (!v || typeof v.words !== "object" || typeof v.stretches !== "object") return;
+        other = v;
+      } catch (err) {
+        return;
+      }
+    }
+    merge(other);
   });
 
   function togglePlay() {

@@ -2,7 +2,8 @@
 //! from `file://` without console errors, a click on a word puts the player at the word's
 //! start, a correction and a stretch label survive a reload, the export is the corrected
 //! transcript, the keyboard reaches the next low-certainty word, and audio the browser cannot
-//! play falls back to the converted copy with a notice.
+//! play falls back to the converted copy with a notice; and two open copies of one page take in
+//! each other's corrections instead of overwriting them.
 //!
 //! Chromium is required: without it the test fails and says how to get it, unless
 //! `ISOGLOSS_SKIP_BROWSER_TESTS=1` is set (for a local run without a browser; CI installs
@@ -101,19 +102,15 @@ fn file_url(path: &Path) -> String {
     format!("file://{}", path.canonicalize().unwrap().display())
 }
 
-#[test]
-fn the_review_page_works_in_headless_chromium() {
-    let Some(chromium) = chromium_or_skip() else {
-        return;
-    };
-    let dir = tempfile::tempdir().unwrap();
-    let audio = dir.path().join("talk.wav");
+/// The review folder of the test transcript (with a converted copy of the audio) in `dir`.
+fn review_folder(dir: &Path) -> PathBuf {
+    let audio = dir.join("talk.wav");
     write_wav(&audio);
     let document = transcript("recordings/talk.wav");
     let labels: HashMap<String, (String, String)> =
         [("talk".to_string(), (String::new(), "fells".to_string()))].into();
     let recs = recordings(&document, |_| audio.clone(), &labels);
-    let out = dir.path().join("review");
+    let out = dir.join("review");
     let options = ReviewOptions {
         column: "dialectal".into(),
         convert: ConvertAudio::Always,
@@ -121,9 +118,76 @@ fn the_review_page_works_in_headless_chromium() {
     };
     let report = write_review(&out, &recs, &options).unwrap();
     assert!(report.failed.is_empty());
+    out
+}
+
+/// Double-clicks word `k` of the current page, types `text` over it and presses Enter.
+fn correct(browser: &mut cdp::Browser, k: usize, text: &str) {
+    browser.click(&format!("span[data-k=\"{k}\"]"), 2);
+    browser.wait_until("document.activeElement && document.activeElement.className === 'edit'");
+    browser.type_text(text);
+    browser.press("Enter", "Enter", 13);
+}
+
+#[test]
+fn two_open_copies_of_a_page_keep_each_others_corrections() {
+    let Some(chromium) = chromium_or_skip() else {
+        return;
+    };
+    let dir = tempfile::tempdir().unwrap();
+    let out = review_folder(dir.path());
+    let url = file_url(&out.join("talk.html"));
+    let mut browser = cdp::Browser::start(&chromium, 1100, 800);
+    browser.open_new_page(&url);
+    browser.wait_until("typeof window.isoglossReview === 'object'");
+    let other = browser.open_other_page(&url);
+    let text_of = |k: usize| format!("document.querySelector('span[data-k=\"{k}\"]').textContent");
+
+    // a correction in the first copy reaches the second one, open since before it was made
+    correct(&mut browser, 2, "down");
+    browser.in_page(&other, |page| {
+        page.wait_until("typeof window.isoglossReview === 'object'");
+        page.wait_until(&format!("{} === 'down'", text_of(2)));
+        // the second copy corrects another word and labels a stretch; its save must not wipe
+        // out the first copy's correction
+        correct(page, 5, "rover");
+        page.click("input.lab[data-s=\"1\"][data-f=\"speaker\"]", 1);
+        page.type_text("Mrs Hale");
+        page.press("Escape", "Escape", 27);
+    });
+    browser.wait_until(&format!("{} === 'rover'", text_of(5)));
+    browser.wait_until(
+        "document.querySelector('input.lab[data-s=\"1\"][data-f=\"speaker\"]').value === 'Mrs Hale'",
+    );
+    assert_eq!(browser.eval(&text_of(2)), "down");
+
+    // what is stored is the union: a fresh load of the page shows both corrections
+    browser.reload_until(&format!(
+        "typeof window.isoglossReview === 'object' && {} === 'down' && {} === 'rover'",
+        text_of(2),
+        text_of(5)
+    ));
+    let expected = "id\taudio\tstart\tend\tspeaker\tdialect\tdialectal\n\
+                    talk-001\trecordings/talk.wav\t0.500\t3.000\t\tfells\twe went down tae\n\
+                    talk-002\trecordings/talk.wav\t4.000\t6.500\tMrs Hale\tfells\tthe rover <&>\n";
+    assert_eq!(browser.eval("isoglossReview.exportTsv()"), expected);
+    browser.in_page(&other, |page| {
+        assert_eq!(page.eval("isoglossReview.exportTsv()"), expected);
+    });
+    let errors = browser.errors();
+    assert!(errors.is_empty(), "console errors: {errors:#?}");
+}
+
+#[test]
+fn the_review_page_works_in_headless_chromium() {
+    let Some(chromium) = chromium_or_skip() else {
+        return;
+    };
+    let dir = tempfile::tempdir().unwrap();
+    let out = review_folder(dir.path());
 
     let mut browser = cdp::Browser::start(&chromium, 1100, 800);
-    browser.open(&file_url(&out.join("talk.html")));
+    browser.open_new_page(&file_url(&out.join("talk.html")));
     browser.wait_until("typeof window.isoglossReview === 'object'");
     browser.wait_until("document.getElementById('player').readyState >= 1");
     assert_eq!(browser.eval("isoglossReview.words"), 7);

@@ -129,17 +129,52 @@ impl Browser {
             events: Vec::new(),
             _profile: profile,
         };
-        let target = browser.call("Target.createTarget", json!({ "url": "about:blank" }));
+        browser.session = browser.new_page("about:blank");
+        browser
+    }
+
+    /// Creates a page showing `url`, attaches to it with the runtime, page and log domains
+    /// enabled, and returns its session (the current page stays the current one).
+    fn new_page(&mut self, url: &str) -> String {
+        let current = std::mem::take(&mut self.session);
+        let target = self.call("Target.createTarget", json!({ "url": url }));
         let target = target["targetId"].as_str().unwrap().to_string();
-        let attached = browser.call(
+        let attached = self.call(
             "Target.attachToTarget",
             json!({ "targetId": target, "flatten": true }),
         );
-        browser.session = attached["sessionId"].as_str().unwrap().to_string();
+        self.session = attached["sessionId"].as_str().unwrap().to_string();
         for domain in ["Runtime.enable", "Page.enable", "Log.enable"] {
-            browser.call(domain, json!({}));
+            self.call(domain, json!({}));
         }
-        browser
+        std::mem::replace(&mut self.session, current)
+    }
+
+    /// Opens `url` in another page of the same browser (same profile, same storage) and
+    /// returns its session, for [`Browser::in_page`]; the current page stays the current one.
+    pub fn open_other_page(&mut self, url: &str) -> String {
+        let session = self.new_page(url);
+        self.in_page(&session, |page| {
+            page.wait_until("location.protocol !== 'about:' && document.readyState === 'complete'")
+        });
+        session
+    }
+
+    /// Opens `url` in a new page, created with it (not navigated to from another page), and
+    /// makes that page the current one.
+    pub fn open_new_page(&mut self, url: &str) {
+        self.session = self.open_other_page(url);
+    }
+
+    /// Runs `f` with the page of `session` as the current page (brought to the front, so that
+    /// it has the keyboard focus), then makes the previous page current again.
+    pub fn in_page<R>(&mut self, session: &str, f: impl FnOnce(&mut Browser) -> R) -> R {
+        let previous = std::mem::replace(&mut self.session, session.to_string());
+        self.call("Page.bringToFront", json!({}));
+        let result = f(self);
+        self.session = previous;
+        self.call("Page.bringToFront", json!({}));
+        result
     }
 
     /// Sends a command (to the page once attached) and waits for its result; events that
@@ -172,11 +207,16 @@ impl Browser {
         }
     }
 
-    /// Waits for an event of `method` (already received or still to come) and removes it.
+    /// Waits for an event of `method` from the current page (already received or still to
+    /// come) and removes it.
     pub fn wait_event(&mut self, method: &str) -> Value {
         let deadline = Instant::now() + TIMEOUT;
         loop {
-            if let Some(i) = self.events.iter().position(|e| e["method"] == method) {
+            let session = self.session.as_str();
+            let mine = |e: &Value| {
+                e["method"] == method && (session.is_empty() || e["sessionId"] == session)
+            };
+            if let Some(i) = self.events.iter().position(mine) {
                 return self.events.remove(i);
             }
             let left = deadline.saturating_duration_since(Instant::now());
@@ -188,9 +228,15 @@ impl Browser {
         }
     }
 
+    fn forget_load_events(&mut self) {
+        let session = self.session.clone();
+        self.events
+            .retain(|e| e["method"] != "Page.loadEventFired" || e["sessionId"] != session.as_str());
+    }
+
     /// Opens `url` and waits for its load event.
     pub fn open(&mut self, url: &str) {
-        self.events.retain(|e| e["method"] != "Page.loadEventFired");
+        self.forget_load_events();
         let result = self.call("Page.navigate", json!({ "url": url }));
         if let Some(error) = result.get("errorText") {
             panic!("{url}: cannot open: {error}");
@@ -200,7 +246,7 @@ impl Browser {
 
     /// Reloads the page and waits for its load event.
     pub fn reload(&mut self) {
-        self.events.retain(|e| e["method"] != "Page.loadEventFired");
+        self.forget_load_events();
         self.call("Page.reload", json!({}));
         self.wait_event("Page.loadEventFired");
     }
