@@ -125,6 +125,17 @@ fn a_round_runs_records_itself_and_resumes_as_complete() {
     assert_eq!(round.train_utterances, 4 + round.kept_segments);
     assert!(round.note.is_none());
     assert!(round.dev_wer_before.is_some() && round.dev_wer_after.is_some());
+    // Both medians recorded, as certainties; the warning printed exactly when recorded.
+    for median in [round.dev_median_confidence, round.pool_median_confidence] {
+        assert!(
+            matches!(median, Some(m) if m > 0.0 && m <= 1.0),
+            "{round:?}"
+        );
+    }
+    assert_eq!(
+        round.warning.is_some(),
+        stderr.contains("round 1: warning: the pool's median")
+    );
     // The round's training manifest: the transcribed rows, then the pseudo-labels.
     let manifest = fs::read_to_string(out.join("round-1/train.tsv")).unwrap();
     assert_eq!(manifest.lines().count(), 1 + round.train_utterances);

@@ -103,6 +103,16 @@ pub struct SelfTrainingRound {
     /// data alone).
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub note: Option<String>,
+    /// Median segment confidence of dev under the labelling model.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub dev_median_confidence: Option<f64>,
+    /// Median segment confidence of the pool under the labelling model.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub pool_median_confidence: Option<f64>,
+    /// Set when the pool's median confidence is below dev's lower quartile: the pool does not
+    /// sound like dev, and the rule's dev WER may not hold for the kept segments.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub warning: Option<String>,
 }
 
 /// `model.toml`: everything decoding needs besides the weights.

@@ -62,8 +62,8 @@ pub use ranking::{
     rank_correlation, shortlist, Candidate, RankWeights, Ranked, Shortlist, TrainingProfile,
 };
 pub use selftrain::{
-    choose_threshold, pooled_wer, select, DevSegment, PseudoCandidate, Selection, ThresholdChoice,
-    ThresholdRule,
+    choose_threshold, pool_against_dev, pooled_wer, select, DevSegment, PoolAgainstDev,
+    PseudoCandidate, Selection, ThresholdChoice, ThresholdRule,
 };
 
 /// Everything that can go wrong calibrating or ranking; messages name the file or item.

@@ -18,7 +18,8 @@ use isogloss_acoustic::model::{ModelDescription, SelfTrainingRound};
 use isogloss_acoustic::pipeline::TrainOptions;
 use isogloss_batch::{batch_items, transcribe, BatchReport, Event, ItemSource, TranscribeSettings};
 use isogloss_confidence::{
-    choose_threshold, pooled_wer, select, DevSegment, PseudoCandidate, ThresholdRule,
+    choose_threshold, pool_against_dev, pooled_wer, select, DevSegment, PseudoCandidate,
+    ThresholdRule,
 };
 use isogloss_corpus::tsv::{write_atomically, write_table};
 use isogloss_corpus::{Manifest, Utterance};
@@ -164,6 +165,8 @@ pub fn run(base: &TrainOptions, plan: &SelfTraining) -> anyhow::Result<Vec<SelfT
             &rows,
         )?;
         let note = selection.note();
+        let against_dev = pool_against_dev(&segments, &candidates);
+        let warning = against_dev.and_then(|a| a.warning());
         let mut record = SelfTrainingRound {
             round: k,
             rule: choice.rule.clone(),
@@ -178,6 +181,9 @@ pub fn run(base: &TrainOptions, plan: &SelfTraining) -> anyhow::Result<Vec<SelfT
             dev_wer_after: None,
             train_utterances: rows.len(),
             note: note.clone(),
+            dev_median_confidence: against_dev.map(|a| a.dev_median),
+            pool_median_confidence: against_dev.map(|a| a.pool_median),
+            warning: warning.clone(),
         };
         eprintln!(
             "round {k}: threshold {} ({}); kept {} of {} untranscribed segments ({:.2} of {:.2} h); dev WER of the labelling model {}, of the dev segments kept {}",
@@ -194,6 +200,9 @@ pub fn run(base: &TrainOptions, plan: &SelfTraining) -> anyhow::Result<Vec<SelfT
         );
         if let Some(note) = &note {
             eprintln!("round {k}: {note}; this round trains on the transcribed data alone");
+        }
+        if let Some(warning) = &warning {
+            eprintln!("round {k}: warning: {warning}");
         }
 
         // 3. Train from the current weights on transcribed + pseudo-labelled data (once: a
