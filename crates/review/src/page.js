@@ -29,13 +29,19 @@
   var mine = { words: {}, labels: {} };
   var selected = -1, playing = -1, stopAt = null, editing = null;
 
+  // A stored state from its JSON text; null when absent or of another shape (throws on text
+  // that is not JSON).
+  function parseState(raw) {
+    if (!raw) return null;
+    var v = JSON.parse(raw);
+    return v && v.words && v.stretches && typeof v.words === "object" &&
+      typeof v.stretches === "object" ? v : null;
+  }
+
   function load() {
     try {
-      var raw = window.localStorage.getItem(storeKey);
-      if (raw) {
-        var v = JSON.parse(raw);
-        if (v && typeof v.words === "object" && typeof v.stretches === "object") return v;
-      }
+      var v = parseState(window.localStorage.getItem(storeKey));
+      if (v) return v;
     } catch (e) {
       storageTrouble(e);
     }
@@ -421,12 +427,11 @@
     var other = { words: {}, stretches: {} };
     if (e.key !== null && e.newValue) {
       try {
-        var v = JSON.parse(e.newValue);
-        if (!v || typeof v.words !== "object" || typeof v.stretches !== "object") return;
-        other = v;
+        other = parseState(e.newValue);
       } catch (err) {
         return;
       }
+      if (!other) return;
     }
     merge(other);
   });
