@@ -218,10 +218,7 @@ fn the_review_page_works_in_headless_chromium() {
     );
 
     // correct "doon" to "down", label the second stretch's speaker
-    browser.click("span[data-k=\"2\"]", 2);
-    browser.wait_until("document.activeElement && document.activeElement.className === 'edit'");
-    browser.type_text("down");
-    browser.press("Enter", "Enter", 13);
+    correct(&mut browser, 2, "down");
     assert_eq!(
         browser.eval("document.querySelector('span[data-k=\"2\"]').textContent"),
         "down"
