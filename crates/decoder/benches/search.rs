@@ -176,11 +176,11 @@ fn main() {
     }
     let defaults = SearchOptions::default();
     run(
-        "beam 16, 4-gram, lexicon (defaults)",
+        &format!("beam {}, 4-gram, lexicon (defaults)", defaults.beam),
         &mut search(&graph, &lm, defaults.clone()),
     );
     run(
-        "beam 16, 4-gram, lexicon, no blank skip",
+        &format!("beam {}, 4-gram, lexicon, no blank skip", defaults.beam),
         &mut search(
             &graph,
             &lm,
@@ -191,7 +191,7 @@ fn main() {
         ),
     );
     run(
-        "beam 16, 4-gram, lexicon, no look-ahead",
+        &format!("beam {}, 4-gram, lexicon, no look-ahead", defaults.beam),
         &mut search(
             &graph,
             &lm,
@@ -202,12 +202,12 @@ fn main() {
         ),
     );
     run(
-        "beam 64, 4-gram, lexicon",
+        "beam 16, 4-gram, lexicon (old default)",
         &mut search(
             &graph,
             &lm,
             SearchOptions {
-                beam: 64,
+                beam: 16,
                 ..defaults.clone()
             },
         ),
@@ -215,7 +215,7 @@ fn main() {
     // Without an LM a word bonus only splits words; without a lexicon it must pay for the LM
     // cost of every boundary, so each configuration gets the bonus it needs.
     run(
-        "beam 16, no LM, lexicon, bonus 0",
+        &format!("beam {}, no LM, lexicon, bonus 0", defaults.beam),
         &mut search(
             &graph,
             &NoLanguageModel,
@@ -227,7 +227,7 @@ fn main() {
     );
     let free = SearchGraph::lexicon_free(units.clone()).expect("units");
     run(
-        "beam 16, 4-gram, no lexicon, bonus 6",
+        &format!("beam {}, 4-gram, no lexicon, bonus 6", defaults.beam),
         &mut search(
             &free,
             &lm,

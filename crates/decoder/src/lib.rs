@@ -56,7 +56,7 @@ pub use graph::{LexiconReport, SearchGraph, WordRule, BOUNDARY_UNIT};
 pub use greedy::GreedyDecoder;
 pub use lm::{BigramModel, LanguageModel, NoLanguageModel};
 pub use search::{
-    PrefixBeamSearch, SearchOptions, DEFAULT_LM_WEIGHT, DEFAULT_WORD_BONUS, MAX_BEAM,
+    PrefixBeamSearch, SearchOptions, DEFAULT_BEAM, DEFAULT_LM_WEIGHT, DEFAULT_WORD_BONUS, MAX_BEAM,
 };
 pub use transcript::{DecodedWord, Transcript};
 

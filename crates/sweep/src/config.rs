@@ -168,7 +168,7 @@ impl Default for DecoderAxes {
 }
 
 fn default_beam() -> Vec<usize> {
-    vec![16]
+    vec![isogloss_decoder::DEFAULT_BEAM]
 }
 fn default_lm_weight() -> Vec<f32> {
     vec![isogloss_decoder::DEFAULT_LM_WEIGHT]

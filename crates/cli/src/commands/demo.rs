@@ -43,7 +43,7 @@ use crate::Outcome;
 
 /// Decoder settings of the demo: the decoder's defaults, which were tuned on this demo's dev
 /// split (see [`isogloss_decoder::DEFAULT_LM_WEIGHT`]).
-const BEAM: usize = 16;
+const BEAM: usize = isogloss_decoder::DEFAULT_BEAM;
 const LM_WEIGHT: f32 = isogloss_decoder::DEFAULT_LM_WEIGHT;
 const WORD_BONUS: f32 = isogloss_decoder::DEFAULT_WORD_BONUS;
 /// Bootstrap resamples, seed and confidence level of the intervals.

@@ -44,8 +44,8 @@ pub struct TranscribeArgs {
     /// Output format.
     #[arg(long, value_enum, default_value = "tsv")]
     pub format: FormatArg,
-    /// Hypotheses kept per frame.
-    #[arg(long, default_value_t = 16)]
+    /// Hypotheses kept per frame (wider: fewer search errors, slower).
+    #[arg(long, default_value_t = isogloss_decoder::DEFAULT_BEAM)]
     pub beam: usize,
     /// Weight of the LM's natural-log probabilities (default: the pair tuned on the demo's dev
     /// split; tune your own with `isogloss sweep`).
