@@ -136,6 +136,15 @@ fn a_round_runs_records_itself_and_resumes_as_complete() {
         round.warning.is_some(),
         stderr.contains("round 1: warning: the pool's median")
     );
+    // The round trained at the default share (0.3) of the config's peak learning rate
+    // (configs/tdnn-wider-robust.toml: 0.003), and its model says so.
+    let rate = round
+        .learning_rate
+        .expect("the round's learning rate is recorded");
+    assert!((rate - 0.3 * 0.003).abs() < 1e-12, "{rate}");
+    let trained = description(&out.join("round-1")).training.unwrap();
+    assert_eq!(trained.learning_rate, rate);
+    assert!(stderr.contains("peak learning rate of"), "{stderr}");
     // The round's training manifest: the transcribed rows, then the pseudo-labels.
     let manifest = fs::read_to_string(out.join("round-1/train.tsv")).unwrap();
     assert_eq!(manifest.lines().count(), 1 + round.train_utterances);
@@ -211,4 +220,24 @@ fn a_round_that_keeps_nothing_is_reported_and_trains_on_the_transcribed_data() {
         .contains("no confidence threshold"));
     assert!(round.rule.contains("at most 0.0 %"), "{}", round.rule);
     assert!(out.join("round-1/model.safetensors").exists());
+}
+
+#[test]
+fn a_round_rate_share_outside_zero_to_one_is_refused_before_anything_runs() {
+    let dir = tempfile::tempdir().unwrap();
+    let train = manifest(dir.path(), "train.tsv", "train", 0..2, 2, false);
+    let pool = manifest(dir.path(), "pool.tsv", "train", 2..4, 0, false);
+    let dev = manifest(dir.path(), "dev.tsv", "dev", 0..2, 2, false);
+    for share in ["0", "1.5", "-0.3"] {
+        let out = dir.path().join(format!("model-{share}"));
+        let flag = format!("--round-rate-share={share}");
+        let run = self_train(&out, &dev, &train, &pool, &[&flag], false);
+        let stderr = String::from_utf8_lossy(&run.stderr);
+        assert!(!run.status.success(), "share {share}: {stderr}");
+        assert!(
+            stderr.contains("--round-rate-share") && stderr.contains(share),
+            "{stderr}"
+        );
+        assert!(!out.exists(), "share {share}: nothing is written");
+    }
 }

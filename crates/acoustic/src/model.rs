@@ -113,6 +113,10 @@ pub struct SelfTrainingRound {
     /// sound like dev, and the rule's dev WER may not hold for the kept segments.
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub warning: Option<String>,
+    /// The peak learning rate the round trained at (`--round-rate-share` × the
+    /// configuration's; absent in records written before it was recorded).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub learning_rate: Option<f64>,
 }
 
 /// `model.toml`: everything decoding needs besides the weights.

@@ -46,6 +46,9 @@ pub struct SelfTraining {
     pub lexicon: Option<PathBuf>,
     /// Beam search settings.
     pub search: SearchOptions,
+    /// The peak learning rate of every round's training as a share of the configuration's
+    /// (round 0, when trained here, uses the configuration's own).
+    pub round_rate_share: f64,
 }
 
 /// Where round `k` lives.
@@ -83,7 +86,7 @@ pub fn run(base: &TrainOptions, plan: &SelfTraining) -> anyhow::Result<Vec<SelfT
             let dir = round_dir(out, 0);
             if !done_mark(out, 0).exists() {
                 eprintln!("round 0: training on the transcribed data");
-                train_round(base, &dir, &base.train_manifest, None)?;
+                train_round(base, &dir, &base.train_manifest, None, 1.0)?;
                 write_atomically(&done_mark(out, 0), b"{\"round\": 0}\n")?;
             }
             dir
@@ -165,6 +168,7 @@ pub fn run(base: &TrainOptions, plan: &SelfTraining) -> anyhow::Result<Vec<SelfT
             &rows,
         )?;
         let note = selection.note();
+        let learning_rate = base.config.training.learning_rate * plan.round_rate_share;
         let against_dev = pool_against_dev(&segments, &candidates);
         let warning = against_dev.and_then(|a| a.warning());
         let mut record = SelfTrainingRound {
@@ -184,6 +188,7 @@ pub fn run(base: &TrainOptions, plan: &SelfTraining) -> anyhow::Result<Vec<SelfT
             dev_median_confidence: against_dev.map(|a| a.dev_median),
             pool_median_confidence: against_dev.map(|a| a.pool_median),
             warning: warning.clone(),
+            learning_rate: Some(learning_rate),
         };
         eprintln!(
             "round {k}: threshold {} ({}); kept {} of {} untranscribed segments ({:.2} of {:.2} h); dev WER of the labelling model {}, of the dev segments kept {}",
@@ -209,7 +214,17 @@ pub fn run(base: &TrainOptions, plan: &SelfTraining) -> anyhow::Result<Vec<SelfT
         // resumed run whose round was trained goes on to its dev transcript).
         let trained = dir.join("trained");
         if !trained.exists() {
-            train_round(base, &dir, &train_manifest, Some(&model))?;
+            eprintln!(
+                "round {k}: training from the previous weights at a peak learning rate of {learning_rate} ({} × the configuration's)",
+                plan.round_rate_share
+            );
+            train_round(
+                base,
+                &dir,
+                &train_manifest,
+                Some(&model),
+                plan.round_rate_share,
+            )?;
             write_atomically(&trained, b"")?;
         }
         model = dir.clone();
@@ -279,14 +294,18 @@ fn manifest_row(u: &Utterance, text: &str) -> anyhow::Result<Vec<String>> {
 }
 
 /// One training of a round into `dir`: resumed when a checkpoint is there, else started (from
-/// `from`'s weights when given).
+/// `from`'s weights when given), at `rate_share` × the configuration's peak learning rate.
 fn train_round(
     base: &TrainOptions,
     dir: &Path,
     manifest: &Path,
     from: Option<&Path>,
+    rate_share: f64,
 ) -> anyhow::Result<()> {
+    let mut config = base.config.clone();
+    config.training.learning_rate *= rate_share;
     let options = TrainOptions {
+        config,
         train_manifest: manifest.to_path_buf(),
         out: dir.to_path_buf(),
         resume: isogloss_acoustic::train::checkpoint_path(dir).exists(),
