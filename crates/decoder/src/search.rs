@@ -37,7 +37,7 @@ pub const DEFAULT_WORD_BONUS: f32 = 0.5;
 /// Wider beams only remove search errors and cost time. On clean familiar voices 16 already
 /// reads as well as 1 024 does; on unfamiliar voices and degraded channels, where the
 /// posteriors are flat and many spellings compete, the WER with the LM kept falling up to the
-/// widest beam measured (README, "The beam width": 6–7 points from 16 to 256 on the demo's
+/// widest beam measured (README, "The beam width": 5–7 points from 16 to 256 on the demo's
 /// noisy and reverberant `cross` rows). 256 is the widest power of two that kept
 /// transcription at or below half the speed goal (RTF 0.005 per core, warp search included)
 /// on every demo split.

@@ -41,8 +41,9 @@ use isogloss_sweep::{run as sweep_run, LexiconChoice, LexiconKind, LmChoice, Swe
 use super::transcribe::{FormatArg, TranscribeArgs};
 use crate::Outcome;
 
-/// Decoder settings of the demo: the decoder's defaults, which were tuned on this demo's dev
-/// split (see [`isogloss_decoder::DEFAULT_LM_WEIGHT`]).
+/// Decoder settings of the demo: the decoder's defaults (the LM weight and word bonus tuned on
+/// this demo's dev split, see [`isogloss_decoder::DEFAULT_LM_WEIGHT`]; the beam as wide as the
+/// speed goal allows, see [`isogloss_decoder::DEFAULT_BEAM`]).
 const BEAM: usize = isogloss_decoder::DEFAULT_BEAM;
 const LM_WEIGHT: f32 = isogloss_decoder::DEFAULT_LM_WEIGHT;
 const WORD_BONUS: f32 = isogloss_decoder::DEFAULT_WORD_BONUS;

@@ -215,7 +215,7 @@ pub fn run(base: &TrainOptions, plan: &SelfTraining) -> anyhow::Result<Vec<SelfT
         let trained = dir.join("trained");
         if !trained.exists() {
             eprintln!(
-                "round {k}: training from the previous weights at a peak learning rate of {learning_rate} ({} × the configuration's)",
+                "round {k}: training from the previous weights at a peak learning rate of {learning_rate:.3e} ({} × the configuration's)",
                 plan.round_rate_share
             );
             train_round(
