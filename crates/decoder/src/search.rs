@@ -440,10 +440,11 @@ impl<'a, L: LanguageModel> PrefixBeamSearch<'a, L> {
                     h.non_blank + frame[last as usize],
                 );
             }
-            let try_unit = |search: &mut Self, c: u32| {
+            // `next`: the trie node `c` leads to from the hypothesis's, when already known.
+            let try_unit = |search: &mut Self, c: u32, next: Option<TrieNode>| {
                 let from = if c == last { h.blank } else { total };
                 if from != f32::NEG_INFINITY {
-                    search.extend(h.node, c, from + frame[c as usize]);
+                    search.extend(h.node, c, from + frame[c as usize], next);
                 }
             };
             match graph.trie() {
@@ -451,19 +452,19 @@ impl<'a, L: LanguageModel> PrefixBeamSearch<'a, L> {
                 // walk those instead of every candidate unit.
                 Some(trie) => {
                     let at = self.arena[h.node as usize].trie;
-                    for &(c, _) in trie.children(at) {
+                    for &(c, next) in trie.children(at) {
                         if self.is_candidate[c as usize] {
-                            try_unit(self, c);
+                            try_unit(self, c, Some(next));
                         }
                     }
                     if let Some(b) = boundary.filter(|&b| self.is_candidate[b as usize]) {
-                        try_unit(self, b);
+                        try_unit(self, b, None);
                     }
                 }
                 None => {
                     for k in 0..self.candidates.len() {
                         let c = self.candidates[k];
-                        try_unit(self, c);
+                        try_unit(self, c, None);
                     }
                 }
             }
@@ -555,23 +556,24 @@ impl<'a, L: LanguageModel> PrefixBeamSearch<'a, L> {
     }
 
     /// Extends `parent` by label `unit` with probability `p`, into every continuation the word
-    /// rule allows.
-    fn extend(&mut self, parent: u32, unit: u32, p: f32) {
+    /// rule allows. `next`, when given, is the trie node `unit` leads to from `parent`'s (saves
+    /// looking it up again).
+    fn extend(&mut self, parent: u32, unit: u32, p: f32, next: Option<TrieNode>) {
         let graph = self.graph;
         let node = &self.arena[parent as usize];
         let is_boundary = Some(unit) == graph.boundary();
         match graph.word_rule() {
             WordRule::LexiconAtWordEnd => {
                 let Some(trie) = graph.trie() else { return };
-                let Some(child) = trie.child(node.trie, unit) else {
+                let Some(child) = next.or_else(|| trie.child(node.trie, unit)) else {
                     return;
                 };
                 if !trie.children(child).is_empty() {
-                    let target = self.child(parent, unit, NO_WORD);
+                    let target = self.child(parent, unit, NO_WORD, Some(child));
                     self.add(target, f32::NEG_INFINITY, p);
                 }
                 for &word in trie.words_at(child) {
-                    let target = self.child(parent, unit, word);
+                    let target = self.child(parent, unit, word, None);
                     self.add(target, f32::NEG_INFINITY, p);
                 }
             }
@@ -579,17 +581,17 @@ impl<'a, L: LanguageModel> PrefixBeamSearch<'a, L> {
                 let Some(trie) = graph.trie() else { return };
                 if is_boundary {
                     if node.trie == trie.root() {
-                        let target = self.child(parent, unit, NO_WORD);
+                        let target = self.child(parent, unit, NO_WORD, None);
                         self.add(target, f32::NEG_INFINITY, p);
                     } else {
                         let at = node.trie;
                         for &word in trie.words_at(at) {
-                            let target = self.child(parent, unit, word);
+                            let target = self.child(parent, unit, word, None);
                             self.add(target, f32::NEG_INFINITY, p);
                         }
                     }
-                } else if trie.child(node.trie, unit).is_some() {
-                    let target = self.child(parent, unit, NO_WORD);
+                } else if let Some(child) = next.or_else(|| trie.child(node.trie, unit)) {
+                    let target = self.child(parent, unit, NO_WORD, Some(child));
                     self.add(target, f32::NEG_INFINITY, p);
                 }
             }
@@ -599,18 +601,19 @@ impl<'a, L: LanguageModel> PrefixBeamSearch<'a, L> {
                 } else {
                     NO_WORD
                 };
-                let target = self.child(parent, unit, word);
+                let target = self.child(parent, unit, word, None);
                 self.add(target, f32::NEG_INFINITY, p);
             }
             WordRule::EveryUnit => {
-                let target = self.child(parent, unit, SPELLED);
+                let target = self.child(parent, unit, SPELLED, None);
                 self.add(target, f32::NEG_INFINITY, p);
             }
         }
     }
 
-    /// The arena node for `parent` + `unit` completing `word`, created on first use.
-    fn child(&mut self, parent: u32, unit: u32, word: u32) -> u32 {
+    /// The arena node for `parent` + `unit` completing `word`, created on first use; `next` as
+    /// for [`PrefixBeamSearch::extend`].
+    fn child(&mut self, parent: u32, unit: u32, word: u32, next: Option<TrieNode>) -> u32 {
         if let Some(&c) = self.children.get(&(parent, unit, word)) {
             return c;
         }
@@ -625,7 +628,7 @@ impl<'a, L: LanguageModel> PrefixBeamSearch<'a, L> {
         match (graph.trie(), word) {
             (Some(trie), NO_WORD) => {
                 if !is_boundary {
-                    if let Some(child) = trie.child(p.trie, unit) {
+                    if let Some(child) = next.or_else(|| trie.child(p.trie, unit)) {
                         trie_node = child;
                         lookahead = self.lookahead[child.index()];
                     }
