@@ -86,7 +86,13 @@ pub fn run(base: &TrainOptions, plan: &SelfTraining) -> anyhow::Result<Vec<SelfT
             let dir = round_dir(out, 0);
             if !done_mark(out, 0).exists() {
                 eprintln!("round 0: training on the transcribed data");
-                train_round(base, &dir, &base.train_manifest, None, 1.0)?;
+                train_round(
+                    base,
+                    &dir,
+                    &base.train_manifest,
+                    None,
+                    base.config.training.learning_rate,
+                )?;
                 write_atomically(&done_mark(out, 0), b"{\"round\": 0}\n")?;
             }
             dir
@@ -218,13 +224,7 @@ pub fn run(base: &TrainOptions, plan: &SelfTraining) -> anyhow::Result<Vec<SelfT
                 "round {k}: training from the previous weights at a peak learning rate of {learning_rate:.3e} ({} × the configuration's)",
                 plan.round_rate_share
             );
-            train_round(
-                base,
-                &dir,
-                &train_manifest,
-                Some(&model),
-                plan.round_rate_share,
-            )?;
+            train_round(base, &dir, &train_manifest, Some(&model), learning_rate)?;
             write_atomically(&trained, b"")?;
         }
         model = dir.clone();
@@ -294,16 +294,16 @@ fn manifest_row(u: &Utterance, text: &str) -> anyhow::Result<Vec<String>> {
 }
 
 /// One training of a round into `dir`: resumed when a checkpoint is there, else started (from
-/// `from`'s weights when given), at `rate_share` × the configuration's peak learning rate.
+/// `from`'s weights when given), at the peak learning rate `learning_rate`.
 fn train_round(
     base: &TrainOptions,
     dir: &Path,
     manifest: &Path,
     from: Option<&Path>,
-    rate_share: f64,
+    learning_rate: f64,
 ) -> anyhow::Result<()> {
     let mut config = base.config.clone();
-    config.training.learning_rate *= rate_share;
+    config.training.learning_rate = learning_rate;
     let options = TrainOptions {
         config,
         train_manifest: manifest.to_path_buf(),
