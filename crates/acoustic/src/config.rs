@@ -813,6 +813,7 @@ mod tests {
             include_str!("../../../configs/tdnn-small-robust.toml"),
             include_str!("../../../configs/tdnn-wide-robust.toml"),
             include_str!("../../../configs/tdnn-wider-robust.toml"),
+            include_str!("../../../configs/tdnn-deep-robust.toml"),
             include_str!("../../../configs/tdnn-medium.toml"),
             include_str!("../../../configs/tdnn-narrow.toml"),
             include_str!("../../../configs/tdnn-small-ivector.toml"),
