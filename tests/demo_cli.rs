@@ -10,22 +10,24 @@ use std::process::Command;
 #[path = "../crates/chart/tests/support/geometry.rs"]
 mod geometry;
 
-/// Measured with the shipped model, its warp search choosing by the decoder and the in-domain LM
-/// (README, "What the demo shows"): WER 10.3 %, flexible WER 6.9 % with the bf16 products its
-/// `model.toml` asks for, 10.4 % / 6.8 % in f32, which a CPU without AVX-512 BF16 runs (choosing by the posteriors'
-/// confidence 10.9 % / 7.1 %; without the warp search 10.5 % / 6.8 %; the
+/// Measured with the shipped model (eight layers 384 wide), its warp search choosing by the
+/// decoder, the in-domain LM and the decoder's defaults (README, "What the demo shows"): WER
+/// 10.0 %, flexible WER 5.1 % with the bf16 products its `model.toml` asks for. The six-layer
+/// width-512 model before it: 9.2 % / 5.8 % at the beam of 256, 10.3 % / 6.9 % at the beam of
+/// 16 (10.4 % / 6.8 % in f32, which a CPU without AVX-512 BF16 runs; choosing by the
+/// posteriors' confidence 10.9 % / 7.1 %; without the warp search 10.5 % / 6.8 %); the
 /// width-384 model before it: 11.1 % / 7.0 %; width 320: 12.7 % / 8.8 %; the light-dose model:
-/// 11.4 % / 7.3 %; the narrow-context model: 10.0 % / 6.3 %); plus a margin of about two points
+/// 11.4 % / 7.3 %; the narrow-context model: 10.0 % / 6.3 %. Plus a margin of about two points
 /// for numeric differences between machines. A model or decoder change that loses more than
 /// that fails here.
-const MAX_LM_WER: f64 = 0.124;
-const MAX_LM_FLEXIBLE_WER: f64 = 0.088;
+const MAX_LM_WER: f64 = 0.120;
+const MAX_LM_FLEXIBLE_WER: f64 = 0.071;
 /// The worst cross condition with the in-domain LM, measured with the shipped model (README,
-/// "What the demo shows"): noisy, 39.0 % (40.0 % choosing the warp by the posteriors' confidence,
-/// 42.2 % without the warp search, 43.9 % with the
-/// width-384 and width-320 models before it, 50.6 % with the light-dose one); plus the same
-/// margin.
-const MAX_CROSS_LM_WER: f64 = 0.410;
+/// "What the demo shows"): noisy, 28.3 % (32.4 % with the six-layer model before it at the
+/// same beam; at the beam of 16 it got 39.0 %, 40.0 % choosing the warp by the posteriors'
+/// confidence, 42.2 % without the warp search; 43.9 % with the width-384 and width-320 models
+/// before it, 50.6 % with the light-dose one); plus the same margin.
+const MAX_CROSS_LM_WER: f64 = 0.303;
 /// Greedy WER (the acoustic model alone, which the LM hides on familiar voices), measured with
 /// the shipped model: 17.2 % on the test split in bf16, 17.5 % in f32 (17.8 % without the warp search, 19.1 % with the
 /// width-384 model before it, 20.2 % with width 320, 21.8 % with the light-dose one) and 64.0 %

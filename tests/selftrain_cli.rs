@@ -76,7 +76,7 @@ fn self_train(
     command
         .args(["train", "--manifest", text(train), "--dev", text(dev)])
         .args(["--column", "dialectal", "--out", text(out), "--epochs", "1"])
-        .args(["--config", text(&repo("configs/tdnn-wider-robust.toml"))])
+        .args(["--config", text(&repo("configs/tdnn-deep-robust.toml"))])
         .args(["--from", text(&repo("models/demo"))])
         .args(["--untranscribed", text(pool), "--rounds", "1"])
         .args(["--lm", text(&repo("models/demo-lm/indomain-3gram.arpa"))])
@@ -137,7 +137,7 @@ fn a_round_runs_records_itself_and_resumes_as_complete() {
         stderr.contains("round 1: warning: the pool's median")
     );
     // The round trained at the default share (0.3) of the config's peak learning rate
-    // (configs/tdnn-wider-robust.toml: 0.003), and its model says so.
+    // (configs/tdnn-deep-robust.toml: 0.003), and its model says so.
     let rate = round
         .learning_rate
         .expect("the round's learning rate is recorded");

@@ -13,16 +13,17 @@ use isogloss_score::{align, tokenize, TokenRules, VariantMap};
 use isogloss_sweep::resources::lm_words;
 
 /// WER and flexible WER of the first interview with the shipped model (and its warp search,
-/// choosing by the decoder), LM and lexicon at the default decoder settings, measured 25.4 % and
-/// 23.2 % (272 reference words; the interviewer's questions are not in the LM's text; 26.8 % /
-/// 23.9 % choosing the warp by the posteriors' confidence; 27.2 % / 25.0 % without the warp
-/// search; 29.4 % / 26.5 % with the width-384 model before it,
+/// choosing by the decoder), LM and lexicon at the default decoder settings, measured 28.3 % and
+/// 25.7 % (272 reference words; the interviewer's questions are not in the LM's text). The
+/// six-layer width-512 model before it got 25.7 % / 23.2 % at today's beam of 256 and 25.4 % /
+/// 23.2 % at the beam of 16 (26.8 % / 23.9 % choosing the warp by the posteriors' confidence;
+/// 27.2 % / 25.0 % without the warp search); 29.4 % / 26.5 % with the width-384 model before it,
 /// 32.7 % / 29.4 % with the width-320 one,
 /// 28.3 % / 25.0 % with the light-dose model before that, which did worse on every degraded
-/// channel; 36.8 % / 33.5 % with the model of an early recipe), plus about two points
+/// channel; 36.8 % / 33.5 % with the model of an early recipe. Plus about two points
 /// (DEVELOPERS.md).
-const MAX_INTERVIEW_WER: f64 = 0.274;
-const MAX_INTERVIEW_FLEXIBLE_WER: f64 = 0.252;
+const MAX_INTERVIEW_WER: f64 = 0.303;
+const MAX_INTERVIEW_FLEXIBLE_WER: f64 = 0.277;
 
 fn repo(path: &str) -> PathBuf {
     Path::new(env!("CARGO_MANIFEST_DIR"))

@@ -724,16 +724,19 @@ mod tests {
         assert!(diff < 1e-4, "logits differ by {diff}");
     }
 
-    /// The README says the shipped demo model is `configs/tdnn-wider-robust.toml` trained for
+    /// The README says the shipped demo model is `configs/tdnn-deep-robust.toml` trained for
     /// its 160 epochs with seed 2: its `model.toml` records that network, front end, schedule,
-    /// precision of the training products and perturbation, and the last of the 160 epochs.
+    /// precision of the training products and perturbation, the last of the 160 epochs, and the
+    /// `[inference]` table `isogloss train` writes for that recipe (the warp search over its VTLP
+    /// range, bf16 products).
     #[test]
-    fn the_demo_model_was_trained_with_the_wider_robust_recipe() {
+    fn the_demo_model_was_trained_with_the_deep_robust_recipe() {
         let root = Path::new(env!("CARGO_MANIFEST_DIR")).join("../..");
         let model = AcousticModel::load(&root.join("models/demo")).unwrap();
-        let config = ModelConfig::read(&root.join("configs/tdnn-wider-robust.toml")).unwrap();
+        let config = ModelConfig::read(&root.join("configs/tdnn-deep-robust.toml")).unwrap();
         let description = model.description();
         assert_eq!(description.architecture, config.model);
+        assert_eq!(description.architecture.layers.len(), 8);
         assert_eq!(description.features, config.features);
         assert_eq!(description.training.as_ref(), Some(&config.training));
         assert_eq!(
@@ -742,9 +745,6 @@ mod tests {
         );
         assert_eq!(description.provenance.seed, 2);
         assert_eq!(description.provenance.epochs, 160);
-        // Decoded with the `[inference]` table `isogloss train` now writes for that recipe: the
-        // warp search over its VTLP range and its bf16 products (added to the model.toml by
-        // hand: the model was trained before either existed).
         assert_eq!(
             description.inference,
             crate::warp_search::Inference::from_training(

@@ -234,7 +234,7 @@ fn a_warm_start_begins_from_the_model_and_refuses_another_network() {
     let path = manifest(dir.path(), "few.tsv", &FEW);
     let shipped = Path::new(env!("CARGO_MANIFEST_DIR")).join("../../models/demo");
     let demo_config = ModelConfig::read(
-        &Path::new(env!("CARGO_MANIFEST_DIR")).join("../../configs/tdnn-wider-robust.toml"),
+        &Path::new(env!("CARGO_MANIFEST_DIR")).join("../../configs/tdnn-deep-robust.toml"),
     )
     .unwrap();
     let run = |name: &str, start_from: Option<PathBuf>| {
