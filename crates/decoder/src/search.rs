@@ -41,8 +41,8 @@ pub const DEFAULT_WORD_BONUS: f32 = 0.5;
 /// noisy and reverberant `cross` rows). 256 is the widest power of two that kept
 /// transcription at or below half the speed goal (RTF 0.005 per core, warp search included)
 /// on every demo split with the shipped model's bf16 products; with f32 products (CPUs
-/// without AVX-512 BF16), where the network itself takes about 0.008, a long recording stays
-/// at 0.006 and short degraded clips reach 0.010–0.011 (0.009 at 128).
+/// without AVX-512 BF16) the shipped eight-layer model's short degraded clips take 0.008–0.009
+/// (the six-layer model before it: 0.010–0.011, 0.009 at 128).
 pub const DEFAULT_BEAM: usize = 256;
 
 /// Tuning of the prefix beam search. Every pruning option trades accuracy for speed; with
